@@ -1,0 +1,43 @@
+"""The ``dbfit`` command line."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+from dbfit.errors import DbfitError
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(prog="dbfit", description="Logistic regression inside the database.")
+    commands = parser.add_subparsers(dest="command", required=True)
+
+    demo = commands.add_parser("demo", help="build an invented courier scenario in DuckDB and fit it")
+    demo.add_argument("--database", default="dbfit_demo.duckdb", help="DuckDB file to create (default: %(default)s)")
+    demo.add_argument("--rows", type=int, default=1_000_000, help="deliveries to generate (default: %(default)s)")
+    demo.add_argument("--quiet", action="store_true", help="no per-pass progress lines")
+
+    bench = commands.add_parser("bench", help="time dbfit against export+statsmodels and in-memory numpy")
+    bench.add_argument("--rows", type=int, default=5_000_000, help="rows (default: %(default)s)")
+    bench.add_argument("--predictors", type=int, default=20, help="numeric predictors (default: %(default)s)")
+    bench.add_argument("--methods", default="abc", help="subset of a (dbfit), b (statsmodels), c (numpy)")
+    bench.add_argument("--keep", default=None, help="reuse or keep the data in this DuckDB file")
+
+    args = parser.parse_args(argv)
+    try:
+        if args.command == "demo":
+            from dbfit.demo import run_demo
+
+            run_demo(args.database, args.rows, quiet=args.quiet)
+        elif args.command == "bench":
+            from dbfit.bench import run_bench
+
+            run_bench(args.rows, args.predictors, args.methods, args.keep)
+    except DbfitError as err:
+        print(f"dbfit: {err}", file=sys.stderr)
+        return 2
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

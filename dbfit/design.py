@@ -1,0 +1,453 @@
+"""Design encoding: from parsed formula and source to the model's internal columns.
+
+One profiling scan over the complete rows (no NULL in any used expression) counts rows, checks the target,
+weights and predictors, finds categorical levels and the centre and scale of every numeric column.
+Numeric columns are centred (when there is an intercept) and scaled internally so that the Gram matrix is
+well conditioned; estimates are mapped back to the original scale in :mod:`dbfit.inference`.
+Categorical factors use treatment (indicator) coding against a reference level.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass, field
+from itertools import product
+from typing import Any
+
+from sqlglot import exp
+
+from dbfit import sqlbuild as sb
+from dbfit.engine import DuckDBEngine
+from dbfit.errors import FitError, FormulaError
+from dbfit.formula import Formula, parse_expression
+
+NUMERIC_TYPE = re.compile(
+    r"^(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|UTINYINT|USMALLINT|UINTEGER|UBIGINT|UHUGEINT|FLOAT|REAL|DOUBLE|DECIMAL.*|NUMERIC.*|INT\d*)$",
+    re.IGNORECASE,
+)
+FLOAT_TYPE = re.compile(r"^(FLOAT|REAL|DOUBLE)$", re.IGNORECASE)
+CATEGORICAL_TYPE = re.compile(r"^(VARCHAR|BOOLEAN|ENUM.*)$", re.IGNORECASE)
+
+TARGET, WEIGHT, OFFSET, TRIALS = "dbfit_y", "dbfit_w", "dbfit_o", "dbfit_n"
+MAX_OFFENDING_SHOWN = 10
+
+
+@dataclass
+class Factor:
+    """One distinct expression used in the terms; ``alias`` names it in the base query."""
+
+    text: str
+    expression: exp.Expression
+    alias: str
+    sql_type: str = ""
+    kind: str = ""  # "numeric" or "categorical"
+    levels: list[Any] = field(default_factory=list)  # python values, sorted; first non-dropped is reference
+    reference: Any = None
+
+    def level_label(self, value: Any) -> str:
+        return level_label(value)
+
+    def level_literal(self, value: Any) -> exp.Expression:
+        if isinstance(value, bool):
+            return exp.Boolean(this=value)
+        return exp.Literal.string(str(value))
+
+
+@dataclass
+class DesignColumn:
+    """One internal column: (product of numeric factors - centre) / scale, times level indicators."""
+
+    label: str
+    term: str
+    numeric: tuple[int, ...]  # factor indices multiplied together
+    indicators: tuple[tuple[int, Any], ...]  # (factor index, level value)
+    centre: float = 0.0
+    scale: float = 1.0
+    constant: bool = False  # zero variance in the data: aliased with the intercept (or all zero)
+
+
+@dataclass
+class Design:
+    """Everything the statistics query and the inference need to know about the data."""
+
+    formula: Formula
+    relation: exp.Expression
+    factors: list[Factor]
+    columns: list[DesignColumn]
+    intercept: bool
+    target: exp.Expression
+    weights: exp.Expression | None
+    offset: exp.Expression | None
+    trials: exp.Expression | None
+    weights_text: str | None
+    offset_text: str | None
+    trials_text: str | None
+    positive: str | None
+    rows_total: int = 0
+    rows_used: int = 0
+    weight_sum: float = 0.0
+    success_sum: float = 0.0  # weighted sum of the target
+    trial_sum: float = 0.0  # weighted sum of trials (= weight_sum for 0/1 targets)
+    loglik_constant: float = 0.0  # weighted sum of log binomial coefficients
+    saturated_loglik: float = 0.0
+
+    @property
+    def labels(self) -> list[str]:
+        return (["intercept"] if self.intercept else []) + [c.label for c in self.columns]
+
+    def base_query(self) -> exp.Select:
+        """SELECT of the used expressions over the complete rows of the source (one row per source row)."""
+        projections = [exp.alias_(self.target.copy(), TARGET, quoted=True)]
+        projections += [exp.alias_(f.expression.copy(), f.alias, quoted=True) for f in self.factors]
+        for node, name in ((self.weights, WEIGHT), (self.offset, OFFSET), (self.trials, TRIALS)):
+            if node is not None:
+                projections.append(exp.alias_(node.copy(), name, quoted=True))
+        inner = exp.select(*projections).from_(self.relation.copy())
+        names = [TARGET] + [f.alias for f in self.factors] + [
+            name for node, name in ((self.weights, WEIGHT), (self.offset, OFFSET), (self.trials, TRIALS)) if node is not None
+        ]
+        where = sb.all_not_null([sb.column(n) for n in names])
+        return exp.select("*").from_(inner.subquery("dbfit_rows")).where(where)
+
+    def column_expression(self, column: DesignColumn) -> exp.Expression:
+        """SQL for the internal (centred, scaled) value of ``column`` over the base query's aliases."""
+        parts: list[exp.Expression] = []
+        if column.numeric:
+            value = sb.mul(*[sb.as_double(sb.column(self.factors[i].alias)) for i in column.numeric])
+            if column.centre != 0.0:
+                value = sb.sub(sb.paren(value), sb.number(column.centre))
+            parts.append(sb.div(sb.paren(value), sb.number(column.scale)) if column.scale != 1.0 else sb.paren(value))
+        for index, level in column.indicators:
+            factor = self.factors[index]
+            parts.append(sb.as_double(exp.EQ(this=sb.column(factor.alias), expression=factor.level_literal(level))))
+        return sb.mul(*parts) if parts else exp.Literal.number(1)
+
+    def weight_expression(self) -> exp.Expression:
+        return sb.column(WEIGHT) if self.weights is not None else exp.Literal.number(1)
+
+    def trials_expression(self) -> exp.Expression:
+        return sb.column(TRIALS) if self.trials is not None else exp.Literal.number(1)
+
+    def offset_expression(self) -> exp.Expression | None:
+        return sb.column(OFFSET) if self.offset is not None else None
+
+
+def level_label(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    return str(value)
+
+
+def build_design(
+    engine: DuckDBEngine,
+    formula: Formula,
+    relation: exp.Expression,
+    *,
+    weights: str | None = None,
+    offset: str | None = None,
+    trials: str | None = None,
+    positive: Any = None,
+    reference: dict[str, Any] | None = None,
+) -> Design:
+    """Type the expressions, run the profiling scan, and lay out the internal columns."""
+    factors = [
+        Factor(text=text, expression=_factor_expression(formula, text), alias=f"dbfit_f{i}")
+        for i, text in enumerate(formula.factor_texts())
+    ]
+    design = Design(
+        formula=formula,
+        relation=relation,
+        factors=factors,
+        columns=[],
+        intercept=formula.intercept,
+        target=formula.target,
+        weights=parse_expression(weights, "weights") if weights is not None else None,
+        offset=parse_expression(offset, "offset") if offset is not None else None,
+        trials=parse_expression(trials, "trials") if trials is not None else None,
+        weights_text=weights,
+        offset_text=offset,
+        trials_text=trials,
+        positive=None if positive is None else str(positive),
+    )
+    _assign_types(engine, design, positive)
+    _check_references(design, reference or {})
+    _profile(engine, design, reference or {})
+    return design
+
+
+def _factor_expression(formula: Formula, text: str) -> exp.Expression:
+    for term in formula.terms:
+        for factor_text, node in zip(term.texts, term.factors):
+            if factor_text == text:
+                return node
+    raise AssertionError(text)
+
+
+def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
+    probe = exp.select(exp.alias_(design.target.copy(), TARGET, quoted=True))
+    for f in design.factors:
+        probe = probe.select(exp.alias_(f.expression.copy(), f.alias, quoted=True))
+    for node, name in ((design.weights, WEIGHT), (design.offset, OFFSET), (design.trials, TRIALS)):
+        if node is not None:
+            probe = probe.select(exp.alias_(node.copy(), name, quoted=True))
+    types = dict(engine.describe(probe.from_(design.relation.copy())))
+
+    target_type = types[TARGET]
+    if positive is not None:
+        literal = exp.Boolean(this=positive) if isinstance(positive, bool) else (
+            sb.number(positive) if isinstance(positive, (int, float)) else exp.Literal.string(str(positive))
+        )
+        design.target = sb.as_double(exp.EQ(this=sb.paren(design.target), expression=literal))
+    elif target_type.upper() == "BOOLEAN":
+        design.target = sb.as_double(design.target)
+    elif NUMERIC_TYPE.match(target_type):
+        design.target = sb.as_double(design.target)
+    else:
+        raise FitError(
+            f"the target '{design.formula.target_text}' has type {target_type}; give a 0/1 or boolean expression, "
+            f"or name the positive class with positive=... (e.g. positive='late')"
+        )
+    design.target_type = target_type  # type: ignore[attr-defined]
+
+    for f in design.factors:
+        f.sql_type = types[f.alias]
+        if NUMERIC_TYPE.match(f.sql_type):
+            f.kind = "numeric"
+        elif CATEGORICAL_TYPE.match(f.sql_type):
+            f.kind = "categorical"
+        else:
+            raise FormulaError(
+                f"term '{f.text}' has SQL type {f.sql_type}, which is neither numeric nor categorical "
+                "(VARCHAR, ENUM, BOOLEAN); cast it in the formula, e.g. 'extract(hour FROM t)'"
+            )
+    for node, name, what in ((design.weights, WEIGHT, "weights"), (design.offset, OFFSET, "offset"), (design.trials, TRIALS, "trials")):
+        if node is not None and not NUMERIC_TYPE.match(types[name]):
+            raise FormulaError(f"{what} expression has SQL type {types[name]}; it must be numeric")
+    if design.offset is not None:
+        design.offset = sb.as_double(design.offset)
+    if design.weights is not None:
+        design.weights = sb.as_double(design.weights)
+    if design.trials is not None:
+        design.trials = sb.as_double(design.trials)
+
+
+def _check_references(design: Design, reference: dict[str, Any]) -> None:
+    known = {f.text: f for f in design.factors}
+    for name in reference:
+        factor = known.get(name)
+        if factor is None:
+            raise FormulaError(f"reference names '{name}', which is not a term of the formula (terms: {', '.join(known)})")
+        if factor.kind != "categorical":
+            raise FormulaError(f"reference names '{name}', which is numeric; only categorical terms have a reference level")
+
+
+def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) -> None:
+    y, w, n = sb.column(TARGET), design.weight_expression(), design.trials_expression()
+    products = _numeric_products(design)
+    aggregates: dict[str, exp.Expression] = {
+        "used": exp.Count(this=exp.Star()),
+        "weight_sum": sb.agg_sum(w.copy()),
+        "success_sum": sb.agg_sum(sb.mul(w.copy(), y.copy())),
+        "trial_sum": sb.agg_sum(sb.mul(w.copy(), n.copy())),
+        "bad_target": _count_where(_bad_target_condition(design)),
+    }
+    if design.trials is not None:
+        aggregates["loglik_constant"] = sb.agg_sum(sb.mul(w.copy(), _log_binomial(y, n)))
+        aggregates["saturated_loglik"] = sb.agg_sum(sb.mul(w.copy(), _saturated_term(y, n)))
+    if design.weights is not None:
+        aggregates["bad_weight"] = _count_where(
+            exp.Or(this=exp.LT(this=w.copy(), expression=exp.Literal.number(0)), expression=exp.Not(this=sb.func("isfinite", w.copy())))
+        )
+    if design.offset is not None:
+        aggregates["bad_offset"] = _count_where(exp.Not(this=sb.func("isfinite", sb.column(OFFSET))))
+    for i, f in enumerate(design.factors):
+        if f.kind == "numeric" and FLOAT_TYPE.match(f.sql_type):
+            aggregates[f"nonfinite_{i}"] = _count_where(exp.Not(this=sb.func("isfinite", sb.column(f.alias))))
+        if f.kind == "categorical":
+            aggregates[f"levels_{i}"] = exp.ArrayAgg(
+                this=exp.Order(
+                    this=exp.Distinct(expressions=[sb.column(f.alias)]),
+                    expressions=[exp.Ordered(this=sb.column(f.alias), nulls_first=False)],
+                )
+            )
+    for key, indices in products.items():
+        value = sb.mul(*[sb.as_double(sb.column(design.factors[i].alias)) for i in indices])
+        aggregates[f"mean_{key}"] = exp.Avg(this=value)
+        aggregates[f"sd_{key}"] = exp.StddevPop(this=value.copy())
+
+    names = list(aggregates)
+    query = exp.select(*[exp.alias_(node, name, quoted=True) for name, node in aggregates.items()]).from_(
+        design.base_query().subquery("dbfit_base")
+    )
+    total_query = exp.select(exp.Count(this=exp.Star())).from_(design.relation.copy())
+    query = query.select(exp.alias_(total_query.subquery(), "total", quoted=True))
+    row = dict(zip(names + ["total"], engine.fetch(query)[0]))
+
+    design.rows_total, design.rows_used = int(row["total"]), int(row["used"])
+    if design.rows_used == 0:
+        raise FitError(
+            f"no rows left to fit: all {design.rows_total} rows of the source have NULL in a used column "
+            f"(target, terms, weights, offset or trials)"
+            if design.rows_total
+            else "no rows to fit: the source is empty"
+        )
+    if row["bad_target"]:
+        raise FitError(_bad_target_message(engine, design, int(row["bad_target"])))
+    if row.get("bad_weight"):
+        raise FitError(f"weights '{design.weights_text}' has {row['bad_weight']} negative or non-finite values")
+    if row.get("bad_offset"):
+        raise FitError(f"offset '{design.offset_text}' has {row['bad_offset']} non-finite values (NaN or infinity)")
+    for i, f in enumerate(design.factors):
+        if row.get(f"nonfinite_{i}"):
+            raise FitError(
+                f"term '{f.text}' has {row[f'nonfinite_{i}']} non-finite values (NaN or infinity) among the rows used; "
+                "filter them out in the source or map them to NULL"
+            )
+    design.weight_sum = float(row["weight_sum"] or 0.0)
+    design.success_sum = float(row["success_sum"] or 0.0)
+    design.trial_sum = float(row["trial_sum"] or 0.0)
+    if design.weight_sum <= 0:
+        raise FitError("the weights of the rows used add up to zero; nothing to fit")
+    if design.success_sum <= 0 or design.success_sum >= design.trial_sum:
+        outcome = "0 (no successes)" if design.success_sum <= 0 else "1 (no failures)"
+        raise FitError(
+            f"the target '{design.formula.target_text}' is {outcome} on all {design.rows_used} rows used: "
+            "a logistic model needs both classes"
+        )
+    design.loglik_constant = float(row.get("loglik_constant") or 0.0)
+    design.saturated_loglik = float(row.get("saturated_loglik") or 0.0)
+
+    for i, f in enumerate(design.factors):
+        if f.kind == "categorical":
+            f.levels = list(row[f"levels_{i}"])
+            wanted = reference.get(f.text)
+            if wanted is not None:
+                match = [v for v in f.levels if level_label(v) == level_label(wanted)]
+                if not match:
+                    shown = ", ".join(level_label(v) for v in f.levels[:20])
+                    raise FormulaError(f"reference level '{wanted}' of '{f.text}' does not occur in the data (levels: {shown})")
+                f.reference = match[0]
+            else:
+                f.reference = f.levels[0]
+    design.columns = _layout_columns(design, row, products)
+
+
+def _numeric_products(design: Design) -> dict[str, tuple[int, ...]]:
+    index = {f.text: i for i, f in enumerate(design.factors)}
+    products: dict[str, tuple[int, ...]] = {}
+    for term in design.formula.terms:
+        numeric = tuple(index[t] for t in term.texts if design.factors[index[t]].kind == "numeric")
+        if numeric:
+            products["_".join(map(str, numeric))] = numeric
+    return products
+
+
+def _layout_columns(design: Design, row: dict[str, Any], products: dict[str, tuple[int, ...]]) -> list[DesignColumn]:
+    index = {f.text: i for i, f in enumerate(design.factors)}
+    columns: list[DesignColumn] = []
+    for term in design.formula.terms:
+        numeric = tuple(index[t] for t in term.texts if design.factors[index[t]].kind == "numeric")
+        categorical = [index[t] for t in term.texts if design.factors[index[t]].kind == "categorical"]
+        centre, scale, constant = 0.0, 1.0, False
+        if numeric:
+            key = "_".join(map(str, numeric))
+            mean = float(row[f"mean_{key}"])
+            sd = float(row[f"sd_{key}"] or 0.0)
+            if not categorical and design.intercept:
+                centre = mean
+                constant = not sd > 1e-12 * max(1.0, abs(mean))
+                scale = sd if not constant else 1.0
+            else:
+                root_mean_square = math.sqrt(sd * sd + mean * mean)
+                constant = root_mean_square == 0.0
+                scale = sd if sd > 1e-12 * max(1.0, abs(mean)) else (root_mean_square or 1.0)
+        level_sets = [
+            [(i, v) for v in design.factors[i].levels if v != design.factors[i].reference] for i in categorical
+        ]
+        for combination in product(*level_sets):
+            pieces = []
+            for text in term.texts:
+                i = index[text]
+                if design.factors[i].kind == "numeric":
+                    pieces.append(text)
+                else:
+                    value = dict(combination)[i]
+                    pieces.append(f"{text}={level_label(value)}")
+            columns.append(
+                DesignColumn(
+                    label=":".join(pieces),
+                    term=term.label,
+                    numeric=numeric,
+                    indicators=tuple(combination),
+                    centre=centre,
+                    scale=scale,
+                    constant=constant,
+                )
+            )
+    return columns
+
+
+def _count_where(condition: exp.Expression) -> exp.Expression:
+    return sb.agg_sum(exp.If(this=condition, true=exp.Literal.number(1), false=exp.Literal.number(0)))
+
+
+def _bad_target_condition(design: Design) -> exp.Expression:
+    y = sb.column(TARGET)
+    if design.trials is not None:
+        n = sb.column(TRIALS)
+        return exp.or_(
+            exp.LT(this=y.copy(), expression=exp.Literal.number(0)),
+            exp.GT(this=y.copy(), expression=n.copy()),
+            exp.LTE(this=n.copy(), expression=exp.Literal.number(0)),
+            exp.Not(this=sb.func("isfinite", n.copy())),
+        )
+    return exp.Not(this=exp.In(this=y, expressions=[exp.Literal.number(0), exp.Literal.number(1)]))
+
+
+def _bad_target_message(engine: DuckDBEngine, design: Design, count: int) -> str:
+    values_query = (
+        exp.select(sb.column(TARGET))
+        .distinct()
+        .from_(design.base_query().subquery("dbfit_base"))
+        .where(_bad_target_condition(design))
+        .order_by(sb.column(TARGET))
+        .limit(MAX_OFFENDING_SHOWN)
+    )
+    shown = ", ".join(_format_value(r[0]) for r in engine.fetch(values_query))
+    if design.trials is not None:
+        return (
+            f"the target '{design.formula.target_text}' must count successes between 0 and trials "
+            f"'{design.trials_text}' (> 0) on every row; {count} rows break this (target values: {shown})"
+        )
+    return (
+        f"the target '{design.formula.target_text}' must be 0/1 or true/false; {count} rows hold other values "
+        f"({shown}); write a condition such as \"status = 'late'\" or pass positive=..."
+    )
+
+
+def _format_value(value: Any) -> str:
+    if isinstance(value, float) and value.is_integer():
+        return str(int(value))
+    return str(value)
+
+
+def _log_binomial(y: exp.Expression, n: exp.Expression) -> exp.Expression:
+    one = exp.Literal.number(1)
+    return sb.sub(
+        sb.sub(sb.func("lgamma", sb.add(n.copy(), one)), sb.func("lgamma", sb.add(y.copy(), one.copy()))),
+        sb.func("lgamma", sb.add(sb.sub(n.copy(), y.copy()), one.copy())),
+    )
+
+
+def _saturated_term(y: exp.Expression, n: exp.Expression) -> exp.Expression:
+    """y log(y/n) + (n-y) log(1-y/n), with 0 log 0 = 0."""
+
+    def x_log_ratio(x: exp.Expression) -> exp.Expression:
+        return exp.If(
+            this=exp.GT(this=x.copy(), expression=exp.Literal.number(0)),
+            true=sb.mul(x.copy(), exp.Ln(this=sb.div(x.copy(), n.copy()))),
+            false=exp.Literal.number(0),
+        )
+
+    return sb.add(x_log_ratio(y), x_log_ratio(sb.paren(sb.sub(n.copy(), y.copy()))))

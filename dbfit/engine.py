@@ -1,0 +1,72 @@
+"""The one place dbfit talks to a database: run a query tree, fetch its rows, describe its columns.
+
+Later engines (PostgreSQL, Spark) implement the same three methods; dialect quirks live in their module.
+"""
+
+from __future__ import annotations
+
+import re
+from typing import Any
+
+import duckdb
+from sqlglot import exp
+
+from dbfit.errors import DbfitError, FormulaError, SourceError
+
+
+class DuckDBEngine:
+    """Runs sqlglot trees on a DuckDB connection and counts the queries that scan the data."""
+
+    dialect = "duckdb"
+
+    def __init__(self, connection: duckdb.DuckDBPyConnection) -> None:
+        self.connection = connection
+        self.scans = 0
+
+    def sql(self, query: exp.Expression) -> str:
+        return query.sql(dialect=self.dialect)
+
+    def fetch(self, query: exp.Expression, *, scan: bool = True) -> list[tuple[Any, ...]]:
+        """Run ``query`` and return all its rows; ``scan`` says whether it reads the whole source."""
+        if scan:
+            self.scans += 1
+        return self._run(self.sql(query))
+
+    def describe(self, query: exp.Expression) -> list[tuple[str, str]]:
+        """Column names and SQL types of ``query`` without reading its rows."""
+        rows = self._run(f"DESCRIBE {self.sql(query)}")
+        return [(row[0], row[1]) for row in rows]
+
+    def _run(self, sql: str) -> list[tuple[Any, ...]]:
+        try:
+            return self.connection.execute(sql).fetchall()
+        except duckdb.Error as err:
+            raise translate_error(err) from None
+
+
+_MISSING_COLUMN = re.compile(r'Referenced column "?([^"\s]+)"? not found', re.IGNORECASE)
+
+
+def translate_error(err: duckdb.Error) -> DbfitError:
+    """Map a DuckDB error to the dbfit family with a message that says what to change."""
+    message = str(err).strip()
+    first = message.splitlines()[0] if message else type(err).__name__
+    missing = _MISSING_COLUMN.search(message)
+    if missing:
+        candidates = re.search(r"Candidate bindings: (.*)", message)
+        hint = f" (the source has: {candidates.group(1).strip()})" if candidates else ""
+        return FormulaError(f"unknown column '{missing.group(1)}' in the formula or options{hint}")
+    if isinstance(err, duckdb.CatalogException):
+        return SourceError(f"the source cannot be found: {first}")
+    if isinstance(err, duckdb.IOException):
+        if "lock" in message.lower():
+            return SourceError(
+                "the database file is locked by another process; wait for it to finish or open the file read-only "
+                f"({first})"
+            )
+        return SourceError(f"the source cannot be read: {first}")
+    if isinstance(err, (duckdb.BinderException, duckdb.ParserException)):
+        return FormulaError(f"the formula or an option does not fit the source: {first}")
+    if isinstance(err, duckdb.ConversionException):
+        return FormulaError(f"a value cannot be converted: {first}")
+    return DbfitError(f"the database refused the query: {first}")

@@ -1,0 +1,23 @@
+"""The one exception family of dbfit.
+
+Every error dbfit raises on purpose derives from :class:`DbfitError`, itself a ``ValueError``,
+so callers can catch the whole family with one clause.
+"""
+
+from __future__ import annotations
+
+
+class DbfitError(ValueError):
+    """Base of every error dbfit raises on purpose."""
+
+
+class FormulaError(DbfitError):
+    """The formula, a term, or an option expression cannot be used (syntax, unknown column, unsafe SQL)."""
+
+
+class SourceError(DbfitError):
+    """The data source is not a table, view, file path or single SELECT, or cannot be read."""
+
+
+class FitError(DbfitError):
+    """The data cannot be fitted as asked (bad target values, no rows, non-finite predictors, ...)."""

@@ -1,0 +1,78 @@
+"""The fitted model: estimates on the original scale, their covariance, fit statistics and warnings."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+
+from dbfit.design import Design
+
+
+@dataclass
+class Model:
+    """A fitted logistic regression.
+
+    ``coefficients`` is a pyarrow table (one row per term, NULL estimates for aliased terms),
+    ``covariance`` the p x p covariance of the estimates on the original scale (NaN rows for aliased
+    terms), ``stats`` a dict of fit statistics and ``warnings`` plain-language problems found in the fit.
+    """
+
+    formula: str
+    source: str
+    design: Design
+    labels: list[str]
+    estimates: np.ndarray
+    covariance: np.ndarray
+    coefficients: pa.Table
+    stats: dict[str, Any]
+    warnings: list[str] = field(default_factory=list)
+    options: dict[str, Any] = field(default_factory=dict)
+
+    def estimate(self, label: str) -> float:
+        """The estimate of one term by its label (NaN when aliased)."""
+        return float(self.estimates[self.labels.index(label)])
+
+    def summary(self) -> str:
+        """A plain-text report of the fit, in dbfit's own layout."""
+        s = self.stats
+        lines = [
+            f"dbfit | logistic model of  {self.formula}",
+            f"  data      {self.source}",
+            f"  rows      {s['n_used']:,} used, {s['n_excluded']:,} set aside for NULLs",
+            f"  fit       {'converged' if s['converged'] else 'NOT converged'} after {s['iterations']} Newton passes"
+            f" ({s['scans']} scans of the data)",
+            f"  deviance  {s['deviance']:,.4f} on {s['df_residual']:,} df; intercept-only {s['null_deviance']:,.4f}",
+            f"  log-lik   {s['log_likelihood']:,.4f}   AIC {s['aic']:,.4f}   BIC {s['bic']:,.4f}",
+            "",
+            "  effects on the log-odds, with the odds multiplier per unit and its 95% Wald interval",
+        ]
+        width = max([len(label) for label in self.labels] + [4])
+        lines.append(
+            f"  {'term':<{width}}  {'log-odds':>11} {'std.err':>10} {'z':>8} {'p':>9}   {'odds x':>9}  [95% interval]"
+        )
+        for row in self.coefficients.to_pylist():
+            if row["estimate"] is None:
+                lines.append(f"  {row['term']:<{width}}  {'aliased: no estimate':>40}")
+                continue
+            lines.append(
+                f"  {row['term']:<{width}}  {row['estimate']:>11.5g} {row['std_error']:>10.4g} {row['wald_z']:>8.3g}"
+                f" {_p_text(row['p_value']):>9}   {row['odds_ratio']:>9.4g}  [{row['odds_ratio_low']:.4g}, {row['odds_ratio_high']:.4g}]"
+            )
+        if self.warnings:
+            lines.append("")
+            lines.append("  warnings")
+            lines += [f"  ! {w}" for w in self.warnings]
+        return "\n".join(lines)
+
+    def __repr__(self) -> str:
+        return f"<dbfit.Model {self.formula!r}: {self.stats['n_used']} rows, deviance {self.stats['deviance']:.6g}>"
+
+
+def _p_text(p: float | None) -> str:
+    if p is None or math.isnan(p):
+        return "-"
+    return "<1e-300" if p < 1e-300 else f"{p:.3g}"

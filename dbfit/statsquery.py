@@ -1,0 +1,111 @@
+"""The statistics query: one aggregate scan that returns X'WX, the score X'(y - mu) and the log-likelihood.
+
+For the logistic log-likelihood l(b) = sum w_i [y_i eta_i - n_i log(1 + exp(eta_i))] with eta = offset + X b,
+the score is X' w (y - n mu) and the Fisher information X' diag(w n mu (1 - mu)) X
+(McCullagh and Nelder 1989, Generalized Linear Models, 2nd ed., section 4.4). Everything is written with
+e = exp(-|eta|), so no intermediate overflows for any eta.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from sqlglot import exp
+
+from dbfit import sqlbuild as sb
+from dbfit.design import OFFSET, TARGET, Design
+
+EXTREME_ETA = 17.0  # |eta| beyond this puts the fitted probability within 4e-8 of 0 or 1
+
+
+@dataclass
+class PassResult:
+    """What one scan returns: all p x p, p and scalar quantities, on the internal scale."""
+
+    gram: np.ndarray
+    score: np.ndarray
+    loglik: float
+    extreme: float  # weighted count of rows fitted (numerically) at 0 or 1
+    misfit_extreme: float  # of those, rows fitted at the wrong extreme
+
+
+def statistics_query(design: Design, active: list[int], intercept: bool, beta: np.ndarray) -> exp.Select:
+    """Build the aggregate query for coefficients ``beta`` over ``[intercept] + active`` columns."""
+    z_names = [f"dbfit_z{j}" for j in active]
+    base = design.base_query().subquery("dbfit_base")
+    carried = [sb.column(TARGET), design.weight_expression().copy(), design.trials_expression().copy()]
+    carried = [exp.alias_(carried[0], "y", quoted=True), exp.alias_(carried[1], "pw", quoted=True), exp.alias_(carried[2], "n", quoted=True)]
+    zs = [exp.alias_(design.column_expression(design.columns[j]), name, quoted=True) for j, name in zip(active, z_names)]
+    offset = design.offset_expression()
+    zs.append(exp.alias_(offset if offset is not None else exp.Literal.number(0), "off", quoted=True))
+    columns = exp.select(*zs, *carried).from_(base)
+
+    coefficients = list(beta)
+    pieces: list[exp.Expression] = [sb.column("off")]
+    if intercept:
+        pieces.append(sb.number(coefficients.pop(0)))
+    pieces += [sb.mul(sb.number(b), sb.column(name)) for b, name in zip(coefficients, z_names)]
+    linear = exp.select(*[sb.column(n) for n in z_names], sb.column("y"), sb.column("pw"), sb.column("n"),
+                        exp.alias_(sb.add(*pieces), "eta", quoted=True)).from_(columns.subquery("dbfit_cols"))
+
+    eta, e = sb.column("eta"), sb.column("e")
+    with_e = exp.select("*", exp.alias_(sb.exp_neg_abs(eta), "e", quoted=True)).from_(linear.subquery("dbfit_lin"))
+
+    one = exp.Literal.number(1)
+    working_weight = sb.div(sb.mul(sb.column("pw"), sb.column("n"), e.copy()), sb.paren(sb.mul(sb.paren(sb.add(one, e.copy())), sb.paren(sb.add(one.copy(), e.copy())))))
+    residual = sb.mul(sb.column("pw"), sb.paren(sb.sub(sb.column("y"), sb.mul(sb.column("n"), sb.stable_sigmoid(eta.copy(), e.copy())))))
+    loglik = sb.mul(sb.column("pw"), sb.paren(sb.sub(sb.mul(sb.column("y"), eta.copy()), sb.mul(sb.column("n"), sb.paren(sb.stable_log1pexp(eta.copy(), e.copy()))))))
+    is_extreme = exp.GT(this=exp.Abs(this=eta.copy()), expression=sb.number(EXTREME_ETA))
+    # Wrong extreme: eta far positive but the row has failures, or far negative but it has successes.
+    wrong = exp.or_(
+        exp.and_(exp.GT(this=eta.copy(), expression=sb.number(EXTREME_ETA)), exp.LT(this=sb.column("y"), expression=sb.column("n"))),
+        exp.and_(exp.LT(this=eta.copy(), expression=sb.number(-EXTREME_ETA)), exp.GT(this=sb.column("y"), expression=exp.Literal.number(0))),
+    )
+    row_terms = exp.select(
+        *[sb.column(n) for n in z_names],
+        exp.alias_(working_weight, "wt", quoted=True),
+        exp.alias_(residual, "r", quoted=True),
+        exp.alias_(loglik, "ll", quoted=True),
+        exp.alias_(exp.If(this=is_extreme, true=sb.column("pw"), false=exp.Literal.number(0)), "ext", quoted=True),
+        exp.alias_(exp.If(this=wrong, true=sb.column("pw"), false=exp.Literal.number(0)), "bad", quoted=True),
+    ).from_(with_e.subquery("dbfit_e"))
+    weighted = exp.select(
+        *[sb.column(n) for n in z_names],
+        *[exp.alias_(sb.mul(sb.column("wt"), sb.column(n)), f"w{n}", quoted=True) for n in z_names],
+        sb.column("wt"), sb.column("r"), sb.column("ll"), sb.column("ext"), sb.column("bad"),
+    ).from_(row_terms.subquery("dbfit_terms"))
+
+    sums: list[exp.Expression] = []
+    names = ([None] if intercept else []) + z_names
+    for a in range(len(names)):
+        for b in range(a, len(names)):
+            sums.append(sb.agg_sum(_product(names[a], names[b])))
+    for name in names:
+        sums.append(sb.agg_sum(sb.column("r") if name is None else sb.mul(sb.column("r"), sb.column(name))))
+    sums += [sb.agg_sum(sb.column("ll")), sb.agg_sum(sb.column("ext")), sb.agg_sum(sb.column("bad"))]
+    return exp.select(*[exp.alias_(s, f"s{i}", quoted=True) for i, s in enumerate(sums)]).from_(weighted.subquery("dbfit_w"))
+
+
+def _product(a: str | None, b: str | None) -> exp.Expression:
+    """wt * z_a * z_b with the intercept's z = 1 left out; uses the precomputed w*z column."""
+    if a is None and b is None:
+        return sb.column("wt")
+    if a is None:
+        return sb.column(f"w{b}")
+    if b is None:
+        return sb.column(f"w{a}")
+    return sb.mul(sb.column(f"w{a}"), sb.column(b))
+
+
+def unpack(row: tuple, size: int) -> PassResult:
+    """Turn the query's single row into the symmetric Gram matrix, the score and the log-likelihood."""
+    values = np.array([np.nan if v is None else float(v) for v in row])
+    gram = np.zeros((size, size))
+    upper = np.triu_indices(size)
+    count = len(upper[0])
+    gram[upper] = values[:count]
+    gram = gram + np.triu(gram, 1).T
+    score = values[count : count + size]
+    loglik, extreme, misfit = values[count + size : count + size + 3]
+    return PassResult(gram=gram, score=score, loglik=float(loglik), extreme=float(extreme), misfit_extreme=float(misfit))
