@@ -1,0 +1,49 @@
+"""The command line: the demo and the benchmark run end to end in subprocesses on real DuckDB files."""
+
+from __future__ import annotations
+
+import re
+import subprocess
+import sys
+
+import duckdb
+
+from dbfit.demo import TRUE_COEFFICIENTS
+
+
+def run(*args: str) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "dbfit.cli", *args], capture_output=True, text=True, timeout=600)
+
+
+def test_demo_fits_the_invented_scenario_close_to_the_truth(tmp_path):
+    database = tmp_path / "demo.duckdb"
+    done = run("demo", "--rows", "60000", "--database", str(database), "--quiet")
+    assert done.returncode == 0, done.stderr
+    assert "late ~ distance_km" in done.stdout and "depot=Harbour" in done.stdout
+    gap = float(re.search(r"Largest gap: ([0-9.]+) standard errors", done.stdout).group(1))
+    assert gap < 4.5  # 11 estimates, each within 4.5 standard errors of its true value
+    con = duckdb.connect(str(database), read_only=True)
+    assert con.execute("SELECT count(*) FROM deliveries").fetchall()[0][0] == 60000
+    con.close()
+    assert done.stderr == ""  # --quiet prints no progress
+    assert len(TRUE_COEFFICIENTS) == 11
+
+
+def test_demo_reports_progress_when_not_quiet(tmp_path):
+    done = run("demo", "--rows", "5000", "--database", str(tmp_path / "d.duckdb"))
+    assert done.returncode == 0, done.stderr
+    assert re.search(r"dbfit pass 1: deviance [0-9.]+", done.stderr)
+
+
+def test_bench_prints_ratios_for_all_three_methods(tmp_path):
+    done = run("bench", "--rows", "20000", "--predictors", "3", "--keep", str(tmp_path / "b.duckdb"))
+    assert done.returncode == 0, done.stderr
+    for label in ("(a) dbfit", "(b) export + statsmodels", "(c) in-memory numpy", "a/b: time", "a/c: time"):
+        assert label in done.stdout
+    differences = [float(x) for x in re.findall(r"largest estimate difference ([0-9.e+-]+)", done.stdout)]
+    assert differences and max(differences) < 1e-6
+
+
+def test_bad_usage_exits_nonzero():
+    done = run("demo", "--rows", "10", "--database", "/tmp/unused_dbfit_demo.duckdb")
+    assert done.returncode == 2 and "at least 100 rows" in done.stderr
