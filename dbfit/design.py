@@ -262,8 +262,6 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
     if design.offset is not None:
         aggregates["bad_offset"] = _count_where(exp.Not(this=sb.func("isfinite", sb.column(OFFSET))))
     for i, f in enumerate(design.factors):
-        if f.kind == "numeric" and FLOAT_TYPE.match(f.sql_type):
-            aggregates[f"nonfinite_{i}"] = _count_where(exp.Not(this=sb.func("isfinite", sb.column(f.alias))))
         if f.kind == "categorical":
             aggregates[f"levels_{i}"] = exp.ArrayAgg(
                 this=exp.Order(
@@ -273,8 +271,10 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
             )
     for key, indices in products.items():
         value = sb.mul(*[sb.as_double(sb.column(design.factors[i].alias)) for i in indices])
-        aggregates[f"mean_{key}"] = exp.Avg(this=value)
-        aggregates[f"sd_{key}"] = exp.StddevPop(this=value.copy())
+        aggregates[f"sum_{key}"] = sb.agg_sum(value)
+        aggregates[f"sumsq_{key}"] = sb.agg_sum(sb.mul(value.copy(), value.copy()))
+        aggregates[f"min_{key}"] = exp.Min(this=value.copy())
+        aggregates[f"max_{key}"] = exp.Max(this=value.copy())
 
     names = list(aggregates)
     query = exp.select(*[exp.alias_(node, name, quoted=True) for name, node in aggregates.items()]).from_(
@@ -298,12 +298,8 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
         raise FitError(f"weights '{design.weights_text}' has {row['bad_weight']} negative or non-finite values")
     if row.get("bad_offset"):
         raise FitError(f"offset '{design.offset_text}' has {row['bad_offset']} non-finite values (NaN or infinity)")
-    for i, f in enumerate(design.factors):
-        if row.get(f"nonfinite_{i}"):
-            raise FitError(
-                f"term '{f.text}' has {row[f'nonfinite_{i}']} non-finite values (NaN or infinity) among the rows used; "
-                "filter them out in the source or map them to NULL"
-            )
+    if not all(math.isfinite(float(row[f"sumsq_{key}"])) for key in products):
+        _raise_non_finite(engine, design)
     design.weight_sum = float(row["weight_sum"] or 0.0)
     design.success_sum = float(row["success_sum"] or 0.0)
     design.trial_sum = float(row["trial_sum"] or 0.0)
@@ -351,17 +347,8 @@ def _layout_columns(design: Design, row: dict[str, Any], products: dict[str, tup
         categorical = [index[t] for t in term.texts if design.factors[index[t]].kind == "categorical"]
         centre, scale, constant = 0.0, 1.0, False
         if numeric:
-            key = "_".join(map(str, numeric))
-            mean = float(row[f"mean_{key}"])
-            sd = float(row[f"sd_{key}"] or 0.0)
-            if not categorical and design.intercept:
-                centre = mean
-                constant = not sd > 1e-12 * max(1.0, abs(mean))
-                scale = sd if not constant else 1.0
-            else:
-                root_mean_square = math.sqrt(sd * sd + mean * mean)
-                constant = root_mean_square == 0.0
-                scale = sd if sd > 1e-12 * max(1.0, abs(mean)) else (root_mean_square or 1.0)
+            centre, scale, constant = _centre_and_scale(row, "_".join(map(str, numeric)), design.rows_used,
+                                                        centred=not categorical and design.intercept)
         level_sets = [
             [(i, v) for v in design.factors[i].levels if v != design.factors[i].reference] for i in categorical
         ]
@@ -386,6 +373,40 @@ def _layout_columns(design: Design, row: dict[str, Any], products: dict[str, tup
                 )
             )
     return columns
+
+
+def _raise_non_finite(engine: DuckDBEngine, design: Design) -> None:
+    """A sum of squares came back NaN or infinite: count the culprits (error path only, one more scan)."""
+    numeric = [(i, f) for i, f in enumerate(design.factors) if f.kind == "numeric"]
+    counts = exp.select(
+        *[_count_where(exp.Not(this=sb.func("isfinite", sb.as_double(sb.column(f.alias))))) for _, f in numeric]
+    ).from_(design.base_query().subquery("dbfit_base"))
+    for (_, factor), count in zip(numeric, engine.fetch(counts)[0]):
+        if count:
+            raise FitError(
+                f"term '{factor.text}' has {count} non-finite values (NaN or infinity) among the rows used; "
+                "filter them out in the source or map them to NULL"
+            )
+    raise FitError("a numeric term is too large to square in double precision; rescale it in the formula")
+
+
+def _centre_and_scale(row: dict[str, Any], key: str, rows: int, *, centred: bool) -> tuple[float, float, bool]:
+    """Centre and scale of a numeric column from its sum, sum of squares, minimum and maximum.
+
+    Any positive scale gives the same fit; these only condition the Gram matrix. When the variance from
+    the sums is lost to cancellation (a large mean and a small spread), a quarter of the range stands in.
+    """
+    total, squares = float(row[f"sum_{key}"]), float(row[f"sumsq_{key}"])
+    low, high = float(row[f"min_{key}"]), float(row[f"max_{key}"])
+    mean = total / rows
+    variance = squares / rows - mean * mean
+    reliable = variance > 1e-8 * mean * mean and variance > 0
+    spread = math.sqrt(variance) if reliable else (high - low) / 4.0
+    if centred:
+        constant = low == high
+        return mean, (spread if not constant else 1.0), constant
+    root_mean_square = math.sqrt(max(squares / rows, 0.0))
+    return 0.0, (spread if spread > 0 else (root_mean_square or 1.0)), low == high == 0.0
 
 
 def _count_where(condition: exp.Expression) -> exp.Expression:

@@ -32,14 +32,26 @@ class DuckDBEngine:
             self.scans += 1
         return self._run(self.sql(query))
 
+    def fetch_sql(self, sql: str, parameters: list[Any], *, scan: bool = True) -> list[tuple[Any, ...]]:
+        """Run SQL that dbfit generated from a tree, with ``?`` parameters bound to ``parameters``."""
+        if scan:
+            self.scans += 1
+        return self._run(sql, parameters)
+
+    def execute(self, *, sql: str, scan: bool) -> None:
+        """Run a statement dbfit wrote itself from trees and its own names: temporary tables of samples."""
+        if scan:
+            self.scans += 1
+        self._run(sql)
+
     def describe(self, query: exp.Expression) -> list[tuple[str, str]]:
         """Column names and SQL types of ``query`` without reading its rows."""
         rows = self._run(f"DESCRIBE {self.sql(query)}")
         return [(row[0], row[1]) for row in rows]
 
-    def _run(self, sql: str) -> list[tuple[Any, ...]]:
+    def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
         try:
-            return self.connection.execute(sql).fetchall()
+            return self.connection.execute(sql, parameters).fetchall()
         except duckdb.Error as err:
             raise translate_error(err) from None
 

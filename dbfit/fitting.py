@@ -5,11 +5,13 @@ from __future__ import annotations
 import logging
 import math
 import sys
+import uuid
 from collections.abc import Mapping, Sequence
 from typing import Any, Callable
 
 import duckdb
 import numpy as np
+from sqlglot import exp
 
 from dbfit import inference
 from dbfit.design import Design, build_design
@@ -19,9 +21,14 @@ from dbfit.formula import parse_formula
 from dbfit.irls import IterationReport, NewtonResult, fit_newton
 from dbfit.model import Model
 from dbfit.source import source_relation
-from dbfit.statsquery import PassResult, statistics_query, unpack
+from dbfit.statsquery import StatisticsPass
 
 log = logging.getLogger("dbfit")
+
+SAMPLE_START_ROWS = 1_000_000  # from this many rows used, start from a fit on a sample
+SAMPLE_ROWS = 100_000
+SAMPLE_SEED = 20261201
+SAMPLE_TOL = 1e-4  # the sample's estimates are within sampling error of the answer anyway
 
 Progress = bool | Callable[[IterationReport], None] | None
 
@@ -85,10 +92,14 @@ def fit(
     fitted = [k for k in all_parameters if k not in constant]
     reporter = _reporter(progress)
 
-    beta_start = _start_values(design, start, fitted)
     default_start = _start_values(design, None, fitted)
+    if start is None and design.rows_used >= SAMPLE_START_ROWS:
+        beta_start = _sample_start(engine, design, fitted, default_start, max_iter, tol, reporter)
+    else:
+        beta_start = _start_values(design, start, fitted)
+    full_pass = StatisticsPass(engine, design)
     newton = fit_newton(
-        lambda beta, active: _evaluate(engine, design, [fitted[k] for k in active], beta),
+        lambda beta, active: full_pass([fitted[k] for k in active], beta),
         beta_start,
         saturated_loglik=design.saturated_loglik,
         max_iter=max_iter,
@@ -106,12 +117,51 @@ def fit(
                           positive=positive, max_iter=max_iter, tol=tol))
 
 
-def _evaluate(engine: DuckDBEngine, design: Design, parameters: list[int], beta: np.ndarray) -> PassResult:
-    has_intercept = 1 if design.intercept else 0
-    intercept = bool(design.intercept and 0 in parameters)
-    columns = [k - has_intercept for k in parameters if not (design.intercept and k == 0)]
-    query = statistics_query(design, columns, intercept, beta)
-    return unpack(engine.fetch(query)[0], len(parameters))
+def _sample_start(
+    engine: DuckDBEngine,
+    design: Design,
+    fitted: list[int],
+    default_start: np.ndarray,
+    max_iter: int,
+    tol: float,
+    reporter: Callable[[IterationReport], None] | None,
+) -> np.ndarray:
+    """Fit a reservoir sample of the complete rows, kept in a temporary table, and start from its estimates.
+
+    Newton's method converges quadratically, so from a start within sampling error of the answer the full
+    data need about three passes instead of five to seven.
+    """
+    table = f"dbfit_sample_{uuid.uuid4().hex}"
+    base_sql = engine.sql(design.base_query())
+    engine.execute(
+        scan=True,
+        sql=f'CREATE TEMP TABLE "{table}" AS SELECT * FROM ({base_sql}) '
+        f"USING SAMPLE reservoir({SAMPLE_ROWS} ROWS) REPEATABLE ({SAMPLE_SEED})"
+    )
+    try:
+        rows = exp.select("*").from_(exp.Table(this=exp.to_identifier(table, quoted=True)))
+
+        def sample_report(item: IterationReport) -> None:
+            item.phase = f"sample of {SAMPLE_ROWS:,} rows"
+            reporter(item)
+
+        sample_pass = StatisticsPass(engine, design, rows)
+        sample = fit_newton(
+            lambda beta, active: sample_pass([fitted[k] for k in active], beta),
+            default_start,
+            saturated_loglik=0.0,
+            max_iter=max_iter,
+            tol=max(tol, SAMPLE_TOL),
+            protected=1 if design.intercept else 0,
+            report=sample_report if reporter else None,
+        )
+    finally:
+        engine.execute(sql=f'DROP TABLE IF EXISTS "{table}"', scan=False)
+    if not sample.converged or sample.separation:
+        return default_start
+    start = np.zeros(len(fitted))
+    start[sample.active] = sample.beta
+    return start
 
 
 def _start_values(design: Design, start: Mapping[str, float] | Sequence[float] | None, fitted: list[int]) -> np.ndarray:
@@ -140,8 +190,9 @@ def _null_loglik(engine: DuckDBEngine, design: Design, max_iter: int, tol: float
     if design.offset is None:
         return inference.null_loglik_closed_form(design)
     rate = design.success_sum / design.trial_sum
+    intercept_only = StatisticsPass(engine, design)
     result = fit_newton(
-        lambda beta, active: unpack(engine.fetch(statistics_query(design, [], True, beta))[0], 1),
+        lambda beta, active: intercept_only.run((), True, beta),
         np.array([math.log(rate / (1.0 - rate))]),
         saturated_loglik=design.saturated_loglik,
         max_iter=max_iter,
@@ -241,7 +292,8 @@ def _reporter(progress: Progress) -> Callable[[IterationReport], None] | None:
 
     def report(item: IterationReport) -> None:
         text = (
-            f"dbfit pass {item.iteration}: deviance {item.deviance:.10g}"
+            ("dbfit " if item.phase == "full data" else f"dbfit {item.phase}, ")
+            + f"pass {item.iteration}: deviance {item.deviance:.10g}"
             + (" (rose: halving the step)" if item.halving else f", step {item.step_size:.3g}")
             + f", {item.elapsed:.2f}s"
         )

@@ -32,6 +32,7 @@ class IterationReport:
     elapsed: float
     step_size: float
     halving: bool = False
+    phase: str = "full data"
 
 
 @dataclass

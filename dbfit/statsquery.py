@@ -15,6 +15,7 @@ from sqlglot import exp
 
 from dbfit import sqlbuild as sb
 from dbfit.design import OFFSET, TARGET, Design
+from dbfit.engine import DuckDBEngine
 
 EXTREME_ETA = 17.0  # |eta| beyond this puts the fitted probability within 4e-8 of 0 or 1
 
@@ -30,10 +31,17 @@ class PassResult:
     misfit_extreme: float  # of those, rows fitted at the wrong extreme
 
 
-def statistics_query(design: Design, active: list[int], intercept: bool, beta: np.ndarray) -> exp.Select:
-    """Build the aggregate query for coefficients ``beta`` over ``[intercept] + active`` columns."""
+def statistics_query(
+    design: Design, active: list[int], intercept: bool, beta: np.ndarray | None, rows: exp.Expression | None = None
+) -> exp.Select:
+    """Build the aggregate query for coefficients ``beta`` over ``[intercept] + active`` columns.
+
+    With ``beta`` None the coefficients are query parameters (``?``, in parameter order), so one query
+    text serves every Newton step. ``rows`` replaces the source's complete rows (the base query) by another
+    relation with the same columns, such as a sample of them.
+    """
     z_names = [f"dbfit_z{j}" for j in active]
-    base = design.base_query().subquery("dbfit_base")
+    base = (rows.copy() if rows is not None else design.base_query()).subquery("dbfit_base")
     carried = [sb.column(TARGET), design.weight_expression().copy(), design.trials_expression().copy()]
     carried = [exp.alias_(carried[0], "y", quoted=True), exp.alias_(carried[1], "pw", quoted=True), exp.alias_(carried[2], "n", quoted=True)]
     zs = [exp.alias_(design.column_expression(design.columns[j]), name, quoted=True) for j, name in zip(active, z_names)]
@@ -41,11 +49,12 @@ def statistics_query(design: Design, active: list[int], intercept: bool, beta: n
     zs.append(exp.alias_(offset if offset is not None else exp.Literal.number(0), "off", quoted=True))
     columns = exp.select(*zs, *carried).from_(base)
 
-    coefficients = list(beta)
+    size = len(active) + (1 if intercept else 0)
+    values = [exp.Placeholder() for _ in range(size)] if beta is None else [sb.number(b) for b in beta]
     pieces: list[exp.Expression] = [sb.column("off")]
     if intercept:
-        pieces.append(sb.number(coefficients.pop(0)))
-    pieces += [sb.mul(sb.number(b), sb.column(name)) for b, name in zip(coefficients, z_names)]
+        pieces.append(values.pop(0))
+    pieces += [sb.mul(b, sb.column(name)) for b, name in zip(values, z_names)]
     linear = exp.select(*[sb.column(n) for n in z_names], sb.column("y"), sb.column("pw"), sb.column("n"),
                         exp.alias_(sb.add(*pieces), "eta", quoted=True)).from_(columns.subquery("dbfit_cols"))
 
@@ -85,6 +94,29 @@ def statistics_query(design: Design, active: list[int], intercept: bool, beta: n
         sums.append(sb.agg_sum(sb.column("r") if name is None else sb.mul(sb.column("r"), sb.column(name))))
     sums += [sb.agg_sum(sb.column("ll")), sb.agg_sum(sb.column("ext")), sb.agg_sum(sb.column("bad"))]
     return exp.select(*[exp.alias_(s, f"s{i}", quoted=True) for i, s in enumerate(sums)]).from_(weighted.subquery("dbfit_w"))
+
+
+class StatisticsPass:
+    """Runs the statistics query for any coefficients, writing its SQL once per set of active columns."""
+
+    def __init__(self, engine: DuckDBEngine, design: Design, rows: exp.Expression | None = None) -> None:
+        self.engine, self.design, self.rows = engine, design, rows
+        self._sql: dict[tuple[tuple[int, ...], bool], str] = {}
+
+    def __call__(self, parameters: list[int], beta: np.ndarray) -> PassResult:
+        """One scan at ``beta`` over ``parameters`` (indices into intercept + columns)."""
+        has_intercept = 1 if self.design.intercept else 0
+        intercept = bool(self.design.intercept and 0 in parameters)
+        columns = tuple(k - has_intercept for k in parameters if not (self.design.intercept and k == 0))
+        return self.run(columns, intercept, beta)
+
+    def run(self, columns: tuple[int, ...], intercept: bool, beta: np.ndarray) -> PassResult:
+        """One scan at ``beta`` over ``[intercept] + columns`` (indices into the design's columns)."""
+        key = (columns, intercept)
+        if key not in self._sql:
+            self._sql[key] = self.engine.sql(statistics_query(self.design, list(columns), intercept, None, self.rows))
+        row = self.engine.fetch_sql(self._sql[key], [float(b) for b in beta], scan=self.rows is None)[0]
+        return unpack(row, len(columns) + (1 if intercept else 0))
 
 
 def _product(a: str | None, b: str | None) -> exp.Expression:
