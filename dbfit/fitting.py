@@ -18,7 +18,7 @@ from dbfit.design import Design, build_design
 from dbfit.engine import DuckDBEngine
 from dbfit.errors import FitError
 from dbfit.formula import parse_formula
-from dbfit.irls import IterationReport, NewtonResult, fit_newton
+from dbfit.irls import IterationReport, NewtonResult, fit_newton, refine_with_fixed_information
 from dbfit.model import Model
 from dbfit.source import source_relation
 from dbfit.statsquery import StatisticsPass
@@ -93,8 +93,9 @@ def fit(
     reporter = _reporter(progress)
 
     default_start = _start_values(design, None, fitted)
+    start_deviance = np.inf
     if start is None and design.rows_used >= SAMPLE_START_ROWS:
-        beta_start = _sample_start(engine, design, fitted, default_start, max_iter, tol, reporter)
+        beta_start, start_deviance = _sample_start(engine, design, fitted, default_start, max_iter, tol, reporter)
     else:
         beta_start = _start_values(design, start, fitted)
     full_pass = StatisticsPass(engine, design)
@@ -108,6 +109,7 @@ def fit(
         report=reporter,
         fallback_start=None if start is None else default_start,
         weight_total=design.trial_sum,
+        start_deviance=start_deviance,
     )
     active = [fitted[k] for k in newton.active]
     aliased = sorted(constant + [fitted[k] for k in newton.aliased])
@@ -125,11 +127,11 @@ def _sample_start(
     max_iter: int,
     tol: float,
     reporter: Callable[[IterationReport], None] | None,
-) -> np.ndarray:
+) -> tuple[np.ndarray, float]:
     """Fit a reservoir sample of the complete rows, kept in a temporary table, and start from its estimates.
 
-    Newton's method converges quadratically, so from a start within sampling error of the answer the full
-    data need about three passes instead of five to seven.
+    From there, score-only scans with the sample's information scaled to the full data (a chord method)
+    close in on the answer, and one full Newton pass confirms it. Returns the start and the last deviance.
     """
     table = f"dbfit_sample_{uuid.uuid4().hex}"
     base_sql = engine.sql(design.base_query())
@@ -155,13 +157,23 @@ def _sample_start(
             protected=1 if design.intercept else 0,
             report=sample_report if reporter else None,
         )
+        sampled_rows = engine.fetch(exp.select(exp.Count(this=exp.Star())).from_(rows.subquery("dbfit_s")), scan=False)[0][0]
     finally:
         engine.execute(sql=f'DROP TABLE IF EXISTS "{table}"', scan=False)
     if not sample.converged or sample.separation:
-        return default_start
+        return default_start, np.inf
     start = np.zeros(len(fitted))
     start[sample.active] = sample.beta
-    return start
+    if sample.aliased:
+        return start, np.inf
+    full_pass = StatisticsPass(engine, design)
+    return refine_with_fixed_information(
+        lambda beta: full_pass.score_only(fitted, beta),
+        start,
+        sample.last.gram * (design.rows_used / sampled_rows),
+        saturated_loglik=design.saturated_loglik,
+        report=reporter,
+    )
 
 
 def _start_values(design: Design, start: Mapping[str, float] | Sequence[float] | None, fitted: list[int]) -> np.ndarray:

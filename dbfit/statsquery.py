@@ -32,13 +32,18 @@ class PassResult:
 
 
 def statistics_query(
-    design: Design, active: list[int], intercept: bool, beta: np.ndarray | None, rows: exp.Expression | None = None
+    design: Design,
+    active: list[int],
+    intercept: bool,
+    beta: np.ndarray | None,
+    rows: exp.Expression | None = None,
+    score_only: bool = False,
 ) -> exp.Select:
     """Build the aggregate query for coefficients ``beta`` over ``[intercept] + active`` columns.
 
     With ``beta`` None the coefficients are query parameters (``?``, in parameter order), so one query
     text serves every Newton step. ``rows`` replaces the source's complete rows (the base query) by another
-    relation with the same columns, such as a sample of them.
+    relation with the same columns, such as a sample of them. ``score_only`` leaves out X'WX.
     """
     z_names = [f"dbfit_z{j}" for j in active]
     base = (rows.copy() if rows is not None else design.base_query()).subquery("dbfit_base")
@@ -87,7 +92,7 @@ def statistics_query(
 
     sums: list[exp.Expression] = []
     names = ([None] if intercept else []) + z_names
-    for a in range(len(names)):
+    for a in range(0 if not score_only else len(names), len(names)):
         for b in range(a, len(names)):
             sums.append(sb.agg_sum(_product(names[a], names[b])))
     for name in names:
@@ -105,18 +110,25 @@ class StatisticsPass:
 
     def __call__(self, parameters: list[int], beta: np.ndarray) -> PassResult:
         """One scan at ``beta`` over ``parameters`` (indices into intercept + columns)."""
+        return self.run(*self._split(parameters), beta)
+
+    def run(self, columns: tuple[int, ...], intercept: bool, beta: np.ndarray, score_only: bool = False) -> PassResult:
+        """One scan at ``beta`` over ``[intercept] + columns`` (indices into the design's columns)."""
+        key = (columns, intercept, score_only)
+        if key not in self._sql:
+            query = statistics_query(self.design, list(columns), intercept, None, self.rows, score_only)
+            self._sql[key] = self.engine.sql(query)
+        row = self.engine.fetch_sql(self._sql[key], [float(b) for b in beta], scan=self.rows is None)[0]
+        return unpack(row, len(columns) + (1 if intercept else 0), score_only)
+
+    def score_only(self, parameters: list[int], beta: np.ndarray) -> PassResult:
+        """A cheaper scan: the score and log-likelihood without X'WX (its ``gram`` is empty)."""
+        return self.run(*self._split(parameters), beta, score_only=True)
+
+    def _split(self, parameters: list[int]) -> tuple[tuple[int, ...], bool]:
         has_intercept = 1 if self.design.intercept else 0
         intercept = bool(self.design.intercept and 0 in parameters)
-        columns = tuple(k - has_intercept for k in parameters if not (self.design.intercept and k == 0))
-        return self.run(columns, intercept, beta)
-
-    def run(self, columns: tuple[int, ...], intercept: bool, beta: np.ndarray) -> PassResult:
-        """One scan at ``beta`` over ``[intercept] + columns`` (indices into the design's columns)."""
-        key = (columns, intercept)
-        if key not in self._sql:
-            self._sql[key] = self.engine.sql(statistics_query(self.design, list(columns), intercept, None, self.rows))
-        row = self.engine.fetch_sql(self._sql[key], [float(b) for b in beta], scan=self.rows is None)[0]
-        return unpack(row, len(columns) + (1 if intercept else 0))
+        return tuple(k - has_intercept for k in parameters if not (self.design.intercept and k == 0)), intercept
 
 
 def _product(a: str | None, b: str | None) -> exp.Expression:
@@ -130,14 +142,17 @@ def _product(a: str | None, b: str | None) -> exp.Expression:
     return sb.mul(sb.column(f"w{a}"), sb.column(b))
 
 
-def unpack(row: tuple, size: int) -> PassResult:
+def unpack(row: tuple, size: int, score_only: bool = False) -> PassResult:
     """Turn the query's single row into the symmetric Gram matrix, the score and the log-likelihood."""
     values = np.array([np.nan if v is None else float(v) for v in row])
-    gram = np.zeros((size, size))
-    upper = np.triu_indices(size)
-    count = len(upper[0])
-    gram[upper] = values[:count]
-    gram = gram + np.triu(gram, 1).T
+    if score_only:
+        gram, count = np.zeros((0, 0)), 0
+    else:
+        gram = np.zeros((size, size))
+        upper = np.triu_indices(size)
+        count = len(upper[0])
+        gram[upper] = values[:count]
+        gram = gram + np.triu(gram, 1).T
     score = values[count : count + size]
     loglik, extreme, misfit = values[count + size : count + size + 3]
     return PassResult(gram=gram, score=score, loglik=float(loglik), extreme=float(extreme), misfit_extreme=float(misfit))
