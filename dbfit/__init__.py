@@ -5,6 +5,7 @@ from dbfit.errors import DbfitError, FitError, FormulaError, SourceError
 from dbfit.fitting import fit
 from dbfit.irls import IterationReport
 from dbfit.model import Model
+from dbfit.segments import SegmentedFit
 
 __all__ = [
     "DbfitError",
@@ -12,6 +13,7 @@ __all__ = [
     "FormulaError",
     "IterationReport",
     "Model",
+    "SegmentedFit",
     "SourceError",
     "connect",
     "fit",

@@ -29,7 +29,7 @@ NUMERIC_TYPE = re.compile(
 FLOAT_TYPE = re.compile(r"^(FLOAT|REAL|DOUBLE)$", re.IGNORECASE)
 CATEGORICAL_TYPE = re.compile(r"^(VARCHAR|BOOLEAN|ENUM.*)$", re.IGNORECASE)
 
-TARGET, WEIGHT, OFFSET, TRIALS = "dbfit_y", "dbfit_w", "dbfit_o", "dbfit_n"
+TARGET, WEIGHT, OFFSET, TRIALS, SEGMENT = "dbfit_y", "dbfit_w", "dbfit_o", "dbfit_n", "dbfit_seg"
 MAX_OFFENDING_SHOWN = 10
 
 
@@ -84,6 +84,8 @@ class Design:
     offset_text: str | None
     trials_text: str | None
     positive: str | None
+    segment: exp.Expression | None = None
+    segment_text: str | None = None
     rows_total: int = 0
     rows_used: int = 0
     weight_sum: float = 0.0
@@ -96,19 +98,24 @@ class Design:
     def labels(self) -> list[str]:
         return (["intercept"] if self.intercept else []) + [c.label for c in self.columns]
 
+    def used_expressions(self) -> list[tuple[exp.Expression, str]]:
+        """Every expression a row needs, with its alias: target, factors, then the options in use."""
+        used = [(self.target, TARGET)] + [(f.expression, f.alias) for f in self.factors]
+        options = ((self.weights, WEIGHT), (self.offset, OFFSET), (self.trials, TRIALS), (self.segment, SEGMENT))
+        return used + [(node, name) for node, name in options if node is not None]
+
+    def rows_query(self) -> exp.Select:
+        """SELECT of the used expressions, aliased, over every row of the source."""
+        used = self.used_expressions()
+        return exp.select(*[exp.alias_(node.copy(), name, quoted=True) for node, name in used]).from_(self.relation.copy())
+
+    def complete(self) -> exp.Expression:
+        """The condition that a row of :meth:`rows_query` has no NULL in a used expression."""
+        return sb.all_not_null([sb.column(name) for _, name in self.used_expressions()])
+
     def base_query(self) -> exp.Select:
         """SELECT of the used expressions over the complete rows of the source (one row per source row)."""
-        projections = [exp.alias_(self.target.copy(), TARGET, quoted=True)]
-        projections += [exp.alias_(f.expression.copy(), f.alias, quoted=True) for f in self.factors]
-        for node, name in ((self.weights, WEIGHT), (self.offset, OFFSET), (self.trials, TRIALS)):
-            if node is not None:
-                projections.append(exp.alias_(node.copy(), name, quoted=True))
-        inner = exp.select(*projections).from_(self.relation.copy())
-        names = [TARGET] + [f.alias for f in self.factors] + [
-            name for node, name in ((self.weights, WEIGHT), (self.offset, OFFSET), (self.trials, TRIALS)) if node is not None
-        ]
-        where = sb.all_not_null([sb.column(n) for n in names])
-        return exp.select("*").from_(inner.subquery("dbfit_rows")).where(where)
+        return exp.select("*").from_(self.rows_query().subquery("dbfit_rows")).where(self.complete())
 
     def column_expression(self, column: DesignColumn) -> exp.Expression:
         """SQL for the internal (centred, scaled) value of ``column`` over the base query's aliases."""
@@ -149,8 +156,12 @@ def build_design(
     trials: str | None = None,
     positive: Any = None,
     reference: dict[str, Any] | None = None,
+    by: str | None = None,
 ) -> Design:
-    """Type the expressions, run the profiling scan, and lay out the internal columns."""
+    """Type the expressions, run the profiling scan, and lay out the internal columns.
+
+    ``by`` is a segment expression: its NULL rows are left out like any other used column.
+    """
     factors = [
         Factor(text=text, expression=_factor_expression(formula, text), alias=f"dbfit_f{i}")
         for i, text in enumerate(formula.factor_texts())
@@ -169,6 +180,8 @@ def build_design(
         offset_text=offset,
         trials_text=trials,
         positive=None if positive is None else str(positive),
+        segment=parse_expression(by, "by") if by is not None else None,
+        segment_text=by,
     )
     _assign_types(engine, design, positive)
     _check_references(design, reference or {})
@@ -185,12 +198,7 @@ def _factor_expression(formula: Formula, text: str) -> exp.Expression:
 
 
 def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
-    probe = exp.select(exp.alias_(design.target.copy(), TARGET, quoted=True))
-    for f in design.factors:
-        probe = probe.select(exp.alias_(f.expression.copy(), f.alias, quoted=True))
-    for node, name in ((design.weights, WEIGHT), (design.offset, OFFSET), (design.trials, TRIALS)):
-        if node is not None:
-            probe = probe.select(exp.alias_(node.copy(), name, quoted=True))
+    probe = exp.select(*[exp.alias_(node.copy(), name, quoted=True) for node, name in design.used_expressions()])
     types = dict(engine.describe(probe.from_(design.relation.copy())))
 
     target_type = types[TARGET]
@@ -224,6 +232,8 @@ def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
     for node, name, what in ((design.weights, WEIGHT, "weights"), (design.offset, OFFSET, "offset"), (design.trials, TRIALS, "trials")):
         if node is not None and not NUMERIC_TYPE.match(types[name]):
             raise FormulaError(f"{what} expression has SQL type {types[name]}; it must be numeric")
+    if design.segment is not None and not (NUMERIC_TYPE.match(types[SEGMENT]) or CATEGORICAL_TYPE.match(types[SEGMENT])):
+        raise FormulaError(f"by expression '{design.segment_text}' has SQL type {types[SEGMENT]}; use text, a number or a boolean")
     if design.offset is not None:
         design.offset = sb.as_double(design.offset)
     if design.weights is not None:
@@ -245,16 +255,8 @@ def _check_references(design: Design, reference: dict[str, Any]) -> None:
 def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) -> None:
     y, w, n = sb.column(TARGET), design.weight_expression(), design.trials_expression()
     products = _numeric_products(design)
-    aggregates: dict[str, exp.Expression] = {
-        "used": exp.Count(this=exp.Star()),
-        "weight_sum": sb.agg_sum(w.copy()),
-        "success_sum": sb.agg_sum(sb.mul(w.copy(), y.copy())),
-        "trial_sum": sb.agg_sum(sb.mul(w.copy(), n.copy())),
-        "bad_target": _count_where(_bad_target_condition(design)),
-    }
-    if design.trials is not None:
-        aggregates["loglik_constant"] = sb.agg_sum(sb.mul(w.copy(), _log_binomial(y, n)))
-        aggregates["saturated_loglik"] = sb.agg_sum(sb.mul(w.copy(), _saturated_term(y, n)))
+    aggregates = outcome_sums(design)
+    aggregates["bad_target"] = _count_where(_bad_target_condition(design))
     if design.weights is not None:
         aggregates["bad_weight"] = _count_where(
             exp.Or(this=exp.LT(this=w.copy(), expression=exp.Literal.number(0)), expression=exp.Not(this=sb.func("isfinite", w.copy())))
@@ -327,6 +329,39 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
             else:
                 f.reference = f.levels[0]
     design.columns = _layout_columns(design, row, products)
+
+
+def outcome_sums(design: Design) -> dict[str, exp.Expression]:
+    """Aggregates over complete rows that every fit needs: counts, weighted successes and trials, and
+    for grouped targets the log binomial coefficients and the saturated log-likelihood."""
+    y, w, n = sb.column(TARGET), design.weight_expression(), design.trials_expression()
+    sums: dict[str, exp.Expression] = {
+        "used": exp.Count(this=exp.Star()),
+        "weight_sum": sb.agg_sum(w.copy()),
+        "success_sum": sb.agg_sum(sb.mul(w.copy(), y.copy())),
+        "trial_sum": sb.agg_sum(sb.mul(w.copy(), n.copy())),
+    }
+    if design.trials is not None:
+        sums["loglik_constant"] = sb.agg_sum(sb.mul(w.copy(), _log_binomial(y, n)))
+        sums["saturated_loglik"] = sb.agg_sum(sb.mul(w.copy(), _saturated_term(y, n)))
+    return sums
+
+
+def segment_profiles(engine: DuckDBEngine, design: Design) -> list[dict[str, Any]]:
+    """One scan grouped by segment: rows in each segment, rows used, and the outcome sums."""
+    sums = outcome_sums(design)
+    complete = design.complete()
+    filtered = [exp.alias_(exp.Filter(this=node, expression=exp.Where(this=complete.copy())), name, quoted=True)
+                for name, node in sums.items()]
+    query = (
+        exp.select(sb.column(SEGMENT), exp.alias_(exp.Count(this=exp.Star()), "total", quoted=True), *filtered)
+        .from_(design.rows_query().subquery("dbfit_rows"))
+        .where(exp.Not(this=exp.Is(this=sb.column(SEGMENT), expression=exp.Null())))
+        .group_by(sb.column(SEGMENT))
+        .order_by(sb.column(SEGMENT))
+    )
+    names = ["segment", "total", *sums]
+    return [dict(zip(names, row)) for row in engine.fetch(query)]
 
 
 def _numeric_products(design: Design) -> dict[str, tuple[int, ...]]:

