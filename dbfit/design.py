@@ -377,6 +377,7 @@ def _numeric_products(design: Design) -> dict[str, tuple[int, ...]]:
 def _layout_columns(design: Design, row: dict[str, Any], products: dict[str, tuple[int, ...]]) -> list[DesignColumn]:
     index = {f.text: i for i, f in enumerate(design.factors)}
     columns: list[DesignColumn] = []
+    full_coding_used = False
     for term in design.formula.terms:
         numeric = tuple(index[t] for t in term.texts if design.factors[index[t]].kind == "numeric")
         categorical = [index[t] for t in term.texts if design.factors[index[t]].kind == "categorical"]
@@ -384,8 +385,13 @@ def _layout_columns(design: Design, row: dict[str, Any], products: dict[str, tup
         if numeric:
             centre, scale, constant = _centre_and_scale(row, "_".join(map(str, numeric)), design.rows_used,
                                                         centred=not categorical and design.intercept)
+        # Without an intercept the first categorical main effect gets one indicator per level, as in
+        # Chambers and Hastie (1992), Statistical Models in S, section 2.3.
+        full_coding = not design.intercept and not full_coding_used and not numeric and len(categorical) == 1
+        full_coding_used = full_coding_used or full_coding
         level_sets = [
-            [(i, v) for v in design.factors[i].levels if v != design.factors[i].reference] for i in categorical
+            [(i, v) for v in design.factors[i].levels if full_coding or v != design.factors[i].reference]
+            for i in categorical
         ]
         for combination in product(*level_sets):
             pieces = []

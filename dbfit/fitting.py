@@ -14,6 +14,7 @@ import numpy as np
 from sqlglot import exp
 
 from dbfit import inference
+from dbfit.blocks import BlockedStatisticsPass, BlockInformation, blocked_factor, dense_first
 from dbfit.design import Design, build_design
 from dbfit.engine import DuckDBEngine
 from dbfit.errors import FitError
@@ -106,11 +107,19 @@ def fit(
 
     default_start = start_values(design, None, fitted)
     start_deviance = np.inf
-    if start is None and design.rows_used >= SAMPLE_START_ROWS:
+    if start is None and design.rows_used >= SAMPLE_START_ROWS and blocked_factor(design) is None:
         beta_start, start_deviance = _sample_start(engine, design, fitted, default_start, max_iter, tol, reporter)
     else:
         beta_start = start_values(design, start, fitted)
-    full_pass = StatisticsPass(engine, design)
+    factor = blocked_factor(design)
+    if factor is not None:
+        fitted = dense_first(design, fitted, factor)
+        default_start = start_values(design, None, fitted)
+        beta_start = start_values(design, start, fitted)
+        start_deviance = np.inf
+        full_pass = BlockedStatisticsPass(engine, design, factor)
+    else:
+        full_pass = StatisticsPass(engine, design)
     newton = fit_newton(
         lambda beta, active: full_pass([fitted[k] for k in active], beta),
         beta_start,
@@ -241,7 +250,7 @@ def assemble_model(
     transform = inference.original_scale_map(design, active)
     gram = newton.last.gram
     try:
-        internal_covariance = np.linalg.inv(gram)
+        internal_covariance = gram.inverse() if isinstance(gram, BlockInformation) else np.linalg.inv(gram)
     except np.linalg.LinAlgError:
         internal_covariance = np.linalg.pinv(gram)
     estimates = np.full(size, np.nan)

@@ -10,12 +10,14 @@ logistic regression models", Biometrika 71(1), 1-10, doi:10.1093/biomet/71.1.1 (
 
 from __future__ import annotations
 
+import dataclasses
 import time
 from dataclasses import dataclass, field
 from typing import Callable, Generator
 
 import numpy as np
 
+from dbfit.blocks import BlockInformation
 from dbfit.statsquery import PassResult
 
 ALIAS_TOLERANCE = 1e-10  # share of a column's variance left after projecting on earlier columns
@@ -48,12 +50,16 @@ class NewtonResult:
     deviance_trace: list[float] = field(default_factory=list)
 
 
-def aliased_columns(gram: np.ndarray, protected: int = 0) -> list[int]:
+def aliased_columns(gram: np.ndarray | BlockInformation, protected: int = 0) -> list[int]:
     """Indices of columns that are (numerically) linear combinations of earlier columns.
 
     Sequential Cholesky on the correlation-scaled Gram: a later column of an exactly collinear set is the
     one dropped, as in a pivot-free QR. The first ``protected`` columns (the intercept) are never dropped.
+    For block information the check runs on the Schur complement: a dense column that the levels explain
+    is aliased; the levels themselves always carry weight.
     """
+    if isinstance(gram, BlockInformation):
+        return aliased_columns(gram.schur(), protected)
     diagonal = np.diag(gram).copy()
     keep: list[int] = []
     aliased: list[int] = []
@@ -78,8 +84,10 @@ def aliased_columns(gram: np.ndarray, protected: int = 0) -> list[int]:
     return aliased
 
 
-def newton_step(gram: np.ndarray, score: np.ndarray) -> np.ndarray:
+def newton_step(gram: np.ndarray | BlockInformation, score: np.ndarray) -> np.ndarray:
     """Solve gram @ step = score by Cholesky; fall back to least squares when not positive definite."""
+    if isinstance(gram, BlockInformation):
+        return gram.solve(score)
     try:
         factor = np.linalg.cholesky(gram)
         return np.linalg.solve(factor.T, np.linalg.solve(factor, score))
@@ -151,13 +159,7 @@ def newton_iterations(
                 aliased = [active[k] for k in dropped]
                 active = [active[k] for k in keep]
                 beta = beta[keep]
-                result = PassResult(
-                    gram=result.gram[np.ix_(keep, keep)],
-                    score=result.score[keep],
-                    loglik=result.loglik,
-                    extreme=result.extreme,
-                    misfit_extreme=result.misfit_extreme,
-                )
+                result = restrict(result, keep)
         if not np.isfinite(deviance):
             raise FloatingPointError("the deviance is not finite")
         rising = deviance > previous_deviance + 1e-12 * (abs(previous_deviance) + 1.0)
@@ -241,8 +243,19 @@ def refine_with_fixed_information(
     return beta, best_deviance
 
 
+def restrict(result: PassResult, keep: list[int]) -> PassResult:
+    """``result`` over the parameters ``keep`` only (for block information, dropped ones are dense)."""
+    gram = result.gram
+    if isinstance(gram, BlockInformation):
+        dense = gram.dense.shape[0]
+        restricted = gram.keep_dense([k for k in keep if k < dense])
+    else:
+        restricted = gram[np.ix_(keep, keep)]
+    return dataclasses.replace(result, gram=restricted, score=result.score[keep])
+
+
 def _weights_collapsed(result: PassResult, weight_total: float) -> bool:
-    diagonal = np.diag(result.gram)
+    diagonal = result.gram.diag() if isinstance(result.gram, BlockInformation) else np.diag(result.gram)
     return bool(diagonal.size) and float(diagonal.max()) < 1e-10 * weight_total
 
 
@@ -260,5 +273,9 @@ def _diverging(steps: list[float], change: float, result: PassResult) -> bool:
 
 def _some_rows_perfect(result: PassResult) -> bool:
     """Converged yet some rows fitted exactly: flagged only when the information matrix is near singular."""
-    eigenvalues = np.linalg.eigvalsh(result.gram) if result.gram.size else np.array([1.0])
+    gram = result.gram
+    if isinstance(gram, BlockInformation):
+        eigenvalues = np.concatenate([np.linalg.eigvalsh(gram.schur()), gram.diagonal, np.linalg.eigvalsh(gram.dense)])
+    else:
+        eigenvalues = np.linalg.eigvalsh(gram) if gram.size else np.array([1.0])
     return bool(eigenvalues.min() <= 1e-10 * max(eigenvalues.max(), 1e-300))

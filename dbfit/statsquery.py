@@ -39,6 +39,7 @@ def statistics_query(
     rows: exp.Expression | None = None,
     score_only: bool = False,
     coefficients: exp.Expression | None = None,
+    level_join: tuple[str, exp.Expression] | None = None,
 ) -> exp.Select:
     """Build the aggregate query for coefficients ``beta`` over ``[intercept] + active`` columns.
 
@@ -47,10 +48,14 @@ def statistics_query(
     relation with the same columns, such as a sample of them. ``score_only`` leaves out X'WX.
     ``coefficients`` is a relation of one row per segment (column ``dbfit_seg``, then ``c0``, ``c1``, ... in
     parameter order): it is joined to the rows, and every sum is grouped by segment.
+    ``level_join`` is ``(factor alias, relation of (that alias, g))``: each row's level coefficient ``g`` is
+    joined in and added to the linear predictor, and the sums are grouped by level, always including the
+    sums of the constant column (per-level totals), so that the information can be assembled by blocks.
     """
     z_names = [f"dbfit_z{j}" for j in active]
     segmented = coefficients is not None
-    keys = [sb.column(SEGMENT)] if segmented else []
+    key_name = SEGMENT if segmented else (level_join[0] if level_join else None)
+    keys = [sb.column(key_name)] if key_name else []
     base = (rows.copy() if rows is not None else design.base_query()).subquery("dbfit_base")
     carried = [
         exp.alias_(sb.column(TARGET), "y", quoted=True),
@@ -73,15 +78,18 @@ def statistics_query(
     if intercept:
         pieces.append(values.pop(0))
     pieces += [sb.mul(b, sb.column(name)) for b, name in zip(values, z_names)]
+    if level_join:
+        pieces.append(exp.column("g", table="dbfit_coef", quoted=True))
     kept = [*[k.copy() for k in keys], *[sb.column(n) for n in z_names], sb.column("y"), sb.column("pw"), sb.column("n")]
-    if segmented:
+    if keys:
         kept = [exp.column(c.name, table="dbfit_cols", quoted=True) for c in kept]
     linear = exp.select(*kept, exp.alias_(sb.add(*pieces), "eta", quoted=True)).from_(columns.subquery("dbfit_cols"))
-    if segmented:
+    joined = coefficients if segmented else (level_join[1] if level_join else None)
+    if joined is not None:
         linear = linear.join(
-            coefficients.copy(),
-            on=exp.EQ(this=exp.column(SEGMENT, table="dbfit_cols", quoted=True),
-                      expression=exp.column(SEGMENT, table="dbfit_coef", quoted=True)),
+            joined.copy(),
+            on=exp.EQ(this=exp.column(key_name, table="dbfit_cols", quoted=True),
+                      expression=exp.column(key_name, table="dbfit_coef", quoted=True)),
         )
 
     eta, e = sb.column("eta"), sb.column("e")
@@ -114,7 +122,7 @@ def statistics_query(
     ).from_(row_terms.subquery("dbfit_terms"))
 
     sums: list[exp.Expression] = []
-    names = ([None] if intercept else []) + z_names
+    names = ([None] if intercept or level_join else []) + z_names
     for a in range(0 if not score_only else len(names), len(names)):
         for b in range(a, len(names)):
             sums.append(sb.agg_sum(_product(names[a], names[b])))
@@ -123,7 +131,7 @@ def statistics_query(
     sums += [sb.agg_sum(sb.column("ll")), sb.agg_sum(sb.column("ext")), sb.agg_sum(sb.column("bad"))]
     query = exp.select(*[k.copy() for k in keys], *[exp.alias_(s, f"s{i}", quoted=True) for i, s in enumerate(sums)])
     query = query.from_(weighted.subquery("dbfit_w"))
-    return query.group_by(*[k.copy() for k in keys]) if segmented else query
+    return query.group_by(*[k.copy() for k in keys]) if keys else query
 
 
 class StatisticsPass:
