@@ -12,6 +12,7 @@ import duckdb
 from sqlglot import exp
 
 from dbfit.errors import DbfitError, FormulaError, SourceError
+from dbfit.progress import watch_scan
 
 
 class DuckDBEngine:
@@ -22,6 +23,7 @@ class DuckDBEngine:
     def __init__(self, connection: duckdb.DuckDBPyConnection) -> None:
         self.connection = connection
         self.scans = 0
+        self.live_progress = False  # show each scan's progress on the terminal
 
     def sql(self, query: exp.Expression) -> str:
         return query.sql(dialect=self.dialect)
@@ -51,6 +53,9 @@ class DuckDBEngine:
 
     def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
         try:
+            if self.live_progress:
+                with watch_scan(self.connection, f"dbfit scan {self.scans}"):
+                    return self.connection.execute(sql, parameters).fetchall()
             return self.connection.execute(sql, parameters).fetchall()
         except duckdb.Error as err:
             raise translate_error(err) from None

@@ -21,6 +21,7 @@ from dbfit.errors import FitError
 from dbfit.formula import parse_formula
 from dbfit.irls import IterationReport, NewtonResult, fit_newton, refine_with_fixed_information
 from dbfit.model import Model
+from dbfit.progress import progress_settings
 from dbfit.source import source_relation
 from dbfit.segments import SegmentedFit, fit_segments
 from dbfit.statsquery import StatisticsPass
@@ -66,8 +67,9 @@ def fit(
     max_iter : most Newton passes (>= 1), default 50.
     tol : relative deviance change at convergence, default 1e-10.
     start : starting estimates on the original scale, by label or in label order (warm start).
-    progress : None logs each pass at INFO on the ``dbfit`` logger, True prints to stderr, False is quiet,
-        a callable receives an :class:`IterationReport`.
+    progress : None prints each pass (and a live share of rows scanned) on stderr when it is a terminal and
+        otherwise logs each pass at INFO on the ``dbfit`` logger; True always prints; False is quiet; a
+        callable receives an :class:`IterationReport`.
     by : SQL expression of a segment; one model is fitted per value, all in the same scans, and a
         :class:`SegmentedFit` is returned.
 
@@ -80,6 +82,31 @@ def fit(
     if not tol > 0:
         raise FitError(f"tol must be positive (got {tol})")
     engine = DuckDBEngine(con)
+    engine.live_progress = progress is not False and not callable(progress) and sys.stderr.isatty()
+    if engine.live_progress:
+        with progress_settings(con):
+            return _fit(engine, formula, source, weights=weights, offset=offset, trials=trials, reference=reference,
+                        positive=positive, max_iter=max_iter, tol=tol, start=start, progress=progress, by=by)
+    return _fit(engine, formula, source, weights=weights, offset=offset, trials=trials, reference=reference,
+                positive=positive, max_iter=max_iter, tol=tol, start=start, progress=progress, by=by)
+
+
+def _fit(
+    engine: DuckDBEngine,
+    formula: str,
+    source: str,
+    *,
+    weights: str | None,
+    offset: str | None,
+    trials: str | None,
+    reference: Mapping[str, Any] | None,
+    positive: Any,
+    max_iter: int,
+    tol: float,
+    start: Mapping[str, float] | Sequence[float] | None,
+    progress: Progress,
+    by: str | None,
+) -> Model | SegmentedFit:
     parsed = parse_formula(formula)
     design = build_design(
         engine,
@@ -329,7 +356,7 @@ def progress_reporter(progress: Progress) -> Callable[[IterationReport], None] |
             + (f", step {item.step_size:.3g}" if math.isfinite(item.step_size) else "")
             + f", {item.elapsed:.2f}s"
         )
-        if progress is True:
+        if progress is True or sys.stderr.isatty():
             print(text, file=sys.stderr, flush=True)
         else:
             log.info(text)
