@@ -17,11 +17,15 @@ def main(argv: list[str] | None = None) -> int:
     demo.add_argument("--rows", type=int, default=1_000_000, help="deliveries to generate (default: %(default)s)")
     demo.add_argument("--quiet", action="store_true", help="no per-pass progress lines")
 
-    bench = commands.add_parser("bench", help="time dbfit against export+statsmodels and in-memory numpy")
-    bench.add_argument("--rows", type=int, default=5_000_000, help="rows (default: %(default)s)")
-    bench.add_argument("--predictors", type=int, default=20, help="numeric predictors (default: %(default)s)")
-    bench.add_argument("--methods", default="abc", help="subset of a (dbfit), b (statsmodels), c (numpy)")
-    bench.add_argument("--keep", default=None, help="reuse or keep the data in this DuckDB file")
+    bench = commands.add_parser("bench", help="measure dbfit against export+statsmodels and in-memory numpy")
+    bench.add_argument("--scenario", default="core", choices=["core", "levels", "segments", "outofcore", "all"],
+                       help="what to measure (default: %(default)s)")
+    bench.add_argument("--rows", type=int, default=None, help="rows (default: the scenario's own size)")
+    bench.add_argument("--predictors", type=int, default=None, help="numeric predictors (default: per scenario)")
+    bench.add_argument("--levels", type=int, default=5000, help="levels of the categorical in 'levels'")
+    bench.add_argument("--segments", type=int, default=1000, help="segments in 'segments'")
+    bench.add_argument("--memory-limit", default="2GB", help="DuckDB memory_limit in 'outofcore'")
+    bench.add_argument("--keep", default=None, help="core: reuse or keep the data in this DuckDB file")
 
     args = parser.parse_args(argv)
     try:
@@ -32,7 +36,7 @@ def main(argv: list[str] | None = None) -> int:
         elif args.command == "bench":
             from dbfit.bench import run_bench
 
-            run_bench(args.rows, args.predictors, args.methods, args.keep)
+            run_bench(args.scenario, args.rows, args.predictors, args.keep, args.levels, args.segments, args.memory_limit)
     except DbfitError as err:
         print(f"dbfit: {err}", file=sys.stderr)
         return 2

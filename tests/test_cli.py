@@ -47,3 +47,16 @@ def test_bench_prints_ratios_for_all_three_methods(tmp_path):
 def test_bad_usage_exits_nonzero():
     done = run("demo", "--rows", "10", "--database", "/tmp/unused_dbfit_demo.duckdb")
     assert done.returncode == 2 and "at least 100 rows" in done.stderr
+
+
+def test_bench_scenarios_run_at_small_size():
+    done = run("bench", "--scenario", "levels", "--rows", "20000", "--levels", "200", "--predictors", "2")
+    assert done.returncode == 0, done.stderr
+    assert "(a) dbfit, blocks by level" in done.stdout and "not run" in done.stdout
+    done = run("bench", "--scenario", "segments", "--rows", "20000", "--segments", "20", "--predictors", "2")
+    assert done.returncode == 0, done.stderr
+    assert re.search(r"\(a\) dbfit, one model per segment .* 20 models", done.stdout)
+    assert "a/p: time" in done.stdout and "a/b: time" in done.stdout
+    done = run("bench", "--scenario", "outofcore", "--rows", "80000", "--predictors", "2", "--memory-limit", "100MB")
+    assert done.returncode == 0, done.stderr
+    assert "seconds per million rows" in done.stdout
