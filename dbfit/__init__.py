@@ -5,6 +5,7 @@ from dbfit.errors import DbfitError, FitError, FormulaError, SourceError
 from dbfit.fitting import fit
 from dbfit.irls import IterationReport
 from dbfit.model import Model
+from dbfit.robust import with_robust_errors
 
 __all__ = [
     "DbfitError",
@@ -16,5 +17,6 @@ __all__ = [
     "connect",
     "fit",
     "install",
+    "with_robust_errors",
 ]
 __version__ = "0.1.0"

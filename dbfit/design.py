@@ -96,9 +96,13 @@ class Design:
     def labels(self) -> list[str]:
         return (["intercept"] if self.intercept else []) + [c.label for c in self.columns]
 
-    def base_query(self) -> exp.Select:
-        """SELECT of the used expressions over the complete rows of the source (one row per source row)."""
+    def base_query(self, extra: dict[str, exp.Expression] | None = None) -> exp.Select:
+        """SELECT of the used expressions over the complete rows of the source (one row per source row).
+
+        ``extra`` carries further source expressions (a cluster or split key) by alias, without filtering on them.
+        """
         projections = [exp.alias_(self.target.copy(), TARGET, quoted=True)]
+        projections += [exp.alias_(node.copy(), name, quoted=True) for name, node in (extra or {}).items()]
         projections += [exp.alias_(f.expression.copy(), f.alias, quoted=True) for f in self.factors]
         for node, name in ((self.weights, WEIGHT), (self.offset, OFFSET), (self.trials, TRIALS)):
             if node is not None:

@@ -12,6 +12,7 @@ import duckdb
 import numpy as np
 
 from dbfit import inference
+from dbfit import robust as robust_errors
 from dbfit.design import Design, build_design
 from dbfit.engine import DuckDBEngine
 from dbfit.errors import FitError
@@ -40,6 +41,8 @@ def fit(
     tol: float = 1e-10,
     start: Mapping[str, float] | Sequence[float] | None = None,
     progress: Progress = None,
+    robust: str | None = None,
+    cluster: str | None = None,
 ) -> Model:
     """Fit a logistic regression of ``formula`` on ``source`` inside the database.
 
@@ -58,6 +61,9 @@ def fit(
     start : starting estimates on the original scale, by label or in label order (warm start).
     progress : None logs each pass at INFO on the ``dbfit`` logger, True prints to stderr, False is quiet,
         a callable receives an :class:`IterationReport`.
+    robust : ``"HC0"``, ``"HC1"`` or ``"cluster"``: sandwich standard errors instead of the model-based ones
+        (see :mod:`dbfit.robust`); one more scan.
+    cluster : SQL expression naming each row's cluster, for cluster-robust standard errors.
 
     References
     ----------
@@ -67,6 +73,7 @@ def fit(
         raise FitError(f"max_iter must be at least 1 (got {max_iter})")
     if not tol > 0:
         raise FitError(f"tol must be positive (got {tol})")
+    robust_kind = robust_errors.choose_kind(robust, cluster)
     engine = DuckDBEngine(con)
     parsed = parse_formula(formula)
     design = build_design(
@@ -101,9 +108,12 @@ def fit(
     active = [fitted[k] for k in newton.active]
     aliased = sorted(constant + [fitted[k] for k in newton.aliased])
     null_loglik = _null_loglik(engine, design, max_iter, tol)
-    return _assemble(design, newton, active, aliased, null_loglik, engine.scans, formula, source,
-                     dict(weights=weights, offset=offset, trials=trials, reference=dict(reference or {}),
-                          positive=positive, max_iter=max_iter, tol=tol))
+    model = _assemble(design, newton, active, aliased, null_loglik, engine.scans, formula, source,
+                      dict(weights=weights, offset=offset, trials=trials, reference=dict(reference or {}),
+                           positive=positive, max_iter=max_iter, tol=tol))
+    if robust_kind is not None:
+        model = robust_errors.with_robust_errors(con, model, robust_kind, cluster)
+    return model
 
 
 def _evaluate(engine: DuckDBEngine, design: Design, parameters: list[int], beta: np.ndarray) -> PassResult:

@@ -47,6 +47,7 @@ class Model:
             f" ({s['scans']} scans of the data)",
             f"  deviance  {s['deviance']:,.4f} on {s['df_residual']:,} df; intercept-only {s['null_deviance']:,.4f}",
             f"  log-lik   {s['log_likelihood']:,.4f}   AIC {s['aic']:,.4f}   BIC {s['bic']:,.4f}",
+            *[f"  {note}" for note in s.get("notes", [])],
             "",
             "  effects on the log-odds, with the odds multiplier per unit and its 95% Wald interval",
         ]
