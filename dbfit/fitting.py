@@ -11,6 +11,7 @@ from typing import Any, Callable
 import duckdb
 import numpy as np
 
+from dbfit import firth as bias_reduction
 from dbfit import inference
 from dbfit import robust as robust_errors
 from dbfit.design import Design, build_design
@@ -43,6 +44,7 @@ def fit(
     progress: Progress = None,
     robust: str | None = None,
     cluster: str | None = None,
+    firth: bool = False,
 ) -> Model:
     """Fit a logistic regression of ``formula`` on ``source`` inside the database.
 
@@ -64,6 +66,8 @@ def fit(
     robust : ``"HC0"``, ``"HC1"`` or ``"cluster"``: sandwich standard errors instead of the model-based ones
         (see :mod:`dbfit.robust`); one more scan.
     cluster : SQL expression naming each row's cluster, for cluster-robust standard errors.
+    firth : fit Firth's bias-reduced estimates (finite under separation; see :mod:`dbfit.firth`);
+        two scans per Newton pass.
 
     References
     ----------
@@ -94,8 +98,12 @@ def fit(
 
     beta_start = _start_values(design, start, fitted)
     default_start = _start_values(design, None, fitted)
+    def evaluate(parameters: list[int], beta: np.ndarray) -> PassResult:
+        return _evaluate(engine, design, parameters, beta)
+
+    step_evaluate = bias_reduction.firth_evaluator(engine, design, evaluate, has_intercept) if firth else evaluate
     newton = fit_newton(
-        lambda beta, active: _evaluate(engine, design, [fitted[k] for k in active], beta),
+        lambda beta, active: step_evaluate([fitted[k] for k in active], beta),
         beta_start,
         saturated_loglik=design.saturated_loglik,
         max_iter=max_iter,
@@ -107,10 +115,14 @@ def fit(
     )
     active = [fitted[k] for k in newton.active]
     aliased = sorted(constant + [fitted[k] for k in newton.aliased])
+    if firth:
+        newton = bias_reduction.finish(newton, step_evaluate, evaluate, active, max_iter)
     null_loglik = _null_loglik(engine, design, max_iter, tol)
     model = _assemble(design, newton, active, aliased, null_loglik, engine.scans, formula, source,
                       dict(weights=weights, offset=offset, trials=trials, reference=dict(reference or {}),
-                           positive=positive, max_iter=max_iter, tol=tol))
+                           positive=positive, max_iter=max_iter, tol=tol, firth=firth))
+    if firth:
+        model = bias_reduction.annotate(model, newton.last)
     if robust_kind is not None:
         model = robust_errors.with_robust_errors(con, model, robust_kind, cluster)
     return model
@@ -199,8 +211,8 @@ def _assemble(
         warnings.append(
             "separation: the outcome is (quasi-)completely separated, fitted probabilities reach 0 or 1 and the "
             f"maximum-likelihood estimates do not exist; suspected terms: {', '.join(suspects)}. The estimates "
-            "and standard errors shown are not trustworthy: drop or merge those terms, or use a bias-reduced "
-            "(Firth) fit"
+            "and standard errors shown are not trustworthy: drop or merge those terms, or refit with "
+            "dbfit.fit(..., firth=True) for Firth's bias-reduced estimates, which stay finite"
         )
     elif not newton.converged:
         warnings.append(
