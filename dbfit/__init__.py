@@ -5,6 +5,7 @@ from dbfit.errors import DbfitError, FitError, FormulaError, SourceError
 from dbfit.fitting import fit
 from dbfit.irls import IterationReport
 from dbfit.model import Model
+from dbfit.priorcorrection import prior_corrected
 from dbfit.robust import with_robust_errors
 
 __all__ = [
@@ -17,6 +18,7 @@ __all__ = [
     "connect",
     "fit",
     "install",
+    "prior_corrected",
     "with_robust_errors",
 ]
 __version__ = "0.1.0"

@@ -12,7 +12,7 @@ import duckdb
 import numpy as np
 
 from dbfit import firth as bias_reduction
-from dbfit import inference
+from dbfit import inference, priorcorrection
 from dbfit import robust as robust_errors
 from dbfit.design import Design, build_design
 from dbfit.engine import DuckDBEngine
@@ -45,6 +45,7 @@ def fit(
     robust: str | None = None,
     cluster: str | None = None,
     firth: bool = False,
+    population_rate: float | None = None,
 ) -> Model:
     """Fit a logistic regression of ``formula`` on ``source`` inside the database.
 
@@ -68,6 +69,8 @@ def fit(
     cluster : SQL expression naming each row's cluster, for cluster-robust standard errors.
     firth : fit Firth's bias-reduced estimates (finite under separation; see :mod:`dbfit.firth`);
         two scans per Newton pass.
+    population_rate : the known population event rate when the rows were sampled by outcome; the intercept
+        is prior-corrected to it (see :mod:`dbfit.priorcorrection`).
 
     References
     ----------
@@ -78,6 +81,7 @@ def fit(
     if not tol > 0:
         raise FitError(f"tol must be positive (got {tol})")
     robust_kind = robust_errors.choose_kind(robust, cluster)
+    priorcorrection.check_population_rate(population_rate)
     engine = DuckDBEngine(con)
     parsed = parse_formula(formula)
     design = build_design(
@@ -125,6 +129,8 @@ def fit(
         model = bias_reduction.annotate(model, newton.last)
     if robust_kind is not None:
         model = robust_errors.with_robust_errors(con, model, robust_kind, cluster)
+    if population_rate is not None:
+        model = priorcorrection.prior_corrected(model, population_rate)
     return model
 
 

@@ -22,6 +22,7 @@ from dbfit.engine import DuckDBEngine
 from dbfit.errors import FitError
 from dbfit.formula import parse_expression
 from dbfit.model import Model
+from dbfit.priorcorrection import fitted_estimates
 from dbfit.rowterms import row_terms, symmetric, upper_products
 
 KINDS = ("HC0", "HC1", "cluster")
@@ -128,7 +129,7 @@ def with_robust_errors(con, model: Model, robust: str | None = None, cluster: st
     design = model.design
     active = [k for k in range(len(model.labels)) if np.isfinite(model.estimates[k])]
     transform = inference.original_scale_map(design, active)
-    internal_beta = np.linalg.solve(transform, model.estimates[active])
+    internal_beta = np.linalg.solve(transform, fitted_estimates(model)[active])
     parts = sandwich_parts(engine, design, active, internal_beta, cluster)
     internal = sandwich_covariance(parts, kind, design.rows_used)
     covariance = np.full_like(model.covariance, np.nan)
