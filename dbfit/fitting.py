@@ -5,6 +5,7 @@ from __future__ import annotations
 import logging
 import math
 import sys
+from functools import partial
 from collections.abc import Mapping, Sequence
 from typing import Any, Callable
 
@@ -12,7 +13,7 @@ import duckdb
 import numpy as np
 
 from dbfit import firth as bias_reduction
-from dbfit import inference, priorcorrection
+from dbfit import inference, penalized, priorcorrection
 from dbfit import robust as robust_errors
 from dbfit.design import Design, build_design
 from dbfit.engine import DuckDBEngine
@@ -46,6 +47,10 @@ def fit(
     cluster: str | None = None,
     firth: bool = False,
     population_rate: float | None = None,
+    shrinkage: float | Sequence[float] | str | None = None,
+    l1_share: float = 0.0,
+    folds: int = 5,
+    split_key: str | None = None,
 ) -> Model:
     """Fit a logistic regression of ``formula`` on ``source`` inside the database.
 
@@ -71,6 +76,12 @@ def fit(
         two scans per Newton pass.
     population_rate : the known population event rate when the rows were sampled by outcome; the intercept
         is prior-corrected to it (see :mod:`dbfit.priorcorrection`).
+    shrinkage : penalty strength on the standardised scale (ridge / elastic net, see :mod:`dbfit.penalty`);
+        a list of strengths, or ``"cv"`` for an automatic grid, is walked as a path and the value with the
+        least ``folds``-fold cross-validated deviance is kept.
+    l1_share : share of the L1 part of the penalty, from 0 (ridge) to 1 (pure L1); default 0.
+    folds : number of cross-validation folds, default 5.
+    split_key : SQL expression whose hash assigns rows to folds (default: the row's used values).
 
     References
     ----------
@@ -82,6 +93,9 @@ def fit(
         raise FitError(f"tol must be positive (got {tol})")
     robust_kind = robust_errors.choose_kind(robust, cluster)
     priorcorrection.check_population_rate(population_rate)
+    penalty_request = penalized.check_request(shrinkage, l1_share, folds, split_key)
+    if penalty_request is not None and (firth or robust_kind is not None):
+        raise FitError("shrinkage cannot be combined with firth=True or robust standard errors")
     engine = DuckDBEngine(con)
     parsed = parse_formula(formula)
     design = build_design(
@@ -106,17 +120,22 @@ def fit(
         return _evaluate(engine, design, parameters, beta)
 
     step_evaluate = bias_reduction.firth_evaluator(engine, design, evaluate, has_intercept) if firth else evaluate
-    newton = fit_newton(
-        lambda beta, active: step_evaluate([fitted[k] for k in active], beta),
-        beta_start,
-        saturated_loglik=design.saturated_loglik,
-        max_iter=max_iter,
-        tol=tol,
-        protected=has_intercept,
-        report=reporter,
-        fallback_start=None if start is None else default_start,
-        weight_total=design.trial_sum,
-    )
+    if penalty_request is not None:
+        penalised = penalized.fit_penalised(engine, design, lambda variant: partial(_evaluate, engine, variant),
+                                            beta_start, fitted, penalty_request, max_iter)
+        newton = penalised.newton
+    else:
+        newton = fit_newton(
+            lambda beta, active: step_evaluate([fitted[k] for k in active], beta),
+            beta_start,
+            saturated_loglik=design.saturated_loglik,
+            max_iter=max_iter,
+            tol=tol,
+            protected=has_intercept,
+            report=reporter,
+            fallback_start=None if start is None else default_start,
+            weight_total=design.trial_sum,
+        )
     active = [fitted[k] for k in newton.active]
     aliased = sorted(constant + [fitted[k] for k in newton.aliased])
     if firth:
@@ -127,6 +146,8 @@ def fit(
                            positive=positive, max_iter=max_iter, tol=tol, firth=firth))
     if firth:
         model = bias_reduction.annotate(model, newton.last)
+    if penalty_request is not None:
+        model = penalized.annotate(model, penalised, penalty_request)
     if robust_kind is not None:
         model = robust_errors.with_robust_errors(con, model, robust_kind, cluster)
     if population_rate is not None:

@@ -59,6 +59,10 @@ class Model:
             if row["estimate"] is None:
                 lines.append(f"  {row['term']:<{width}}  {'aliased: no estimate':>40}")
                 continue
+            if row["std_error"] is None:
+                note = "exactly 0: removed by the penalty" if row["estimate"] == 0 else "penalised: no std.err"
+                lines.append(f"  {row['term']:<{width}}  {row['estimate']:>11.5g}   {note:<38}   {row['odds_ratio']:>9.4g}")
+                continue
             lines.append(
                 f"  {row['term']:<{width}}  {row['estimate']:>11.5g} {row['std_error']:>10.4g} {row['wald_z']:>8.3g}"
                 f" {_p_text(row['p_value']):>9}   {row['odds_ratio']:>9.4g}  [{row['odds_ratio_low']:.4g}, {row['odds_ratio_high']:.4g}]"
