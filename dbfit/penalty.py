@@ -74,6 +74,67 @@ def coordinate_descent(q: np.ndarray, c: np.ndarray, start: np.ndarray, penalty:
     return beta
 
 
+class PenalisedSolver:
+    """One penalised fit driven scan by scan: :meth:`wanted` names the point to scan next, :meth:`take` its scan.
+
+    Driving fits this way lets several of them (the folds of a cross-validation) share each scan.
+    """
+
+    def __init__(self, start: np.ndarray, penalty: Penalty, trials: float, max_iter: int,
+                 first: PassResult | None = None) -> None:
+        self.penalty, self.trials, self.max_iter = penalty, trials, max_iter
+        self.beta = start.copy()
+        self.current: PassResult | None = None
+        self.objective = math.inf
+        self.pending: np.ndarray | None = self.beta
+        self.final: np.ndarray | None = None
+        self.passes = self.halvings = 0
+        self.converged = False
+        if first is not None:
+            self.current, self.objective = first, self._objective(first, self.beta)
+            self._propose()
+
+    def _objective(self, scan: PassResult, beta: np.ndarray) -> float:
+        return -scan.loglik / self.trials + self.penalty.value(beta)
+
+    def _propose(self) -> None:
+        assert self.current is not None
+        self.pending, self.halvings = None, 0
+        if self.passes >= self.max_iter:
+            self.final = self.beta
+            return
+        gram, score = self.current.gram, self.current.score
+        proposal = coordinate_descent(gram / self.trials, (score + gram @ self.beta) / self.trials, self.beta, self.penalty)
+        if np.max(np.abs(proposal - self.beta), initial=0.0) < STEP_TOLERANCE:
+            self.final, self.converged = proposal, True
+        else:
+            self.pending = proposal
+
+    def wanted(self) -> np.ndarray | None:
+        return self.pending
+
+    def take(self, scan: PassResult) -> bool:
+        """Use the scan at :meth:`wanted`; True when the point is accepted (False: halved, scan again)."""
+        assert self.pending is not None
+        self.passes += 1
+        if self.current is None:
+            self.current, self.objective = scan, self._objective(scan, self.beta)
+            self._propose()
+            return True
+        objective = self._objective(scan, self.pending)
+        if objective <= self.objective + 1e-15 * (abs(self.objective) + 1.0) or self.halvings >= MAX_HALVINGS \
+                or self.passes >= self.max_iter:
+            self.beta, self.current, self.objective = self.pending, scan, objective
+            self._propose()
+            return True
+        self.pending, self.halvings = 0.5 * (self.beta + self.pending), self.halvings + 1
+        return False
+
+    def result(self) -> PenalisedResult:
+        assert self.final is not None and self.current is not None
+        return PenalisedResult(self.final, self.current, self.beta, self.passes, self.converged)
+
+
 def penalised_newton(
     evaluate: Callable[[np.ndarray], PassResult],
     start: np.ndarray,
@@ -83,20 +144,7 @@ def penalised_newton(
     first: PassResult | None = None,
 ) -> PenalisedResult:
     """Minimise F from ``start``; ``first`` is a scan already run at ``start`` (saves one)."""
-    beta = start.copy()
-    current = first if first is not None else evaluate(beta)
-    passes = 0 if first is not None else 1
-    objective = -current.loglik / trials + penalty.value(beta)
-    while passes < max_iter:
-        proposal = coordinate_descent(current.gram / trials, (current.score + current.gram @ beta) / trials, beta, penalty)
-        if np.max(np.abs(proposal - beta), initial=0.0) < STEP_TOLERANCE:
-            return PenalisedResult(proposal, current, beta, passes, True)
-        for _ in range(MAX_HALVINGS):
-            trial = evaluate(proposal)
-            passes += 1
-            trial_objective = -trial.loglik / trials + penalty.value(proposal)
-            if trial_objective <= objective + 1e-15 * (abs(objective) + 1.0) or passes >= max_iter:
-                break
-            proposal = 0.5 * (beta + proposal)
-        beta, current, objective = proposal, trial, trial_objective
-    return PenalisedResult(beta, current, beta, passes, False)
+    solver = PenalisedSolver(start, penalty, trials, max_iter, first)
+    while (point := solver.wanted()) is not None:
+        solver.take(evaluate(point))
+    return solver.result()
