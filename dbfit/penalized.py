@@ -1,9 +1,10 @@
 """Ridge and elastic-net fits: one shrinkage, or a path over a grid chosen by k-fold cross-validated deviance.
 
 The penalty lives on the internal standardised scale (see :mod:`dbfit.penalty`); every Newton pass is one
-scan of the core statistics query, over all rows or over a fold's training rows. A grid is walked from the
-largest shrinkage down with warm starts (Friedman, Hastie and Tibshirani 2010, J. Statistical Software 33(1),
-doi:10.18637/jss.v033.i01); the held-out log-likelihood of every grid point of a fold comes from one more scan.
+scan. A grid is walked from the largest shrinkage down with warm starts (Friedman, Hastie and Tibshirani 2010,
+J. Statistical Software 33(1), doi:10.18637/jss.v033.i01). Under cross-validation the k fold fits and the fit on
+all rows walk the grid together and share each scan (:mod:`dbfit.foldscan`), which also returns each fold's
+held-out log-likelihood, so the folds add width to the scans, not scans.
 The chosen shrinkage minimises the cross-validated deviance -2 sum_k l_k(b_-k) (Hastie, Tibshirani and
 Friedman 2009, The Elements of Statistical Learning, 2nd ed., section 7.10).
 """
@@ -20,12 +21,13 @@ from sqlglot import exp
 
 from dbfit import inference, splits
 from dbfit import sqlbuild as sb
-from dbfit.design import TARGET, Design
+from dbfit.design import Design
 from dbfit.engine import DuckDBEngine
 from dbfit.errors import FitError
 from dbfit.irls import NewtonResult, aliased_columns
 from dbfit.model import Model
-from dbfit.penalty import Penalty, PenalisedResult, penalised_newton
+from dbfit.foldscan import FoldFit, FoldPass, fold_scan
+from dbfit.penalty import Penalty, PenalisedResult, PenalisedSolver, penalised_newton
 from dbfit.statsquery import PassResult
 
 GRID_POINTS = 12
@@ -128,24 +130,61 @@ def fit_penalised(
     grid = _grid(request, null, mask, design.trial_sum, len(parameters))
     fold = splits.fold_expression(design, request.split_key, request.folds)
     sizes = splits.fold_sizes(engine, design, fold, request.folds)
-    deviance = np.zeros(len(grid))
-    for number in range(request.folds):
-        training = evaluate_for(splits.fold_design(design, fold, number, held_out=False))
-        point, betas = None, []
-        for shrinkage in grid:
-            beginning, scan = (null.beta, None) if point is None else (point.scanned, point.last)
-            point, _ = run(training, beginning, shrinkage, design.trial_sum - sizes.trials[number], scan)
-            passes += point.passes
-            betas.append(point.beta)
-        held_out = splits.fold_design(design, fold, number, held_out=True)
-        deviance -= 2.0 * held_out_loglik(engine, held_out, parameters, betas)
+    settings = (grid, request.l1_share, mask, max_iter)
+    runners = [PathRunner(*settings, design.trial_sum, None, null.scanned, null.last)] + [
+        PathRunner(*settings, design.trial_sum - sizes.trials[k], k, null.scanned) for k in range(request.folds)
+    ]
+    passes += walk_together(engine, design, parameters, fold, runners)
+    deviance = -2.0 * np.sum([runner.held_out_logliks for runner in runners[1:]], axis=0)
     chosen = int(np.argmin(deviance))
-    result, penalty = null, None
-    for shrinkage in grid[: chosen + 1]:
-        result, penalty = run(evaluate, result.scanned, shrinkage, design.trial_sum, result.last)
-        passes += result.passes
+    result = runners[0].solutions[chosen]
     path = [PathPoint(s, float(d)) for s, d in zip(grid, deviance)]
-    return PenalisedFit(_as_newton(result, keep, dropped, passes), penalty, path, passes, chosen)  # type: ignore[arg-type]
+    return PenalisedFit(_as_newton(result, keep, dropped, passes), Penalty(grid[chosen], request.l1_share, mask),
+                        path, passes, chosen)
+
+
+class PathRunner:
+    """Walks one fit down the grid; each point starts from the last scan of the one before (warm start)."""
+
+    def __init__(self, grid: list[float], l1_share: float, mask: np.ndarray, max_iter: int, trials: float,
+                 held_out: int | None, start: np.ndarray, first: PassResult | None = None) -> None:
+        self.grid, self.l1_share, self.mask, self.max_iter, self.trials = grid, l1_share, mask, max_iter, trials
+        self.held_out = held_out
+        self.solutions: list[PenalisedResult] = []
+        self.held_out_logliks: list[float] = []
+        self._held_out_now = 0.0  # held-out log-likelihood at the solver's last accepted point
+        self.solver = PenalisedSolver(start, Penalty(grid[0], l1_share, mask), trials, max_iter, first)
+
+    def wanted(self) -> np.ndarray | None:
+        while len(self.solutions) < len(self.grid):
+            point = self.solver.wanted()
+            if point is not None:
+                return point
+            self.solutions.append(self.solver.result())
+            self.held_out_logliks.append(self._held_out_now)
+            if len(self.solutions) < len(self.grid):
+                last = self.solutions[-1]
+                penalty = Penalty(self.grid[len(self.solutions)], self.l1_share, self.mask)
+                self.solver = PenalisedSolver(last.scanned, penalty, self.trials, self.max_iter, last.last)
+        return None
+
+    def take(self, scan: FoldPass) -> None:
+        if self.solver.take(scan.result):
+            self._held_out_now = scan.held_out_loglik
+
+
+def walk_together(engine: DuckDBEngine, design: Design, parameters: list[int], fold: exp.Expression,
+                  runners: list[PathRunner]) -> int:
+    """Drive all runners to the end of the grid, one shared scan per pass; returns the number of scans."""
+    scans = 0
+    while True:
+        wanted = [(runner, point) for runner in runners if (point := runner.wanted()) is not None]
+        if not wanted:
+            return scans
+        results = fold_scan(engine, design, parameters, fold, [FoldFit(runner.held_out, point) for runner, point in wanted])
+        scans += 1
+        for (runner, _), result in zip(wanted, results):
+            runner.take(result)
 
 
 def _grid(request: PenaltyRequest, null: PenalisedResult, mask: np.ndarray, trials: float, size: int) -> list[float]:
@@ -159,31 +198,6 @@ def _grid(request: PenaltyRequest, null: PenalisedResult, mask: np.ndarray, tria
 def _as_newton(result: PenalisedResult, keep: list[int], dropped: list[int], passes: int) -> NewtonResult:
     return NewtonResult(beta=result.beta, active=keep, aliased=dropped, last=result.last, iterations=passes,
                         converged=result.converged, separation=False)
-
-
-def held_out_loglik(engine: DuckDBEngine, design: Design, parameters: list[int], betas: list[np.ndarray]) -> np.ndarray:
-    """One scan: the log-likelihood (without binomial constants) of the rows of ``design`` at each of ``betas``."""
-    has_intercept = 1 if design.intercept else 0
-    z = [exp.Literal.number(1) if design.intercept and k == 0 else sb.column(f"dbfit_z{k}") for k in parameters]
-    projections = [
-        exp.alias_(design.column_expression(design.columns[k - has_intercept]), f"dbfit_z{k}", quoted=True)
-        for k in parameters if not (design.intercept and k == 0)
-    ]
-    offset = design.offset_expression()
-    carried = [exp.alias_(sb.column(TARGET), "y", quoted=True), exp.alias_(design.weight_expression(), "pw", quoted=True),
-               exp.alias_(design.trials_expression(), "n", quoted=True),
-               exp.alias_(offset if offset is not None else exp.Literal.number(0), "off", quoted=True)]
-    columns = exp.select(*projections, *carried).from_(design.base_query().subquery("dbfit_base"))
-    etas = [sb.add(sb.column("off"), *[sb.mul(sb.number(b), zk.copy()) for b, zk in zip(beta, z)]) for beta in betas]
-    linear = exp.select(sb.column("y"), sb.column("pw"), sb.column("n"),
-                        *[exp.alias_(eta, f"eta{g}", quoted=True) for g, eta in enumerate(etas)]).from_(columns.subquery("dbfit_cols"))
-    sums = []
-    for g in range(len(betas)):
-        eta = sb.column(f"eta{g}")
-        log1pexp = sb.stable_log1pexp(eta.copy(), sb.exp_neg_abs(eta.copy()))
-        sums.append(sb.agg_sum(sb.mul(sb.column("pw"), sb.paren(sb.sub(sb.mul(sb.column("y"), eta), sb.mul(sb.column("n"), sb.paren(log1pexp)))))))
-    row = engine.fetch(exp.select(*[exp.alias_(s, f"s{g}", quoted=True) for g, s in enumerate(sums)]).from_(linear.subquery("dbfit_eta")))[0]
-    return np.array([0.0 if v is None else float(v) for v in row])
 
 
 def effective_df(gram: np.ndarray, beta: np.ndarray, penalty: Penalty, trials: float) -> float:

@@ -35,13 +35,6 @@ def fold_expression(design: Design, key_text: str | None, folds: int) -> exp.Exp
     return exp.Mod(this=sb.paren(sb.func("hash", *keys)), expression=exp.Literal.number(folds))
 
 
-def fold_design(design: Design, fold: exp.Expression, number: int, held_out: bool) -> Design:
-    """The same design over the rows of fold ``number`` (held out) or all other folds (training)."""
-    condition = (exp.EQ if held_out else exp.NEQ)(this=fold.copy(), expression=exp.Literal.number(number))
-    relation = exp.select("*").from_(design.relation.copy()).where(condition).subquery(f"dbfit_fold{number}")
-    return dataclasses.replace(design, relation=relation)
-
-
 def fold_sizes(engine: DuckDBEngine, design: Design, fold: exp.Expression, folds: int) -> FoldSizes:
     """One scan: rows and weighted trials per fold; every fold must hold rows."""
     base = design.base_query({FOLD: fold}).subquery("dbfit_base")
