@@ -190,3 +190,16 @@ def test_robust_errors_refuse_a_penalised_model(con, cancer):
     model = dbfit.fit(con, FORMULA, "cancer", shrinkage=0.01, progress=False)
     with pytest.raises(dbfit.FitError, match="not defined for a penalised fit"):
         dbfit.with_robust_errors(con, model, "HC0")
+
+
+def test_constant_weights_leave_a_penalised_fit_unchanged(con, cancer):
+    # Property of the objective -l/N + penalty (N = weighted trials): doubling every weight changes nothing.
+    plain = dbfit.fit(con, FORMULA, "cancer", shrinkage=0.02, l1_share=0.5, progress=False)
+    doubled = dbfit.fit(con, FORMULA, "cancer", shrinkage=0.02, l1_share=0.5, weights="2", progress=False)
+    assert_close(doubled.estimates[doubled.estimates != 0], plain.estimates[plain.estimates != 0], 1e-9, "estimates")
+    assert doubled.stats["exact_zeros"] == plain.stats["exact_zeros"]
+
+
+def test_unknown_split_key_column_is_named(con, cancer):
+    with pytest.raises(dbfit.FormulaError, match="unknown column 'customer'"):
+        dbfit.fit(con, FORMULA, "cancer", shrinkage="cv", split_key="customer", progress=False)

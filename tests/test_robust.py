@@ -102,6 +102,7 @@ def test_each_row_its_own_cluster_is_hc0_rescaled(con):
         ({"cluster": "GPA; DROP TABLE spector"}, "cluster"),
         ({"cluster": "CASE WHEN PSI = 1 THEN 'a' END"}, "is NULL on 18 of the 32 rows"),
         ({"cluster": "1"}, "in 1 cluster"),
+        ({"cluster": "classroom"}, "unknown column 'classroom'"),
     ],
 )
 def test_bad_robust_options_are_named(con, options, message):
