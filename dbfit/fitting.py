@@ -5,7 +5,6 @@ from __future__ import annotations
 import logging
 import math
 import sys
-from functools import partial
 from collections.abc import Mapping, Sequence
 from typing import Any, Callable
 
@@ -116,13 +115,14 @@ def fit(
 
     beta_start = _start_values(design, start, fitted)
     default_start = _start_values(design, None, fitted)
+
     def evaluate(parameters: list[int], beta: np.ndarray) -> PassResult:
         return _evaluate(engine, design, parameters, beta)
 
     step_evaluate = bias_reduction.firth_evaluator(engine, design, evaluate, has_intercept) if firth else evaluate
     if penalty_request is not None:
-        penalised = penalized.fit_penalised(engine, design, lambda variant: partial(_evaluate, engine, variant),
-                                            beta_start, fitted, penalty_request, max_iter)
+        penalised = penalized.fit_penalised(engine, design, evaluate, beta_start, fitted, penalty_request, max_iter,
+                                            reporter)
         newton = penalised.newton
     else:
         newton = fit_newton(

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import time
 from collections.abc import Sequence
 from typing import Any, Callable
 
@@ -24,7 +25,7 @@ from dbfit import sqlbuild as sb
 from dbfit.design import Design
 from dbfit.engine import DuckDBEngine
 from dbfit.errors import FitError
-from dbfit.irls import NewtonResult, aliased_columns
+from dbfit.irls import IterationReport, NewtonResult, aliased_columns
 from dbfit.model import Model
 from dbfit.foldscan import FoldFit, FoldPass, fold_scan
 from dbfit.penalty import Penalty, PenalisedResult, PenalisedSolver, penalised_newton
@@ -34,7 +35,6 @@ GRID_POINTS = 12
 RIDGE_TOP_SHARE = 1e-3  # the top of a ridge grid is placed as for an L1 share of 1e-3 (common practice)
 
 Evaluate = Callable[[list[int], np.ndarray], PassResult]
-EvaluateFor = Callable[[Design], Evaluate]
 
 
 @dataclasses.dataclass(frozen=True)
@@ -97,16 +97,22 @@ def check_request(shrinkage: Any, l1_share: Any, folds: Any, split_key: str | No
 def fit_penalised(
     engine: DuckDBEngine,
     design: Design,
-    evaluate_for: EvaluateFor,
+    evaluate: Evaluate,
     start: np.ndarray,
     fitted: list[int],
     request: PenaltyRequest,
     max_iter: int,
+    report: Callable[[IterationReport], None] | None = None,
 ) -> PenalisedFit:
-    """Fit at one shrinkage, or cross-validate a grid and refit along it on all rows."""
-    evaluate = evaluate_for(design)
+    """Fit at one shrinkage, or cross-validate a grid and refit along it on all rows.
+
+    ``report`` receives one :class:`IterationReport` per scan, with the deviance of the fit on all rows
+    (NaN for a shared scan the fit on all rows did not need).
+    """
+    on_scan = _scan_reporter(report, design.saturated_loglik)
     protected = 1 if design.intercept else 0
     first = evaluate(fitted, start)
+    on_scan(first.loglik)
     dropped = aliased_columns(first.gram, protected)
     keep = [k for k in range(len(fitted)) if k not in dropped]
     parameters = [fitted[k] for k in keep]
@@ -117,7 +123,12 @@ def fit_penalised(
 
     def run(variant: Evaluate, beginning: np.ndarray, shrinkage: float, trials: float, scan: PassResult | None = None):
         penalty = Penalty(shrinkage, request.l1_share, mask)
-        return penalised_newton(lambda b: variant(parameters, b), beginning, penalty, trials, max_iter, scan), penalty
+        def scan_once(beta: np.ndarray) -> PassResult:
+            result = variant(parameters, beta)
+            on_scan(result.loglik)
+            return result
+
+        return penalised_newton(scan_once, beginning, penalty, trials, max_iter, scan), penalty
 
     start = start[keep]
     if not request.cross_validated:
@@ -134,7 +145,7 @@ def fit_penalised(
     runners = [PathRunner(*settings, design.trial_sum, None, null.scanned, null.last)] + [
         PathRunner(*settings, design.trial_sum - sizes.trials[k], k, null.scanned) for k in range(request.folds)
     ]
-    passes += walk_together(engine, design, parameters, fold, runners)
+    passes += walk_together(engine, design, parameters, fold, runners, on_scan)
     deviance = -2.0 * np.sum([runner.held_out_logliks for runner in runners[1:]], axis=0)
     chosen = int(np.argmin(deviance))
     result = runners[0].solutions[chosen]
@@ -174,7 +185,7 @@ class PathRunner:
 
 
 def walk_together(engine: DuckDBEngine, design: Design, parameters: list[int], fold: exp.Expression,
-                  runners: list[PathRunner]) -> int:
+                  runners: list[PathRunner], on_scan: Callable[[float], None]) -> int:
     """Drive all runners to the end of the grid, one shared scan per pass; returns the number of scans."""
     scans = 0
     while True:
@@ -183,8 +194,20 @@ def walk_together(engine: DuckDBEngine, design: Design, parameters: list[int], f
             return scans
         results = fold_scan(engine, design, parameters, fold, [FoldFit(runner.held_out, point) for runner, point in wanted])
         scans += 1
+        on_scan(results[0].result.loglik if wanted[0][0] is runners[0] else math.nan)
         for (runner, _), result in zip(wanted, results):
             runner.take(result)
+
+
+def _scan_reporter(report: Callable[[IterationReport], None] | None, saturated_loglik: float) -> Callable[[float], None]:
+    began, count = time.perf_counter(), [0]
+
+    def on_scan(loglik: float) -> None:
+        count[0] += 1
+        if report is not None:
+            report(IterationReport(count[0], 2.0 * (saturated_loglik - loglik), time.perf_counter() - began, math.nan))
+
+    return on_scan
 
 
 def _grid(request: PenaltyRequest, null: PenalisedResult, mask: np.ndarray, trials: float, size: int) -> list[float]:

@@ -13,11 +13,13 @@ from __future__ import annotations
 
 import dataclasses
 
+import duckdb
 import numpy as np
 from sqlglot import exp
 
 from dbfit import inference
 from dbfit import sqlbuild as sb
+from dbfit.design import Design
 from dbfit.engine import DuckDBEngine
 from dbfit.errors import FitError
 from dbfit.formula import parse_expression
@@ -49,7 +51,7 @@ def choose_kind(robust: str | None, cluster: str | None) -> str | None:
     return robust
 
 
-def sandwich_query(design, parameters: list[int], beta: np.ndarray, cluster: exp.Expression | None) -> exp.Select:
+def sandwich_query(design: Design, parameters: list[int], beta: np.ndarray, cluster: exp.Expression | None) -> exp.Select:
     """One scan: upper triangles of the bread and the meat, the count of units and of rows with a NULL cluster."""
     terms = row_terms(design, parameters, beta, {CLUSTER: cluster} if cluster is not None else None)
     size = len(parameters)
@@ -79,7 +81,7 @@ def _aliased_select(values: list[exp.Expression]) -> exp.Select:
     return exp.select(*[exp.alias_(v, f"s{i}", quoted=True) for i, v in enumerate(values)])
 
 
-def sandwich_parts(engine: DuckDBEngine, design, parameters: list[int], beta: np.ndarray, cluster_text: str | None) -> SandwichParts:
+def sandwich_parts(engine: DuckDBEngine, design: Design, parameters: list[int], beta: np.ndarray, cluster_text: str | None) -> SandwichParts:
     cluster = parse_expression(cluster_text, "cluster") if cluster_text is not None else None
     row = engine.fetch(sandwich_query(design, parameters, beta, cluster))[0]
     size = len(parameters)
@@ -115,7 +117,7 @@ def describe(kind: str, cluster: str | None, clusters: int) -> str:
     return f"std.err   {kind} sandwich (heteroscedasticity-robust{scaling})"
 
 
-def with_robust_errors(con, model: Model, robust: str | None = None, cluster: str | None = None) -> Model:
+def with_robust_errors(con: duckdb.DuckDBPyConnection, model: Model, robust: str | None = None, cluster: str | None = None) -> Model:
     """A copy of ``model`` with sandwich standard errors (HC0, HC1 or cluster-robust by ``cluster``).
 
     Runs one aggregate scan at the model's estimates; the estimates themselves do not change.
