@@ -225,3 +225,11 @@ def test_grouped_binomial_ridge_matches_scikit_learn_with_case_weights(con):
         reference = LogisticRegression(C=1.0 / (shrinkage * counts.sum()), l1_ratio=0.0, tol=1e-14,
                                        max_iter=100_000).fit(x, y, sample_weight=counts)
     assert_close(model.estimates, np.r_[reference.intercept_, reference.coef_[0]], RTOL, "ridge with trials")
+
+
+def test_zero_shrinkage_is_the_maximum_likelihood_fit(con, cancer):
+    # Property: without a penalty, coordinate descent on each pass's quadratic approximation is Newton's method.
+    plain = dbfit.fit(con, FORMULA, "cancer", progress=False)
+    unpenalised = dbfit.fit(con, FORMULA, "cancer", shrinkage=0.0, l1_share=0.5, progress=False)
+    assert_close(unpenalised.estimates, plain.estimates, 1e-8, "estimates")
+    assert unpenalised.stats["log_likelihood"] == pytest.approx(plain.stats["log_likelihood"], rel=1e-12)
