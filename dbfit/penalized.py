@@ -121,22 +121,22 @@ def fit_penalised(
     if not mask.any():
         raise FitError("shrinkage needs at least one term besides the intercept to penalise")
 
-    def run(variant: Evaluate, beginning: np.ndarray, shrinkage: float, trials: float, scan: PassResult | None = None):
-        penalty = Penalty(shrinkage, request.l1_share, mask)
-        def scan_once(beta: np.ndarray) -> PassResult:
-            result = variant(parameters, beta)
-            on_scan(result.loglik)
-            return result
+    def scan_once(beta: np.ndarray) -> PassResult:
+        result = evaluate(parameters, beta)
+        on_scan(result.loglik)
+        return result
 
-        return penalised_newton(scan_once, beginning, penalty, trials, max_iter, scan), penalty
+    def run(beginning: np.ndarray, shrinkage: float, scan: PassResult | None) -> tuple[PenalisedResult, Penalty]:
+        penalty = Penalty(shrinkage, request.l1_share, mask)
+        return penalised_newton(scan_once, beginning, penalty, design.trial_sum, max_iter, scan), penalty
 
     start = start[keep]
     if not request.cross_validated:
-        result, penalty = run(evaluate, start, float(request.shrinkage), design.trial_sum, first)  # type: ignore[arg-type]
+        result, penalty = run(start, float(request.shrinkage), first)  # type: ignore[arg-type]
         passes = result.passes + 1
         return PenalisedFit(_as_newton(result, keep, dropped, passes), penalty, [PathPoint(penalty.shrinkage)], passes)
 
-    null, _ = run(evaluate, start, math.inf, design.trial_sum, first)
+    null, _ = run(start, math.inf, first)
     passes = null.passes + 1
     grid = _grid(request, null, mask, design.trial_sum, len(parameters))
     fold = splits.fold_expression(design, request.split_key, request.folds)
@@ -224,8 +224,9 @@ def _as_newton(result: PenalisedResult, keep: list[int], dropped: list[int], pas
 
 
 def effective_df(gram: np.ndarray, beta: np.ndarray, penalty: Penalty, trials: float) -> float:
-    """tr[(G_A + N l2 D_A)^-1 G_A] over the non-zero coefficients A (Hastie, Tibshirani and Friedman 2009, eq. 3.50;
-    Zou, Hastie and Tibshirani 2007, doi:10.1214/009053607000000127, for the L1 part)."""
+    """tr[(G_A + N l2 D_A)^-1 G_A] over the non-zero coefficients A (Hastie, Tibshirani and Friedman 2009, section
+    3.4.1, equation number 3.50 from memory; Zou, Hastie and Tibshirani 2007, doi:10.1214/009053607000000127, for
+    the L1 part)."""
     nonzero = np.flatnonzero(beta != 0.0)
     if nonzero.size == 0:
         return 0.0
@@ -238,7 +239,8 @@ def annotate(model: Model, fit: PenalisedFit, request: PenaltyRequest) -> Model:
     """Penalised estimates carry no Wald standard errors; record the penalty, the path and the exact zeros."""
     covariance = np.full_like(model.covariance, np.nan)
     design = model.design
-    zeros = [label for label, value in zip(model.labels, model.estimates) if value == 0.0]
+    zeros = [label for k, (label, value) in enumerate(zip(model.labels, model.estimates))
+             if value == 0.0 and not (design.intercept and k == 0)]
     df = effective_df(fit.newton.last.gram, fit.newton.beta, fit.penalty, design.trial_sum)
     stats = dict(model.stats)
     aic, bic = inference.information_criteria(stats["log_likelihood"], 0, design.rows_used)
