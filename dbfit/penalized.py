@@ -62,6 +62,7 @@ class PenalisedFit:
     path: list[PathPoint]
     passes: int
     chosen: int | None = None
+    unconverged: int = 0  # path points of the fold fits that stopped at max_iter
 
 
 def check_request(shrinkage: Any, l1_share: Any, folds: Any, split_key: str | None) -> PenaltyRequest | None:
@@ -150,8 +151,9 @@ def fit_penalised(
     chosen = int(np.argmin(deviance))
     result = runners[0].solutions[chosen]
     path = [PathPoint(s, float(d)) for s, d in zip(grid, deviance)]
+    unconverged = sum(not point.converged for runner in runners[1:] for point in runner.solutions)
     return PenalisedFit(_as_newton(result, keep, dropped, passes), Penalty(grid[chosen], request.l1_share, mask),
-                        path, passes, chosen)
+                        path, passes, chosen, unconverged)
 
 
 class PathRunner:
@@ -259,11 +261,16 @@ def annotate(model: Model, fit: PenalisedFit, request: PenaltyRequest) -> Model:
         f"L1 share {fit.penalty.l1_share:g}; effective df {df:.3f}; {len(zeros)} coefficient(s) exactly 0; "
         "no Wald standard errors for penalised estimates",
     ]
+    warnings = list(model.warnings)
+    if fit.unconverged:
+        warnings.append(f"not converged: {fit.unconverged} fold fit(s) along the path stopped after max_iter passes; "
+                        "their held-out deviance is approximate: raise max_iter")
     return dataclasses.replace(
         model,
         covariance=covariance,
         coefficients=inference.coefficient_table(model.labels, model.estimates, covariance),
         stats=stats,
+        warnings=warnings,
         options={**model.options, "shrinkage": request.shrinkage, "l1_share": request.l1_share,
                  "folds": request.folds if request.cross_validated else None, "split_key": request.split_key},
     )

@@ -24,6 +24,7 @@ STEP_TOLERANCE = 1e-10  # largest change of a coefficient (internal scale) accep
 SWEEP_TOLERANCE = 1e-15
 MAX_SWEEPS = 100_000
 MAX_HALVINGS = 30
+RISE_TOLERANCE = 1e-12  # relative rise of the objective taken as rounding in the sums (as in dbfit.irls)
 
 
 @dataclass(frozen=True)
@@ -122,7 +123,7 @@ class PenalisedSolver:
             self._propose()
             return True
         objective = self._objective(scan, self.pending)
-        if objective <= self.objective + 1e-15 * (abs(self.objective) + 1.0) or self.halvings >= MAX_HALVINGS \
+        if objective <= self.objective + RISE_TOLERANCE * (abs(self.objective) + 1.0) or self.halvings >= MAX_HALVINGS \
                 or self.passes >= self.max_iter:
             self.beta, self.current, self.objective = self.pending, scan, objective
             self._propose()

@@ -233,3 +233,9 @@ def test_zero_shrinkage_is_the_maximum_likelihood_fit(con, cancer):
     unpenalised = dbfit.fit(con, FORMULA, "cancer", shrinkage=0.0, l1_share=0.5, progress=False)
     assert_close(unpenalised.estimates, plain.estimates, 1e-8, "estimates")
     assert unpenalised.stats["log_likelihood"] == pytest.approx(plain.stats["log_likelihood"], rel=1e-12)
+
+
+def test_a_path_cut_short_by_max_iter_says_so(con, cancer):
+    model = dbfit.fit(con, FORMULA, "cancer", shrinkage=[0.1, 0.001], folds=2, max_iter=2, progress=False)
+    assert any("fold fit(s) along the path stopped after max_iter" in w for w in model.warnings)
+    assert not model.stats["converged"]
