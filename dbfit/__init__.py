@@ -6,6 +6,8 @@ from dbfit.fitting import fit
 from dbfit.irls import IterationReport
 from dbfit.model import Model
 from dbfit.segments import SegmentedFit
+from dbfit.priorcorrection import prior_corrected
+from dbfit.robust import with_robust_errors
 
 __all__ = [
     "DbfitError",
@@ -18,5 +20,7 @@ __all__ = [
     "connect",
     "fit",
     "install",
+    "prior_corrected",
+    "with_robust_errors",
 ]
 __version__ = "0.1.0"

@@ -104,18 +104,21 @@ class Design:
         options = ((self.weights, WEIGHT), (self.offset, OFFSET), (self.trials, TRIALS), (self.segment, SEGMENT))
         return used + [(node, name) for node, name in options if node is not None]
 
-    def rows_query(self) -> exp.Select:
-        """SELECT of the used expressions, aliased, over every row of the source."""
-        used = self.used_expressions()
+    def rows_query(self, extra: dict[str, exp.Expression] | None = None) -> exp.Select:
+        """SELECT of the used expressions, aliased, over every row of the source.
+
+        ``extra`` carries further source expressions (a cluster or split key) by alias, without filtering on them.
+        """
+        used = self.used_expressions() + [(node, name) for name, node in (extra or {}).items()]
         return exp.select(*[exp.alias_(node.copy(), name, quoted=True) for node, name in used]).from_(self.relation.copy())
 
     def complete(self) -> exp.Expression:
         """The condition that a row of :meth:`rows_query` has no NULL in a used expression."""
         return sb.all_not_null([sb.column(name) for _, name in self.used_expressions()])
 
-    def base_query(self) -> exp.Select:
+    def base_query(self, extra: dict[str, exp.Expression] | None = None) -> exp.Select:
         """SELECT of the used expressions over the complete rows of the source (one row per source row)."""
-        return exp.select("*").from_(self.rows_query().subquery("dbfit_rows")).where(self.complete())
+        return exp.select("*").from_(self.rows_query(extra).subquery("dbfit_rows")).where(self.complete())
 
     def column_expression(self, column: DesignColumn) -> exp.Expression:
         """SQL for the internal (centred, scaled) value of ``column`` over the base query's aliases."""

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import logging
+from dataclasses import dataclass
 import math
 import sys
 import uuid
@@ -13,7 +14,9 @@ import duckdb
 import numpy as np
 from sqlglot import exp
 
-from dbfit import inference
+from dbfit import firth as bias_reduction
+from dbfit import inference, penalized, priorcorrection
+from dbfit import robust as robust_errors
 from dbfit.blocks import BlockedStatisticsPass, BlockInformation, blocked_factor, dense_first
 from dbfit.design import Design, build_design
 from dbfit.engine import DuckDBEngine
@@ -24,7 +27,7 @@ from dbfit.model import Model
 from dbfit.progress import progress_settings
 from dbfit.source import source_relation
 from dbfit.segments import SegmentedFit, fit_segments
-from dbfit.statsquery import StatisticsPass
+from dbfit.statsquery import PassResult, StatisticsPass
 
 log = logging.getLogger("dbfit")
 
@@ -51,6 +54,14 @@ def fit(
     start: Mapping[str, float] | Sequence[float] | None = None,
     progress: Progress = None,
     by: str | None = None,
+    robust: str | None = None,
+    cluster: str | None = None,
+    firth: bool = False,
+    population_rate: float | None = None,
+    shrinkage: float | Sequence[float] | str | None = None,
+    l1_share: float = 0.0,
+    folds: int = 5,
+    split_key: str | None = None,
 ) -> Model | SegmentedFit:
     """Fit a logistic regression of ``formula`` on ``source`` inside the database.
 
@@ -72,6 +83,19 @@ def fit(
         callable receives an :class:`IterationReport`.
     by : SQL expression of a segment; one model is fitted per value, all in the same scans, and a
         :class:`SegmentedFit` is returned.
+    robust : ``"HC0"``, ``"HC1"`` or ``"cluster"``: sandwich standard errors instead of the model-based ones
+        (see :mod:`dbfit.robust`); one more scan.
+    cluster : SQL expression naming each row's cluster, for cluster-robust standard errors.
+    firth : fit Firth's bias-reduced estimates (finite under separation; see :mod:`dbfit.firth`);
+        two scans per Newton pass.
+    population_rate : the known population event rate when the rows were sampled by outcome; the intercept
+        is prior-corrected to it (see :mod:`dbfit.priorcorrection`).
+    shrinkage : penalty strength on the standardised scale (ridge / elastic net, see :mod:`dbfit.penalty`);
+        a list of strengths, or ``"cv"`` for an automatic grid, is walked as a path and the value with the
+        least ``folds``-fold cross-validated deviance is kept.
+    l1_share : share of the L1 part of the penalty, from 0 (ridge) to 1 (pure L1); default 0.
+    folds : number of cross-validation folds, default 5.
+    split_key : SQL expression whose hash assigns rows to folds (default: the row's used values).
 
     References
     ----------
@@ -81,14 +105,37 @@ def fit(
         raise FitError(f"max_iter must be at least 1 (got {max_iter})")
     if not tol > 0:
         raise FitError(f"tol must be positive (got {tol})")
+    robust_kind = robust_errors.choose_kind(robust, cluster)
+    priorcorrection.check_population_rate(population_rate)
+    penalty_request = penalized.check_request(shrinkage, l1_share, folds, split_key)
+    if penalty_request is not None and (firth or robust_kind is not None):
+        raise FitError("shrinkage cannot be combined with firth=True or robust standard errors")
     engine = DuckDBEngine(con)
     engine.live_progress = progress is not False and not callable(progress) and sys.stderr.isatty()
+    if by is not None and (firth or robust_kind is not None or penalty_request is not None or population_rate):
+        raise FitError("by= cannot yet be combined with firth, robust, shrinkage or population_rate")
+    special = FitVariants(robust_kind, cluster, firth, population_rate, penalty_request)
+    arguments = dict(weights=weights, offset=offset, trials=trials, reference=reference, positive=positive,
+                     max_iter=max_iter, tol=tol, start=start, progress=progress, by=by, special=special)
     if engine.live_progress:
         with progress_settings(con):
-            return _fit(engine, formula, source, weights=weights, offset=offset, trials=trials, reference=reference,
-                        positive=positive, max_iter=max_iter, tol=tol, start=start, progress=progress, by=by)
-    return _fit(engine, formula, source, weights=weights, offset=offset, trials=trials, reference=reference,
-                positive=positive, max_iter=max_iter, tol=tol, start=start, progress=progress, by=by)
+            return _fit(engine, formula, source, **arguments)
+    return _fit(engine, formula, source, **arguments)
+
+
+@dataclass(frozen=True)
+class FitVariants:
+    """The options that change how the estimates or their errors are computed."""
+
+    robust_kind: str | None = None
+    cluster: str | None = None
+    firth: bool = False
+    population_rate: float | None = None
+    penalty_request: Any = None
+
+    @property
+    def plain(self) -> bool:
+        return not self.firth and self.penalty_request is None
 
 
 def _fit(
@@ -106,6 +153,7 @@ def _fit(
     start: Mapping[str, float] | Sequence[float] | None,
     progress: Progress,
     by: str | None,
+    special: FitVariants,
 ) -> Model | SegmentedFit:
     parsed = parse_formula(formula)
     design = build_design(
@@ -132,37 +180,61 @@ def _fit(
         return fit_segments(engine, design, fitted, constant, max_iter=max_iter, tol=tol, reporter=reporter,
                             assemble=assemble_model, formula=formula, source=source, options=options)
 
+    factor = blocked_factor(design)
+    if factor is not None and not (special.plain and special.robust_kind is None):
+        raise FitError(
+            f"'{design.factors[factor].text}' has {len(design.factors[factor].levels)} levels: firth, shrinkage and "
+            "robust errors are not available with a categorical of that many levels; merge rare levels first"
+        )
     default_start = start_values(design, None, fitted)
     start_deviance = np.inf
-    if start is None and design.rows_used >= SAMPLE_START_ROWS and blocked_factor(design) is None:
-        beta_start, start_deviance = _sample_start(engine, design, fitted, default_start, max_iter, tol, reporter)
-    else:
-        beta_start = start_values(design, start, fitted)
-    factor = blocked_factor(design)
     if factor is not None:
         fitted = dense_first(design, fitted, factor)
         default_start = start_values(design, None, fitted)
-        beta_start = start_values(design, start, fitted)
-        start_deviance = np.inf
         full_pass = BlockedStatisticsPass(engine, design, factor)
+        beta_start = start_values(design, start, fitted)
     else:
         full_pass = StatisticsPass(engine, design)
-    newton = fit_newton(
-        lambda beta, active: full_pass([fitted[k] for k in active], beta),
-        beta_start,
-        saturated_loglik=design.saturated_loglik,
-        max_iter=max_iter,
-        tol=tol,
-        protected=has_intercept,
-        report=reporter,
-        fallback_start=None if start is None else default_start,
-        weight_total=design.trial_sum,
-        start_deviance=start_deviance,
-    )
+        if start is None and design.rows_used >= SAMPLE_START_ROWS and special.plain:
+            beta_start, start_deviance = _sample_start(engine, design, fitted, default_start, max_iter, tol, reporter)
+        else:
+            beta_start = start_values(design, start, fitted)
+
+    firth = special.firth
+    step_evaluate = bias_reduction.firth_evaluator(engine, design, full_pass, has_intercept) if firth else full_pass
+    if special.penalty_request is not None:
+        penalised = penalized.fit_penalised(engine, design, full_pass, beta_start, fitted, special.penalty_request,
+                                            max_iter, reporter)
+        newton = penalised.newton
+    else:
+        newton = fit_newton(
+            lambda beta, active: step_evaluate([fitted[k] for k in active], beta),
+            beta_start,
+            saturated_loglik=design.saturated_loglik,
+            max_iter=max_iter,
+            tol=tol,
+            protected=has_intercept,
+            report=reporter,
+            fallback_start=None if start is None else default_start,
+            weight_total=design.trial_sum,
+            start_deviance=start_deviance,
+        )
     active = [fitted[k] for k in newton.active]
     aliased = sorted(constant + [fitted[k] for k in newton.aliased])
+    if firth:
+        newton = bias_reduction.finish(newton, step_evaluate, full_pass, active, max_iter)
     null_loglik = _null_loglik(engine, design, max_iter, tol)
-    return assemble_model(design, newton, active, aliased, null_loglik, engine.scans, formula, source, options)
+    model = assemble_model(design, newton, active, aliased, null_loglik, engine.scans, formula, source,
+                           {**options, "firth": firth})
+    if firth:
+        model = bias_reduction.annotate(model, newton.last)
+    if special.penalty_request is not None:
+        model = penalized.annotate(model, penalised, special.penalty_request)
+    if special.robust_kind is not None:
+        model = robust_errors.with_robust_errors(engine.connection, model, special.robust_kind, special.cluster)
+    if special.population_rate is not None:
+        model = priorcorrection.prior_corrected(model, special.population_rate)
+    return model
 
 
 def _sample_start(
@@ -298,8 +370,8 @@ def assemble_model(
         warnings.append(
             "separation: the outcome is (quasi-)completely separated, fitted probabilities reach 0 or 1 and the "
             f"maximum-likelihood estimates do not exist; suspected terms: {', '.join(suspects)}. The estimates "
-            "and standard errors shown are not trustworthy: drop or merge those terms, or use a bias-reduced "
-            "(Firth) fit"
+            "and standard errors shown are not trustworthy: drop or merge those terms, or refit with "
+            "dbfit.fit(..., firth=True) for Firth's bias-reduced estimates, which stay finite"
         )
     elif not newton.converged:
         warnings.append(

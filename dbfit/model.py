@@ -47,6 +47,7 @@ class Model:
             f" ({s['scans']} scans of the data)",
             f"  deviance  {s['deviance']:,.4f} on {s['df_residual']:,} df; intercept-only {s['null_deviance']:,.4f}",
             f"  log-lik   {s['log_likelihood']:,.4f}   AIC {s['aic']:,.4f}   BIC {s['bic']:,.4f}",
+            *[f"  {note}" for note in s.get("notes", [])],
             "",
             "  effects on the log-odds, with the odds multiplier per unit and its 95% Wald interval",
         ]
@@ -57,6 +58,10 @@ class Model:
         for row in self.coefficients.to_pylist():
             if row["estimate"] is None:
                 lines.append(f"  {row['term']:<{width}}  {'aliased: no estimate':>40}")
+                continue
+            if row["std_error"] is None:
+                note = "exactly 0: removed by the penalty" if row["estimate"] == 0 else "penalised: no std.err"
+                lines.append(f"  {row['term']:<{width}}  {row['estimate']:>11.5g}   {note:<38}   {row['odds_ratio']:>9.4g}")
                 continue
             lines.append(
                 f"  {row['term']:<{width}}  {row['estimate']:>11.5g} {row['std_error']:>10.4g} {row['wald_z']:>8.3g}"
