@@ -84,6 +84,11 @@ def translate_error(err: duckdb.Error) -> DbfitError:
         return SourceError(f"the source cannot be read: {first}")
     if isinstance(err, (duckdb.BinderException, duckdb.ParserException)):
         return FormulaError(f"the formula or an option does not fit the source: {first}")
+    if isinstance(err, duckdb.OutOfMemoryException):
+        return DbfitError(
+            f"DuckDB ran out of memory within its memory_limit ({first}); raise memory_limit, lower threads, "
+            "or set temp_directory so that it can spill to disk"
+        )
     if isinstance(err, duckdb.ConversionException):
         return FormulaError(f"a value cannot be converted: {first}")
     return DbfitError(f"the database refused the query: {first}")
