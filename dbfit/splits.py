@@ -1,8 +1,9 @@
-"""Deterministic k-fold split inside the database: fold = hash(key) mod k.
+"""Deterministic splits inside the database from a hash of a key: k folds, or a holdout share.
 
 The key is an SQL expression over the source (a row id, a customer id to keep a customer's rows together);
-by default the row's used values (target and terms), so identical rows share a fold. DuckDB's ``hash`` is
-deterministic for a given DuckDB version (common practice for reproducible splits; no rows leave the database).
+by default the row's used values (target and terms), so identical rows share a part. The hash is MD5 of the
+key's text (the first 32 bits as a number in [0, 1)), which DuckDB, PostgreSQL and Spark compute alike, so
+the same row lands in the same part whatever the engine or the row order (Rivest 1992, RFC 1321).
 """
 
 from __future__ import annotations
@@ -26,13 +27,33 @@ class FoldSizes:
     trials: list[float]  # weighted trials per fold
 
 
+def split_keys(design: Design, key_text: str | None) -> list[exp.Expression]:
+    if key_text is not None:
+        return [parse_expression(key_text, "split_key")]
+    return [design.target.copy()] + [f.expression.copy() for f in design.factors]
+
+
+def unit_hash(keys: list[exp.Expression]) -> exp.Expression:
+    """A number in [0, 1) from the first 32 bits of MD5 of the keys' text joined by '|'."""
+    texts = [exp.Cast(this=k.copy(), to=exp.DataType.build("VARCHAR")) for k in keys]
+    joined = texts[0] if len(texts) == 1 else exp.ConcatWs(expressions=[exp.Literal.string("|"), *texts])
+    hexadecimal = exp.Concat(expressions=[exp.Literal.string("0x"),
+                                          exp.Left(this=exp.MD5(this=joined), expression=exp.Literal.number(8))])
+    return sb.div(exp.Cast(this=hexadecimal, to=exp.DataType.build("BIGINT")), exp.Literal.number(4294967296.0))
+
+
 def fold_expression(design: Design, key_text: str | None, folds: int) -> exp.Expression:
     """SQL for the fold number 0 .. folds - 1 of a source row."""
-    if key_text is not None:
-        keys = [parse_expression(key_text, "split_key")]
-    else:
-        keys = [design.target.copy()] + [f.expression.copy() for f in design.factors]
-    return exp.Mod(this=sb.paren(sb.func("hash", *keys)), expression=exp.Literal.number(folds))
+    unit = unit_hash(split_keys(design, key_text))
+    return exp.Cast(this=exp.Floor(this=sb.mul(unit, exp.Literal.number(folds))), to=exp.DataType.build("INTEGER"))
+
+
+def holdout_condition(keys: list[exp.Expression], share: float, *, held_out: bool) -> exp.Expression:
+    """The rows whose hash falls below ``share`` are held out; the others train."""
+    if not 0.0 < share < 1.0:
+        raise FitError(f"the holdout share must lie strictly between 0 and 1 (got {share!r})")
+    unit = unit_hash(keys)
+    return (exp.LT if held_out else exp.GTE)(this=unit, expression=sb.number(share))
 
 
 def fold_sizes(engine: DuckDBEngine, design: Design, fold: exp.Expression, folds: int) -> FoldSizes:
@@ -52,3 +73,41 @@ def fold_sizes(engine: DuckDBEngine, design: Design, fold: exp.Expression, folds
             "or a split_key with more distinct values"
         )
     return FoldSizes([found[k][0] for k in range(folds)], [found[k][1] for k in range(folds)])
+
+
+@dataclasses.dataclass(frozen=True)
+class Holdout:
+    """Hold out the rows whose key hashes below ``share``; fit on the rest and assess on them."""
+
+    key: str
+    share: float = 0.2
+
+
+@dataclasses.dataclass(frozen=True)
+class KFold:
+    """Assign rows to ``folds`` parts by the hash of ``key``, for cross-validation."""
+
+    key: str
+    folds: int = 5
+
+
+def labelled_rows(relation: exp.Expression, split: Holdout | KFold) -> exp.Select:
+    """Every row of ``relation`` with a column ``dbfit_part``: 'train'/'holdout', or the fold number."""
+    keys = [parse_expression(split.key, "split key")]
+    if isinstance(split, Holdout):
+        part: exp.Expression = exp.If(this=holdout_condition(keys, split.share, held_out=True),
+                                      true=exp.Literal.string("holdout"), false=exp.Literal.string("train"))
+    else:
+        if not isinstance(split.folds, int) or split.folds < 2:
+            raise FitError(f"folds must be a whole number of at least 2 (got {split.folds!r})")
+        part = exp.Cast(this=exp.Floor(this=sb.mul(unit_hash(keys), exp.Literal.number(split.folds))),
+                        to=exp.DataType.build("INTEGER"))
+    return exp.select("*", exp.alias_(part, "dbfit_part", quoted=True)).from_(relation.copy())
+
+
+def part_relation(relation: exp.Expression, split: Holdout | KFold, part: str | int, *, keep: bool = True) -> exp.Expression:
+    """The rows of ``relation`` in ``part`` (or, with ``keep=False``, all the others), as an aliased subquery."""
+    value = exp.Literal.string(part) if isinstance(part, str) else exp.Literal.number(part)
+    condition = (exp.EQ if keep else exp.NEQ)(this=sb.column("dbfit_part"), expression=value)
+    rows = exp.select("*").from_(labelled_rows(relation, split).subquery("dbfit_labelled")).where(condition)
+    return rows.subquery("dbfit_part_rows")

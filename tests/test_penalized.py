@@ -13,6 +13,8 @@ with N the number of rows. scikit-learn minimises C * sum_i logloss_i + (1 - r) 
 
 from __future__ import annotations
 
+import hashlib
+
 import warnings
 
 import numpy as np
@@ -86,8 +88,9 @@ def test_intercept_is_never_penalised(con, cancer):
 
 
 def folds_by_hash(con, folds: int) -> np.ndarray:
-    """The fold of each row as DuckDB's hash assigns it (the split dbfit promises), in row order."""
-    rows = con.execute(f"SELECT hash(rid) % {folds} FROM cancer ORDER BY rid").fetchall()
+    """The fold of each row from MD5 of its key, computed here in Python's hashlib (the split dbfit promises)."""
+    keys = [r[0] for r in con.execute("SELECT rid FROM cancer ORDER BY rid").fetchall()]
+    rows = [(int(hashlib.md5(str(k).encode()).hexdigest()[:8], 16) * folds // 2**32,) for k in keys]
     return np.array([r[0] for r in rows])
 
 
