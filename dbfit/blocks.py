@@ -90,30 +90,42 @@ class BlockedStatisticsPass:
     def __init__(self, engine: DuckDBEngine, design: Design, factor: int, rows: exp.Expression | None = None) -> None:
         self.engine, self.design, self.factor, self.rows = engine, design, factor, rows
         self.alias = design.factors[factor].alias
+        self._templates: dict[tuple[tuple[int, ...], bool], sb.ValuesTemplate] = {}
 
     def __call__(self, parameters: list[int], beta: np.ndarray) -> PassResult:
-        query, level_values, intercept, columns = self.query(parameters, beta)
-        groups = {row[0]: unpack(row[1:], columns + 1) for row in self.engine.fetch(query, scan=self.rows is None)}
-        return _assemble_blocks(groups, level_values, intercept, columns)
-
-    def query(self, parameters: list[int], beta: np.ndarray) -> tuple[exp.Select, list[Any], bool, int]:
-        """The grouped statistics query, the level values in parameter order, intercept flag, dense columns."""
         design, offset = self.design, 1 if self.design.intercept else 0
         intercept = bool(design.intercept and 0 in parameters)
         dense = [k for k in parameters if not (k >= offset and is_level_column(design, k - offset, self.factor))]
-        levels = [k for k in parameters if k not in dense]
         columns = [k - offset for k in dense if not (design.intercept and k == 0)]
-        level_values = [design.columns[k - offset].indicators[0][1] for k in levels]
+        level_values = [design.columns[k - offset].indicators[0][1] for k in parameters[len(dense):]]
         level_beta = dict(zip(level_values, beta[len(dense):]))
+        template = self._template(tuple(columns), intercept)
         factor = design.factors[self.factor]
-        coefficient_rows = [
-            exp.Tuple(expressions=[factor.level_literal(v), sb.number(level_beta.get(v, 0.0))]) for v in factor.levels
-        ]
-        alias = exp.TableAlias(this=exp.to_identifier("dbfit_coef"),
-                               columns=[exp.to_identifier(self.alias, quoted=True), exp.to_identifier("g", quoted=True)])
-        query = statistics_query(design, columns, intercept, np.asarray(beta[: len(dense)]), self.rows,
-                                 level_join=(self.alias, exp.Values(expressions=coefficient_rows, alias=alias)))
-        return query, level_values, intercept, len(columns)
+        rows = [(v, factor.level_literal(v), [float(level_beta.get(v, 0.0))]) for v in factor.levels]
+        sql = template.render(rows)
+        fetched = self.engine.fetch_sql(sql, [float(b) for b in beta[: len(dense)]], scan=self.rows is None)
+        groups = {row[0]: unpack(row[1:], len(columns) + 1) for row in fetched}
+        return _assemble_blocks(groups, level_values, intercept, len(columns))
+
+    def query(self, parameters: list[int], beta: np.ndarray) -> exp.Select:
+        """The grouped statistics query (level coefficients in a placeholder relation), for inspection."""
+        offset = 1 if self.design.intercept else 0
+        intercept = bool(self.design.intercept and 0 in parameters)
+        columns = [k - offset for k in parameters
+                   if not (k >= offset and is_level_column(self.design, k - offset, self.factor))
+                   and not (self.design.intercept and k == 0)]
+        return statistics_query(self.design, columns, intercept, None, self.rows,
+                                level_join=(self.alias, sb.ValuesTemplate.placeholder("dbfit_coef")))
+
+    def _template(self, columns: tuple[int, ...], intercept: bool) -> sb.ValuesTemplate:
+        key = (columns, intercept)
+        if key not in self._templates:
+            placeholder = sb.ValuesTemplate.placeholder("dbfit_coef")
+            query = statistics_query(self.design, list(columns), intercept, None, self.rows,
+                                     level_join=(self.alias, placeholder))
+            self._templates[key] = sb.ValuesTemplate(self.engine.sql(query), self.engine.sql(placeholder), "dbfit_coef",
+                                                     [self.alias, "g"], self.engine.dialect)
+        return self._templates[key]
 
 
 def _assemble_blocks(groups: dict[Any, PassResult], level_values: list[Any], intercept: bool, columns: int) -> PassResult:

@@ -177,11 +177,13 @@ def _run_together(
         _advance(value, generator, None, requests, results, failures)
     began, passes = time.perf_counter(), 0
     latest: dict[Any, float] = {}
+    placeholder = sb.ValuesTemplate.placeholder("dbfit_coef")
+    query = statistics_query(design, columns, bool(intercept), None, coefficients=placeholder)
+    template = sb.ValuesTemplate(engine.sql(query), engine.sql(placeholder), "dbfit_coef",
+                                 [SEGMENT] + [f"c{k}" for k in range(size)], engine.dialect)
     while requests:
         passes += 1
-        coefficients = _coefficient_rows(requests, size)
-        query = statistics_query(design, columns, bool(intercept), None, coefficients=coefficients)
-        rows = {row[0]: row[1:] for row in engine.fetch(query)}
+        rows = {row[0]: row[1:] for row in engine.fetch_sql(template.render(_coefficient_rows(requests, size)), [])}
         pending = list(requests.items())
         requests = {}
         for value, (_, active) in pending:
@@ -210,16 +212,14 @@ def _subset(result: PassResult, active: list[int]) -> PassResult:
     return dataclasses.replace(result, gram=result.gram[np.ix_(active, active)], score=result.score[active])
 
 
-def _coefficient_rows(requests: dict[Any, tuple[np.ndarray, list[int]]], size: int) -> exp.Expression:
-    """VALUES (segment, c0, c1, ...) for the running segments; inactive (aliased) coefficients are 0."""
+def _coefficient_rows(requests: dict[Any, tuple[np.ndarray, list[int]]], size: int) -> list[tuple[Any, exp.Expression, list[float]]]:
+    """(segment, its literal, c0, c1, ...) for the running segments; inactive (aliased) coefficients are 0."""
     rows = []
     for value, (beta, active) in requests.items():
         full = np.zeros(size)
         full[active] = beta
-        rows.append(exp.Tuple(expressions=[segment_literal(value), *[sb.number(b) for b in full]]))
-    names = [SEGMENT] + [f"c{k}" for k in range(size)]
-    alias = exp.TableAlias(this=exp.to_identifier("dbfit_coef"), columns=[exp.to_identifier(n, quoted=True) for n in names])
-    return exp.Values(expressions=rows, alias=alias)
+        rows.append((value, segment_literal(value), full.tolist()))
+    return rows
 
 
 def segment_literal(value: Any) -> exp.Expression:

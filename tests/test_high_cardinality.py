@@ -59,7 +59,7 @@ def aggregate_count(con, levels: int) -> int:
     design = build_design(DuckDBEngine(con), parse_formula("bought ~ shop + distance + wait"), source_relation("visits"))
     factor = blocked_factor(design)
     parameters = list(range(len(design.labels)))
-    query, *_ = BlockedStatisticsPass(DuckDBEngine(con), design, factor).query(parameters, np.zeros(len(parameters)))
+    query = BlockedStatisticsPass(DuckDBEngine(con), design, factor).query(parameters, np.zeros(len(parameters)))
     return len(list(query.find_all(exp.Sum)))
 
 
