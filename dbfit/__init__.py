@@ -1,8 +1,9 @@
 """dbfit: logistic regression fitted, checked and deployed inside the database."""
 
 from dbfit.connection import connect, install
-from dbfit.errors import DbfitError, FitError, FormulaError, SourceError
-from dbfit.fitting import fit
+from dbfit.api import drop_model, fit, from_json, load, models
+from dbfit.deploy import publish
+from dbfit.errors import DbfitError, FitError, FormulaError, SourceError, StoreError
 from dbfit.irls import IterationReport
 from dbfit.model import Model
 
@@ -13,8 +14,14 @@ __all__ = [
     "IterationReport",
     "Model",
     "SourceError",
+    "StoreError",
     "connect",
+    "drop_model",
     "fit",
+    "from_json",
     "install",
+    "load",
+    "models",
+    "publish",
 ]
 __version__ = "0.1.0"

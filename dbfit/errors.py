@@ -21,3 +21,7 @@ class SourceError(DbfitError):
 
 class FitError(DbfitError):
     """The data cannot be fitted as asked (bad target values, no rows, non-finite predictors, ...)."""
+
+
+class StoreError(DbfitError):
+    """The model store cannot do what was asked: unknown model or version, bad name, locked or busy file."""
