@@ -8,10 +8,13 @@ import duckdb
 
 from dbfit import fitting, serialize, store
 from dbfit.model import Model
+from dbfit.names import model_name
 
 
 def fit(con: duckdb.DuckDBPyConnection, formula: str, source: str, *, name: str | None = None, **options: Any) -> Model:
     """Fit as :func:`dbfit.fitting.fit`; with ``name=...`` also store the model as that name's next version."""
+    if name is not None:
+        model_name(name)
     model = fitting.fit(con, formula, source, **options)
     if name is not None:
         model.save(con, name)

@@ -34,7 +34,7 @@ def resolve_model(con: duckdb.DuckDBPyConnection, model: str | Model, version: i
 
 
 def build_scoring(
-    con: duckdb.DuckDBPyConnection,
+    con: duckdb.DuckDBPyConnection | None,
     model: Model,
     source: str | None,
     *,
@@ -43,13 +43,10 @@ def build_scoring(
     standard_error: bool = False,
     level: float = 0.95,
 ) -> exp.Select:
-    """The DuckDB scoring query of ``model`` over ``source``, after checking the source's columns."""
+    """The DuckDB scoring query of ``model`` over ``source``, after checking the source's columns on ``con``."""
     relation = source_relation(source if source is not None else model.source)
-    taken = SCORE_COLUMNS + (INTERVAL_COLUMNS if standard_error else ())
-    names = [name for name, _ in DuckDBEngine(con).describe(exp.select("*").from_(relation.copy()))]
-    clashes = [name for name in names if name.lower() in taken]
-    if clashes:
-        raise DbfitError(f"the source already has column(s) {', '.join(clashes)}, which scoring adds; rename them in a SELECT")
+    if con is not None:
+        check_score_columns(con, relation, standard_error)
     coefficient, joined = None, None
     if live:
         if model.name is None:
@@ -57,6 +54,15 @@ def build_scoring(
         coefficient, joined = _live_coefficients(model)
     return scoring_query(model, relation, coefficient=coefficient, joined=joined, unseen=unseen,
                          with_standard_error=standard_error, level=level)
+
+
+def check_score_columns(con: duckdb.DuckDBPyConnection, relation: exp.Expression, standard_error: bool) -> None:
+    """Refuse a source that already has a column the scoring query adds."""
+    taken = SCORE_COLUMNS + (INTERVAL_COLUMNS if standard_error else ())
+    names = [name for name, _ in DuckDBEngine(con).describe(exp.select("*").from_(relation.copy()))]
+    clashes = [name for name in names if name.lower() in taken]
+    if clashes:
+        raise DbfitError(f"the source already has column(s) {', '.join(clashes)}, which scoring adds; rename them in a SELECT")
 
 
 def publish(

@@ -191,4 +191,5 @@ def test_read_only_database_cannot_take_a_version(spector_file):
     reader = dbfit.connect(str(path), read_only=True)
     with pytest.raises(dbfit.StoreError, match="read-only"):
         model.save(reader, "grades")
+    assert reader.execute("SELECT count(*) FROM dbfit.models()").fetchall() == [(0,)]
     reader.close()
