@@ -176,3 +176,34 @@ def test_scoring_refuses_sources_with_score_columns(con, fitted):
     con.execute("CREATE TABLE scored_before AS SELECT *, 0.5 AS probability FROM birthwt")
     with pytest.raises(dbfit.DbfitError, match="already has column"):
         dbfit.publish(con, model, "again", "scored_before")
+
+
+def design_matrix(model, frame: pd.DataFrame) -> pd.DataFrame:
+    """The model's columns computed in pandas from its labels' parts (numeric factors times level indicators)."""
+    columns = {"intercept": np.ones(len(frame))} if model.design.intercept else {}
+    for column in model.design.columns:
+        value = np.ones(len(frame))
+        for i in column.numeric:
+            value = value * frame[model.design.factors[i].text].to_numpy(dtype=float)
+        for i, level in column.indicators:
+            value = value * (frame[model.design.factors[i].text] == level).to_numpy(dtype=float)
+        columns[column.label] = value
+    return pd.DataFrame(columns)
+
+
+@pytest.mark.parametrize("formula", [
+    "low ~ race_name + smoker + race_name:smoker + age:race_name",
+    "low ~ 0 + race_name + lwt",
+    "low ~ lwt + lwt_twice + race_name",
+])
+def test_interactions_no_intercept_and_aliased_terms_score_like_statsmodels(con, formula):
+    # reference: statsmodels GLM Binomial predict() on the same design built in pandas (MASS birthwt);
+    # an aliased column (lwt_twice = 2 lwt) is left out of the reference and must contribute nothing.
+    frame = birthwt_frame().assign(lwt_twice=lambda f: 2 * f.lwt)
+    load_frame(con, "births", frame)
+    model = dbfit.fit(con, formula, "births", reference={"race_name": "white"}, tol=1e-14, progress=False)
+    X = design_matrix(model, frame)
+    kept = [label for label, value in zip(model.labels, model.estimates) if value == value]
+    assert len(kept) == len(model.labels) - (1 if "lwt_twice" in formula else 0)
+    reference = sm.GLM(frame.low, X[kept], family=sm.families.Binomial()).fit(tol=1e-14)
+    np.testing.assert_allclose(scores(con, model.scoring_sql()), reference.predict(X[kept]), rtol=1e-9)
