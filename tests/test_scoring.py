@@ -207,3 +207,26 @@ def test_interactions_no_intercept_and_aliased_terms_score_like_statsmodels(con,
     assert len(kept) == len(model.labels) - (1 if "lwt_twice" in formula else 0)
     reference = sm.GLM(frame.low, X[kept], family=sm.families.Binomial()).fit(tol=1e-14)
     np.testing.assert_allclose(scores(con, model.scoring_sql()), reference.predict(X[kept]), rtol=1e-9)
+
+
+def test_sqlite_scoring_runs_in_python_sqlite3_and_matches_duckdb(con, fitted):
+    # reference: the DuckDB scores of the same model; SQLite (Python's sqlite3) runs the sqlite dialect's output.
+    # SQLite sorts NULLs first and DuckDB last, hence the extra sort key.
+    import sqlite3
+
+    model, _, _ = fitted
+    rows = con.execute("SELECT age, lwt, race_name, smoker FROM birthwt").fetchall()
+    rows += [(25, w, "black", False) for w in (-1e5, 1e5)] + [(None, 100.0, "white", True), (30, 99.0, "asian", False)]
+    lite = sqlite3.connect(":memory:")
+    lite.execute("CREATE TABLE births (age INTEGER, lwt REAL, race_name TEXT, smoker BOOLEAN)")
+    lite.executemany("INSERT INTO births VALUES (?, ?, ?, ?)", rows)
+    con.execute("CREATE TABLE births (age INTEGER, lwt DOUBLE, race_name VARCHAR, smoker BOOLEAN)")
+    con.executemany("INSERT INTO births VALUES (?, ?, ?, ?)", rows)
+    wanted = "linear_predictor, probability, linear_predictor_se, probability_low, probability_high"
+    order = " ORDER BY age, lwt, race_name, smoker"
+    duck = con.execute(f"SELECT {wanted} FROM ({model.scoring_sql(source='births', standard_error=True)}) s{order}").fetchall()
+    sql = model.scoring_sql("sqlite", source="births", standard_error=True)
+    mine = lite.execute(f"SELECT {wanted} FROM ({sql}) s ORDER BY age IS NULL, age, lwt, race_name, smoker").fetchall()
+    duck_values, lite_values = np.array(duck, dtype=float), np.array(mine, dtype=float)
+    assert np.isnan(lite_values[:, 1]).sum() == 2
+    np.testing.assert_allclose(lite_values, duck_values, rtol=1e-12, atol=0, equal_nan=True)
