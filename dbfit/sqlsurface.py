@@ -138,10 +138,10 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
     for name, function, parameters, returns in functions:
         try:
             con.create_function(name, function, parameters, returns, null_handling="special", side_effects=True)
-        except duckdb.NotImplementedException:
-            pass  # already installed on this connection
-        except duckdb.CatalogException:
-            pass
+        except duckdb.NotImplementedException as err:
+            if "already created" not in str(err):
+                raise
+            # installed on this connection before: the existing function serves the same connection
 
 
 def _rows_of(fields: dict[str, Any]) -> Any:
