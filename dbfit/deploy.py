@@ -84,7 +84,11 @@ def publish(
     resolved = resolve_model(con, model, version)
     query = build_scoring(con, resolved, source, live=live, unseen=unseen)
     statement = exp.Create(this=target, kind="VIEW", replace=True, expression=query)
-    DuckDBEngine(con).fetch(statement, scan=False)
+    try:
+        con.execute(statement.sql("duckdb")).fetchall()
+    except duckdb.Error as err:
+        first = (str(err).strip().splitlines() or [type(err).__name__])[0]
+        raise StoreError(f"view {target.sql('duckdb')} cannot be created or replaced: {first}") from None
     return {
         "view": target.sql("duckdb"),
         "model": resolved.name,

@@ -127,6 +127,10 @@ def test_refused_names_leave_the_database_intact(spector_file):
             model.scoring_sql(source=attack)
         with pytest.raises(dbfit.DbfitError):
             dbfit.load(con, attack)
+    with pytest.raises(dbfit.StoreError, match='view "t" cannot be created or replaced: .*Table'):
+        dbfit.publish(con, "grades", "t", "spector")
+    with pytest.raises(dbfit.StoreError, match="live view reads the store: save the model first"):
+        dbfit.publish(con, spector_model(con), "live_view", "spector", live=True)
     assert con.execute("SELECT * FROM t").fetchall() == [(1,)]
     assert [r["model"] for r in dbfit.models(con)] == ["grades"]
 
