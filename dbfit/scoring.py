@@ -4,11 +4,11 @@ The linear predictor on the original scale is intercept + sum_j b_j * (product o
 factors) * (its level indicators); aliased terms (no estimate) contribute nothing. Categorical levels are
 written with CASE. A NULL in any factor (or the offset) gives NULL scores; a level never seen in training
 follows the ``unseen`` policy. The probability is the logistic function written with e = exp(-|eta|), which
-cannot overflow; exp() is not called for |eta| >= 708 (PostgreSQL raises on underflow, and exp(-708) is the
-smallest power still a normal double), where e is written as 0. Standard errors of the linear predictor are
+cannot overflow; exp() is not called for |eta| >= 708, where e is written as 0 (PostgreSQL raises on underflow;
+exp(-708) ~ 3.3e-308 is still a normal double, exp(-709) is not). Standard errors of the linear predictor are
 sqrt(x' V x) from the stored covariance V (delta method), and the probability interval maps the Wald interval
-of the linear predictor through the logistic function (Agresti 2013, Categorical Data Analysis, 3rd ed.,
-section 4.2.3).
+of the linear predictor through the logistic function (common practice; see Agresti 2013, Categorical Data
+Analysis, 3rd ed., Wiley, on inference for logistic regression, cited from memory).
 """
 
 from __future__ import annotations
