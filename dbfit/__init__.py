@@ -3,7 +3,7 @@
 from dbfit.connection import connect, install
 from dbfit.api import drop_model, fit, from_json, load, models
 from dbfit.deploy import publish
-from dbfit.errors import DbfitError, FitError, FormulaError, SourceError, StoreError
+from dbfit.errors import DbfitError, FitError, FormulaError, SourceError, StoreConflictError, StoreError
 from dbfit.irls import IterationReport
 from dbfit.model import Model
 
@@ -14,6 +14,7 @@ __all__ = [
     "IterationReport",
     "Model",
     "SourceError",
+    "StoreConflictError",
     "StoreError",
     "connect",
     "drop_model",

@@ -25,3 +25,7 @@ class FitError(DbfitError):
 
 class StoreError(DbfitError):
     """The model store cannot do what was asked: unknown model or version, bad name, locked or busy file."""
+
+
+class StoreConflictError(StoreError):
+    """Another connection wrote the same version at the same time (dbfit retries these a few times itself)."""

@@ -11,6 +11,8 @@ killed process leaves either the whole version or none of it. Model names travel
 from __future__ import annotations
 
 import json
+import random
+import time
 from collections.abc import Iterator
 from contextlib import contextmanager
 from datetime import datetime, timezone
@@ -19,12 +21,13 @@ from typing import Any
 import duckdb
 import pyarrow as pa
 
-from dbfit.errors import StoreError
+from dbfit.errors import StoreConflictError, StoreError
 from dbfit.model import Model
 from dbfit.names import model_name
 from dbfit.serialize import from_document, to_document, to_json
 
 SCHEMA = "dbfit_store"
+WRITE_ATTEMPTS = 10
 COEFFICIENT_COLUMNS = ("term", "estimate", "std_error", "wald_z", "p_value", "ci_low", "ci_high",
                        "odds_ratio", "odds_ratio_low", "odds_ratio_high")
 _KEY = "model VARCHAR NOT NULL, version INTEGER NOT NULL"
@@ -50,9 +53,17 @@ VERSION_TABLES = ("covariance", "encodings", "factors", "coefficients", "version
 def save_model(con: duckdb.DuckDBPyConnection, model: Model, name: str) -> int:
     """Write ``model`` as the next version of ``name`` in one transaction; return the version number."""
     name = model_name(name)
-    with _transaction(con, _schema_statements()) as writer:
-        version = _next_version(writer, name)
-        _write_version(writer, model, name, version)
+    for attempt in range(WRITE_ATTEMPTS):
+        version = None
+        try:
+            with _transaction(con, _schema_statements()) as writer:
+                version = _next_version(writer, name)
+                _write_version(writer, model, name, version)
+            break
+        except StoreConflictError:
+            if attempt == WRITE_ATTEMPTS - 1 or version is None or _orphan_rows(con, name, version):
+                raise
+            time.sleep(random.uniform(0.001, 0.02) * (attempt + 1))
     model.name, model.version = name, version
     return version
 
@@ -151,6 +162,20 @@ def _transaction(con: duckdb.DuckDBPyConnection, preamble: list[str] | None = No
         writer.close()
 
 
+def _orphan_rows(con: duckdb.DuckDBPyConnection, name: str, version: int) -> bool:
+    """Whether committed rows of ``version`` exist without its ``versions`` row: never written by dbfit, which
+    commits a version whole, so a key clash then is not a race with another writer (and retrying cannot help).
+    One statement, so both counts come from one snapshot."""
+    others = " UNION ALL ".join(
+        f"SELECT 1 FROM {SCHEMA}.{table} WHERE model = $1 AND version = $2" for table in VERSION_TABLES if table != "versions"
+    )
+    query = (f"SELECT (SELECT count(*) FROM {SCHEMA}.versions WHERE model = $1 AND version = $2), "
+             f"(SELECT count(*) FROM ({others}))")
+    with con.cursor() as fresh:
+        headers, parts = _fetch(fresh, query, [name, version])[0]
+    return headers == 0 and parts > 0
+
+
 def _schema_statements() -> list[str]:
     return [f"CREATE SCHEMA IF NOT EXISTS {SCHEMA}"] + [
         f"CREATE TABLE IF NOT EXISTS {SCHEMA}.{table} ({columns})" for table, columns in _TABLES.items()
@@ -240,8 +265,11 @@ def _fetch(connection: duckdb.DuckDBPyConnection, sql: str, parameters: list[Any
 def store_error(err: duckdb.Error) -> StoreError:
     """A DuckDB error met while reading or writing the store, in plain words."""
     first = (str(err).strip().splitlines() or [type(err).__name__])[0]
+    if isinstance(err, duckdb.ConstraintException):
+        return StoreConflictError(f"the model store already holds a row with this key (written by another connection "
+                                  f"meanwhile, or left there by hand): {first}")
     if isinstance(err, duckdb.TransactionException) or "conflict" in first.lower():
-        return StoreError(f"another connection wrote to the model store at the same time; retry ({first})")
+        return StoreConflictError(f"another connection wrote to the model store at the same time; retry ({first})")
     if "read-only" in first.lower() or "read only" in first.lower():
         return StoreError(f"the database is open read-only, so the model store cannot be written ({first})")
     if isinstance(err, duckdb.IOException) and "lock" in first.lower():

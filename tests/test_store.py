@@ -104,7 +104,7 @@ def test_failed_write_leaves_no_partial_version(spector_file):
     model = spector_model(con, name="grades")
     # A stray coefficient row for version 2 makes the second insert of the next save violate the primary key.
     con.execute("INSERT INTO dbfit_store.coefficients (model, version, position, term) VALUES ('grades', 2, 0, 'stray')")
-    with pytest.raises(dbfit.StoreError):
+    with pytest.raises(dbfit.StoreError, match="already holds a row with this key"):
         model.save(con, "grades")
     assert con.execute("SELECT version FROM dbfit_store.versions").fetchall() == [(1,)]
     assert con.execute("SELECT count(*) FROM dbfit_store.covariance WHERE version = 2").fetchall() == [(0,)]
@@ -221,3 +221,32 @@ def test_read_only_database_cannot_take_a_version(spector_file):
         model.save(reader, "grades")
     assert reader.execute("SELECT count(*) FROM dbfit.models()").fetchall() == [(0,)]
     reader.close()
+
+
+def test_concurrent_writers_in_one_process_all_get_whole_versions(spector_file):
+    # Three threads on their own connections save 8 versions each; conflicts on a version number are retried.
+    import threading
+
+    con, _ = spector_file
+    model = spector_model(con, name="grades")
+    failures: list[str] = []
+
+    def writer() -> None:
+        connection = con.cursor()
+        for _ in range(8):
+            try:
+                model.save(connection, "grades")
+            except dbfit.StoreError as err:
+                failures.append(str(err))
+        connection.close()
+
+    threads = [threading.Thread(target=writer) for _ in range(3)]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join(timeout=120)
+    assert failures == []
+    versions = [r["version"] for r in dbfit.models(con)]
+    assert versions == list(range(1, 26))
+    counts = con.execute("SELECT count(*) FROM dbfit_store.coefficients GROUP BY version").fetchall()
+    assert {c[0] for c in counts} == {len(model.labels)}
