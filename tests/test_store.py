@@ -180,10 +180,16 @@ def test_interrupted_fits_never_leave_a_partial_version(tmp_path, stop):
         child = subprocess.Popen([sys.executable, "-c", KILL_SCRIPT, str(path)], stdout=subprocess.PIPE,
                                  stderr=subprocess.DEVNULL, env=env)
         assert child.stdout.readline().strip() == b"ready"
-        time.sleep(rng.uniform(0.05, 1.2))
+        lines: list[bytes] = []
+        if attempt % 2:  # aim inside a version write: wait until one starts, then a little longer
+            while not lines or lines[-1] != b"write":
+                lines.append(child.stdout.readline().strip())
+            time.sleep(rng.uniform(0.0, 0.08))
+        else:  # aim inside the fit
+            time.sleep(rng.uniform(0.02, 0.3))
         child.send_signal(stop)
         child.wait(timeout=30)
-        lines = child.stdout.read().split()
+        lines += child.stdout.read().split()
         saved = lines.count(b"saved")
         landed["fit" if not lines else "write" if lines[-1] == b"write" else "between"] += 1
         now = check_store(path, first.estimates, f"attempt {attempt}")
