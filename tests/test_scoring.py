@@ -231,3 +231,55 @@ def test_sqlite_scoring_runs_in_python_sqlite3_and_matches_duckdb(con, fitted):
     duck_values, lite_values = np.array(duck, dtype=float), np.array(mine, dtype=float)
     assert np.isnan(lite_values[:, 1]).sum() == 2
     np.testing.assert_allclose(lite_values, duck_values, rtol=1e-12, atol=0, equal_nan=True)
+
+
+def expected_scores(model, rows: list[tuple], unseen: str) -> tuple[np.ndarray, np.ndarray]:
+    """numpy: the linear predictor from the model's columns, NaN for NULL inputs (and unseen levels under 'null')."""
+    design, estimates = model.design, np.nan_to_num(model.estimates)
+    names = [f.text for f in design.factors]
+    eta, scale = [], []
+    for row in rows:
+        values = dict(zip(("age", "lwt", "race_name", "smoker"), row))
+        unknown = any(f.kind == "categorical" and values[f.text] not in f.levels for f in design.factors)
+        if any(values[n] is None for n in names) or (unknown and unseen == "null"):
+            eta.append(np.nan), scale.append(1.0)
+            continue
+        x = [1.0] + [
+            np.prod([float(values[names[i]]) for i in c.numeric]) * np.prod([values[names[i]] == level for i, level in c.indicators])
+            for c in design.columns
+        ]
+        terms = np.array(x) * estimates
+        eta.append(terms.sum()), scale.append(1.0 + np.abs(terms).sum())
+    return np.array(eta), np.array(scale)
+
+
+def test_random_inputs_score_like_numpy(con, fitted):
+    # reference: numpy arithmetic on the model's own columns and scipy.special.expit; hypothesis draws inputs
+    # with NULLs, unseen levels and weights far outside the data.
+    from hypothesis import HealthCheck, given, settings
+    from hypothesis import strategies as st
+
+    model, _, _ = fitted
+    row = st.tuples(
+        st.one_of(st.none(), st.integers(-200, 200)),
+        st.one_of(st.none(), st.floats(-1e6, 1e6, allow_nan=False)),
+        st.one_of(st.none(), st.sampled_from(["white", "black", "other", "asian"])),
+        st.one_of(st.none(), st.booleans()),
+    )
+
+    @settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+    @given(rows=st.lists(row, min_size=1, max_size=30), unseen=st.sampled_from(["null", "reference"]))
+    def check(rows, unseen):
+        con.execute("CREATE OR REPLACE TABLE drawn (age INTEGER, lwt DOUBLE, race_name VARCHAR, smoker BOOLEAN)")
+        con.executemany("INSERT INTO drawn VALUES (?, ?, ?, ?)", rows)
+        # A projection keeps the insertion order (DuckDB's preserve_insertion_order, on by default).
+        got = con.execute(model.scoring_sql(source="drawn", unseen=unseen)).fetchall()
+        eta = np.array([r[-2] for r in got], dtype=float)
+        probability = np.array([r[-1] for r in got], dtype=float)
+        want, scale = expected_scores(model, rows, unseen)
+        assert np.array_equal(np.isnan(eta), np.isnan(want)) and np.array_equal(np.isnan(probability), np.isnan(want))
+        finite = ~np.isnan(want)
+        assert np.all(np.abs(eta[finite] - want[finite]) <= 1e-12 * scale[finite])
+        np.testing.assert_allclose(probability[finite], expit(eta[finite]), rtol=1e-13, atol=1e-300)
+
+    check()
