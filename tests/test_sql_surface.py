@@ -167,3 +167,19 @@ def test_sql_fit_with_categoricals_matches_python(con):
     python = dbfit.fit(con, "low ~ age + race_name", "birthwt", reference={"race_name": "white"}, progress=False)
     assert [r[0] for r in sql] == python.labels
     np.testing.assert_allclose([r[1] for r in sql], python.estimates, rtol=1e-12)
+
+
+def test_sql_fit_reads_parquet_files_and_text_targets(grades, tmp_path):
+    # reference: statsmodels Logit on spector, read back from a Parquet file written by DuckDB.
+    con, _ = grades
+    parquet = tmp_path / "spector.parquet"
+    con.execute(f"COPY (SELECT *, CASE WHEN GRADE = 1 THEN 'improved' ELSE 'same' END AS outcome FROM spector) "
+                f"TO '{parquet}' (FORMAT parquet)")
+    rows = con.execute(
+        "SELECT term, estimate FROM dbfit.fit('from_file', ?, 'outcome ~ GPA + TUCE + PSI', positive := 'improved', "
+        "tol := 1e-12)", [str(parquet)]
+    ).fetchall()
+    reference, X = reference_logit()
+    np.testing.assert_allclose([r[1] for r in rows], reference.params.values, rtol=1e-8)
+    scored = con.execute("SELECT probability FROM dbfit.score('from_file', ?)", [str(parquet)]).fetchall()
+    np.testing.assert_allclose([r[0] for r in scored], reference.predict(X), rtol=1e-8)
