@@ -35,6 +35,8 @@ PUBLISHED_FIELDS = {"view": T("VARCHAR"), "model": T("VARCHAR"), "version": T("I
 DROPPED_FIELDS = {"model": T("VARCHAR"), "version": T("INTEGER")}
 
 _ROWS = "SELECT dbfit_row.* FROM (SELECT unnest({call}) AS dbfit_row)"
+_SCORE_OPTIONS = ", standard_error := false, level := 0.95, unseen := 'null'"
+_SCORE = "SELECT * FROM query(dbfit_sql_score(model, source, {version}, standard_error, level, unseen))"
 MACROS = {
     "fit": [(
         "model, source, formula, weights := NULL, \"offset\" := NULL, trials := NULL, reference := NULL, "
@@ -48,9 +50,8 @@ MACROS = {
         ("model, version", _ROWS.format(call="dbfit_sql_coefficients(model, version)")),
     ],
     "score": [
-        (f"model, source{options}", f"SELECT * FROM query(dbfit_sql_score(model, source, {version}, standard_error, level, unseen))")
-        for options, version in (("", "NULL"), (", version", "version"))
-        for options in [options + ", standard_error := false, level := 0.95, unseen := 'null'"]
+        ("model, source" + _SCORE_OPTIONS, _SCORE.format(version="NULL")),
+        ("model, source, version" + _SCORE_OPTIONS, _SCORE.format(version="version")),
     ],
     "publish": [(
         "model, source, view, version := NULL, live := false, unseen := 'null'",
