@@ -48,3 +48,18 @@ def test_examples_run_in_order_and_leave_what_they_promise(tmp_path, capsys):
     views = con.execute("SELECT count(*) FROM duckdb_views() WHERE NOT internal").fetchall()
     assert views == [(0,)]
     con.close()
+
+
+def test_demo_stores_and_publishes_its_model(tmp_path, capsys):
+    # The demo's own view, read back with plain duckdb; its probabilities stay within (0, 1).
+    import duckdb
+
+    from dbfit.demo import run_demo
+
+    path = tmp_path / "demo.duckdb"
+    model = run_demo(str(path), rows=3000, quiet=True)
+    assert "demo_late_risk" in capsys.readouterr().out
+    with duckdb.connect(str(path), read_only=True) as plain:
+        count, low, high = plain.execute("SELECT count(probability), min(probability), max(probability) "
+                                         "FROM demo_late_risk").fetchall()[0]
+    assert count == model.stats["n_used"] and 0 < low < high < 1
