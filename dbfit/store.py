@@ -53,10 +53,11 @@ VERSION_TABLES = ("covariance", "encodings", "factors", "coefficients", "version
 def save_model(con: duckdb.DuckDBPyConnection, model: Model, name: str) -> int:
     """Write ``model`` as the next version of ``name`` in one transaction; return the version number."""
     name = model_name(name)
+    preamble = [] if store_exists(con) else _schema_statements()
     for attempt in range(WRITE_ATTEMPTS):
         version = None
         try:
-            with _transaction(con, _schema_statements()) as writer:
+            with _transaction(con, preamble) as writer:
                 version = _next_version(writer, name)
                 _write_version(writer, model, name, version)
             break
