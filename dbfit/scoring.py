@@ -20,7 +20,7 @@ from scipy import stats as distributions
 from sqlglot import exp
 
 from dbfit import sqlbuild as sb
-from dbfit.design import Design, DesignColumn
+from dbfit.design import Design, DesignColumn, Factor
 from dbfit.errors import DbfitError
 from dbfit.source import source_relation
 
@@ -70,7 +70,7 @@ def linear_predictor(design: Design, coefficient: Coefficient, unseen: str, dial
     for term_columns in _columns_by_term(design):
         kept = [(j, c) for j, c in term_columns if coefficient(j + has_intercept) is not None]
         if kept:
-            pieces.append(_term_contribution(design, [(coefficient(j + has_intercept), c) for j, c in kept]))
+            pieces.append(_term_contribution(design, [(coefficient(j + has_intercept), c) for j, c in kept], dialect))
     if design.offset is not None:
         pieces.append(sb.as_double(design.offset.copy()))
     total = sb.as_double(sb.add(*pieces)) if pieces else double(0.0)
@@ -86,7 +86,7 @@ def standard_error(design: Design, covariance: Any, unseen: str, dialect: str) -
     for j, column in enumerate(design.columns):
         k = j + has_intercept
         if covariance[k, k] == covariance[k, k]:
-            rows.append((k, _column_value(design, column)))
+            rows.append((k, _column_value(design, column, dialect)))
     pieces: list[exp.Expression] = []
     for a, (k, x_k) in enumerate(rows):
         pieces.append(sb.mul(double(float(covariance[k, k])), sb.paren(x_k.copy()), sb.paren(x_k.copy())))
@@ -186,15 +186,22 @@ def _numeric_product(design: Design, column: DesignColumn) -> exp.Expression | N
     return sb.mul(*[sb.as_double(design.factors[i].expression.copy()) for i in column.numeric])
 
 
-def _indicator_condition(design: Design, column: DesignColumn) -> exp.Expression:
+def _level(factor: Factor, value: Any, dialect: str) -> exp.Expression:
+    """A level as a literal; T-SQL has no boolean values, so its BIT levels are 1 and 0."""
+    if isinstance(value, bool) and dialect == "tsql":
+        return exp.Literal.number(1 if value else 0)
+    return factor.level_literal(value)
+
+
+def _indicator_condition(design: Design, column: DesignColumn, dialect: str) -> exp.Expression:
     checks = [
-        exp.EQ(this=design.factors[i].expression.copy(), expression=design.factors[i].level_literal(level))
+        exp.EQ(this=design.factors[i].expression.copy(), expression=_level(design.factors[i], level, dialect))
         for i, level in column.indicators
     ]
     return exp.and_(*checks) if len(checks) > 1 else checks[0]
 
 
-def _term_contribution(design: Design, weighted: list[tuple[exp.Expression, DesignColumn]]) -> exp.Expression:
+def _term_contribution(design: Design, weighted: list[tuple[exp.Expression, DesignColumn]], dialect: str) -> exp.Expression:
     """b * product for a numeric term; product * CASE over the level combinations otherwise."""
     first = weighted[0][1]
     product = _numeric_product(design, first)
@@ -205,20 +212,22 @@ def _term_contribution(design: Design, weighted: list[tuple[exp.Expression, Desi
         factor = design.factors[factors[0]]
         case = exp.Case(
             this=factor.expression.copy(),
-            ifs=[exp.If(this=factor.level_literal(c.indicators[0][1]), true=b) for b, c in weighted],
+            ifs=[exp.If(this=_level(factor, c.indicators[0][1], dialect), true=b) for b, c in weighted],
             default=double(0.0),
         )
     else:
-        case = exp.Case(ifs=[exp.If(this=_indicator_condition(design, c), true=b) for b, c in weighted], default=double(0.0))
+        case = exp.Case(ifs=[exp.If(this=_indicator_condition(design, c, dialect), true=b) for b, c in weighted],
+                        default=double(0.0))
     return sb.mul(product, case) if product is not None else case
 
 
-def _column_value(design: Design, column: DesignColumn) -> exp.Expression:
+def _column_value(design: Design, column: DesignColumn, dialect: str) -> exp.Expression:
     """The original-scale value of one column: product of numeric factors times its 0/1 indicators."""
     product = _numeric_product(design, column)
     if not column.indicators:
         return product if product is not None else double(1.0)
-    indicator = exp.Case(ifs=[exp.If(this=_indicator_condition(design, column), true=double(1.0))], default=double(0.0))
+    indicator = exp.Case(ifs=[exp.If(this=_indicator_condition(design, column, dialect), true=double(1.0))],
+                         default=double(0.0))
     return sb.mul(product, indicator) if product is not None else indicator
 
 
@@ -232,7 +241,8 @@ def _guarded(design: Design, body: exp.Expression, unseen: str, dialect: str) ->
         for factor in design.factors:
             if factor.kind != "categorical":
                 continue
-            unknown = exp.Not(this=exp.In(this=factor.expression.copy(), expressions=[factor.level_literal(v) for v in factor.levels]))
+            levels = [_level(factor, v, dialect) for v in factor.levels]
+            unknown = exp.Not(this=exp.In(this=factor.expression.copy(), expressions=levels))
             outcome = exp.Null() if unseen == "null" else exp.Anonymous(
                 this=RAISE_FUNCTIONS[dialect],
                 expressions=[exp.Literal.string(f"dbfit: a level of '{factor.text}' was not seen in training")],

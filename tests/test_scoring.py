@@ -159,6 +159,9 @@ def test_every_dialect_parses_back(fitted):
         tree = sqlglot.parse_one(text, read=dialect)
         assert tree.find(sqlglot.exp.Case) is not None, dialect
         assert sqlglot.parse_one(tree.sql(dialect), read=dialect) == tree, dialect
+    # T-SQL has no boolean values: the smoker levels are BIT literals, never a comparison such as (1 = 1).
+    tsql = model.scoring_sql("tsql")
+    assert "WHEN 1 THEN" in tsql and "(1 = 1)" not in tsql and "IN (0, 1)" in tsql
 
 
 def test_offset_enters_the_linear_predictor(con):
