@@ -1,7 +1,7 @@
 """dbfit: logistic regression fitted, checked and deployed inside the database."""
 
 from dbfit.connection import connect, install
-from dbfit.api import drop_model, fit, from_json, load, models
+from dbfit.api import drop_model, fit, from_json, load, models, score
 from dbfit.deploy import publish
 from dbfit.errors import DbfitError, FitError, FormulaError, SourceError, StoreConflictError, StoreError
 from dbfit.irls import IterationReport
@@ -24,5 +24,6 @@ __all__ = [
     "load",
     "models",
     "publish",
+    "score",
 ]
 __version__ = "0.1.0"

