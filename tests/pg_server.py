@@ -22,7 +22,11 @@ RUNUSER = "/usr/sbin/runuser"
 
 def find_binaries() -> Path | None:
     """The newest installed PostgreSQL bin directory holding initdb and pg_ctl, if any."""
-    candidates = sorted(glob.glob("/usr/lib/postgresql/*/bin"), key=lambda p: int(Path(p).parent.name), reverse=True)
+    def major(path: str) -> int:
+        name = Path(path).parent.name
+        return int(name) if name.isdigit() else -1
+
+    candidates = sorted(glob.glob("/usr/lib/postgresql/*/bin"), key=major, reverse=True)
     found = [Path(c) for c in candidates if (Path(c) / "initdb").exists() and (Path(c) / "pg_ctl").exists()]
     if not found and shutil.which("initdb") and shutil.which("pg_ctl"):
         return Path(shutil.which("initdb")).parent
