@@ -73,11 +73,11 @@ def register(con: duckdb.DuckDBPyConnection) -> None:
             "need: rename the file or attach it under another name (ATTACH 'dbfit.duckdb' AS sales)"
         )
     if not attached:
-        con.execute(f"ATTACH ':memory:' AS {CATALOG} (READ_WRITE)")
+        con.execute(f"ATTACH ':memory:' AS {CATALOG} (READ_WRITE)").fetchall()
     _register_functions(con)
     for name, overloads in MACROS.items():
         bodies = ", ".join(f"({parameters}) AS TABLE ({body})" for parameters, body in overloads)
-        con.execute(f"CREATE OR REPLACE MACRO {CATALOG}.main.{name} {bodies}")
+        con.execute(f"CREATE OR REPLACE MACRO {CATALOG}.main.{name} {bodies}").fetchall()
 
 
 def _register_functions(con: duckdb.DuckDBPyConnection) -> None:

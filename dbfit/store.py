@@ -246,7 +246,7 @@ def _finite(value: Any) -> float | None:
 
 def _rollback(writer: duckdb.DuckDBPyConnection) -> None:
     try:
-        writer.execute("ROLLBACK")
+        writer.execute("ROLLBACK").fetchall()
     except duckdb.Error:
         pass
 
