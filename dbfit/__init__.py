@@ -1,8 +1,9 @@
 """dbfit: logistic regression fitted, checked and deployed inside the database."""
 
 from dbfit.connection import connect, install
-from dbfit.errors import DbfitError, FitError, FormulaError, SourceError
-from dbfit.fitting import fit
+from dbfit.api import drop_model, fit, from_json, load, models, score
+from dbfit.deploy import publish
+from dbfit.errors import DbfitError, FitError, FormulaError, SourceError, StoreConflictError, StoreError
 from dbfit.irls import IterationReport
 from dbfit.model import Model
 from dbfit.segments import SegmentedFit
@@ -17,10 +18,18 @@ __all__ = [
     "Model",
     "SegmentedFit",
     "SourceError",
+    "StoreConflictError",
+    "StoreError",
     "connect",
+    "drop_model",
     "fit",
+    "from_json",
     "install",
+    "load",
+    "models",
     "prior_corrected",
+    "publish",
+    "score",
     "with_robust_errors",
 ]
 __version__ = "0.1.0"

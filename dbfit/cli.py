@@ -27,6 +27,10 @@ def main(argv: list[str] | None = None) -> int:
     bench.add_argument("--memory-limit", default="2GB", help="DuckDB memory_limit in 'outofcore'")
     bench.add_argument("--keep", default=None, help="core: reuse or keep the data in this DuckDB file")
 
+    script = commands.add_parser("sql", help="run a .sql script with the dbfit. SQL functions installed")
+    script.add_argument("file", help="the script, e.g. sql_examples/01_fit.sql")
+    script.add_argument("--database", default="dbfit_demo.duckdb", help="DuckDB file (default: %(default)s)")
+
     args = parser.parse_args(argv)
     try:
         if args.command == "demo":
@@ -37,10 +41,28 @@ def main(argv: list[str] | None = None) -> int:
             from dbfit.bench import run_bench
 
             run_bench(args.scenario, args.rows, args.predictors, args.keep, args.levels, args.segments, args.memory_limit)
+        elif args.command == "sql":
+            _run_sql_file(args.file, args.database)
     except DbfitError as err:
         print(f"dbfit: {err}", file=sys.stderr)
         return 2
     return 0
+
+
+def _run_sql_file(path: str, database: str) -> None:
+    from pathlib import Path
+
+    from dbfit.connection import connect
+    from dbfit.sqlscript import format_result, run_script
+
+    con = connect(database)
+    try:
+        for result in run_script(con, Path(path).read_text()):
+            print(result.text.splitlines()[0][:100] + (" ..." if "\n" in result.text else ""))
+            print(format_result(result))
+            print()
+    finally:
+        con.close()
 
 
 if __name__ == "__main__":

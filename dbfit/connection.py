@@ -2,18 +2,41 @@
 
 from __future__ import annotations
 
+import re
 from typing import Any
 
 import duckdb
+
+from dbfit.errors import StoreError
+
+_LOCK_HOLDER = re.compile(r"held in (.+?) \(PID (\d+)\)")
 
 
 def connect(database: str = ":memory:", **config: Any) -> duckdb.DuckDBPyConnection:
     """Open a DuckDB connection (``config`` as in ``duckdb.connect``) and install dbfit on it."""
     read_only = bool(config.pop("read_only", False))
-    con = duckdb.connect(database, read_only=read_only, config=config)
+    try:
+        con = duckdb.connect(database, read_only=read_only, config=config)
+    except duckdb.IOException as err:
+        raise _lock_error(database, err) from None
     return install(con)
 
 
 def install(con: duckdb.DuckDBPyConnection) -> duckdb.DuckDBPyConnection:
-    """Install dbfit on an existing connection and return it."""
+    """Install dbfit on an existing connection (the ``dbfit.`` SQL functions) and return it."""
+    from dbfit.sqlsurface import register
+
+    register(con)
     return con
+
+
+def _lock_error(database: str, err: duckdb.IOException) -> Exception:
+    message = str(err)
+    if "lock" not in message.lower():
+        return StoreError(f"the database file '{database}' cannot be opened: {message.splitlines()[0]}")
+    holder = _LOCK_HOLDER.search(message)
+    who = f"process {holder.group(2)} ({holder.group(1)})" if holder else "another process"
+    return StoreError(
+        f"the database file '{database}' is locked by {who}: DuckDB lets one process write a file at a time. "
+        "Close the other connection, or open the file with read_only=True from every process that only reads"
+    )

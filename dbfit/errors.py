@@ -21,3 +21,11 @@ class SourceError(DbfitError):
 
 class FitError(DbfitError):
     """The data cannot be fitted as asked (bad target values, no rows, non-finite predictors, ...)."""
+
+
+class StoreError(DbfitError):
+    """The model store cannot do what was asked: unknown model or version, bad name, locked or busy file."""
+
+
+class StoreConflictError(StoreError):
+    """Another connection wrote the same version at the same time (dbfit retries these a few times itself)."""

@@ -4,12 +4,16 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any
+from datetime import datetime, timezone
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pyarrow as pa
 
 from dbfit.design import Design
+
+if TYPE_CHECKING:
+    import duckdb
 
 
 @dataclass
@@ -31,6 +35,32 @@ class Model:
     stats: dict[str, Any]
     warnings: list[str] = field(default_factory=list)
     options: dict[str, Any] = field(default_factory=dict)
+    fitted_at: datetime = field(default_factory=lambda: datetime.now(timezone.utc))
+    name: str | None = None  # set once saved to (or loaded from) a model store
+    version: int | None = None
+
+    def save(self, con: "duckdb.DuckDBPyConnection", name: str) -> int:
+        """Store this model as a new version of ``name`` in ``con``'s database; return the version number."""
+        from dbfit.store import save_model
+
+        return save_model(con, self, name)
+
+    def to_json(self) -> str:
+        """The model as a JSON document (format ``dbfit-model`` 1, see README.md); read back with ``dbfit.from_json``."""
+        from dbfit.serialize import to_json
+
+        return to_json(self)
+
+    def scoring_sql(self, dialect: str = "duckdb", *, source: str | None = None, unseen: str = "null",
+                    standard_error: bool = False, level: float = 0.95) -> str:
+        """A SELECT over ``source`` (default: the training source) adding ``linear_predictor`` and ``probability``.
+
+        ``unseen`` says what a categorical level never seen in training gives: ``"null"`` (NULL scores),
+        ``"reference"`` (scored as the reference level) or ``"error"`` (the query fails; DuckDB, Spark, BigQuery).
+        """
+        from dbfit.scoring import scoring_sql
+
+        return scoring_sql(self, dialect, source=source, unseen=unseen, standard_error=standard_error, level=level)
 
     def estimate(self, label: str) -> float:
         """The estimate of one term by its label (NaN when aliased)."""

@@ -1,0 +1,127 @@
+"""Publishing: a view in the user's database that scores a source in plain SQL (no dbfit needed to query it).
+
+A pinned view carries one version's estimates as constants; a live view reads the estimates of the latest
+stored version from ``dbfit_store.coefficients`` by term label, so re-running a fit of the same formula flows
+through (terms or levels a later version adds are not in the published encoding; republish for those).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import duckdb
+from sqlglot import exp
+
+from dbfit import sqlbuild as sb
+from dbfit.engine import DuckDBEngine
+from dbfit.errors import DbfitError, StoreError
+from dbfit.model import Model
+from dbfit.names import model_name, relation_name
+from dbfit.scoring import INTERVAL_COLUMNS, SCORE_COLUMNS, Coefficient, scoring_query
+from dbfit.source import source_relation
+from dbfit.store import SCHEMA, load_model
+
+LIVE_ALIAS = "dbfit_coefficients"
+
+
+def resolve_model(con: duckdb.DuckDBPyConnection, model: str | Model, version: int | None) -> Model:
+    """A Model as given, or the stored version of a model name."""
+    if isinstance(model, Model):
+        if version is not None and version != model.version:
+            raise StoreError(f"version={version} was given with a Model object (version {model.version}); pass the name")
+        return model
+    return load_model(con, model, version)
+
+
+def build_scoring(
+    con: duckdb.DuckDBPyConnection | None,
+    model: Model,
+    source: str | None,
+    *,
+    live: bool = False,
+    unseen: str = "null",
+    standard_error: bool = False,
+    level: float = 0.95,
+) -> exp.Select:
+    """The DuckDB scoring query of ``model`` over ``source``, after checking the source's columns on ``con``."""
+    relation = source_relation(source if source is not None else model.source)
+    if con is not None:
+        check_score_columns(con, relation, standard_error)
+    coefficient, joined = None, None
+    if live:
+        if model.name is None:
+            raise StoreError("a live view reads the store: save the model first (model.save(con, name)) or pass its name")
+        coefficient, joined = _live_coefficients(model)
+    return scoring_query(model, relation, coefficient=coefficient, joined=joined, unseen=unseen,
+                         with_standard_error=standard_error, level=level)
+
+
+def check_score_columns(con: duckdb.DuckDBPyConnection, relation: exp.Expression, standard_error: bool) -> None:
+    """Refuse a source that already has a column the scoring query adds."""
+    taken = SCORE_COLUMNS + (INTERVAL_COLUMNS if standard_error else ())
+    names = [name for name, _ in DuckDBEngine(con).describe(exp.select("*").from_(relation.copy()))]
+    clashes = [name for name in names if name.lower() in taken]
+    if clashes:
+        raise DbfitError(f"the source already has column(s) {', '.join(clashes)}, which scoring adds; rename them in a SELECT")
+
+
+def publish(
+    con: duckdb.DuckDBPyConnection,
+    model: str | Model,
+    view: str,
+    source: str | None = None,
+    *,
+    version: int | None = None,
+    live: bool = False,
+    unseen: str = "null",
+) -> dict[str, Any]:
+    """Create or replace ``view``: every column of ``source`` plus ``linear_predictor`` and ``probability``.
+
+    ``model`` is a stored model's name (``version`` picks one; default the latest) or a Model object.
+    ``live=True`` reads the latest stored estimates at query time instead of writing them in as constants.
+    """
+    target = relation_name(view, "view name")
+    resolved = resolve_model(con, model, version)
+    query = build_scoring(con, resolved, source, live=live, unseen=unseen)
+    statement = exp.Create(this=target, kind="VIEW", replace=True, expression=query)
+    try:
+        con.execute(statement.sql("duckdb")).fetchall()
+    except duckdb.Error as err:
+        first = (str(err).strip().splitlines() or [type(err).__name__])[0]
+        raise StoreError(f"view {target.sql('duckdb')} cannot be created or replaced: {first}") from None
+    return {
+        "view": target.sql("duckdb"),
+        "model": resolved.name,
+        "version": None if live else resolved.version,
+        "mode": "live" if live else "pinned",
+        "sql": statement.sql("duckdb"),
+    }
+
+
+def _live_coefficients(model: Model) -> tuple[Coefficient, exp.Expression]:
+    """A one-row subquery with the latest stored estimate of each label, and references to it."""
+    name = exp.Literal.string(model_name(model.name))
+    store = lambda table: exp.Table(this=exp.to_identifier(table, quoted=True), db=exp.to_identifier(SCHEMA, quoted=True))  # noqa: E731
+    latest = exp.select(exp.Max(this=sb.column("version"))).from_(store("versions")).where(
+        exp.EQ(this=sb.column("model"), expression=name.copy())
+    )
+    picks = [
+        exp.alias_(
+            exp.Max(this=exp.Case(ifs=[exp.If(this=exp.EQ(this=sb.column("term"), expression=exp.Literal.string(label)),
+                                              true=sb.column("estimate"))])),
+            f"c{k}", quoted=True,
+        )
+        for k, label in enumerate(model.labels)
+    ]
+    rows = exp.alias_(exp.Count(this=exp.Star()), "terms_found", quoted=True)
+    subquery = exp.select(*picks, rows).from_(store("coefficients")).where(
+        exp.and_(exp.EQ(this=sb.column("model"), expression=name.copy()),
+                 exp.EQ(this=sb.column("version"), expression=latest.subquery()))
+    ).subquery(LIVE_ALIAS)
+
+    def coefficient(parameter: int) -> exp.Expression:
+        found = exp.column("terms_found", table=LIVE_ALIAS, quoted=True)
+        value = exp.Coalesce(this=exp.column(f"c{parameter}", table=LIVE_ALIAS, quoted=True), expressions=[sb.number(0.0)])
+        return exp.Case(ifs=[exp.If(this=exp.GT(this=found, expression=sb.number(0)), true=value)])
+
+    return coefficient, subquery

@@ -1,0 +1,197 @@
+"""The model document: a fitted model as plain JSON, to store it or move it between databases.
+
+Format ``dbfit-model`` version 1 (our own; documented in README.md). Top-level keys:
+``format``, ``format_version``, ``formula``, ``source``, ``options``, ``intercept``, ``offset``,
+``factors`` (expression text, kind, SQL type, levels, reference level), ``columns`` (label, term, indices of the
+numeric factors multiplied together, indicator pairs ``[factor index, level]``, internal centre and scale,
+constant flag), ``labels``, ``estimates`` (original scale, ``null`` when aliased), ``covariance`` (p x p,
+``null`` for aliased rows and columns), ``stats``, ``warnings`` and ``fingerprint`` (rows in the source, rows
+used, source text, fit time in UTC). Floats are written with Python's shortest round-trip repr, so a document
+read back gives bit-identical numbers.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from datetime import datetime
+from typing import Any
+
+import numpy as np
+
+from dbfit import inference
+from dbfit.design import Design, DesignColumn, Factor
+from dbfit.errors import StoreError
+from dbfit.formula import parse_expression, parse_formula
+from dbfit.model import Model
+from dbfit.source import source_relation
+
+FORMAT, FORMAT_VERSION = "dbfit-model", 1
+
+
+def to_document(model: Model) -> dict[str, Any]:
+    """The model as a JSON-ready dict (see the module docstring for the keys)."""
+    design = model.design
+    return {
+        "format": FORMAT,
+        "format_version": FORMAT_VERSION,
+        "formula": model.formula,
+        "source": model.source,
+        "options": _plain(model.options),
+        "intercept": design.intercept,
+        "offset": design.offset_text,
+        "factors": [
+            {"expression": f.text, "kind": f.kind, "sql_type": f.sql_type, "levels": list(f.levels), "reference": f.reference}
+            for f in design.factors
+        ],
+        "columns": [
+            {
+                "label": c.label,
+                "term": c.term,
+                "numeric": list(c.numeric),
+                "indicators": [[i, level] for i, level in c.indicators],
+                "centre": c.centre,
+                "scale": c.scale,
+                "constant": c.constant,
+            }
+            for c in design.columns
+        ],
+        "labels": list(model.labels),
+        "estimates": [_finite_or_none(v) for v in model.estimates],
+        "covariance": [[_finite_or_none(v) for v in row] for row in model.covariance],
+        "stats": _plain(model.stats),
+        "warnings": list(model.warnings),
+        "fingerprint": {
+            "rows_total": design.rows_total,
+            "rows_used": design.rows_used,
+            "source": model.source,
+            "fitted_at": model.fitted_at.isoformat(),
+        },
+    }
+
+
+def to_json(model: Model) -> str:
+    return json.dumps(to_document(model), allow_nan=False, sort_keys=False)
+
+
+def from_json(text: str) -> Model:
+    """Read a model written by :meth:`Model.to_json`."""
+    try:
+        document = json.loads(text)
+    except (TypeError, json.JSONDecodeError) as err:
+        raise StoreError(f"not a dbfit model document: {err}") from None
+    return from_document(document)
+
+
+def from_document(document: dict[str, Any], name: str | None = None, version: int | None = None) -> Model:
+    """Rebuild a :class:`Model` (with its design encoding) from a document."""
+    if not isinstance(document, dict) or document.get("format") != FORMAT:
+        raise StoreError("not a dbfit model document: the 'format' key is missing or not 'dbfit-model'")
+    if document.get("format_version") != FORMAT_VERSION:
+        raise StoreError(
+            f"dbfit model document version {document.get('format_version')!r} is not supported (this dbfit reads {FORMAT_VERSION})"
+        )
+    try:
+        return _rebuild(document, name, version)
+    except (KeyError, TypeError, IndexError) as err:
+        raise StoreError(f"the dbfit model document is incomplete or malformed: {type(err).__name__} {err}") from None
+
+
+def _rebuild(document: dict[str, Any], name: str | None, version: int | None) -> Model:
+    options = dict(document["options"])
+    formula = parse_formula(document["formula"])
+    factors = [
+        Factor(
+            text=f["expression"],
+            expression=parse_expression(f["expression"], "term"),
+            alias=f"dbfit_f{i}",
+            sql_type=f["sql_type"],
+            kind=f["kind"],
+            levels=list(f["levels"]),
+            reference=f["reference"],
+        )
+        for i, f in enumerate(document["factors"])
+    ]
+    columns = [
+        DesignColumn(
+            label=c["label"],
+            term=c["term"],
+            numeric=tuple(c["numeric"]),
+            indicators=tuple((int(i), level) for i, level in c["indicators"]),
+            centre=float(c["centre"]),
+            scale=float(c["scale"]),
+            constant=bool(c["constant"]),
+        )
+        for c in document["columns"]
+    ]
+    for column in columns:
+        for index in column.numeric + tuple(i for i, _ in column.indicators):
+            if not 0 <= index < len(factors):
+                raise StoreError(f"column '{column.label}' refers to factor {index}, but the model has {len(factors)}")
+
+    def optional_expression(key: str) -> Any:
+        text = options.get(key)
+        return parse_expression(text, key) if text is not None else None
+
+    fingerprint = document["fingerprint"]
+    design = Design(
+        formula=formula,
+        relation=source_relation(document["source"]),
+        factors=factors,
+        columns=columns,
+        intercept=bool(document["intercept"]),
+        target=formula.target,
+        weights=optional_expression("weights"),
+        offset=optional_expression("offset"),
+        trials=optional_expression("trials"),
+        weights_text=options.get("weights"),
+        offset_text=document.get("offset"),
+        trials_text=options.get("trials"),
+        positive=None if options.get("positive") is None else str(options["positive"]),
+        rows_total=int(fingerprint["rows_total"]),
+        rows_used=int(fingerprint["rows_used"]),
+    )
+    labels = list(document["labels"])
+    if labels != design.labels:
+        raise StoreError(f"the document's labels {labels} do not match its columns {design.labels}")
+    estimates = np.array([math.nan if v is None else float(v) for v in document["estimates"]])
+    covariance = np.array([[math.nan if v is None else float(v) for v in row] for row in document["covariance"]])
+    if estimates.shape != (len(labels),) or covariance.shape != (len(labels), len(labels)):
+        raise StoreError(
+            f"the document has {estimates.size} estimates and a {covariance.shape} covariance for {len(labels)} terms"
+        )
+    return Model(
+        formula=document["formula"],
+        source=document["source"],
+        design=design,
+        labels=labels,
+        estimates=estimates,
+        covariance=covariance,
+        coefficients=inference.coefficient_table(labels, estimates, covariance),
+        stats=dict(document["stats"]),
+        warnings=list(document["warnings"]),
+        options=options,
+        fitted_at=datetime.fromisoformat(fingerprint["fitted_at"]),
+        name=name,
+        version=version,
+    )
+
+
+def _finite_or_none(value: float) -> float | None:
+    value = float(value)
+    return value if math.isfinite(value) else None
+
+
+def _plain(value: Any) -> Any:
+    """Numpy scalars and non-finite floats into JSON-native values."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        return _finite_or_none(value)
+    return value

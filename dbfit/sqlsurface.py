@@ -1,0 +1,167 @@
+"""The ``dbfit.`` SQL functions: table macros in an attached in-memory catalog ``dbfit`` over Python functions.
+
+Nothing of it is written to the user's database file: the catalog lives in memory and the Python functions
+belong to the connection. The Python functions run their queries on a second connection of the same database
+(DuckDB cannot run a query on the connection that is executing the calling query), so they see committed data
+only; ``dbfit.fit`` compares the row count the caller sees with what it fitted and says so when they differ.
+``dbfit.score`` returns a query that the calling connection itself runs, through DuckDB's ``query()``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any
+
+import duckdb
+from sqlglot import exp
+
+from dbfit import fitting, store
+from dbfit.deploy import build_scoring, check_score_columns, publish
+from dbfit.errors import SourceError, StoreError
+from dbfit.names import model_name
+from dbfit.source import source_relation
+
+CATALOG = "dbfit"
+T = duckdb.sqltype
+COEFFICIENT_FIELDS = {"model": T("VARCHAR"), "version": T("INTEGER"), "term": T("VARCHAR")} | {
+    c: T("DOUBLE") for c in store.COEFFICIENT_COLUMNS[1:]
+}
+VERSION_FIELDS = {
+    "model": T("VARCHAR"), "version": T("INTEGER"), "created_at": T("TIMESTAMP"), "formula": T("VARCHAR"),
+    "source": T("VARCHAR"), "source_rows": T("BIGINT"), "rows_used": T("BIGINT"), "deviance": T("DOUBLE"),
+    "aic": T("DOUBLE"), "converged": T("BOOLEAN"), "warnings_count": T("INTEGER"),
+}
+PUBLISHED_FIELDS = {"view": T("VARCHAR"), "model": T("VARCHAR"), "version": T("INTEGER"), "mode": T("VARCHAR")}
+DROPPED_FIELDS = {"model": T("VARCHAR"), "version": T("INTEGER")}
+
+_ROWS = "SELECT dbfit_row.* FROM (SELECT unnest({call}) AS dbfit_row)"
+_SCORE_OPTIONS = ", standard_error := false, level := 0.95, unseen := 'null'"
+_SCORE = "SELECT * FROM query(dbfit_sql_score(model, source, {version}, standard_error, level, unseen))"
+MACROS = {
+    "fit": [(
+        "model, source, formula, weights := NULL, \"offset\" := NULL, trials := NULL, reference := NULL, "
+        "positive := NULL, max_iter := 50, tol := 1e-10",
+        _ROWS.format(call="dbfit_sql_fit(model, source, formula, weights, \"offset\", trials, reference, positive, "
+                          "max_iter, tol, (SELECT dbfit_count.n FROM query(dbfit_sql_count(source)) AS dbfit_count))"),
+    )],
+    "models": [("", _ROWS.format(call="dbfit_sql_models()"))],
+    "coefficients": [
+        ("model", _ROWS.format(call="dbfit_sql_coefficients(model, NULL)")),
+        ("model, version", _ROWS.format(call="dbfit_sql_coefficients(model, version)")),
+    ],
+    "score": [
+        ("model, source" + _SCORE_OPTIONS, _SCORE.format(version="NULL")),
+        ("model, source, version" + _SCORE_OPTIONS, _SCORE.format(version="version")),
+    ],
+    "publish": [(
+        "model, source, view, version := NULL, live := false, unseen := 'null'",
+        _ROWS.format(call="dbfit_sql_publish(model, source, view, version, live, unseen)"),
+    )],
+    "drop_model": [
+        ("model", _ROWS.format(call="dbfit_sql_drop(model, NULL)")),
+        ("model, version", _ROWS.format(call="dbfit_sql_drop(model, version)")),
+    ],
+}
+
+
+def register(con: duckdb.DuckDBPyConnection) -> None:
+    """Attach the in-memory ``dbfit`` catalog and create the table macros and their Python functions."""
+    attached = con.execute("SELECT path FROM duckdb_databases() WHERE database_name = ?", [CATALOG]).fetchall()
+    if attached and attached[0][0] is not None:
+        raise StoreError(
+            f"this connection's database is named '{CATALOG}' (file {attached[0][0]}), the name dbfit's SQL functions "
+            "need: rename the file or attach it under another name (ATTACH 'dbfit.duckdb' AS sales)"
+        )
+    if not attached:
+        con.execute(f"ATTACH ':memory:' AS {CATALOG} (READ_WRITE)").fetchall()
+    _register_functions(con)
+    for name, overloads in MACROS.items():
+        bodies = ", ".join(f"({parameters}) AS TABLE ({body})" for parameters, body in overloads)
+        con.execute(f"CREATE OR REPLACE MACRO {CATALOG}.main.{name} {bodies}").fetchall()
+
+
+def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
+    def second() -> duckdb.DuckDBPyConnection:
+        return con.cursor()
+
+    def fit_rows(model, source, formula, weights, offset, trials, reference, positive, max_iter, tol, visible_rows):
+        model_name(model)
+        with second() as reader:
+            fitted = _fit_on_second_connection(reader, source, formula, visible_rows, weights=weights, offset=offset,
+                                               trials=trials, reference=reference, positive=positive,
+                                               max_iter=50 if max_iter is None else max_iter,
+                                               tol=1e-10 if tol is None else tol)
+            version = fitted.save(reader, model)
+        return [{"model": model, "version": version, **row} for row in fitted.coefficients.to_pylist()]
+
+    def count_sql(source):
+        return exp.select(exp.alias_(exp.Count(this=exp.Star()), "n")).from_(source_relation(source)).sql("duckdb")
+
+    def version_rows():
+        with second() as reader:
+            return [{k: row[k] for k in VERSION_FIELDS} for row in store.version_rows(reader)]
+
+    def coefficient_rows(model, version):
+        with second() as reader:
+            return store.coefficient_rows(reader, model, version)
+
+    def score_sql(model, source, version, standard_error, level, unseen):
+        with second() as reader:
+            fitted = store.load_model(reader, model, version)
+            try:
+                check_score_columns(reader, source_relation(source), bool(standard_error))
+            except SourceError:
+                pass  # not visible to the second connection (a temporary table?): the calling query reads it
+        query = build_scoring(None, fitted, source, unseen=unseen or "null", standard_error=bool(standard_error),
+                              level=0.95 if level is None else level)
+        return query.sql("duckdb")
+
+    def publish_rows(model, source, view, version, live, unseen):
+        with second() as writer:
+            made = publish(writer, model, view, source, version=version, live=bool(live), unseen=unseen or "null")
+        return [{k: made[k] for k in PUBLISHED_FIELDS}]
+
+    def drop_rows(model, version):
+        with second() as writer:
+            return [{"model": m, "version": v} for m, v in store.drop_model(writer, model, version)]
+
+    V, I, D, B = T("VARCHAR"), T("INTEGER"), T("DOUBLE"), T("BOOLEAN")
+    reference_type = duckdb.map_type(V, V)
+    functions: list[tuple[str, Callable[..., Any], list[Any], Any]] = [
+        ("dbfit_sql_fit", fit_rows, [V, V, V, V, V, V, reference_type, V, I, D, T("BIGINT")], _rows_of(COEFFICIENT_FIELDS)),
+        ("dbfit_sql_count", count_sql, [V], V),
+        ("dbfit_sql_models", version_rows, [], _rows_of(VERSION_FIELDS)),
+        ("dbfit_sql_coefficients", coefficient_rows, [V, I], _rows_of(COEFFICIENT_FIELDS)),
+        ("dbfit_sql_score", score_sql, [V, V, I, B, D, V], V),
+        ("dbfit_sql_publish", publish_rows, [V, V, V, I, B, V], _rows_of(PUBLISHED_FIELDS)),
+        ("dbfit_sql_drop", drop_rows, [V, I], _rows_of(DROPPED_FIELDS)),
+    ]
+    for name, function, parameters, returns in functions:
+        try:
+            con.create_function(name, function, parameters, returns, null_handling="special", side_effects=True)
+        except duckdb.NotImplementedException as err:
+            if "already created" not in str(err):
+                raise
+            # installed on this connection before: the existing function serves the same connection
+
+
+def _rows_of(fields: dict[str, Any]) -> Any:
+    return duckdb.list_type(duckdb.struct_type(fields))
+
+
+def _fit_on_second_connection(reader: duckdb.DuckDBPyConnection, source: str, formula: str, visible_rows: int | None,
+                              **options: Any):
+    """Fit on the second connection; explain plainly when it sees other rows than the calling connection."""
+    invisible = (
+        f"source {source!r} has {visible_rows} rows on your connection, but the second connection that the SQL "
+        "dbfit.fit reads on"
+    )
+    advice = ("temporary tables and rows or tables of a transaction not yet committed are invisible to it. "
+              "COMMIT first, copy the data into a permanent table, or call dbfit.fit from Python, which has no such limit")
+    try:
+        model = fitting.fit(reader, formula, source, progress=False, **options)
+    except SourceError as err:
+        raise SourceError(f"{invisible} cannot read it ({err}): {advice}") from None
+    if visible_rows is not None and model.design.rows_total != visible_rows:
+        raise SourceError(f"{invisible} sees {model.design.rows_total}: {advice}")
+    return model
