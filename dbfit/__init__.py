@@ -1,7 +1,9 @@
 """dbfit: logistic regression fitted, checked and deployed inside the database."""
 
 from dbfit.connection import connect, install
-from dbfit.api import drop_model, fit, from_json, load, models, score
+from dbfit.api import assess, assessment_tables, cross_validate, drop_model, fit, from_json, load, models, score
+from dbfit.comparison import comparison_table, likelihood_ratio_test
+from dbfit.splits import Holdout, KFold
 from dbfit.deploy import publish
 from dbfit.errors import DbfitError, FitError, FormulaError, SourceError, StoreConflictError, StoreError
 from dbfit.irls import IterationReport
@@ -12,6 +14,8 @@ from dbfit.robust import with_robust_errors
 
 __all__ = [
     "DbfitError",
+    "Holdout",
+    "KFold",
     "FitError",
     "FormulaError",
     "IterationReport",
@@ -20,11 +24,16 @@ __all__ = [
     "SourceError",
     "StoreConflictError",
     "StoreError",
+    "assess",
+    "assessment_tables",
+    "comparison_table",
     "connect",
+    "cross_validate",
     "drop_model",
     "fit",
     "from_json",
     "install",
+    "likelihood_ratio_test",
     "load",
     "models",
     "prior_corrected",

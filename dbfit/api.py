@@ -7,20 +7,86 @@ from typing import Any
 import duckdb
 import pyarrow as pa
 
-from dbfit import deploy, fitting, serialize, store
-from dbfit.engine import translate_error
+import numpy as np
+from sqlglot import exp
+
+from dbfit import assessment, deploy, fitting, serialize, store
+from dbfit.engine import DuckDBEngine, translate_error
+from dbfit.errors import FitError
+from dbfit.source import source_relation
+from dbfit.splits import Holdout, KFold, part_relation
 from dbfit.model import Model
 from dbfit.names import model_name
 
 
-def fit(con: duckdb.DuckDBPyConnection, formula: str, source: str, *, name: str | None = None, **options: Any) -> Model:
-    """Fit as :func:`dbfit.fitting.fit`; with ``name=...`` also store the model as that name's next version."""
+def fit(con: duckdb.DuckDBPyConnection, formula: str, source: str, *, name: str | None = None,
+        split: Holdout | None = None, threshold: float = 0.5, **options: Any) -> Model:
+    """Fit as :func:`dbfit.fitting.fit`; with ``name=...`` also store the model as that name's next version.
+
+    With ``split=dbfit.Holdout(key, share)`` the model is fitted on the training part only and its held-out
+    metrics (at ``threshold``) go to ``model.stats["holdout"]``.
+    """
     if name is not None:
         model_name(name)
-    model = fitting.fit(con, formula, source, **options)
+    if split is not None and not isinstance(split, Holdout):
+        raise FitError("split= takes dbfit.Holdout(key, share); for k folds use dbfit.cross_validate")
+    if split is not None and options.get("by") is not None:
+        raise FitError("split= cannot be combined with by=")
+    training = source if split is None else _part_source(source, split, "train")
+    model = fitting.fit(con, formula, training, **options)
+    if split is not None:
+        assessment.check_threshold(threshold)
+        held_out = assess(con, model, _part_source(source, split, "holdout"), threshold=threshold)
+        model.stats["holdout"] = dict(zip(held_out["metric"].to_pylist(), held_out["value"].to_pylist()))
+        model.options["split"] = {"key": split.key, "share": split.share, "source": source, "threshold": threshold}
     if name is not None:
         model.save(con, name)
     return model
+
+
+def _part_source(source: str, split: Holdout | KFold, part: str | int, keep: bool = True) -> str:
+    """A SELECT (as SQL text written by sqlglot from the parsed source) of one part of the split."""
+    rows = part_relation(source_relation(source), split, part, keep=keep)
+    return exp.select(exp.Star(except_=[exp.column("dbfit_part", quoted=True)])).from_(rows).sql("duckdb")
+
+
+def assess(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *,
+           threshold: float = 0.5, version: int | None = None) -> pa.Table:
+    """One row per metric (metric, value, note) of ``model`` on ``source`` (default: its training source)."""
+    resolved = deploy.resolve_model(con, model, version)
+    return assessment.metrics(DuckDBEngine(con), assessment.scored_relation(resolved, source), threshold).table()
+
+
+def assessment_tables(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *,
+                      threshold: float = 0.5, version: int | None = None) -> dict[str, pa.Table]:
+    """Metrics, confusion counts, cut-off curve, calibration and gains of ``model`` on ``source``."""
+    resolved = deploy.resolve_model(con, model, version)
+    return assessment.assessment_tables(DuckDBEngine(con), assessment.scored_relation(resolved, source), threshold)
+
+
+def cross_validate(con: duckdb.DuckDBPyConnection, formula: str, source: str, split: KFold, *,
+                   threshold: float = 0.5, **options: Any) -> pa.Table:
+    """k-fold cross-validation in the database: fit on k - 1 folds, assess on the held fold, for each fold.
+
+    Returns one row per metric: the mean over folds, their standard deviation, and each fold's value.
+    """
+    if not isinstance(split, KFold):
+        raise FitError("cross_validate takes split=dbfit.KFold(key, folds)")
+    assessment.check_threshold(threshold)
+    per_fold: list[dict[str, float | None]] = []
+    for fold in range(split.folds):
+        model = fitting.fit(con, formula, _part_source(source, split, fold, keep=False), **{"progress": False, **options})
+        table = assess(con, model, _part_source(source, split, fold), threshold=threshold)
+        per_fold.append(dict(zip(table["metric"].to_pylist(), table["value"].to_pylist())))
+    names = list(per_fold[0])
+    columns: dict[str, list[Any]] = {"metric": names, "mean": [], "std_dev": []}
+    for fold in range(split.folds):
+        columns[f"fold_{fold}"] = [per_fold[fold][n] for n in names]
+    for name in names:
+        values = [f[name] for f in per_fold if f[name] is not None]
+        columns["mean"].append(float(np.mean(values)) if values else None)
+        columns["std_dev"].append(float(np.std(values, ddof=1)) if len(values) > 1 else None)
+    return pa.table(columns)
 
 
 fit.__doc__ = (fitting.fit.__doc__ or "") + "\n    name : store the fitted model as the next version of this name.\n"

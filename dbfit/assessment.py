@@ -237,3 +237,39 @@ def gains_table(engine: DuckDBEngine, scored: exp.Expression, groups: int = GROU
                                     rate / base if base else None, (positives / rows) / base if base else None)):
             out[key].append(value)
     return pa.table(out)
+
+
+def scored_relation(model, source: str | None) -> exp.Expression:
+    """The rows of ``source`` as (y, p): the model's 0/1 target and its probability, complete rows only.
+
+    ``model`` is a :class:`dbfit.Model`; the scoring query is the one a published view runs.
+    """
+    from dbfit.scoring import scoring_query
+    from dbfit.source import source_relation
+
+    design = model.design
+    if design.trials is not None:
+        raise FitError("assessment needs a 0/1 target; this model counts successes out of trials")
+    target = design.formula.target.copy()
+    if design.positive is not None:
+        target = exp.EQ(this=exp.Paren(this=target), expression=exp.Literal.string(design.positive))
+    scored = scoring_query(model, source_relation(source if source is not None else model.source))
+    y = exp.Cast(this=target, to=exp.DataType.build("DOUBLE"))
+    rows = exp.select(exp.alias_(y, "y", quoted=True), exp.alias_(exp.column("probability", quoted=True), "p", quoted=True))
+    rows = rows.from_(scored.subquery("dbfit_scored_rows"))
+    complete = exp.select("*").from_(rows.subquery("dbfit_yp")).where(
+        exp.and_(exp.Not(this=exp.Is(this=exp.column("y", quoted=True), expression=exp.Null())),
+                 exp.Not(this=exp.Is(this=exp.column("p", quoted=True), expression=exp.Null())))
+    )
+    return complete.subquery("dbfit_scored")
+
+
+def assessment_tables(engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5) -> dict[str, pa.Table]:
+    """Every table of the assessment: metrics, confusion, the cut-off curve, calibration and gains."""
+    return {
+        "metrics": metrics(engine, scored, threshold).table(),
+        "confusion": confusion_table(engine, scored, threshold),
+        "curve": curve_points(engine, scored),
+        "calibration": calibration_table(engine, scored),
+        "gains": gains_table(engine, scored),
+    }
