@@ -15,7 +15,8 @@ from typing import Any
 import duckdb
 from sqlglot import exp
 
-from dbfit import fitting, store
+from dbfit import assessment, fitting, store
+from dbfit.engine import DuckDBEngine
 from dbfit.deploy import build_scoring, check_score_columns, publish
 from dbfit.errors import SourceError, StoreError
 from dbfit.names import model_name
@@ -33,6 +34,10 @@ VERSION_FIELDS = {
 }
 PUBLISHED_FIELDS = {"view": T("VARCHAR"), "model": T("VARCHAR"), "version": T("INTEGER"), "mode": T("VARCHAR")}
 DROPPED_FIELDS = {"model": T("VARCHAR"), "version": T("INTEGER")}
+CUTOFF_COLUMNS = ("threshold", "true_positive_rate", "false_positive_rate", "precision", "recall", "specificity",
+                  "share_flagged")
+CALIBRATION_COLUMNS = ("mean_predicted", "observed_rate", "wilson_low", "wilson_high", "lowest_score", "highest_score")
+GAINS_COLUMNS = ("share_of_rows", "share_of_positives", "lift", "cumulative_lift")
 
 _ROWS = "SELECT dbfit_row.* FROM (SELECT unnest({call}) AS dbfit_row)"
 _SCORE_OPTIONS = ", standard_error := false, level := 0.95, unseen := 'null'"
@@ -40,9 +45,11 @@ _SCORE = "SELECT * FROM query(dbfit_sql_score(model, source, {version}, standard
 MACROS = {
     "fit": [(
         "model, source, formula, weights := NULL, \"offset\" := NULL, trials := NULL, reference := NULL, "
-        "positive := NULL, max_iter := 50, tol := 1e-10",
+        "positive := NULL, max_iter := 50, tol := 1e-10, robust := NULL, \"cluster\" := NULL, firth := false, "
+        "population_rate := NULL, shrinkage := NULL, l1_share := 0.0",
         _ROWS.format(call="dbfit_sql_fit(model, source, formula, weights, \"offset\", trials, reference, positive, "
-                          "max_iter, tol, (SELECT dbfit_count.n FROM query(dbfit_sql_count(source)) AS dbfit_count))"),
+                          "max_iter, tol, (SELECT dbfit_count.n FROM query(dbfit_sql_count(source)) AS dbfit_count), "
+                          "robust, \"cluster\", firth, population_rate, shrinkage, l1_share)"),
     )],
     "models": [("", _ROWS.format(call="dbfit_sql_models()"))],
     "coefficients": [
@@ -57,6 +64,13 @@ MACROS = {
         "model, source, view, version := NULL, live := false, unseen := 'null'",
         _ROWS.format(call="dbfit_sql_publish(model, source, view, version, live, unseen)"),
     )],
+    "assess": [("model, source, threshold := 0.5", _ROWS.format(call="dbfit_sql_assess(model, source, threshold, 'metrics')"))],
+    "confusion": [("model, source, threshold := 0.5", _ROWS.format(call="dbfit_sql_confusion(model, source, threshold, 'confusion')"))],
+    "cutoffs": [("model, source", _ROWS.format(call="dbfit_sql_cutoffs(model, source, 0.5, 'curve')"))],
+    "roc": [("model, source", "SELECT threshold, false_positive_rate, true_positive_rate FROM "
+             + _ROWS.format(call="dbfit_sql_cutoffs(model, source, 0.5, 'curve')").replace("SELECT ", "(SELECT ", 1) + ")")],
+    "calibration": [("model, source", _ROWS.format(call="dbfit_sql_calibration(model, source, 0.5, 'calibration')"))],
+    "gains": [("model, source", _ROWS.format(call="dbfit_sql_gains(model, source, 0.5, 'gains')"))],
     "drop_model": [
         ("model", _ROWS.format(call="dbfit_sql_drop(model, NULL)")),
         ("model, version", _ROWS.format(call="dbfit_sql_drop(model, version)")),
@@ -84,13 +98,16 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
     def second() -> duckdb.DuckDBPyConnection:
         return con.cursor()
 
-    def fit_rows(model, source, formula, weights, offset, trials, reference, positive, max_iter, tol, visible_rows):
+    def fit_rows(model, source, formula, weights, offset, trials, reference, positive, max_iter, tol, visible_rows,
+                 robust, cluster, firth, population_rate, shrinkage, l1_share):
         model_name(model)
         with second() as reader:
             fitted = _fit_on_second_connection(reader, source, formula, visible_rows, weights=weights, offset=offset,
                                                trials=trials, reference=reference, positive=positive,
                                                max_iter=50 if max_iter is None else max_iter,
-                                               tol=1e-10 if tol is None else tol)
+                                               tol=1e-10 if tol is None else tol, robust=robust, cluster=cluster,
+                                               firth=bool(firth), population_rate=population_rate,
+                                               shrinkage=shrinkage, l1_share=0.0 if l1_share is None else l1_share)
             version = fitted.save(reader, model)
         return [{"model": model, "version": version, **row} for row in fitted.coefficients.to_pylist()]
 
@@ -125,16 +142,37 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
         with second() as writer:
             return [{"model": m, "version": v} for m, v in store.drop_model(writer, model, version)]
 
+    def assessment_rows(model, source, threshold, table):
+        with second() as reader:
+            fitted = store.load_model(reader, model, None)
+            engine = DuckDBEngine(reader)
+            scored = assessment.scored_relation(fitted, source)
+            threshold = 0.5 if threshold is None else threshold
+            if table == "metrics":
+                return assessment.metrics(engine, scored, threshold).table().to_pylist()
+            builders = {"confusion": lambda: assessment.confusion_table(engine, scored, threshold),
+                        "curve": lambda: assessment.curve_points(engine, scored),
+                        "calibration": lambda: assessment.calibration_table(engine, scored),
+                        "gains": lambda: assessment.gains_table(engine, scored)}
+            return builders[table]().to_pylist()
+
     V, I, D, B = T("VARCHAR"), T("INTEGER"), T("DOUBLE"), T("BOOLEAN")
     reference_type = duckdb.map_type(V, V)
     functions: list[tuple[str, Callable[..., Any], list[Any], Any]] = [
-        ("dbfit_sql_fit", fit_rows, [V, V, V, V, V, V, reference_type, V, I, D, T("BIGINT")], _rows_of(COEFFICIENT_FIELDS)),
+        ("dbfit_sql_fit", fit_rows, [V, V, V, V, V, V, reference_type, V, I, D, T("BIGINT"), V, V, B, D, D, D],
+         _rows_of(COEFFICIENT_FIELDS)),
         ("dbfit_sql_count", count_sql, [V], V),
         ("dbfit_sql_models", version_rows, [], _rows_of(VERSION_FIELDS)),
         ("dbfit_sql_coefficients", coefficient_rows, [V, I], _rows_of(COEFFICIENT_FIELDS)),
         ("dbfit_sql_score", score_sql, [V, V, I, B, D, V], V),
         ("dbfit_sql_publish", publish_rows, [V, V, V, I, B, V], _rows_of(PUBLISHED_FIELDS)),
         ("dbfit_sql_drop", drop_rows, [V, I], _rows_of(DROPPED_FIELDS)),
+        ("dbfit_sql_assess", assessment_rows, [V, V, D, V], _rows_of({"metric": V, "value": D, "note": V})),
+        ("dbfit_sql_confusion", assessment_rows, [V, V, D, V], _rows_of({"actual": I, "predicted": I, "rows": T("BIGINT")})),
+        ("dbfit_sql_cutoffs", assessment_rows, [V, V, D, V], _rows_of({c: D for c in CUTOFF_COLUMNS})),
+        ("dbfit_sql_calibration", assessment_rows, [V, V, D, V], _rows_of(
+            {"group": I, "rows": T("BIGINT"), **{c: D for c in CALIBRATION_COLUMNS}})),
+        ("dbfit_sql_gains", assessment_rows, [V, V, D, V], _rows_of({"group": I, **{c: D for c in GAINS_COLUMNS}})),
     ]
     for name, function, parameters, returns in functions:
         try:

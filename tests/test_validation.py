@@ -76,3 +76,27 @@ def test_single_class_holdout_says_auc_is_undefined(con, birthwt):
     table = dbfit.assess(con, model, "SELECT * FROM birthwt WHERE low = 1").to_pydict()
     auc = table["metric"].index("auc")
     assert table["value"][auc] is None and "only one class" in table["note"][auc]
+
+
+def test_sql_assessment_functions_equal_the_python_ones(con, birthwt):
+    model = dbfit.fit(con, FORMULA, "birthwt", name="low_weight", progress=False)
+    sql = con.execute("SELECT metric, value FROM dbfit.assess('low_weight', 'birthwt', threshold := 0.4)").fetchall()
+    python = dbfit.assess(con, model, "birthwt", threshold=0.4).to_pydict()
+    assert [m for m, _ in sql] == python["metric"]
+    assert [v for _, v in sql] == python["value"]
+    tables = dbfit.assessment_tables(con, model, "birthwt")
+    assert con.execute("SELECT count(*) FROM dbfit.roc('low_weight', 'birthwt')").fetchall()[0][0] == tables["curve"].num_rows
+    assert con.execute("SELECT sum(rows) FROM dbfit.calibration('low_weight', 'birthwt')").fetchall()[0][0] == len(birthwt)
+    assert [r[2] for r in con.execute("SELECT * FROM dbfit.confusion('low_weight', 'birthwt')").fetchall()] == \
+        tables["confusion"]["rows"].to_pylist()
+    gains = con.execute("SELECT share_of_positives FROM dbfit.gains('low_weight', 'birthwt') ORDER BY \"group\"").fetchall()
+    assert gains[-1][0] == pytest.approx(1.0)
+
+
+def test_sql_fit_takes_the_robust_firth_and_penalty_options(con, birthwt):
+    python = dbfit.fit(con, FORMULA, "birthwt", robust="HC1", progress=False)
+    rows = con.execute(f"SELECT std_error FROM dbfit.fit('robust_low', 'birthwt', '{FORMULA}', robust := 'HC1')").fetchall()
+    assert [r[0] for r in rows] == pytest.approx(python.coefficients["std_error"].to_pylist(), rel=1e-12)
+    firth = dbfit.fit(con, FORMULA, "birthwt", firth=True, progress=False)
+    rows = con.execute(f"SELECT estimate FROM dbfit.fit('firth_low', 'birthwt', '{FORMULA}', firth := true)").fetchall()
+    assert [r[0] for r in rows] == pytest.approx(firth.estimates.tolist(), rel=1e-10)
