@@ -58,11 +58,12 @@ code, .mono { font-family:ui-monospace, "SFMono-Regular", Menlo, Consolas, monos
 section { background:var(--card); border:1px solid var(--line); border-radius:10px; padding:18px 20px;
   margin:0 0 18px; }
 section h2 { font-size:16px; margin:0 0 12px; letter-spacing:.02em; }
-section p.hint { color:var(--muted); margin:6px 0 0; font-size:13px; }
+section .hint { color:var(--muted); margin:6px 0 0; font-size:13px; }
 .warnings { background:var(--warm-soft); border:1px solid #e8c3a2; border-left:6px solid var(--warm); }
 .warnings h2 { color:var(--warm); }
 .warnings ul { margin:0; padding-left:20px; }
 .clean { color:var(--accent); background:var(--accent-soft); border-color:#b7dcd7; }
+.clean h2 { color:var(--accent); }
 .tiles { display:grid; grid-template-columns:repeat(auto-fill, minmax(150px, 1fr)); gap:10px; margin:0; }
 .tiles div { border:1px solid var(--line); border-radius:8px; padding:8px 10px; background:#fcfbf8; }
 .tiles dt { font-size:12px; color:var(--muted); }
@@ -78,6 +79,7 @@ td.note { text-align:left; color:var(--muted); font-style:italic; }
 tr.aliased td { color:var(--muted); background:#f3f1ec; }
 .charts { display:grid; grid-template-columns:repeat(auto-fit, minmax(400px, 1fr)); gap:14px; }
 figure { margin:0; }
+figure h3 { font-size:14px; margin:0 0 4px; color:var(--accent); }
 figcaption { font-size:13px; color:var(--muted); margin-top:4px; }
 svg.chart { max-width:100%; height:auto; font-family:inherit; }
 svg .frame { fill:none; stroke:#b9b4a8; }
@@ -182,7 +184,11 @@ def _coefficient_row(row: dict) -> str:
 def _coefficients_section(coefficients: pa.Table) -> str:
     head = ("<tr><th>term</th><th>log-odds effect</th><th>std. error</th><th>z</th><th>p</th>"
             "<th>odds ratio</th><th>95% interval of the odds ratio</th></tr>")
-    body = "".join(_coefficient_row(row) for row in coefficients.to_pylist())
+    rows = coefficients.to_pylist()
+    body = "".join(_coefficient_row(row) for row in rows)
+    wald = any(row["std_error"] is not None for row in rows)
+    hint = ("p-values and intervals are Wald's, from the standard errors shown." if wald else
+            "Penalised estimates carry no Wald standard error, so no p-value or interval is shown.")
     forest = forest_plot(coefficients)
     figure = (f'<figure class="forest-figure">{forest}<figcaption>Each dot is a term\'s odds ratio (the factor on '
               f"the odds per unit, or per level against the reference) with its 95% Wald interval; the dashed "
@@ -190,8 +196,7 @@ def _coefficients_section(coefficients: pa.Table) -> str:
               f"\u25c0 or \u25b6; hollow dots are penalised estimates without interval.</figcaption></figure>"
               if forest else '<p class="hint">The model has only an intercept: there is no odds ratio to plot.</p>')
     return (f"<section><h2>Coefficients</h2><table class=\"coefficients\"><thead>{head}</thead><tbody>{body}"
-            f"</tbody></table><p class=\"hint\">p-values and intervals are Wald's, from the standard errors "
-            f"shown.</p></section><section><h2>Odds ratios</h2>{figure}</section>")
+            f"</tbody></table><p class=\"hint\">{hint}</p></section><section><h2>Odds ratios</h2>{figure}</section>")
 
 
 def _metrics_table(metrics: pa.Table) -> str:
@@ -220,15 +225,16 @@ def _assessment_section(assessment: dict[str, pa.Table]) -> str:
         raise DbfitError(f"the assessment lacks the table(s) {', '.join(missing)}; give all of "
                          f"{', '.join(ASSESSMENT_KEYS)} (from dbfit.assessment)")
     charts = [
-        (roc_plot(assessment["curve"], _auc(assessment["metrics"])),
+        ("ROC curve", roc_plot(assessment["curve"], _auc(assessment["metrics"])),
          "How well the scores rank events above non-events at every cut-off; the dashed line is chance."),
-        (calibration_plot(assessment["calibration"]),
+        ("Calibration", calibration_plot(assessment["calibration"]),
          "Observed event rate per score group against the mean predicted probability, with 95% Wilson "
          "intervals; a calibrated model stays on the dashed diagonal."),
-        (gains_plot(assessment["gains"]),
+        ("Cumulative gains", gains_plot(assessment["gains"]),
          "Share of all events found when taking the highest-scored rows first; the bars are the score groups."),
     ]
-    figures = "".join(f"<figure>{svg}<figcaption>{caption}</figcaption></figure>" for svg, caption in charts)
+    figures = "".join(f"<figure><h3>{name}</h3>{svg}<figcaption>{caption}</figcaption></figure>"
+                      for name, svg, caption in charts)
     return (f"<section><h2>Assessment on scored rows</h2>{_metrics_table(assessment['metrics'])}</section>"
             f"<section><h2>Discrimination and calibration</h2><div class=\"charts\">{figures}</div></section>")
 

@@ -85,7 +85,11 @@ def roc_plot(curve: pa.Table, auc: float | None) -> str:
     chart = Chart.make((0, 1), (0, 1), title, "false positive rate (1 - specificity)",
                        "true positive rate (recall)", "roc")
     chart.segment((0, 0), (1, 1), "chance")
-    chart.polyline(points, "curve")
+    if len(points) < 2:
+        chart.raw(f'<text class="aliased-note" x="{num(chart.x(0.5))}" y="{num(chart.y(0.5))}" '
+                  'text-anchor="middle">undefined: the rows hold only one class</text>')
+    else:
+        chart.polyline(points, "curve")
     if auc is not None:
         chart.raw(f'<text class="badge" x="{num(chart.x(0.96))}" y="{num(chart.y(0.06))}" text-anchor="end">'
                   f"AUC {auc:.3f}</text>")

@@ -140,6 +140,20 @@ def test_penalised_estimates_have_no_interval(spector):
     text = " ".join(" ".join(parse(page).text).split())
     assert text.count("penalised fit: no standard error") == 4
     assert page.count('class="estimate penalised"') == 3 and 'class="interval"' not in page
+    assert "Penalised estimates carry no Wald standard error" in text
+
+
+def test_single_class_rows_say_the_curve_is_undefined(spector, fitted):
+    model, _ = fitted
+    spector.execute("CREATE TABLE spector_failed AS SELECT * FROM spector WHERE GRADE = 0")
+    spector.execute("ALTER TABLE spector RENAME TO spector_all")
+    spector.execute("ALTER TABLE spector_failed RENAME TO spector")
+    assessment = scored_assessment(spector, model)
+    page = render_report(model, assessment)
+    text = " ".join(" ".join(parse(page).text).split())
+    assert "undefined: the rows hold only one class" in text and "AUC (area under the ROC curve) \u2013 undefined" in text
+    roc = page[page.index('<svg class="chart roc"'):]
+    assert '<polyline class="curve"' not in roc[: roc.index("</svg>")]
 
 
 def test_absurd_odds_ratios_are_cut_off_at_the_axis_edge(spector):
