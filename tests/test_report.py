@@ -266,3 +266,30 @@ def test_screenshot_step(fitted, tmp_path):
     assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 20_000
     width, height = int.from_bytes(data[16:20], "big"), int.from_bytes(data[20:24], "big")
     assert (width, height) == (900, 1200)
+
+
+def test_job_sentence_names_a_text_event_and_grouped_trials(spector):
+    spector.execute("CREATE TABLE spector_text AS SELECT *, CASE WHEN GRADE = 1 THEN 'up' ELSE 'same' END AS change "
+                    "FROM spector")
+    model = dbfit.fit(spector, "change ~ GPA + PSI", "spector_text", positive="up", progress=False)
+    text = " ".join(" ".join(parse(render_report(model)).text).split())
+    assert "estimates the probability that change is up from 2 terms, fitted on 32 rows of spector_text" in text
+    spector.execute("CREATE TABLE spector_grouped AS SELECT PSI, sum(GRADE) AS improved, count(*) AS students "
+                    "FROM spector GROUP BY PSI")
+    grouped = dbfit.fit(spector, "improved ~ PSI", "spector_grouped", trials="students", progress=False)
+    text = " ".join(" ".join(parse(render_report(grouped)).text).split())
+    assert "the share of successes improved out of students from 1 term, fitted on 2 rows" in text
+
+
+def test_axes_map_ticks_and_clamp():
+    from dbfit.svgplot import Axis
+
+    linear = Axis(0.0, 1.0, 50.0, 450.0)
+    assert linear(0.0) == 50.0 and linear(1.0) == 450.0 and linear(0.25) == pytest.approx(150.0)
+    assert linear(-3.0) == 50.0 and linear(7.0) == 450.0  # clamped to the frame
+    assert linear.ticks() == pytest.approx([0.0, 0.2, 0.4, 0.6, 0.8, 1.0])
+    log = Axis(0.01, 100.0, 0.0, 400.0, log=True)
+    assert log(1.0) == pytest.approx(200.0) and log(0.1) == pytest.approx(100.0)
+    assert log(float("inf")) == 400.0 and log(0.0) == 0.0
+    assert log.ticks() == pytest.approx([0.01, 0.1, 1.0, 10.0, 100.0])
+    assert Axis(0.5, 20.0, 0.0, 1.0, log=True).ticks() == pytest.approx([0.5, 1, 2, 5, 10, 20])
