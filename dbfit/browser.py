@@ -19,6 +19,7 @@ QUIET_SWITCHES = (
     "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
     "--disable-background-networking", "--disable-component-update", "--disable-sync",
     "--disable-default-apps", "--disable-extensions", "--hide-scrollbars",
+    "--host-resolver-rules=MAP * ~NOTFOUND",  # no host name resolves: a page that reaches out fails visibly
 )
 
 

@@ -190,6 +190,7 @@ window.addEventListener('error', e => window.dbfitErrors.push(String(e.message |
 const dbfitConsoleError = console.error;
 console.error = (...a) => { window.dbfitErrors.push(a.join(' ')); dbfitConsoleError(...a); };</script>"""
 PROBE_TAIL = """<pre id="dbfit-probe"></pre><script>
+window.addEventListener('load', () => {
 const out = {errors: window.dbfitErrors, charts: {}};
 for (const svg of document.querySelectorAll('svg.chart')) {
   const name = [...svg.classList].find(c => c !== 'chart');
@@ -204,6 +205,7 @@ for (const svg of document.querySelectorAll('svg.chart')) {
   };
 }
 document.getElementById('dbfit-probe').textContent = JSON.stringify(out);
+});
 </script>"""
 
 
@@ -245,15 +247,18 @@ def test_page_loads_in_chromium_with_non_empty_plots(fitted, tmp_path):
 
 @needs_chromium
 def test_the_probe_sees_console_errors_and_empty_geometry(fitted, tmp_path):
-    # Negative control: a broken SVG attribute is reported on the console, and an empty curve measures 0 x 0.
+    # Negative control: broken SVG attributes reach the console, an external image fails to load (no host name
+    # resolves), and an empty curve measures 0 x 0.
     model, assessment = fitted
     page = render_report(model, assessment)
     broken = re.sub(r'(<polyline class="curve") points="[^"]*"', r'\1 points="x,y"', page, count=1)
     path = tmp_path / "broken.html"
-    path.write_text(broken.replace('<line class="no-effect"', '<line class="no-effect" x1="oops"', 1),
+    broken = broken.replace('<line class="no-effect"', '<line class="no-effect" x1="oops"', 1)
+    path.write_text(broken.replace("</main>", '<img src="http://assets.example.com/logo.png"></main>', 1),
                     encoding="utf-8")
     measures, console = probe(path, tmp_path)
-    assert console and any("attribute" in line for line in console)
+    assert any("attribute x1" in line for line in console) and any("attribute points" in line for line in console)
+    assert any("logo.png" in error for error in measures["errors"])  # the external image did not load
     assert measures["charts"]["roc"]["curves"][0][2:] == [0, 0]
 
 
