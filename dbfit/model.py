@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
+from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -102,6 +103,12 @@ class Model:
             lines.append("  warnings")
             lines += [f"  ! {w}" for w in self.warnings]
         return "\n".join(lines)
+
+    def report(self, path: str | Path, assessment: dict[str, pa.Table] | None = None) -> Path:
+        """Write a standalone HTML report of the fit (and of ``assessment``, see ``dbfit.report``) to ``path``."""
+        from dbfit.report import write_report
+
+        return write_report(self, path, assessment)
 
     def __repr__(self) -> str:
         return f"<dbfit.Model {self.formula!r}: {self.stats['n_used']} rows, deviance {self.stats['deviance']:.6g}>"
