@@ -130,7 +130,7 @@ class Design:
             parts.append(sb.div(sb.paren(value), sb.number(column.scale)) if column.scale != 1.0 else sb.paren(value))
         for index, level in column.indicators:
             factor = self.factors[index]
-            parts.append(sb.as_double(exp.EQ(this=sb.column(factor.alias), expression=factor.level_literal(level))))
+            parts.append(sb.truth_as_double(exp.EQ(this=sb.column(factor.alias), expression=factor.level_literal(level))))
         return sb.mul(*parts) if parts else exp.Literal.number(1)
 
     def weight_expression(self) -> exp.Expression:
@@ -209,9 +209,9 @@ def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
         literal = exp.Boolean(this=positive) if isinstance(positive, bool) else (
             sb.number(positive) if isinstance(positive, (int, float)) else exp.Literal.string(str(positive))
         )
-        design.target = sb.as_double(exp.EQ(this=sb.paren(design.target), expression=literal))
+        design.target = sb.truth_as_double(exp.EQ(this=sb.paren(design.target), expression=literal))
     elif target_type.upper() == "BOOLEAN":
-        design.target = sb.as_double(design.target)
+        design.target = sb.truth_as_double(design.target)
     elif NUMERIC_TYPE.match(target_type):
         design.target = sb.as_double(design.target)
     else:

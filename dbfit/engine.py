@@ -19,6 +19,7 @@ class DuckDBEngine:
     """Runs sqlglot trees on a DuckDB connection and counts the queries that scan the data."""
 
     dialect = "duckdb"
+    parameters = True  # coefficients may be bound as ? parameters
 
     def __init__(self, connection: duckdb.DuckDBPyConnection) -> None:
         self.connection = connection
@@ -62,6 +63,26 @@ class DuckDBEngine:
 
 
 _MISSING_COLUMN = re.compile(r'Referenced column "?([^"\s]+)"? not found', re.IGNORECASE)
+
+
+def engine_for(connection: Any) -> Any:
+    """The engine for a DuckDB connection, a psycopg connection or a SparkSession (or an engine, as given)."""
+    if hasattr(connection, "fetch") and hasattr(connection, "dialect"):
+        return connection
+    if isinstance(connection, duckdb.DuckDBPyConnection):
+        return DuckDBEngine(connection)
+    module = type(connection).__module__
+    if module.startswith("psycopg"):
+        from dbfit.postgres import PostgresEngine
+
+        return PostgresEngine(connection)
+    if module.startswith("pyspark"):
+        from dbfit.spark import SparkEngine
+
+        return SparkEngine(connection)
+    raise DbfitError(
+        f"cannot fit on a {type(connection).__name__}: give a DuckDB connection, a psycopg connection or a SparkSession"
+    )
 
 
 def translate_error(err: duckdb.Error) -> DbfitError:

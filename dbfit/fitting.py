@@ -19,7 +19,7 @@ from dbfit import inference, penalized, priorcorrection
 from dbfit import robust as robust_errors
 from dbfit.blocks import BlockedStatisticsPass, BlockInformation, blocked_factor, dense_first
 from dbfit.design import Design, build_design
-from dbfit.engine import DuckDBEngine
+from dbfit.engine import DuckDBEngine, engine_for
 from dbfit.errors import FitError
 from dbfit.formula import parse_formula
 from dbfit.irls import IterationReport, NewtonResult, fit_newton, refine_with_fixed_information
@@ -110,8 +110,13 @@ def fit(
     penalty_request = penalized.check_request(shrinkage, l1_share, folds, split_key)
     if penalty_request is not None and (firth or robust_kind is not None):
         raise FitError("shrinkage cannot be combined with firth=True or robust standard errors")
-    engine = DuckDBEngine(con)
-    engine.live_progress = progress is not False and not callable(progress) and sys.stderr.isatty()
+    engine = engine_for(con)
+    if engine.dialect != "duckdb":
+        if trials is not None or by is not None or not special_plain(firth, shrinkage, robust, population_rate):
+            raise FitError(f"on {engine.dialect}, dbfit fits plain models (weights and offset allowed); trials, by, "
+                           "firth, shrinkage, robust and population_rate need DuckDB for now")
+    engine.live_progress = (engine.dialect == "duckdb" and progress is not False and not callable(progress)
+                            and sys.stderr.isatty())
     if by is not None and (firth or robust_kind is not None or penalty_request is not None or population_rate):
         raise FitError("by= cannot yet be combined with firth, robust, shrinkage or population_rate")
     special = FitVariants(robust_kind, cluster, firth, population_rate, penalty_request)
@@ -121,6 +126,10 @@ def fit(
         with progress_settings(con):
             return _fit(engine, formula, source, **arguments)
     return _fit(engine, formula, source, **arguments)
+
+
+def special_plain(firth: bool, shrinkage: Any, robust: Any, population_rate: Any) -> bool:
+    return not firth and shrinkage is None and robust is None and population_rate is None
 
 
 @dataclass(frozen=True)
@@ -180,7 +189,7 @@ def _fit(
         return fit_segments(engine, design, fitted, constant, max_iter=max_iter, tol=tol, reporter=reporter,
                             assemble=assemble_model, formula=formula, source=source, options=options)
 
-    factor = blocked_factor(design)
+    factor = blocked_factor(design) if engine.parameters else None
     if factor is not None and not (special.plain and special.robust_kind is None):
         raise FitError(
             f"'{design.factors[factor].text}' has {len(design.factors[factor].levels)} levels: firth, shrinkage and "
@@ -195,7 +204,7 @@ def _fit(
         beta_start = start_values(design, start, fitted)
     else:
         full_pass = StatisticsPass(engine, design)
-        if start is None and design.rows_used >= SAMPLE_START_ROWS and special.plain:
+        if start is None and design.rows_used >= SAMPLE_START_ROWS and special.plain and engine.dialect == "duckdb":
             beta_start, start_deviance = _sample_start(engine, design, fitted, default_start, max_iter, tol, reporter)
         else:
             beta_start = start_values(design, start, fitted)

@@ -25,6 +25,12 @@ def as_double(node: exp.Expression) -> exp.Expression:
     return exp.Cast(this=node, to=exp.DataType.build("DOUBLE"))
 
 
+def truth_as_double(condition: exp.Expression) -> exp.Expression:
+    """1.0 where ``condition`` holds, 0.0 where it does not, NULL where it is NULL (portable: no boolean cast)."""
+    return exp.Case(ifs=[exp.If(this=condition.copy(), true=as_double(exp.Literal.number(1))),
+                         exp.If(this=exp.Not(this=paren(condition.copy())), true=as_double(exp.Literal.number(0)))])
+
+
 def paren(node: exp.Expression) -> exp.Expression:
     return exp.Paren(this=node)
 

@@ -147,6 +147,10 @@ class StatisticsPass:
 
     def run(self, columns: tuple[int, ...], intercept: bool, beta: np.ndarray, score_only: bool = False) -> PassResult:
         """One scan at ``beta`` over ``[intercept] + columns`` (indices into the design's columns)."""
+        if not self.engine.parameters:
+            query = statistics_query(self.design, list(columns), intercept, np.asarray(beta), self.rows, score_only)
+            row = self.engine.fetch(query, scan=self.rows is None)[0]
+            return unpack(row, len(columns) + (1 if intercept else 0), score_only)
         key = (columns, intercept, score_only)
         if key not in self._sql:
             query = statistics_query(self.design, list(columns), intercept, None, self.rows, score_only)

