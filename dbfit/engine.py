@@ -11,23 +11,24 @@ from typing import Any
 import duckdb
 from sqlglot import exp
 
+from dbfit.dialects import adapt
 from dbfit.errors import DbfitError, FormulaError, SourceError
 from dbfit.progress import watch_scan
 
 
-class DuckDBEngine:
-    """Runs sqlglot trees on a DuckDB connection and counts the queries that scan the data."""
+class Engine:
+    """What every engine shares: scan counting around ``_run``, which a subclass supplies with ``sql``."""
 
-    dialect = "duckdb"
-    parameters = True  # coefficients may be bound as ? parameters
+    dialect = ""
+    parameters = False
+    live_progress = False
 
-    def __init__(self, connection: duckdb.DuckDBPyConnection) -> None:
+    def __init__(self, connection: Any) -> None:
         self.connection = connection
         self.scans = 0
-        self.live_progress = False  # show each scan's progress on the terminal
 
     def sql(self, query: exp.Expression) -> str:
-        return query.sql(dialect=self.dialect)
+        return adapt(query, self.dialect).sql(dialect=self.dialect)
 
     def fetch(self, query: exp.Expression, *, scan: bool = True) -> list[tuple[Any, ...]]:
         """Run ``query`` and return all its rows; ``scan`` says whether it reads the whole source."""
@@ -36,16 +37,28 @@ class DuckDBEngine:
         return self._run(self.sql(query))
 
     def fetch_sql(self, sql: str, parameters: list[Any], *, scan: bool = True) -> list[tuple[Any, ...]]:
-        """Run SQL that dbfit generated from a tree, with ``?`` parameters bound to ``parameters``."""
+        """Run SQL that dbfit generated from a tree, with ``?`` parameters where the engine takes them."""
+        if parameters and not self.parameters:
+            raise DbfitError(f"{self.dialect} queries from dbfit carry their numbers as literals, not parameters")
         if scan:
             self.scans += 1
-        return self._run(sql, parameters)
+        return self._run(sql, parameters) if parameters else self._run(sql)
 
     def execute(self, *, sql: str, scan: bool) -> None:
         """Run a statement dbfit wrote itself from trees and its own names: temporary tables of samples."""
         if scan:
             self.scans += 1
         self._run(sql)
+
+    def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
+        raise NotImplementedError
+
+
+class DuckDBEngine(Engine):
+    """Runs sqlglot trees on a DuckDB connection and counts the queries that scan the data."""
+
+    dialect = "duckdb"
+    parameters = True  # coefficients may be bound as ? parameters
 
     def describe(self, query: exp.Expression) -> list[tuple[str, str]]:
         """Column names and SQL types of ``query`` without reading its rows."""

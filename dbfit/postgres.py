@@ -6,7 +6,7 @@ from typing import Any
 
 from sqlglot import exp
 
-from dbfit.dialects import adapt
+from dbfit.engine import Engine
 from dbfit.errors import DbfitError, FormulaError, SourceError
 
 # PostgreSQL type OIDs (pg_type.dat) to the type names the design understands.
@@ -14,37 +14,13 @@ TYPE_NAMES = {16: "BOOLEAN", 20: "BIGINT", 21: "SMALLINT", 23: "INTEGER", 700: "
               25: "VARCHAR", 1043: "VARCHAR", 1042: "VARCHAR", 19: "VARCHAR"}
 
 
-class PostgresEngine:
+class PostgresEngine(Engine):
     """Runs dbfit's query trees on a psycopg connection, written in PostgreSQL's dialect."""
 
     dialect = "postgres"
-    parameters = False  # coefficients are written into each query as exact literals
-    live_progress = False
-
     def __init__(self, connection: Any) -> None:
-        self.connection = connection
-        self.scans = 0
+        super().__init__(connection)
         self._run("SET jit = off")  # JIT compilation of a wide aggregate costs more than the scan it speeds up
-
-    def sql(self, query: exp.Expression) -> str:
-        return adapt(query, self.dialect).sql(dialect=self.dialect)
-
-    def fetch(self, query: exp.Expression, *, scan: bool = True) -> list[tuple[Any, ...]]:
-        if scan:
-            self.scans += 1
-        return self._run(self.sql(query))
-
-    def fetch_sql(self, sql: str, parameters: list[Any], *, scan: bool = True) -> list[tuple[Any, ...]]:
-        if parameters:
-            raise DbfitError("PostgreSQL queries from dbfit carry their numbers as literals, not parameters")
-        if scan:
-            self.scans += 1
-        return self._run(sql)
-
-    def execute(self, *, sql: str, scan: bool) -> None:
-        if scan:
-            self.scans += 1
-        self._run(sql)
 
     def describe(self, query: exp.Expression) -> list[tuple[str, str]]:
         probe = exp.select("*").from_(query.subquery("dbfit_probe")).limit(0)
@@ -52,7 +28,7 @@ class PostgresEngine:
             self._execute(cursor, self.sql(probe))
             return [(column.name, TYPE_NAMES.get(column.type_code, f"OID{column.type_code}")) for column in cursor.description]
 
-    def _run(self, sql: str) -> list[tuple[Any, ...]]:
+    def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
         with self.connection.cursor() as cursor:
             self._execute(cursor, sql)
             return cursor.fetchall() if cursor.description is not None else []

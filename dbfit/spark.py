@@ -7,49 +7,23 @@ from typing import Any
 
 from sqlglot import exp
 
-from dbfit.dialects import adapt
+from dbfit.engine import Engine
 from dbfit.errors import DbfitError, FormulaError, SourceError
 
 TYPE_NAMES = {"boolean": "BOOLEAN", "tinyint": "TINYINT", "smallint": "SMALLINT", "int": "INTEGER", "bigint": "BIGINT",
               "float": "FLOAT", "double": "DOUBLE", "string": "VARCHAR"}
 
 
-class SparkEngine:
+class SparkEngine(Engine):
     """Runs dbfit's query trees as Spark SQL; only the aggregates' single rows come back to the driver."""
 
     dialect = "spark"
-    parameters = False
-    live_progress = False
-
-    def __init__(self, session: Any) -> None:
-        self.connection = session
-        self.scans = 0
-
-    def sql(self, query: exp.Expression) -> str:
-        return adapt(query, self.dialect).sql(dialect=self.dialect)
-
-    def fetch(self, query: exp.Expression, *, scan: bool = True) -> list[tuple[Any, ...]]:
-        if scan:
-            self.scans += 1
-        return self._run(self.sql(query))
-
-    def fetch_sql(self, sql: str, parameters: list[Any], *, scan: bool = True) -> list[tuple[Any, ...]]:
-        if parameters:
-            raise DbfitError("Spark queries from dbfit carry their numbers as literals, not parameters")
-        if scan:
-            self.scans += 1
-        return self._run(sql)
-
-    def execute(self, *, sql: str, scan: bool) -> None:
-        if scan:
-            self.scans += 1
-        self._run(sql)
 
     def describe(self, query: exp.Expression) -> list[tuple[str, str]]:
         frame = self._frame(self.sql(query))
         return [(field.name, _type_name(field.dataType.simpleString())) for field in frame.schema.fields]
 
-    def _run(self, sql: str) -> list[tuple[Any, ...]]:
+    def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
         return [tuple(row) for row in self._frame(sql).collect()]
 
     def _frame(self, sql: str) -> Any:
