@@ -139,10 +139,10 @@ def _worker(task: dict[str, Any]) -> dict[str, Any]:
 def _measure(task: dict[str, Any]) -> dict[str, Any] | None:
     done = subprocess.run([sys.executable, "-m", "dbfit.bench", json.dumps(task)], capture_output=True, text=True,
                           check=False)
-    marked = [line for line in done.stdout.splitlines() if line.startswith(RESULT_MARK)]
+    marked = [line[line.index(RESULT_MARK):] for line in done.stdout.splitlines() if RESULT_MARK in line]
     if done.returncode != 0 or not marked:
-        tail = (done.stderr.strip().splitlines() or ["no output"])[-1]
-        print(f"    could not run {task['kind']}: {tail}")
+        tail = (done.stderr.strip().splitlines() or done.stdout.strip().splitlines() or ["no output"])[-1]
+        print(f"    could not run {task['kind']} (exit status {done.returncode}): {tail}")
         return None
     return json.loads(marked[-1][len(RESULT_MARK):])
 

@@ -122,8 +122,9 @@ def fit(
     special = FitVariants(robust_kind, cluster, firth, population_rate, penalty_request)
     arguments = dict(weights=weights, offset=offset, trials=trials, reference=reference, positive=positive,
                      max_iter=max_iter, tol=tol, start=start, progress=progress, by=by, special=special)
-    if engine.live_progress:
-        with progress_settings(con):
+    if engine.dialect == "duckdb":
+        # dbfit reports progress itself (or is quiet): DuckDB's own printed bar stays off during the fit.
+        with progress_settings(con, track=engine.live_progress):
             return _fit(engine, formula, source, **arguments)
     return _fit(engine, formula, source, **arguments)
 

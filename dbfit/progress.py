@@ -44,11 +44,11 @@ def watch_scan(connection: duckdb.DuckDBPyConnection, label: str, stream: TextIO
 
 
 @contextmanager
-def progress_settings(connection: duckdb.DuckDBPyConnection) -> Iterator[None]:
-    """Turn on DuckDB's progress tracking (without its own printed bar) and restore the settings after."""
+def progress_settings(connection: duckdb.DuckDBPyConnection, *, track: bool = True) -> Iterator[None]:
+    """Turn off DuckDB's own printed bar (and, with ``track``, on its progress tracking); restore them after."""
     names = ("enable_progress_bar", "enable_progress_bar_print")
     before = {name: connection.execute(f"SELECT current_setting('{name}')").fetchall()[0][0] for name in names}
-    connection.execute("SET enable_progress_bar = true")
+    connection.execute(f"SET enable_progress_bar = {'true' if track else 'false'}")
     connection.execute("SET enable_progress_bar_print = false")
     try:
         yield
