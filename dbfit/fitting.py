@@ -31,7 +31,7 @@ from dbfit.statsquery import PassResult, StatisticsPass
 
 log = logging.getLogger("dbfit")
 
-SAMPLE_START_ROWS = 1_000_000  # from this many rows used, start from a fit on a sample
+SAMPLE_START_ROWS = 500_000  # from this many rows used, start from a fit on a sample
 SAMPLE_ROWS = 100_000
 SAMPLE_SEED = 20261201
 SAMPLE_TOL = 1e-4  # the sample's estimates are within sampling error of the answer anyway
