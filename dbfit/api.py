@@ -93,7 +93,7 @@ fit.__doc__ = (fitting.fit.__doc__ or "") + "\n    name : store the fitted model
 
 
 def load(con: duckdb.DuckDBPyConnection, name: str, version: int | None = None) -> Model:
-    """The stored model ``name`` at ``version`` (default: the latest)."""
+    """The stored model ``name`` at ``version`` (default: the current, promoted one)."""
     return store.load_model(con, name, version)
 
 
