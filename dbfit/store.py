@@ -72,6 +72,8 @@ def save_model(con: duckdb.DuckDBPyConnection, model: Model, name: str, *, promo
     ``extra`` adds rows to per-version tables (``fingerprints``, ``drift_bins``) in the same transaction.
     """
     name = model_name(name)
+    if extra is None:
+        extra = save_time_rows(con, model)
     preamble = ensure_schema_statements(con)
     for attempt in range(WRITE_ATTEMPTS):
         version = None
@@ -90,6 +92,20 @@ def save_model(con: duckdb.DuckDBPyConnection, model: Model, name: str, *, promo
             time.sleep(random.uniform(0.001, 0.02) * (attempt + 1))
     model.name, model.version = name, version
     return version
+
+
+def save_time_rows(con: duckdb.DuckDBPyConnection, model: Model) -> Extra:
+    """The fingerprint of the source the user gave and the drift snapshot of the training rows, computed before the
+    version's transaction; none when the source cannot be read here (a model moved in as JSON)."""
+    from dbfit.drift import training_snapshot
+    from dbfit.errors import DbfitError
+    from dbfit.fingerprint import fingerprint, origin_source
+
+    try:
+        return {"fingerprints": {k: [v] for k, v in fingerprint(con, origin_source(model.options, model.source)).items()},
+                "drift_bins": training_snapshot(con, model)}
+    except DbfitError:
+        return {}
 
 
 def load_model(con: duckdb.DuckDBPyConnection, name: str, version: int | None = None) -> Model:
