@@ -38,3 +38,7 @@ class GateRefusedError(DbfitError):
     def __init__(self, message: str, result: dict | None = None) -> None:
         super().__init__(message)
         self.result = result or {}
+
+
+class UsageError(DbfitError):
+    """A command or spec file lacks a setting it needs (the command line exits with code 2, as for bad usage)."""
