@@ -64,7 +64,7 @@ def add_model_commands(command: Command) -> None:
 
     publish = base("publish", "create or replace a scoring view of a model")
     publish.add_argument("--view", required=True, help="view name ([schema.]name)")
-    publish.add_argument("--source", help="rows to score (default: the training source)")
+    publish.add_argument("--source", help="rows to score (default: the source it was fitted from, all rows)")
     publish.add_argument("--version", type=int, help="pin this version (default: the current one)")
     publish.add_argument("--live", action="store_true", help="read the current version's estimates at query time")
 
@@ -123,7 +123,8 @@ def _run(args: argparse.Namespace) -> tuple[dict[str, Any], int]:
         if args.command == "decisions":
             return {"model": args.name, "decisions": dbfit.decisions(con, args.name)}, OK
         if args.command == "publish":
-            made = dbfit.publish(con, args.name, args.view, args.source, version=args.version, live=args.live)
+            made = dbfit.publish(con, args.name, args.view, args.source or _fitted_source(con, args.name, args.version),
+                                 version=args.version, live=args.live)
             return made, OK
         if args.command == "assess":
             table = dbfit.assess(con, args.name, args.source, threshold=args.threshold, version=args.version)
@@ -172,6 +173,15 @@ def _fit(args: argparse.Namespace) -> dict[str, Any]:
                 "coefficients": model.coefficients.select(["term", "estimate", "std_error"]).to_pylist()}
     finally:
         con.close()
+
+
+def _fitted_source(con: duckdb.DuckDBPyConnection, name: str, version: int | None) -> str:
+    """The source the model was fitted from, whole (a held-out fit's model source is its training part)."""
+    import dbfit
+    from dbfit.fingerprint import origin_source
+
+    model = dbfit.load(con, name, version)
+    return origin_source(model.options, model.source)
 
 
 def _gates(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[str, Any]:
