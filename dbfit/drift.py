@@ -4,7 +4,7 @@ At save time the training rows give decile edges (``quantile_cont`` in the datab
 (``score``) and of each numeric predictor, with the share of rows in each bin (one grouped count), and the
 share of each level of each categorical. ``psi_table`` bins a new source on the same edges and levels and
 reports, per variable, PSI = sum over bins of (a - e) * ln(a / e), a and e the new and training shares
-(Siddiqi 2006, "Credit Risk Scorecards", ch. 8). Shares below FLOOR count as FLOOR, so an empty bin gives a
+(Siddiqi 2006, "Credit Risk Scorecards", Wiley). Shares below FLOOR count as FLOOR, so an empty bin gives a
 finite term (common practice). Bins are (-inf, e1], (e1, e2], ..., (e9, inf) over the rows where the variable
 is not NULL; levels unseen in training pool into one bin with training share 0 (then FLOOR). Row weights are
 not used: shares are of rows.

@@ -1,7 +1,7 @@
 """Drift: the training snapshot and the population stability index.
 
 Data: the invented courier scenario of dbfit.demo. The PSI reference is an independent computation from the
-definition, PSI = sum over bins (a - e) ln(a / e) (Siddiqi 2006, "Credit Risk Scorecards", ch. 8), in numpy
+definition, PSI = sum over bins (a - e) ln(a / e) (Siddiqi 2006, "Credit Risk Scorecards", Wiley), in numpy
 on rows fetched from the database and binned on the stored edges; the reading bands are common practice.
 """
 
