@@ -220,9 +220,20 @@ def drop_model(con: duckdb.DuckDBPyConnection, name: str, version: int | None = 
 
 def record_decision(con: duckdb.DuckDBPyConnection, name: str, candidate: int | None, current: int | None,
                     decision: str, reason: str, figures: dict[str, Any], *, promote: bool) -> None:
-    """One audit row in ``decisions`` and, when ``promote``, the candidate made current: one transaction."""
+    """One audit row in ``decisions`` and, when ``promote``, the candidate made current: one transaction.
+
+    A promotion checks in the same transaction that ``current`` is still the current version: when another
+    refit promoted meanwhile, nothing is written and a StoreConflictError names the version now current.
+    """
     now = datetime.now(timezone.utc).replace(tzinfo=None)
     with _transaction(con, ensure_schema_statements(con)) as writer:
+        if promote:
+            rows = _fetch(writer, f"SELECT version FROM {SCHEMA}.current_versions WHERE model = ?", [name])
+            now_current = int(rows[0][0]) if rows else (stored_versions(writer, name) or [None])[-1]
+            if rows and now_current != current:
+                raise StoreConflictError(
+                    f"model '{name}': version {now_current} became current while candidate {candidate} was checked "
+                    f"against version {current}; candidate {candidate} stays stored, not current (run the refit again)")
         _run(writer, [f"INSERT INTO {SCHEMA}.decisions VALUES (?, ?, ?, ?, ?, ?, ?)"],
              [now, name, candidate, current, decision, reason, json.dumps(figures, default=str)])
         if promote and candidate is not None:

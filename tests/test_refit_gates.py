@@ -10,6 +10,7 @@ import duckdb
 import pytest
 
 import dbfit
+from dbfit import store
 from dbfit.demo import FORMULA, REFERENCE, build_deliveries
 
 HOLDOUT = dbfit.Holdout("delivery_id", 0.25)
@@ -129,3 +130,14 @@ def test_a_store_of_an_older_dbfit_gets_the_new_tables(tmp_path):
     plain = duckdb.connect(path, read_only=True)
     assert plain.execute("SELECT model, version FROM dbfit_store.current_versions").fetchall() == [("late", 2)]
     plain.close()
+
+
+def test_a_promotion_checked_against_a_stale_current_version_is_refused_whole(database):
+    con = database
+    _append(con)
+    dbfit.refit(con, "late")  # version 2 is current now
+    dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, progress=False).save(con, "late", promote=False)
+    audited = len(dbfit.decisions(con, "late"))
+    with pytest.raises(dbfit.StoreConflictError, match="version 2 became current"):
+        store.record_decision(con, "late", 3, 1, "promoted", "passed every gate", {}, promote=True)
+    assert dbfit.load(con, "late").version == 2 and len(dbfit.decisions(con, "late")) == audited

@@ -177,3 +177,22 @@ def test_makefile_nightly_target_refits_and_fails_loudly(tmp_path, database):
     done = subprocess.run(["make", "-s", "-C", str(ROOT), "nightly", *settings], capture_output=True, text=True,
                           timeout=600, env={**os.environ, "PYTHONPATH": str(ROOT)})
     assert done.returncode != 0 and "refused" in done.stderr
+
+
+def test_two_refits_started_at_once_leave_one_promotion_and_one_clear_error(database):
+    con = dbfit.connect(str(database))
+    dbfit.fit(con, FORMULA, "deliveries", name="late", split=dbfit.Holdout("delivery_id", 0.25), progress=False)
+    con.execute("INSERT INTO deliveries SELECT * FROM all_deliveries WHERE delivery_id >= 15000").fetchall()
+    con.close()
+    environment = {**os.environ, "PYTHONPATH": str(ROOT)}
+    started = [subprocess.Popen([sys.executable, "-m", "dbfit.cli", "refit", "late", "--database", str(database)],
+                                stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=environment)
+               for _ in range(2)]
+    finished = [(p.wait(timeout=600), p.stderr.read()) for p in started]
+    assert sorted(code for code, _ in finished) == [0, 4], finished
+    assert "locked" in next(err for code, err in finished if code == 4)
+    con = duckdb.connect(str(database), read_only=True)
+    assert con.execute("SELECT version FROM dbfit_store.versions ORDER BY version").fetchall() == [(1,), (2,)]
+    assert con.execute("SELECT version FROM dbfit_store.current_versions").fetchall() == [(2,)]
+    assert con.execute("SELECT decision FROM dbfit_store.decisions").fetchall() == [("promoted",)]
+    con.close()
