@@ -22,7 +22,8 @@ from dbfit.model import Model
 from dbfit.names import model_name
 from dbfit.splits import Holdout
 
-REUSED_OPTIONS = ("weights", "offset", "trials", "reference", "positive", "max_iter", "tol", "firth")
+REUSED_OPTIONS = ("weights", "offset", "trials", "reference", "positive", "max_iter", "tol", "firth", "robust", "cluster",
+                  "population_rate", "shrinkage", "l1_share", "folds", "split_key")
 
 
 def refit(con: duckdb.DuckDBPyConnection, name: str, *, source: str | None = None, skip_unchanged: bool = False,

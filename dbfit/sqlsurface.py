@@ -31,7 +31,7 @@ COEFFICIENT_FIELDS = {"model": T("VARCHAR"), "version": T("INTEGER"), "term": T(
 VERSION_FIELDS = {
     "model": T("VARCHAR"), "version": T("INTEGER"), "created_at": T("TIMESTAMP"), "formula": T("VARCHAR"),
     "source": T("VARCHAR"), "source_rows": T("BIGINT"), "rows_used": T("BIGINT"), "deviance": T("DOUBLE"),
-    "aic": T("DOUBLE"), "converged": T("BOOLEAN"), "warnings_count": T("INTEGER"),
+    "aic": T("DOUBLE"), "converged": T("BOOLEAN"), "warnings_count": T("INTEGER"), "current": T("BOOLEAN"),
 }
 PUBLISHED_FIELDS = {"view": T("VARCHAR"), "model": T("VARCHAR"), "version": T("INTEGER"), "mode": T("VARCHAR")}
 DROPPED_FIELDS = {"model": T("VARCHAR"), "version": T("INTEGER")}

@@ -141,3 +141,18 @@ def test_a_promotion_checked_against_a_stale_current_version_is_refused_whole(da
     with pytest.raises(dbfit.StoreConflictError, match="version 2 became current"):
         store.record_decision(con, "late", 3, 1, "promoted", "passed every gate", {}, promote=True)
     assert dbfit.load(con, "late").version == 2 and len(dbfit.decisions(con, "late")) == audited
+
+
+def test_refit_keeps_the_options_of_the_current_version(tmp_path):
+    con = dbfit.connect(str(tmp_path / "options.duckdb"))
+    build_deliveries(con, 6000)
+    dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, name="late", robust="HC1", progress=False)
+    dbfit.fit(con, FORMULA, "deliveries", name="ridge", shrinkage=0.5, progress=False)
+    result = dbfit.refit(con, "late")
+    refitted = dbfit.load(con, "late")
+    assert result["decision"] == "promoted" and refitted.version == 2
+    assert (refitted.options["robust"], refitted.options["reference"]) == ("HC1", REFERENCE)
+    assert dbfit.refit(con, "ridge")["decision"] == "promoted" and dbfit.load(con, "ridge").options["shrinkage"] == 0.5
+    listed = con.execute("SELECT model, version, current FROM dbfit.models() ORDER BY model, version").fetchall()
+    assert listed == [("late", 1, False), ("late", 2, True), ("ridge", 1, False), ("ridge", 2, True)]
+    con.close()
