@@ -91,12 +91,22 @@ def _numeric_counts(engine: DuckDBEngine, scored: exp.Expression, variables: lis
     return counts
 
 
-def _level_counts(engine: DuckDBEngine, scored: exp.Expression, value: exp.Expression) -> dict[str, int]:
-    """Rows per level (as JSON text of the value) of one categorical, NULLs left out."""
-    level = sb.column("dbfit_level")
-    inner = exp.select(exp.alias_(value.copy(), "dbfit_level", quoted=True)).from_(scored.copy()).subquery("dbfit_levels")
-    query = exp.select(level, exp.Count(this=exp.Star())).from_(inner).where(exp.Not(this=exp.Is(this=level.copy(), expression=exp.Null()))).group_by(level.copy())
-    return {json.dumps(_plain(v)): int(n) for v, n in engine.fetch(query)}
+def _level_counts(engine: DuckDBEngine, scored: exp.Expression,
+                  variables: list[tuple[str, exp.Expression]]) -> dict[str, dict[str, int]]:
+    """One scan (GROUPING SETS): rows per level (as JSON text of the value) of each categorical, NULLs left out."""
+    if not variables:
+        return {}
+    aliases = [f"dbfit_level_{k}" for k in range(len(variables))]
+    inner = exp.select(*[exp.alias_(value.copy(), alias, quoted=True) for (_, value), alias in zip(variables, aliases)])
+    sets = exp.GroupingSets(expressions=[exp.Tuple(expressions=[sb.column(a)]) for a in aliases])
+    query = exp.select(*[sb.column(a) for a in aliases], exp.Count(this=exp.Star())).from_(
+        inner.from_(scored.copy()).subquery("dbfit_levels")).group_by(sets)
+    counts: dict[str, dict[str, int]] = {name: {} for name, _ in variables}
+    for row in engine.fetch(query):
+        present = [k for k in range(len(variables)) if row[k] is not None]
+        if len(present) == 1:  # a NULL level of one set shows as a row of NULLs: left out
+            counts[variables[present[0]][0]][json.dumps(_plain(row[present[0]]))] = int(row[-1])
+    return counts
 
 
 def _plain(value: Any) -> Any:
@@ -125,13 +135,11 @@ def training_snapshot(con: Any, model: Model) -> dict[str, list[Any]]:
             bounds = [None, *edges[name], None]
             for k, n in enumerate(counts[name]):
                 _append(rows, name, kind, k, bounds[k], bounds[k + 1], None, n, n / total)
-    for name, kind, value in variables:
-        if kind != "categorical":
-            continue
-        levels = _level_counts(engine, scored, value)
+    categorical = _level_counts(engine, scored, [(name, value) for name, kind, value in variables if kind == "categorical"])
+    for name, levels in categorical.items():
         total = sum(levels.values()) or 1
         for k, (level, n) in enumerate(sorted(levels.items())):
-            _append(rows, name, kind, k, None, None, level, n, n / total)
+            _append(rows, name, "categorical", k, None, None, level, n, n / total)
     return rows
 
 
@@ -160,11 +168,13 @@ def psi_table(con: Any, model: Model, source: str) -> pa.Table:
                if bins[0]["kind"] != "categorical" and name in expressions]
     edges = {name: [b["upper"] for b in by_variable[name][:-1]] for name, _ in numeric}
     counts = _numeric_counts(engine, scored, numeric, edges)
+    categorical = _level_counts(engine, scored, [(name, expressions[name][1]) for name, bins in by_variable.items()
+                                                 if bins[0]["kind"] == "categorical" and name in expressions])
     out: dict[str, list[Any]] = {k: [] for k in ("variable", "kind", "bins", "training_rows", "new_rows", "psi", "reading")}
     for name, bins in by_variable.items():
         expected = [b["share"] for b in bins]
         if bins[0]["kind"] == "categorical":
-            levels = _level_counts(engine, scored, expressions[name][1])
+            levels = categorical[name]
             known = [b["level"] for b in bins]
             new = [levels.get(level, 0) for level in known] + [sum(n for lv, n in levels.items() if lv not in known)]
             expected = expected + [0.0]
