@@ -114,8 +114,11 @@ def test_gate_refusal_exits_3_and_leaves_the_live_view_untouched(tmp_path, datab
     assert json.loads(audit[-1][5])["largest_shift"] > 6.0 and current == [(1,)]
     text = run("refit", "late", "--database", database)
     assert text.returncode == 3 and "decision: refused" in text.stdout
+    by_hand = run("promote", "late", "2", "--database", database, "--json")
+    assert by_hand.returncode == 3 and one_object(by_hand)["decision"] == "refused" and "not promoted" in by_hand.stderr
+    assert _live_scores(database) == before
     audit = one_object(run("decisions", "late", "--database", database, "--json"))["decisions"]
-    assert [a["decision"] for a in audit] == ["refused", "refused"]
+    assert [a["decision"] for a in audit] == ["refused", "refused", "refused"]
 
 
 def test_skip_unchanged_and_assess_drift_commands(tmp_path, database):
