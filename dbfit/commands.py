@@ -228,9 +228,10 @@ def _plain(value: Any) -> Any:
         return [_plain(v) for v in value]
     if isinstance(value, (datetime, date)):
         return value.isoformat()
-    if isinstance(value, float) or hasattr(value, "dtype"):
-        number = float(value)
-        return number if math.isfinite(number) else None
+    if hasattr(value, "item") and hasattr(value, "dtype"):  # a numpy scalar
+        value = value.item()
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
     return value
 
 
