@@ -1,11 +1,15 @@
 """dbfit: logistic regression fitted, checked and deployed inside the database."""
 
 from dbfit.connection import connect, install
-from dbfit.api import assess, assessment_tables, cross_validate, drop_model, fit, from_json, load, models, score
+from dbfit.api import (assess, assessment_tables, cross_validate, decisions, drop_model, fit, from_json, load, models,
+                       population_stability, score)
+from dbfit.gates import Gates, gates_of, set_gates
+from dbfit.refit import promote, refit
 from dbfit.comparison import comparison_table, likelihood_ratio_test
 from dbfit.splits import Holdout, KFold
 from dbfit.deploy import publish
-from dbfit.errors import DbfitError, FitError, FormulaError, SourceError, StoreConflictError, StoreError
+from dbfit.errors import (DbfitError, FitError, FormulaError, GateRefusedError, SourceError, StoreConflictError,
+                          StoreError)
 from dbfit.irls import IterationReport
 from dbfit.model import Model
 from dbfit.segments import SegmentedFit
@@ -18,6 +22,8 @@ __all__ = [
     "KFold",
     "FitError",
     "FormulaError",
+    "GateRefusedError",
+    "Gates",
     "IterationReport",
     "Model",
     "SegmentedFit",
@@ -29,16 +35,22 @@ __all__ = [
     "comparison_table",
     "connect",
     "cross_validate",
+    "decisions",
     "drop_model",
     "fit",
     "from_json",
+    "gates_of",
     "install",
     "likelihood_ratio_test",
     "load",
     "models",
+    "population_stability",
     "prior_corrected",
+    "promote",
     "publish",
+    "refit",
     "score",
+    "set_gates",
     "with_robust_errors",
 ]
 __version__ = "0.1.0"

@@ -93,7 +93,7 @@ fit.__doc__ = (fitting.fit.__doc__ or "") + "\n    name : store the fitted model
 
 
 def load(con: duckdb.DuckDBPyConnection, name: str, version: int | None = None) -> Model:
-    """The stored model ``name`` at ``version`` (default: the latest)."""
+    """The stored model ``name`` at ``version`` (default: the current, promoted one)."""
     return store.load_model(con, name, version)
 
 
@@ -124,3 +124,16 @@ def models(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:
 def drop_model(con: duckdb.DuckDBPyConnection, name: str, version: int | None = None) -> list[tuple[str, int]]:
     """Delete one version, or every version, of a stored model; returns what was deleted."""
     return store.drop_model(con, name, version)
+
+
+def population_stability(con: duckdb.DuckDBPyConnection, model: str | Model, source: str, *,
+                         version: int | None = None) -> pa.Table:
+    """PSI per variable between the stored training snapshot of ``model`` and ``source`` (see :mod:`dbfit.drift`)."""
+    from dbfit.drift import psi_table
+
+    return psi_table(con, deploy.resolve_model(con, model, version), source)
+
+
+def decisions(con: duckdb.DuckDBPyConnection, name: str | None = None) -> list[dict[str, Any]]:
+    """The promotion audit trail (time, model, candidate and current versions, decision, reason, figures)."""
+    return store.decision_rows(con, None if name is None else model_name(name))

@@ -1,23 +1,37 @@
-"""The ``dbfit`` command line."""
+"""The ``dbfit`` command line: the demo, the benchmark, SQL scripts, and the model commands for schedulers."""
 
 from __future__ import annotations
 
 import argparse
 import sys
 
-from dbfit.errors import DbfitError
+import duckdb
+
+from dbfit.errors import DbfitError, UsageError
+
+EXIT_CODES = """exit codes:
+  0  success
+  2  bad usage (unknown option, missing argument)
+  3  a promotion gate refused the candidate (the current version and its views are unchanged)
+  4  data or database error (any dbfit error: bad formula or source, unknown model, locked file, ...)"""
+OK, BAD_USAGE, REFUSED, DATA_ERROR = 0, 2, 3, 4
 
 
-def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="dbfit", description="Logistic regression inside the database.")
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="dbfit", description="Logistic regression inside the database.",
+                                     epilog=EXIT_CODES, formatter_class=argparse.RawDescriptionHelpFormatter)
     commands = parser.add_subparsers(dest="command", required=True)
 
-    demo = commands.add_parser("demo", help="build an invented courier scenario in DuckDB and fit it")
+    def command(name: str, text: str) -> argparse.ArgumentParser:
+        return commands.add_parser(name, help=text, description=text, epilog=EXIT_CODES,
+                                   formatter_class=argparse.RawDescriptionHelpFormatter)
+
+    demo = command("demo", "build an invented courier scenario in DuckDB and fit it")
     demo.add_argument("--database", default="dbfit_demo.duckdb", help="DuckDB file to create (default: %(default)s)")
     demo.add_argument("--rows", type=int, default=1_000_000, help="deliveries to generate (default: %(default)s)")
     demo.add_argument("--quiet", action="store_true", help="no per-pass progress lines")
 
-    bench = commands.add_parser("bench", help="measure dbfit against export+statsmodels and in-memory numpy")
+    bench = command("bench", "measure dbfit against export+statsmodels and in-memory numpy")
     bench.add_argument("--scenario", default="core", choices=["core", "levels", "segments", "outofcore", "all"],
                        help="what to measure (default: %(default)s)")
     bench.add_argument("--rows", type=int, default=None, help="rows (default: the scenario's own size)")
@@ -27,11 +41,18 @@ def main(argv: list[str] | None = None) -> int:
     bench.add_argument("--memory-limit", default="2GB", help="DuckDB memory_limit in 'outofcore'")
     bench.add_argument("--keep", default=None, help="core: reuse or keep the data in this DuckDB file")
 
-    script = commands.add_parser("sql", help="run a .sql script with the dbfit. SQL functions installed")
+    script = command("sql", "run a .sql script with the dbfit. SQL functions installed")
     script.add_argument("file", help="the script, e.g. sql_examples/01_fit.sql")
     script.add_argument("--database", default="dbfit_demo.duckdb", help="DuckDB file (default: %(default)s)")
 
-    args = parser.parse_args(argv)
+    from dbfit.commands import add_model_commands
+
+    add_model_commands(command)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
     try:
         if args.command == "demo":
             from dbfit.demo import run_demo
@@ -43,10 +64,17 @@ def main(argv: list[str] | None = None) -> int:
             run_bench(args.scenario, args.rows, args.predictors, args.keep, args.levels, args.segments, args.memory_limit)
         elif args.command == "sql":
             _run_sql_file(args.file, args.database)
-    except DbfitError as err:
+        else:
+            from dbfit.commands import run_model_command
+
+            return run_model_command(args)
+    except UsageError as err:
         print(f"dbfit: {err}", file=sys.stderr)
-        return 2
-    return 0
+        return BAD_USAGE
+    except (DbfitError, duckdb.Error) as err:
+        print(f"dbfit: {err}", file=sys.stderr)
+        return DATA_ERROR
+    return OK
 
 
 def _run_sql_file(path: str, database: str) -> None:

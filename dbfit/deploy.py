@@ -1,8 +1,8 @@
 """Publishing: a view in the user's database that scores a source in plain SQL (no dbfit needed to query it).
 
-A pinned view carries one version's estimates as constants; a live view reads the estimates of the latest
-stored version from ``dbfit_store.coefficients`` by term label, so re-running a fit of the same formula flows
-through (terms or levels a later version adds are not in the published encoding; republish for those).
+A pinned view carries one version's estimates as constants; a live view reads the estimates of the current
+(promoted) version from ``dbfit_store.coefficients`` by term label (the latest version for a model that has
+none promoted), so a promoted refit of the same formula flows through and a refused candidate does not (terms or levels a later version adds are not in the published encoding; republish for those).
 """
 
 from __future__ import annotations
@@ -77,8 +77,8 @@ def publish(
 ) -> dict[str, Any]:
     """Create or replace ``view``: every column of ``source`` plus ``linear_predictor`` and ``probability``.
 
-    ``model`` is a stored model's name (``version`` picks one; default the latest) or a Model object.
-    ``live=True`` reads the latest stored estimates at query time instead of writing them in as constants.
+    ``model`` is a stored model's name (``version`` picks one; default the current one) or a Model object.
+    ``live=True`` reads the current version's stored estimates at query time instead of writing them in as constants.
     """
     target = relation_name(view, "view name")
     resolved = resolve_model(con, model, version)
@@ -99,12 +99,16 @@ def publish(
 
 
 def _live_coefficients(model: Model) -> tuple[Coefficient, exp.Expression]:
-    """A one-row subquery with the latest stored estimate of each label, and references to it."""
+    """A one-row subquery with the current version's stored estimate of each label, and references to it."""
     name = exp.Literal.string(model_name(model.name))
     store = lambda table: exp.Table(this=exp.to_identifier(table, quoted=True), db=exp.to_identifier(SCHEMA, quoted=True))  # noqa: E731
-    latest = exp.select(exp.Max(this=sb.column("version"))).from_(store("versions")).where(
+    newest = exp.select(exp.Max(this=sb.column("version"))).from_(store("versions")).where(
         exp.EQ(this=sb.column("model"), expression=name.copy())
     )
+    promoted = exp.select(sb.column("version")).from_(store("current_versions")).where(
+        exp.EQ(this=sb.column("model"), expression=name.copy())
+    )
+    latest = exp.select(exp.Coalesce(this=promoted.subquery(), expressions=[newest.subquery()]))
     picks = [
         exp.alias_(
             exp.Max(this=exp.Case(ifs=[exp.If(this=exp.EQ(this=sb.column("term"), expression=exp.Literal.string(label)),

@@ -29,3 +29,16 @@ class StoreError(DbfitError):
 
 class StoreConflictError(StoreError):
     """Another connection wrote the same version at the same time (dbfit retries these a few times itself)."""
+
+
+class GateRefusedError(DbfitError):
+    """A candidate version failed its model's promotion gates; the current version stays. ``result`` holds the
+    decision (versions, figures, reasons) as recorded in the audit table."""
+
+    def __init__(self, message: str, result: dict | None = None) -> None:
+        super().__init__(message)
+        self.result = result or {}
+
+
+class UsageError(DbfitError):
+    """A command or spec file lacks a setting it needs (the command line exits with code 2, as for bad usage)."""

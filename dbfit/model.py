@@ -40,11 +40,12 @@ class Model:
     name: str | None = None  # set once saved to (or loaded from) a model store
     version: int | None = None
 
-    def save(self, con: "duckdb.DuckDBPyConnection", name: str) -> int:
-        """Store this model as a new version of ``name`` in ``con``'s database; return the version number."""
+    def save(self, con: "duckdb.DuckDBPyConnection", name: str, *, promote: bool = True) -> int:
+        """Store this model as a new version of ``name`` in ``con``'s database; return the version number.
+        ``promote=False`` stores a candidate that becomes current only through ``dbfit.promote``."""
         from dbfit.store import save_model
 
-        return save_model(con, self, name)
+        return save_model(con, self, name, promote=promote)
 
     def to_json(self) -> str:
         """The model as a JSON document (format ``dbfit-model`` 1, see README.md); read back with ``dbfit.from_json``."""

@@ -18,6 +18,7 @@ from sqlglot import exp
 from dbfit import assessment, fitting, store
 from dbfit.engine import DuckDBEngine
 from dbfit.deploy import build_scoring, check_score_columns, publish
+from dbfit.drift import psi_table
 from dbfit.errors import SourceError, StoreError
 from dbfit.names import model_name
 from dbfit.source import source_relation
@@ -30,13 +31,15 @@ COEFFICIENT_FIELDS = {"model": T("VARCHAR"), "version": T("INTEGER"), "term": T(
 VERSION_FIELDS = {
     "model": T("VARCHAR"), "version": T("INTEGER"), "created_at": T("TIMESTAMP"), "formula": T("VARCHAR"),
     "source": T("VARCHAR"), "source_rows": T("BIGINT"), "rows_used": T("BIGINT"), "deviance": T("DOUBLE"),
-    "aic": T("DOUBLE"), "converged": T("BOOLEAN"), "warnings_count": T("INTEGER"),
+    "aic": T("DOUBLE"), "converged": T("BOOLEAN"), "warnings_count": T("INTEGER"), "current": T("BOOLEAN"),
 }
 PUBLISHED_FIELDS = {"view": T("VARCHAR"), "model": T("VARCHAR"), "version": T("INTEGER"), "mode": T("VARCHAR")}
 DROPPED_FIELDS = {"model": T("VARCHAR"), "version": T("INTEGER")}
 CUTOFF_COLUMNS = ("threshold", "true_positive_rate", "false_positive_rate", "precision", "recall", "specificity",
                   "share_flagged")
 CALIBRATION_COLUMNS = ("mean_predicted", "observed_rate", "wilson_low", "wilson_high", "lowest_score", "highest_score")
+DRIFT_FIELDS = {"variable": T("VARCHAR"), "kind": T("VARCHAR"), "bins": T("BIGINT"), "training_rows": T("BIGINT"),
+                "new_rows": T("BIGINT"), "psi": T("DOUBLE"), "reading": T("VARCHAR")}
 GAINS_COLUMNS = ("share_of_rows", "share_of_positives", "lift", "cumulative_lift")
 
 _ROWS = "SELECT dbfit_row.* FROM (SELECT unnest({call}) AS dbfit_row)"
@@ -71,6 +74,7 @@ MACROS = {
              + _ROWS.format(call="dbfit_sql_cutoffs(model, source, 0.5, 'curve')").replace("SELECT ", "(SELECT ", 1) + ")")],
     "calibration": [("model, source", _ROWS.format(call="dbfit_sql_calibration(model, source, 0.5, 'calibration')"))],
     "gains": [("model, source", _ROWS.format(call="dbfit_sql_gains(model, source, 0.5, 'gains')"))],
+    "drift": [("model, source", _ROWS.format(call="dbfit_sql_drift(model, source)"))],
     "drop_model": [
         ("model", _ROWS.format(call="dbfit_sql_drop(model, NULL)")),
         ("model, version", _ROWS.format(call="dbfit_sql_drop(model, version)")),
@@ -156,6 +160,10 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
                         "gains": lambda: assessment.gains_table(engine, scored)}
             return builders[table]().to_pylist()
 
+    def drift_rows(model, source):
+        with second() as reader:
+            return psi_table(reader, store.load_model(reader, model, None), source).to_pylist()
+
     V, I, D, B = T("VARCHAR"), T("INTEGER"), T("DOUBLE"), T("BOOLEAN")
     reference_type = duckdb.map_type(V, V)
     functions: list[tuple[str, Callable[..., Any], list[Any], Any]] = [
@@ -173,6 +181,7 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
         ("dbfit_sql_calibration", assessment_rows, [V, V, D, V], _rows_of(
             {"group": I, "rows": T("BIGINT"), **{c: D for c in CALIBRATION_COLUMNS}})),
         ("dbfit_sql_gains", assessment_rows, [V, V, D, V], _rows_of({"group": I, **{c: D for c in GAINS_COLUMNS}})),
+        ("dbfit_sql_drift", drift_rows, [V, V], _rows_of(DRIFT_FIELDS)),
     ]
     for name, function, parameters, returns in functions:
         try:

@@ -3,7 +3,11 @@
 ``models`` (one row per name), ``versions`` (one row per stored fit: summary statistics, the training-source
 fingerprint and the full model document), ``coefficients`` (the coefficient table of each version),
 ``factors`` (each expression's kind, SQL type, levels and reference level), ``encodings`` (each internal
-column: numeric factors, level indicators, centre and scale) and ``covariance`` (long format).
+column: numeric factors, level indicators, centre and scale) and ``covariance`` (long format); per version
+also ``fingerprints`` (the training source's row count and row checksum) and ``drift_bins`` (the training
+snapshot of :mod:`dbfit.drift`). ``current_versions`` names the promoted version of each model (the one that
+loads without a version and that live views read; a model without a row there reads its latest version),
+``gates`` holds each model's promotion gates and ``decisions`` the audit trail of every promotion decision.
 Every version is written in one transaction on a connection of its own: an error, a KeyboardInterrupt or a
 killed process leaves either the whole version or none of it. Model names travel as bound parameters.
 """
@@ -46,20 +50,41 @@ _TABLES = {
         numeric_factors VARCHAR NOT NULL, indicators VARCHAR NOT NULL, centre DOUBLE NOT NULL, scale DOUBLE NOT NULL,
         PRIMARY KEY (model, version, position)""",
     "covariance": f"{_KEY}, row_term VARCHAR NOT NULL, column_term VARCHAR NOT NULL, value DOUBLE",
+    "fingerprints": f"{_KEY}, source VARCHAR NOT NULL, source_rows BIGINT NOT NULL, checksum VARCHAR, "
+    "PRIMARY KEY (model, version)",
+    "drift_bins": f"""{_KEY}, variable VARCHAR NOT NULL, kind VARCHAR NOT NULL, position INTEGER NOT NULL,
+        lower DOUBLE, upper DOUBLE, level VARCHAR, rows BIGINT NOT NULL, share DOUBLE NOT NULL,
+        PRIMARY KEY (model, version, variable, position)""",
+    "current_versions": "model VARCHAR PRIMARY KEY, version INTEGER NOT NULL, promoted_at TIMESTAMP NOT NULL",
+    "gates": "model VARCHAR PRIMARY KEY, settings VARCHAR NOT NULL, set_at TIMESTAMP NOT NULL",
+    "decisions": """decided_at TIMESTAMP NOT NULL, model VARCHAR NOT NULL, candidate_version INTEGER,
+        current_version INTEGER, decision VARCHAR NOT NULL, reason VARCHAR NOT NULL, figures VARCHAR NOT NULL""",
 }
-VERSION_TABLES = ("covariance", "encodings", "factors", "coefficients", "versions")
+VERSION_TABLES = ("drift_bins", "fingerprints", "covariance", "encodings", "factors", "coefficients", "versions")
+Extra = dict[str, dict[str, list[Any]]]  # more per-version rows, column-wise by table (the key is added)
 
 
-def save_model(con: duckdb.DuckDBPyConnection, model: Model, name: str) -> int:
-    """Write ``model`` as the next version of ``name`` in one transaction; return the version number."""
+def save_model(con: duckdb.DuckDBPyConnection, model: Model, name: str, *, promote: bool = True,
+               extra: Extra | None = None) -> int:
+    """Write ``model`` as the next version of ``name`` in one transaction; return the version number.
+
+    ``promote=True`` makes it the current version in the same transaction; ``promote=False`` stores a candidate.
+    ``extra`` adds rows to per-version tables (``fingerprints``, ``drift_bins``) in the same transaction.
+    """
     name = model_name(name)
-    preamble = [] if store_exists(con) else _schema_statements()
+    if extra is None:
+        extra = save_time_rows(con, model)
+    preamble = ensure_schema_statements(con)
     for attempt in range(WRITE_ATTEMPTS):
         version = None
         try:
             with _transaction(con, preamble) as writer:
                 version = _next_version(writer, name)
                 _write_version(writer, model, name, version)
+                for table, columns in (extra or {}).items():
+                    _insert(writer, table, {"model": [name], "version": [version], **columns})
+                if promote:
+                    _set_current(writer, name, version)
             break
         except StoreConflictError:
             if attempt == WRITE_ATTEMPTS - 1 or version is None or _orphan_rows(con, name, version):
@@ -69,8 +94,22 @@ def save_model(con: duckdb.DuckDBPyConnection, model: Model, name: str) -> int:
     return version
 
 
+def save_time_rows(con: duckdb.DuckDBPyConnection, model: Model) -> Extra:
+    """The fingerprint of the source the user gave and the drift snapshot of the training rows, computed before the
+    version's transaction; none when the source cannot be read here (a model moved in as JSON)."""
+    from dbfit.drift import training_snapshot
+    from dbfit.errors import DbfitError
+    from dbfit.fingerprint import fingerprint, origin_source
+
+    try:
+        return {"fingerprints": {k: [v] for k, v in fingerprint(con, origin_source(model.options, model.source)).items()},
+                "drift_bins": training_snapshot(con, model)}
+    except DbfitError:
+        return {}
+
+
 def load_model(con: duckdb.DuckDBPyConnection, name: str, version: int | None = None) -> Model:
-    """Read version ``version`` (default: the latest) of model ``name``."""
+    """Read version ``version`` (default: the current one) of model ``name``."""
     name = model_name(name)
     version = resolve_version(con, name, version)
     rows = _fetch(con, f"SELECT document FROM {SCHEMA}.versions WHERE model = ? AND version = ?", [name, version])
@@ -78,17 +117,46 @@ def load_model(con: duckdb.DuckDBPyConnection, name: str, version: int | None = 
 
 
 def resolve_version(con: duckdb.DuckDBPyConnection, name: str, version: int | None) -> int:
-    """The stored version asked for (default: the latest), or a StoreError naming what exists."""
+    """The stored version asked for (default: the current one), or a StoreError naming what exists."""
     versions = stored_versions(con, name)
     if not versions:
         known = [row[0] for row in _fetch(con, f"SELECT model FROM {SCHEMA}.models ORDER BY model")] if store_exists(con) else []
         listing = f"stored models: {', '.join(known)}" if known else "the store is empty"
         raise StoreError(f"model '{name}' is not in the store of this database ({listing})")
     if version is None:
-        return versions[-1]
+        return current_version(con, name) or versions[-1]
     if version not in versions:
         raise StoreError(f"model '{name}' has no version {version} (stored versions: {', '.join(map(str, versions))})")
     return int(version)
+
+
+def current_version(con: duckdb.DuckDBPyConnection, name: str) -> int | None:
+    """The promoted version of ``name``, or None (a model saved before promotions existed: its latest counts)."""
+    if not has_table(con, "current_versions"):
+        return None
+    rows = _fetch(con, f"SELECT version FROM {SCHEMA}.current_versions WHERE model = ?", [name])
+    return int(rows[0][0]) if rows else None
+
+
+def has_table(con: duckdb.DuckDBPyConnection, table: str) -> bool:
+    rows = _fetch(
+        con,
+        "SELECT count(*) FROM duckdb_tables() WHERE database_name = current_database() AND schema_name = ? "
+        "AND table_name = ?",
+        [SCHEMA, table],
+    )
+    return rows[0][0] > 0
+
+
+def ensure_schema_statements(con: duckdb.DuckDBPyConnection) -> list[str]:
+    """The CREATE statements still needed (none once every store table exists; a store of an older dbfit gets
+    its new tables)."""
+    rows = _fetch(
+        con,
+        "SELECT count(*) FROM duckdb_tables() WHERE database_name = current_database() AND schema_name = ?",
+        [SCHEMA],
+    )
+    return [] if rows[0][0] >= len(_TABLES) else _schema_statements()
 
 
 def stored_versions(con: duckdb.DuckDBPyConnection, name: str) -> list[int]:
@@ -99,13 +167,7 @@ def stored_versions(con: duckdb.DuckDBPyConnection, name: str) -> list[int]:
 
 
 def store_exists(con: duckdb.DuckDBPyConnection) -> bool:
-    rows = _fetch(
-        con,
-        "SELECT count(*) FROM duckdb_tables() WHERE database_name = current_database() AND schema_name = ? "
-        "AND table_name = 'versions'",
-        [SCHEMA],
-    )
-    return rows[0][0] > 0
+    return has_table(con, "versions")
 
 
 def version_rows(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:
@@ -115,7 +177,14 @@ def version_rows(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:
     columns = ["model", "version", "created_at", "formula", "source", "source_rows", "rows_used", "deviance", "aic",
                "converged", "warnings_count"]
     rows = _fetch(con, f"SELECT {', '.join(columns)} FROM {SCHEMA}.versions ORDER BY model, version")
-    return [dict(zip(columns, row)) for row in rows]
+    listed = [dict(zip(columns, row)) for row in rows]
+    current = {m: None for m in {row["model"] for row in listed}}
+    if has_table(con, "current_versions"):
+        current.update(dict(_fetch(con, f"SELECT model, version FROM {SCHEMA}.current_versions")))
+    latest = {row["model"]: row["version"] for row in listed}
+    for row in listed:
+        row["current"] = row["version"] == (current.get(row["model"]) or latest[row["model"]])
+    return listed
 
 
 def coefficient_rows(con: duckdb.DuckDBPyConnection, name: str, version: int | None = None) -> list[dict[str, Any]]:
@@ -141,9 +210,78 @@ def drop_model(con: duckdb.DuckDBPyConnection, name: str, version: int | None = 
     with _transaction(con) as writer:
         for table in VERSION_TABLES:
             _run(writer, [f"DELETE FROM {SCHEMA}.{table} WHERE model = ? AND version IN ({placeholders})"], [name, *versions])
+        if has_table(writer, "current_versions"):
+            _run(writer, [f"DELETE FROM {SCHEMA}.current_versions WHERE model = ? AND version IN ({placeholders})"],
+                 [name, *versions])
         _run(writer, [f"DELETE FROM {SCHEMA}.models WHERE model = ? AND NOT EXISTS "
                       f"(SELECT 1 FROM {SCHEMA}.versions WHERE model = ?)"], [name, name])
     return [(name, v) for v in versions]
+
+
+def record_decision(con: duckdb.DuckDBPyConnection, name: str, candidate: int | None, current: int | None,
+                    decision: str, reason: str, figures: dict[str, Any], *, promote: bool) -> None:
+    """One audit row in ``decisions`` and, when ``promote``, the candidate made current: one transaction.
+
+    A promotion checks in the same transaction that ``current`` is still the current version: when another
+    refit promoted meanwhile, nothing is written and a StoreConflictError names the version now current.
+    """
+    now = datetime.now(timezone.utc).replace(tzinfo=None)
+    with _transaction(con, ensure_schema_statements(con)) as writer:
+        if promote:
+            rows = _fetch(writer, f"SELECT version FROM {SCHEMA}.current_versions WHERE model = ?", [name])
+            now_current = int(rows[0][0]) if rows else (stored_versions(writer, name) or [None])[-1]
+            if rows and now_current != current:
+                raise StoreConflictError(
+                    f"model '{name}': version {now_current} became current while candidate {candidate} was checked "
+                    f"against version {current}; candidate {candidate} stays stored, not current (run the refit again)")
+        _run(writer, [f"INSERT INTO {SCHEMA}.decisions VALUES (?, ?, ?, ?, ?, ?, ?)"],
+             [now, name, candidate, current, decision, reason, json.dumps(figures, default=str)])
+        if promote and candidate is not None:
+            _set_current(writer, name, candidate)
+
+
+def decision_rows(con: duckdb.DuckDBPyConnection, name: str | None = None) -> list[dict[str, Any]]:
+    """The audit trail, oldest first (optionally of one model)."""
+    if not has_table(con, "decisions"):
+        return []
+    columns = ["decided_at", "model", "candidate_version", "current_version", "decision", "reason", "figures"]
+    where, parameters = ("WHERE model = ? ", [name]) if name is not None else ("", None)
+    rows = _fetch(con, f"SELECT {', '.join(columns)} FROM {SCHEMA}.decisions {where}ORDER BY decided_at", parameters)
+    return [dict(zip(columns, row)) | {"figures": json.loads(row[-1])} for row in rows]
+
+
+def write_setting(con: duckdb.DuckDBPyConnection, table: str, name: str, settings: dict[str, Any]) -> None:
+    """Replace the JSON settings row of ``name`` in a per-model settings table (``gates``)."""
+    now = datetime.now(timezone.utc).replace(tzinfo=None)
+    with _transaction(con, ensure_schema_statements(con)) as writer:
+        _run(writer, [f"DELETE FROM {SCHEMA}.{table} WHERE model = ?"], [name])
+        _run(writer, [f"INSERT INTO {SCHEMA}.{table} VALUES (?, ?, ?)"], [name, json.dumps(settings), now])
+
+
+def read_setting(con: duckdb.DuckDBPyConnection, table: str, name: str) -> dict[str, Any] | None:
+    if not has_table(con, table):
+        return None
+    rows = _fetch(con, f"SELECT settings FROM {SCHEMA}.{table} WHERE model = ?", [name])
+    return json.loads(rows[0][0]) if rows else None
+
+
+def version_table(con: duckdb.DuckDBPyConnection, table: str, name: str, version: int,
+                  order: str = "") -> list[dict[str, Any]]:
+    """The rows of one version in a per-version table (``fingerprints``, ``drift_bins``) as dicts."""
+    if table not in VERSION_TABLES:
+        raise StoreError(f"no per-version store table {table!r}")
+    if not has_table(con, table):
+        return []
+    cursor = con.execute(f"SELECT * FROM {SCHEMA}.{table} WHERE model = ? AND version = ?"
+                         + (f" ORDER BY {order}" if order else ""), [name, version])
+    names = [d[0] for d in cursor.description]
+    return [dict(zip(names, row)) for row in cursor.fetchall()]
+
+
+def _set_current(writer: duckdb.DuckDBPyConnection, name: str, version: int) -> None:
+    now = datetime.now(timezone.utc).replace(tzinfo=None)
+    _run(writer, [f"DELETE FROM {SCHEMA}.current_versions WHERE model = ?"], [name])
+    _run(writer, [f"INSERT INTO {SCHEMA}.current_versions VALUES (?, ?, ?)"], [name, version, now])
 
 
 @contextmanager

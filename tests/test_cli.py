@@ -44,9 +44,11 @@ def test_bench_prints_ratios_for_all_three_methods(tmp_path):
     assert differences and max(differences) < 1e-6
 
 
-def test_bad_usage_exits_nonzero():
+def test_data_errors_exit_4_and_bad_usage_exits_2():
     done = run("demo", "--rows", "10", "--database", "/tmp/unused_dbfit_demo.duckdb")
-    assert done.returncode == 2 and "at least 100 rows" in done.stderr
+    assert done.returncode == 4 and "at least 100 rows" in done.stderr
+    done = run("demo", "--rows", "many")
+    assert done.returncode == 2 and "invalid int value" in done.stderr
 
 
 def test_bench_scenarios_run_at_small_size():

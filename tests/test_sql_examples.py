@@ -20,7 +20,7 @@ EXAMPLES = sorted((Path(__file__).resolve().parents[1] / "sql_examples").glob("*
 
 def test_examples_run_in_order_and_leave_what_they_promise(tmp_path, capsys):
     assert [p.name for p in EXAMPLES] == ["01_fit.sql", "02_inspect.sql", "03_score.sql", "04_publish.sql",
-                                          "05_refit.sql", "06_drop.sql"]
+                                          "05_refit.sql", "06_drift.sql", "07_drop.sql"]
     path = str(tmp_path / "courier.duckdb")
     with dbfit.connect(path) as con:
         build_deliveries(con, 20_000)
@@ -43,7 +43,11 @@ def test_examples_run_in_order_and_leave_what_they_promise(tmp_path, capsys):
     assert all(row[3] > 0.6 for row in risky.rows)
     refit, differing = outcomes["05_refit.sql"]
     assert {row[1] for row in refit.rows} == {2} and differing.rows[0][0] > 0
-    first, rest, left, *_ = outcomes["06_drop.sql"]
+    (drift,) = outcomes["06_drift.sql"]
+    readings = {row[0]: row[4] for row in drift.rows}
+    assert drift.rows[0][0] == "dispatch_hour" and readings["dispatch_hour"] == "large shift"
+    assert readings["distance_km"] == "stable" and readings["depot"] == "stable"
+    first, rest, left, *_ = outcomes["07_drop.sql"]
     assert first.rows == [("late_deliveries", 1)] and rest.rows == [("late_deliveries", 2)] and left.rows == [(0,)]
     views = con.execute("SELECT count(*) FROM duckdb_views() WHERE NOT internal").fetchall()
     assert views == [(0,)]

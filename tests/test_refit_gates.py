@@ -1,0 +1,158 @@
+"""Refits and promotion gates on real DuckDB files: warm start, current version, audit trail, fingerprints.
+
+Data: the invented courier scenario of dbfit.demo (generated in DuckDB from a fixed seed). The first 20,000
+deliveries are the data of the first fit; refits see further rows appended.
+"""
+
+from __future__ import annotations
+
+import duckdb
+import pytest
+
+import dbfit
+from dbfit import store
+from dbfit.demo import FORMULA, REFERENCE, build_deliveries
+
+HOLDOUT = dbfit.Holdout("delivery_id", 0.25)
+
+
+@pytest.fixture
+def database(tmp_path):
+    path = str(tmp_path / "refit.duckdb")
+    con = dbfit.connect(path)
+    build_deliveries(con, 40_000, "all_deliveries")
+    con.execute("CREATE TABLE deliveries AS SELECT * FROM all_deliveries WHERE delivery_id < 20000").fetchall()
+    dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, name="late", split=HOLDOUT, progress=False)
+    dbfit.publish(con, "late", "late_live", "deliveries", live=True)
+    yield con
+    con.close()
+
+
+def _append(con, flip: bool = False) -> None:
+    target = "NOT late AS late" if flip else "late AS late"
+    con.execute(f"INSERT INTO deliveries SELECT * REPLACE ({target}) FROM all_deliveries WHERE delivery_id >= 20000").fetchall()
+
+
+def _live_scores(con) -> list[tuple]:
+    return con.execute("SELECT delivery_id, probability FROM late_live ORDER BY delivery_id").fetchall()
+
+
+def test_refit_on_appended_rows_is_warm_started_and_promoted(database):
+    con = database
+    _append(con)
+    result = dbfit.refit(con, "late")
+    cold = dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, split=HOLDOUT, progress=False)
+    assert result["decision"] == "promoted" and result["candidate_version"] == 2 and result["current_version"] == 1
+    assert result["figures"]["iterations"] < cold.stats["iterations"]
+    assert result["figures"]["scans"] < cold.stats["scans"]
+    assert dbfit.load(con, "late").version == 2
+    warm = dbfit.load(con, "late", 2)
+    for label in warm.labels:  # the warm start reaches the same answer
+        assert warm.estimate(label) == pytest.approx(cold.estimate(label), abs=1e-7)
+    assert dbfit.decisions(con, "late")[-1]["decision"] == "promoted"
+
+
+def test_gate_failure_leaves_current_version_and_live_view_untouched(database):
+    con = database
+    _append(con, flip=True)  # the appended outcomes are the opposite of the scenario's
+    before = [row for row in _live_scores(con) if row[0] < 20000]
+    result = dbfit.refit(con, "late")
+    assert result["decision"] == "refused"
+    assert any("moved" in reason for reason in result["reasons"])
+    assert dbfit.load(con, "late").version == 1
+    assert [row for row in _live_scores(con) if row[0] < 20000] == before
+    listed = {row["version"]: row["current"] for row in dbfit.models(con)}
+    assert listed == {1: True, 2: False}
+    audit = dbfit.decisions(con, "late")[-1]
+    assert (audit["candidate_version"], audit["current_version"], audit["decision"]) == (2, 1, "refused")
+    assert audit["figures"]["largest_shift"] > 5 and audit["reason"] == "; ".join(result["reasons"])
+    with pytest.raises(dbfit.GateRefusedError, match="not promoted"):
+        dbfit.promote(con, "late", 2)
+    assert dbfit.load(con, "late").version == 1
+    dbfit.promote(con, "late", 2, force=True)
+    assert dbfit.load(con, "late").version == 2 and dbfit.decisions(con, "late")[-1]["reason"].startswith("forced")
+
+
+def test_gates_are_stored_per_model_and_checked(database):
+    con = database
+    assert dbfit.gates_of(con, "late") == dbfit.Gates()
+    dbfit.set_gates(con, "late", max_shift=None, auc_margin=0.5)
+    assert dbfit.gates_of(con, "late") == dbfit.Gates(max_shift=None, auc_margin=0.5)
+    with pytest.raises(dbfit.StoreError, match="unknown gate"):
+        dbfit.set_gates(con, "late", auc=0.1)
+    with pytest.raises(dbfit.StoreError, match="non-negative"):
+        dbfit.set_gates(con, "late", log_loss_margin=-1.0)
+    with pytest.raises(dbfit.StoreError, match="not in the store"):
+        dbfit.set_gates(con, "other", auc_margin=0.1)
+    dbfit.set_gates(con, "late", log_loss_margin=0.0, auc_margin=0.0)
+    small = dbfit.fit(con, FORMULA, "SELECT * FROM deliveries WHERE delivery_id < 600", reference=REFERENCE,
+                      split=HOLDOUT, progress=False)  # 11 estimates from about 450 rows: worse on unseen rows
+    assert small.save(con, "late", promote=False) == 2 and dbfit.load(con, "late").version == 1
+    with pytest.raises(dbfit.GateRefusedError) as refused:
+        dbfit.promote(con, "late", 2)
+    reasons = refused.value.result["reasons"]
+    assert reasons and all("AUC" in r or "log loss" in r for r in reasons)
+    figures = refused.value.result["figures"]
+    assert figures["candidate_log_loss"] > figures["current_log_loss"] or figures["candidate_auc"] < figures["current_auc"]
+    assert dbfit.load(con, "late").version == 1 and dbfit.decisions(con, "late")[-1]["decision"] == "refused"
+
+
+def test_skip_unchanged_reads_the_fingerprint(database):
+    con = database
+    skipped = dbfit.refit(con, "late", skip_unchanged=True)
+    assert skipped["decision"] == "skipped" and skipped["candidate_version"] is None
+    assert [v["version"] for v in dbfit.models(con)] == [1]
+    con.execute("UPDATE deliveries SET parcel_kg = parcel_kg + 0.01 WHERE delivery_id = 7").fetchall()
+    changed = dbfit.refit(con, "late", skip_unchanged=True)  # same row count, one value changed
+    assert changed["decision"] == "promoted" and changed["source_rows"] == 20000
+
+
+def test_dropping_the_current_version_falls_back_to_the_latest(database):
+    con = database
+    _append(con, flip=True)
+    dbfit.refit(con, "late")
+    dbfit.drop_model(con, "late", 1)
+    assert dbfit.load(con, "late").version == 2
+    assert len(_live_scores(con)) == 40000
+
+
+def test_a_store_of_an_older_dbfit_gets_the_new_tables(tmp_path):
+    path = str(tmp_path / "old.duckdb")
+    con = dbfit.connect(path)
+    build_deliveries(con, 2000)
+    dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, name="late", progress=False)
+    for table in ("current_versions", "gates", "decisions", "fingerprints", "drift_bins"):
+        con.execute(f"DROP TABLE dbfit_store.{table}").fetchall()
+    assert dbfit.load(con, "late").version == 1  # no current_versions: the latest version counts
+    dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, name="late", progress=False)
+    assert dbfit.load(con, "late").version == 2
+    con.close()
+    plain = duckdb.connect(path, read_only=True)
+    assert plain.execute("SELECT model, version FROM dbfit_store.current_versions").fetchall() == [("late", 2)]
+    plain.close()
+
+
+def test_a_promotion_checked_against_a_stale_current_version_is_refused_whole(database):
+    con = database
+    _append(con)
+    dbfit.refit(con, "late")  # version 2 is current now
+    dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, progress=False).save(con, "late", promote=False)
+    audited = len(dbfit.decisions(con, "late"))
+    with pytest.raises(dbfit.StoreConflictError, match="version 2 became current"):
+        store.record_decision(con, "late", 3, 1, "promoted", "passed every gate", {}, promote=True)
+    assert dbfit.load(con, "late").version == 2 and len(dbfit.decisions(con, "late")) == audited
+
+
+def test_refit_keeps_the_options_of_the_current_version(tmp_path):
+    con = dbfit.connect(str(tmp_path / "options.duckdb"))
+    build_deliveries(con, 6000)
+    dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, name="late", robust="HC1", progress=False)
+    dbfit.fit(con, FORMULA, "deliveries", name="ridge", shrinkage=0.5, progress=False)
+    result = dbfit.refit(con, "late")
+    refitted = dbfit.load(con, "late")
+    assert result["decision"] == "promoted" and refitted.version == 2
+    assert (refitted.options["robust"], refitted.options["reference"]) == ("HC1", REFERENCE)
+    assert dbfit.refit(con, "ridge")["decision"] == "promoted" and dbfit.load(con, "ridge").options["shrinkage"] == 0.5
+    listed = con.execute("SELECT model, version, current FROM dbfit.models() ORDER BY model, version").fetchall()
+    assert listed == [("late", 1, False), ("late", 2, True), ("ridge", 1, False), ("ridge", 2, True)]
+    con.close()
