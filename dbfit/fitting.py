@@ -5,6 +5,7 @@ from __future__ import annotations
 import logging
 from dataclasses import dataclass
 import math
+import dataclasses
 import sys
 import uuid
 from collections.abc import Mapping, Sequence
@@ -16,6 +17,7 @@ from sqlglot import exp
 
 from dbfit import firth as bias_reduction
 from dbfit import inference, penalized, priorcorrection
+from dbfit import sqlbuild as sb
 from dbfit import robust as robust_errors
 from dbfit.blocks import BlockedStatisticsPass, BlockInformation, blocked_factor, dense_first
 from dbfit.design import Design, build_design
@@ -256,18 +258,28 @@ def _sample_start(
     tol: float,
     reporter: Callable[[IterationReport], None] | None,
 ) -> tuple[np.ndarray, float]:
-    """Fit a reservoir sample of the complete rows, kept in a temporary table, and start from its estimates.
+    """Fit a sample of the complete rows, kept in a temporary table, and start from its estimates.
 
-    From there, score-only scans with the sample's information scaled to the full data (a chord method)
-    close in on the answer, and one full Newton pass confirms it. Returns the start and the last deviance.
+    The sample is a repeatable system sample of a table's row blocks (it reads only those blocks), or for
+    other sources a reservoir sample (one scan). From its estimates, score-only scans with the sample's
+    information scaled to the full data (a chord method) close in on the answer, and one full Newton pass
+    confirms it. Returns the start and the last deviance.
     """
     table = f"dbfit_sample_{uuid.uuid4().hex}"
-    base_sql = engine.sql(design.base_query())
-    engine.execute(
-        scan=True,
-        sql=f'CREATE TEMP TABLE "{table}" AS SELECT * FROM ({base_sql}) '
-        f"USING SAMPLE reservoir({SAMPLE_ROWS} ROWS) REPEATABLE ({SAMPLE_SEED})"
-    )
+    if isinstance(design.relation, exp.Table) and not design.relation.args.get("sample"):
+        share = min(100.0, 100.0 * SAMPLE_ROWS / max(design.rows_total, 1))
+        sampled = design.relation.copy()
+        sampled.set("sample", exp.TableSample(method=exp.var("SYSTEM"), percent=sb.number(round(share, 6)),
+                                              seed=exp.Literal.number(SAMPLE_SEED)))
+        base_sql = engine.sql(dataclasses.replace(design, relation=sampled).base_query())
+        engine.execute(scan=False, sql=f'CREATE TEMP TABLE "{table}" AS {base_sql}')
+    else:
+        base_sql = engine.sql(design.base_query())
+        engine.execute(
+            scan=True,
+            sql=f'CREATE TEMP TABLE "{table}" AS SELECT * FROM ({base_sql}) '
+            f"USING SAMPLE reservoir({SAMPLE_ROWS} ROWS) REPEATABLE ({SAMPLE_SEED})"
+        )
     try:
         rows = exp.select("*").from_(exp.Table(this=exp.to_identifier(table, quoted=True)))
 
