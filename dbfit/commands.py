@@ -200,15 +200,22 @@ def _gates(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[str
 
 def _report(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[str, Any]:
     import dbfit
+    from dbfit.report import write_report
 
-    try:
-        from dbfit.report import write_report  # built on its own branch; absent from some builds
-    except ImportError:
-        raise DbfitError("this build of dbfit has no HTML report (module dbfit.report)") from None
     model = dbfit.load(con, args.name, args.version)
-    tables = dbfit.assessment_tables(con, model, args.source) if args.source else None
+    # Assessed on --source, else on the held-out rows of a holdout fit, else on the rows it was fitted on.
+    split = model.options.get("split") or {}
+    source = args.source or (_held_out_source(split) if split else None)
+    tables = None if model.design.trials is not None else dbfit.assessment_tables(con, model, source)
     path = write_report(model, args.output, assessment=tables)
     return {"model": model.name, "version": model.version, "output": str(path)}
+
+
+def _held_out_source(split: dict[str, Any]) -> str:
+    from dbfit.api import _part_source
+    from dbfit.splits import Holdout
+
+    return _part_source(split["source"], Holdout(split["key"], split["share"]), "holdout")
 
 
 def _number_or_none(text: str) -> float | str:

@@ -298,3 +298,21 @@ def test_axes_map_ticks_and_clamp():
     assert log(float("inf")) == 400.0 and log(0.0) == 0.0
     assert log.ticks() == pytest.approx([0.01, 0.1, 1.0, 10.0, 100.0])
     assert Axis(0.5, 20.0, 0.0, 1.0, log=True).ticks() == pytest.approx([0.5, 1, 2, 5, 10, 20])
+
+
+def test_report_command_assesses_the_stored_model_by_default(tmp_path):
+    import statsmodels.api as sm
+
+    import dbfit
+    from dbfit.cli import main
+
+    database = str(tmp_path / "school.duckdb")
+    con = dbfit.connect(database)
+    con.register("frame", sm.datasets.spector.load_pandas().data)
+    con.execute("CREATE TABLE spector AS SELECT * FROM frame")
+    dbfit.fit(con, "GRADE ~ GPA + TUCE + PSI", "spector", name="grade", progress=False)
+    con.close()
+    out = tmp_path / "grade.html"
+    assert main(["report", "grade", "--database", database, "--out", str(out)]) == 0
+    page = out.read_text()
+    assert "ROC curve" in page and "Calibration" in page and "GRADE ~ GPA + TUCE + PSI" in page
