@@ -198,7 +198,7 @@ def curve_points(engine: DuckDBEngine, scored: exp.Expression, max_points: int =
     Each row: threshold, true and false positive rate (ROC), precision, recall, specificity, share flagged.
     """
     query = parse_one(
-        f"""SELECT p, tp, fp, sum(c1) OVER () AS P, sum(c) OVER () AS N_all,
+        """SELECT p, tp, fp, sum(c1) OVER () AS P, sum(c) OVER () AS N_all,
                    row_number() OVER (ORDER BY p DESC) AS k, count(*) OVER () AS m
             FROM dbfit_by_score""",
         read="duckdb",

@@ -29,11 +29,11 @@ def _uniform(stream: int, scale: float = 1.0) -> str:
     return f"(((hash(id, {stream}) % 1000003) + 0.5) / 1000003.0 - 0.5) * {scale}"
 
 
-def numeric_select(rows: int, predictors: int, extra: str = "", extra_eta: str = "0") -> str:
-    """SELECT of synthetic numeric predictors and a 0/1 target from a known logistic model."""
+def numeric_select(rows: int, predictors: int, extra: str = "", extra_eta: str = "0", first_id: int = 0) -> str:
+    """SELECT of synthetic numeric predictors and a 0/1 target from a known logistic model (ids from first_id)."""
     columns = ", ".join(f"{_uniform(j, 1 + j % 3)} AS x{j}" for j in range(predictors))
     eta = " + ".join(f"{0.15 * ((-1) ** j) * (1 + j % 4)} * x{j}" for j in range(predictors))
-    inner = f"SELECT {columns}{extra}, id FROM range({int(rows)}) r(id)"
+    inner = f"SELECT {columns}{extra}, id FROM range({int(first_id)}, {int(first_id) + int(rows)}) r(id)"
     target = f"(((hash(id, 999) % 1000003) + 0.5) / 1000003.0 < 1 / (1 + exp(-(-0.4 + {eta} + {extra_eta}))))::INTEGER"
     return f"SELECT * EXCLUDE (id), {target} AS y FROM ({inner})"
 
@@ -221,9 +221,7 @@ def bench_outofcore(folder: str, rows: int, predictors: int, memory_limit: str) 
     parts = 8
     con = duckdb.connect()
     for part in range(parts):
-        select = numeric_select(rows // parts, predictors).replace("range(", f"range({part * (rows // parts)}, ", 1)
-        select = select.replace(f"range({part * (rows // parts)}, {rows // parts})",
-                                f"range({part * (rows // parts)}, {(part + 1) * (rows // parts)})")
+        select = numeric_select(rows // parts, predictors, first_id=part * (rows // parts))
         con.execute(f"COPY ({select}) TO '{lake}/part{part}.parquet' (FORMAT parquet)")
     con.close()
     size = sum(f.stat().st_size for f in Path(lake).glob("*.parquet"))

@@ -10,7 +10,6 @@ covariance use the Schur complement S = A - B' D^-1 B (Golub and Van Loan 2013, 
 
 from __future__ import annotations
 
-import dataclasses
 from dataclasses import dataclass
 from typing import Any
 

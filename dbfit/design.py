@@ -26,7 +26,6 @@ NUMERIC_TYPE = re.compile(
     r"^(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|UTINYINT|USMALLINT|UINTEGER|UBIGINT|UHUGEINT|FLOAT|REAL|DOUBLE|DECIMAL.*|NUMERIC.*|INT\d*)$",
     re.IGNORECASE,
 )
-FLOAT_TYPE = re.compile(r"^(FLOAT|REAL|DOUBLE)$", re.IGNORECASE)
 CATEGORICAL_TYPE = re.compile(r"^(VARCHAR|BOOLEAN|ENUM.*)$", re.IGNORECASE)
 
 TARGET, WEIGHT, OFFSET, TRIALS, SEGMENT = "dbfit_y", "dbfit_w", "dbfit_o", "dbfit_n", "dbfit_seg"
@@ -256,7 +255,7 @@ def _check_references(design: Design, reference: dict[str, Any]) -> None:
 
 
 def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) -> None:
-    y, w, n = sb.column(TARGET), design.weight_expression(), design.trials_expression()
+    w = design.weight_expression()
     products = _numeric_products(design)
     aggregates = outcome_sums(design)
     aggregates["bad_target"] = _count_where(_bad_target_condition(design))

@@ -29,7 +29,7 @@ from dbfit.model import Model
 from dbfit.progress import progress_settings
 from dbfit.source import source_relation
 from dbfit.segments import SegmentedFit, fit_segments
-from dbfit.statsquery import PassResult, StatisticsPass
+from dbfit.statsquery import StatisticsPass
 
 log = logging.getLogger("dbfit")
 
@@ -112,16 +112,15 @@ def fit(
     penalty_request = penalized.check_request(shrinkage, l1_share, folds, split_key)
     if penalty_request is not None and (firth or robust_kind is not None):
         raise FitError("shrinkage cannot be combined with firth=True or robust standard errors")
+    special = FitVariants(robust_kind, cluster, firth, population_rate, penalty_request)
     engine = engine_for(con)
-    if engine.dialect != "duckdb":
-        if trials is not None or by is not None or not special_plain(firth, shrinkage, robust, population_rate):
-            raise FitError(f"on {engine.dialect}, dbfit fits plain models (weights and offset allowed); trials, by, "
-                           "firth, shrinkage, robust and population_rate need DuckDB for now")
+    if engine.dialect != "duckdb" and (trials is not None or by is not None or not special.ordinary):
+        raise FitError(f"on {engine.dialect}, dbfit fits plain models (weights and offset allowed); trials, by, "
+                       "firth, shrinkage, robust and population_rate need DuckDB for now")
+    if by is not None and not special.ordinary:
+        raise FitError("by= cannot yet be combined with firth, robust, shrinkage or population_rate")
     engine.live_progress = (engine.dialect == "duckdb" and progress is not False and not callable(progress)
                             and sys.stderr.isatty())
-    if by is not None and (firth or robust_kind is not None or penalty_request is not None or population_rate):
-        raise FitError("by= cannot yet be combined with firth, robust, shrinkage or population_rate")
-    special = FitVariants(robust_kind, cluster, firth, population_rate, penalty_request)
     arguments = dict(weights=weights, offset=offset, trials=trials, reference=reference, positive=positive,
                      max_iter=max_iter, tol=tol, start=start, progress=progress, by=by, special=special)
     if engine.dialect == "duckdb":
@@ -129,10 +128,6 @@ def fit(
         with progress_settings(con, track=engine.live_progress):
             return _fit(engine, formula, source, **arguments)
     return _fit(engine, formula, source, **arguments)
-
-
-def special_plain(firth: bool, shrinkage: Any, robust: Any, population_rate: Any) -> bool:
-    return not firth and shrinkage is None and robust is None and population_rate is None
 
 
 @dataclass(frozen=True)
@@ -147,7 +142,13 @@ class FitVariants:
 
     @property
     def plain(self) -> bool:
+        """The estimates are the maximum-likelihood ones (no Firth adjustment, no penalty)."""
         return not self.firth and self.penalty_request is None
+
+    @property
+    def ordinary(self) -> bool:
+        """Plain estimates with model-based errors on the sampled scale: nothing beyond the core fit."""
+        return self.plain and self.robust_kind is None and self.population_rate is None
 
 
 def _fit(
@@ -193,16 +194,16 @@ def _fit(
                             assemble=assemble_model, formula=formula, source=source, options=options)
 
     factor = blocked_factor(design) if engine.parameters else None
-    if factor is not None and not (special.plain and special.robust_kind is None):
+    if factor is not None and not (special.plain and special.robust_kind is None):  # prior correction is fine
         raise FitError(
             f"'{design.factors[factor].text}' has {len(design.factors[factor].levels)} levels: firth, shrinkage and "
             "robust errors are not available with a categorical of that many levels; merge rare levels first"
         )
+    if factor is not None:
+        fitted = dense_first(design, fitted, factor)
     default_start = start_values(design, None, fitted)
     start_deviance = np.inf
     if factor is not None:
-        fitted = dense_first(design, fitted, factor)
-        default_start = start_values(design, None, fitted)
         full_pass = BlockedStatisticsPass(engine, design, factor)
         beta_start = start_values(design, start, fitted)
     else:

@@ -21,7 +21,6 @@ import numpy as np
 from sqlglot import exp
 
 from dbfit import inference, splits
-from dbfit import sqlbuild as sb
 from dbfit.design import Design
 from dbfit.engine import DuckDBEngine
 from dbfit.errors import FitError
