@@ -42,6 +42,7 @@ def build_table(path: str, select: str) -> None:
     import duckdb
 
     con = duckdb.connect(path)
+    con.execute("SET enable_progress_bar = false")
     con.execute(f"CREATE OR REPLACE TABLE bench AS {select}")
     con.close()
 

@@ -109,17 +109,25 @@ class ValuesTemplate:
     def render(self, rows: list[tuple[object, exp.Expression, list[float]]]) -> str:
         """SQL with VALUES (key, numbers...) rows; ``rows`` holds (cache key, key literal, numbers)."""
         texts = []
-        for cache_key, literal, numbers in rows:
+        double = exp.DataType.build("DOUBLE").sql(dialect=self.dialect)
+        for index, (cache_key, literal, numbers) in enumerate(rows):
             key = self._keys.get(cache_key)
             if key is None:
                 key = self._keys[cache_key] = literal.sql(dialect=self.dialect)
-            texts.append("(" + ", ".join([key] + [_float_text(v) for v in numbers]) + ")")
+            values = [_float_text(v) for v in numbers]
+            if index == 0:
+                # The first row's types fix the columns' types: a plain decimal literal would make them
+                # DECIMAL (NUMERIC), and per-row decimal arithmetic costs more than the rest of the pass.
+                values = [f"CAST({v} AS {double})" for v in values]
+            texts.append("(" + ", ".join([key] + values) + ")")
         names = ", ".join(exp.to_identifier(c, quoted=True).sql(dialect=self.dialect) for c in self.columns)
         return f"{self.before}(VALUES {', '.join(texts)}) AS {self.alias}({names}){self.after}"
 
 
 def _float_text(value: float) -> str:
+    """``repr`` (exact round trip) in exponent form, which DuckDB and Spark read as DOUBLE, not DECIMAL."""
     value = float(value)
     if not math.isfinite(value):
         raise ValueError(f"cannot write the non-finite number {value!r} into SQL")
-    return repr(value)
+    text = repr(value)
+    return text if "e" in text else text + "e0"

@@ -89,3 +89,20 @@ def test_bad_by_expression_is_refused(con, birthwt):
     with pytest.raises(dbfit.FormulaError, match="unknown column"):
         dbfit.fit(con, "low ~ age", "birthwt", by="no_such_column", progress=False)
     assert con.execute("SELECT count(*) FROM birthwt").fetchall()[0][0] == 189
+
+
+def test_per_segment_constants_reach_the_query_as_exact_doubles(con):
+    # Common practice: DuckDB types a plain literal such as 0.1 as DECIMAL, which rounds wider values and makes
+    # every row's arithmetic decimal; the joined coefficient columns must be DOUBLE and round-trip exactly.
+    from sqlglot import exp
+
+    from dbfit import sqlbuild as sb
+
+    values = [0.1, -1 / 3, 123456789.12345679, 0.0, 2.5]
+    template = sb.ValuesTemplate("SELECT * FROM " + '"dbfit_values_placeholder" AS k', '"dbfit_values_placeholder" AS k',
+                                 "k", ["key", "a", "b"], "duckdb")
+    rows = [(i, exp.Literal.number(i), [v, -v]) for i, v in enumerate(values)]
+    result = con.execute(template.render(rows) + " ORDER BY key").fetchall()
+    assert [r[1] for r in result] == values and [r[2] for r in result] == [-v for v in values]
+    types = con.execute("SELECT typeof(a), typeof(b) FROM (" + template.render(rows) + ") LIMIT 1").fetchone()
+    assert types == ("DOUBLE", "DOUBLE")
