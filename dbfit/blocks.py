@@ -19,7 +19,7 @@ from sqlglot import exp
 from dbfit import sqlbuild as sb
 from dbfit.design import Design
 from dbfit.engine import DuckDBEngine
-from dbfit.statsquery import PassResult, statistics_query, unpack
+from dbfit.statsquery import PassResult, statistics_query, unpack_many
 
 HIGH_CARDINALITY_LEVELS = 50  # a main-effect categorical with more levels than this is fitted by blocks
 
@@ -103,7 +103,7 @@ class BlockedStatisticsPass:
         rows = [(v, factor.level_literal(v), [float(level_beta.get(v, 0.0))]) for v in factor.levels]
         sql = template.render(rows)
         fetched = self.engine.fetch_sql(sql, [float(b) for b in beta[: len(dense)]], scan=self.rows is None)
-        groups = {row[0]: unpack(row[1:], len(columns) + 1) for row in fetched}
+        groups = dict(zip([row[0] for row in fetched], unpack_many([row[1:] for row in fetched], len(columns) + 1)))
         return _assemble_blocks(groups, level_values, intercept, len(columns))
 
     def query(self, parameters: list[int], beta: np.ndarray) -> exp.Select:

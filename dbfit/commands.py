@@ -41,6 +41,7 @@ def add_model_commands(command: Command) -> None:
     fit.add_argument("--max-iter", type=int, help="most Newton passes (default 50)")
     fit.add_argument("--tol", type=float, help="convergence tolerance (default 1e-10)")
     fit.add_argument("--firth", action="store_true", default=None, help="Firth's bias-reduced fit")
+    fit.add_argument("--by", help="SQL expression of a segment: one model per value, stored as NAME.<segment>")
     fit.add_argument("--holdout-key", help="SQL expression to hash for a held-out part (enables held-out gates)")
     fit.add_argument("--holdout-share", type=float, help="share of rows held out (default 0.2 with --holdout-key)")
     fit.add_argument("--threshold", type=float, help="probability cut-off of the held-out metrics (default 0.5)")
@@ -151,11 +152,11 @@ def _fit(args: argparse.Namespace) -> dict[str, Any]:
             raise UsageError("--reference takes TERM=LEVEL")
         reference = dict(pairs)
     given = {k: getattr(args, k) for k in ("database", "name", "formula", "source", "weights", "offset", "trials",
-                                           "positive", "max_iter", "tol", "firth", "holdout_key", "holdout_share",
-                                           "threshold")}
+                                           "positive", "max_iter", "tol", "firth", "by", "holdout_key",
+                                           "holdout_share", "threshold")}
     settings = merge(read_spec(args.spec) if args.spec else {}, given | {"reference": reference})
     options = {k: settings[k] for k in ("weights", "offset", "trials", "positive", "reference", "max_iter", "tol",
-                                        "firth") if settings.get(k) is not None}
+                                        "firth", "by") if settings.get(k) is not None}
     split = None
     if settings.get("holdout_key"):
         split = dbfit.Holdout(settings["holdout_key"], settings.get("holdout_share") or 0.2)
@@ -165,6 +166,8 @@ def _fit(args: argparse.Namespace) -> dict[str, Any]:
     try:
         model = dbfit.fit(con, settings["formula"], settings["source"], name=settings["name"], split=split,
                           threshold=settings.get("threshold") or 0.5, progress=False, **options)
+        if isinstance(model, dbfit.SegmentedFit):
+            return _segmented_result(con, model, settings.get("gates"))
         if settings.get("gates"):
             dbfit.set_gates(con, settings["name"], **settings["gates"])
         return {"model": model.name, "version": model.version, "rows_used": model.stats["n_used"],
@@ -173,6 +176,21 @@ def _fit(args: argparse.Namespace) -> dict[str, Any]:
                 "coefficients": model.coefficients.select(["term", "estimate", "std_error"]).to_pylist()}
     finally:
         con.close()
+
+
+def _segmented_result(con: duckdb.DuckDBPyConnection, fitted: Any, gates: dict[str, Any] | None) -> dict[str, Any]:
+    """What ``fit --by`` stored: one row per segment model (each gets the spec's gates), and the unfitted segments."""
+    import dbfit
+
+    rows = []
+    for value, model in fitted.models.items():
+        if gates:
+            dbfit.set_gates(con, model.name, **gates)
+        rows.append({"segment": str(value), "model": model.name, "version": model.version,
+                     "rows_used": model.stats["n_used"], "iterations": model.stats["iterations"],
+                     "converged": model.stats["converged"], "warnings": len(model.warnings)})
+    return {"by": fitted.by, "passes": fitted.passes, "scans": fitted.scans, "models": rows,
+            "failures": {str(value): reason for value, reason in fitted.failures.items()}}
 
 
 def _fitted_source(con: duckdb.DuckDBPyConnection, name: str, version: int | None) -> str:

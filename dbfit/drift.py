@@ -155,6 +155,9 @@ def psi_table(con: Any, model: Model, source: str) -> pa.Table:
     if model.name is None or model.version is None:
         raise StoreError("drift compares with the training snapshot in the store: save the model first or pass its name")
     stored = version_table(con, "drift_bins", model.name, model.version, order="variable, position")
+    if not stored and (model.options.get("segment") or {}).get("by"):
+        raise StoreError(f"model '{model.name}' is one segment of a by= fit, which records no training snapshot (that "
+                         "would take a scan per segment): fit the segment on its own source to record one")
     if not stored:
         raise StoreError(f"model '{model.name}' version {model.version} has no training snapshot (saved by an older "
                          "dbfit, or its source was unreadable at save time): refit it to record one")

@@ -2,7 +2,8 @@
 
 Keys: ``database``, ``name``, ``formula``, ``source`` (required unless given on the command line), and optionally
 ``weights``, ``offset``, ``trials``, ``positive``, ``reference`` (a table of term = level), ``max_iter``, ``tol``,
-``firth``, ``holdout_key``, ``holdout_share``, ``threshold`` and ``gates`` (a table of gate settings).
+``firth``, ``by`` (one model per segment, stored as ``name.<segment>``), ``holdout_key``, ``holdout_share``,
+``threshold`` and ``gates`` (a table of gate settings).
 """
 
 from __future__ import annotations
@@ -16,7 +17,7 @@ from dbfit.errors import DbfitError, UsageError
 
 REQUIRED = ("database", "name", "formula", "source")
 OPTIONAL = {"weights": str, "offset": str, "trials": str, "positive": (str, int, bool), "reference": dict,
-            "max_iter": int, "tol": float, "firth": bool, "holdout_key": str, "holdout_share": float,
+            "max_iter": int, "tol": float, "firth": bool, "by": str, "holdout_key": str, "holdout_share": float,
             "threshold": float, "gates": dict}
 
 

@@ -10,6 +10,7 @@ import math
 
 import numpy as np
 import pyarrow as pa
+from scipy import special
 from scipy import stats as distributions
 
 from dbfit.design import Design
@@ -48,12 +49,13 @@ def coefficient_table(labels: list[str], estimates: np.ndarray, covariance: np.n
     std_error = np.sqrt(np.where(np.diag(covariance) >= 0, np.diag(covariance), np.nan))
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         wald_z = estimates / std_error
-        p_value = 2.0 * distributions.norm.sf(np.abs(wald_z))
+        p_value = special.erfc(np.abs(wald_z) / math.sqrt(2.0))  # 2 * (1 - Phi(|z|))
         low, high = estimates - WALD_Z_95 * std_error, estimates + WALD_Z_95 * std_error
         odds, odds_low, odds_high = np.exp(estimates), np.exp(low), np.exp(high)
 
     def column(values: np.ndarray) -> pa.Array:
-        return pa.array([None if not math.isfinite(v) and math.isnan(v) else float(v) for v in values], type=pa.float64())
+        values = np.asarray(values, dtype=float)
+        return pa.array(values, mask=np.isnan(values), type=pa.float64())
 
     return pa.table(
         {

@@ -40,6 +40,11 @@ class Model:
     name: str | None = None  # set once saved to (or loaded from) a model store
     version: int | None = None
 
+    @property
+    def rows_total(self) -> int:
+        """Rows of the source, used or not."""
+        return int(self.design.rows_total)
+
     def save(self, con: "duckdb.DuckDBPyConnection", name: str, *, promote: bool = True) -> int:
         """Store this model as a new version of ``name`` in ``con``'s database; return the version number.
         ``promote=False`` stores a candidate that becomes current only through ``dbfit.promote``."""

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import re
 import time
 from dataclasses import dataclass, field
 from decimal import Decimal
@@ -22,11 +23,14 @@ from dbfit import inference
 from dbfit import sqlbuild as sb
 from dbfit.design import SEGMENT, Design, segment_profiles
 from dbfit.engine import DuckDBEngine
-from dbfit.errors import FitError
+from dbfit.errors import FitError, StoreError
 from dbfit.irls import IterationReport, NewtonResult, newton_iterations
 from dbfit.model import Model
-from dbfit.statsquery import PassResult, statistics_query, unpack
+from dbfit.names import model_name
+from dbfit.source import source_relation
+from dbfit.statsquery import PassResult, statistics_query, unpack_many
 
+_UNNAMEABLE = re.compile(r"[^A-Za-z0-9_.-]")
 Steps = Generator[tuple[np.ndarray, list[int]], PassResult, NewtonResult]
 
 
@@ -40,6 +44,9 @@ class SegmentedFit:
     passes: int
     scans: int
     warnings: list[str] = field(default_factory=list)
+    source: str = ""
+    by_expression: exp.Expression | None = None
+    rows_total: int = 0  # rows of the whole source, segment NULL or not
 
     @property
     def coefficients(self) -> pa.Table:
@@ -58,6 +65,35 @@ class SegmentedFit:
         rows = [{"segment": str(v), **{k: m.stats[k] for k in keys}, "warnings": len(m.warnings)}
                 for v, m in self.models.items()]
         return pa.Table.from_pylist(rows) if rows else pa.table({"segment": pa.array([], type=pa.string())})
+
+    def model_names(self, name: str) -> dict[Any, str]:
+        """The store name of each segment's model: ``name.segment`` (characters a name cannot hold become '_')."""
+        model_name(name)
+        names = {value: model_name(f"{name}.{_UNNAMEABLE.sub('_', str(_plain(value)))}"[:128]) for value in self.models}
+        seen: dict[str, Any] = {}
+        for value, stored in names.items():
+            if stored in seen:
+                raise StoreError(f"segments {seen[stored]!r} and {value!r} would both be stored as model '{stored}': "
+                                 "recode the by expression so that its values differ in letters, digits, '_', '.' or '-'")
+            seen[stored] = value
+        return names
+
+    def save(self, con: Any, name: str, *, promote: bool = True) -> dict[Any, tuple[str, int]]:
+        """Store every segment's model as the next version of ``name.segment``, all in one transaction;
+        returns ``{segment: (model name, version)}``. Each model's source is its segment's rows."""
+        from dbfit.fingerprint import segment_fingerprints
+        from dbfit.store import save_models
+
+        names = self.model_names(name)
+        if self.by_expression is None:
+            raise StoreError("this segmented fit does not know its by expression and cannot be stored")
+        prints = segment_fingerprints(con, self.source, self.by_expression,
+                                      {value: model.source for value, model in self.models.items()})
+        # No drift snapshot per segment: one per segment would scan the source once per segment.
+        entries = [(model, names[value], {"fingerprints": {k: [v] for k, v in prints[value].items()}})
+                   for value, model in self.models.items()]
+        versions = save_models(con, entries, promote=promote)
+        return {value: (names[value], version) for value, version in zip(self.models, versions)}
 
     def summary(self) -> str:
         lines = [f"dbfit | one model per value of  {self.by}: {len(self.models)} fitted, {len(self.failures)} not"
@@ -111,16 +147,20 @@ def fit_segments(
     null = _null_logliks(engine, design, segments, results, max_iter, tol)
 
     models: dict[Any, Model] = {}
+    own_options = {k: v for k, v in options.items() if k != "by"}
+    sources = segment_sources(source, design.segment, list(results))
     for value in segments:
         if value not in results:
             continue
         newton, part = results[value], segments[value]
         active = [fitted[k] for k in newton.active]
         aliased = sorted(constant + [fitted[k] for k in newton.aliased])
-        models[value] = assemble(part, newton, active, aliased, null[value], engine.scans, formula, source,
-                                 {**options, "segment": _plain(value)})
+        models[value] = assemble(part, newton, active, aliased, null[value], engine.scans, formula,
+                                 sources[value],
+                                 {**own_options, "segment": {"by": design.segment_text, "value": _plain(value)}})
     return SegmentedFit(by=design.segment_text or "", models=models, failures=failures, passes=passes,
-                        scans=engine.scans)
+                        scans=engine.scans, source=source, by_expression=design.segment,
+                        rows_total=design.rows_total)
 
 
 def _unfit_reason(profile: dict[str, Any], parameters: int) -> str | None:
@@ -134,8 +174,11 @@ def _unfit_reason(profile: dict[str, Any], parameters: int) -> str | None:
 
 
 def _segment_design(design: Design, profile: dict[str, Any]) -> Design:
+    """The segment's own design: its counts and sums, and no segment expression (its source holds one segment)."""
     return dataclasses.replace(
         design,
+        segment=None,
+        segment_text=None,
         rows_total=int(profile["total"]),
         rows_used=int(profile["used"]),
         weight_sum=float(profile["weight_sum"]),
@@ -183,16 +226,17 @@ def _run_together(
                                  [SEGMENT] + [f"c{k}" for k in range(size)], engine.dialect)
     while requests:
         passes += 1
-        rows = {row[0]: row[1:] for row in engine.fetch_sql(template.render(_coefficient_rows(requests, size)), [])}
+        found = engine.fetch_sql(template.render(_coefficient_rows(requests, size)), [])
+        rows = dict(zip([row[0] for row in found], unpack_many([row[1:] for row in found], size)))
         pending = list(requests.items())
         requests = {}
         for value, (_, active) in pending:
             if value not in rows:
                 failures[value] = "no rows reached the statistics query"
                 continue
-            whole = unpack(rows[value], size)
+            whole = rows[value]
             latest[value] = 2.0 * ((saturated or {}).get(value, 0.0) - whole.loglik)
-            _advance(value, steps[value], _subset(whole, active), requests, results, failures)
+            _advance(value, steps[value], _subset(whole, active, size), requests, results, failures)
         if reporter:
             reporter(IterationReport(passes, float(sum(latest.values())), time.perf_counter() - began, float("nan"),
                                      phase=f"{len(pending)} segments ({len(requests)} still running)"))
@@ -208,7 +252,9 @@ def _advance(value, generator, sent, requests, results, failures) -> None:
         failures[value] = f"the fit broke down numerically ({err})"
 
 
-def _subset(result: PassResult, active: list[int]) -> PassResult:
+def _subset(result: PassResult, active: list[int], size: int) -> PassResult:
+    if len(active) == size:
+        return result
     return dataclasses.replace(result, gram=result.gram[np.ix_(active, active)], score=result.score[active])
 
 
@@ -222,14 +268,31 @@ def _coefficient_rows(requests: dict[Any, tuple[np.ndarray, list[int]]], size: i
     return rows
 
 
+def segment_sources(source: str, by: exp.Expression | None, values: list[Any]) -> dict[Any, str]:
+    """Each segment's rows as a SELECT over ``source`` (rebuilt by sqlglot): the source of that segment's model.
+
+    The query is written once around a placeholder, into which each value's literal (written by sqlglot) goes.
+    """
+    if by is None:
+        raise AssertionError("segment sources need the by expression")
+    placeholder = exp.column("dbfit_segment_value_placeholder", quoted=True)
+    condition = exp.EQ(this=exp.Paren(this=by.copy()), expression=placeholder)
+    text = exp.select("*").from_(source_relation(source)).where(condition).sql("duckdb")
+    if text.count(placeholder.sql("duckdb")) != 1:
+        raise FitError(f"the source or by expression may not mention {placeholder.sql('duckdb')}")
+    before, after = text.split(placeholder.sql("duckdb"))
+    return {value: before + segment_literal(value).sql("duckdb") + after for value in values}
+
+
 def segment_literal(value: Any) -> exp.Expression:
-    """A SQL literal for a segment value as DuckDB returned it."""
+    """A SQL literal for a segment value as DuckDB returned it (a float in exponent form, read as DOUBLE)."""
     if isinstance(value, bool):
         return exp.Boolean(this=value)
     if isinstance(value, int):
         return exp.Literal.number(str(value)) if value >= 0 else exp.Neg(this=exp.Literal.number(str(-value)))
     if isinstance(value, float):
-        return sb.number(value)
+        text = sb.float_text(abs(value))
+        return exp.Neg(this=exp.Literal.number(text)) if value < 0 else exp.Literal.number(text)
     if isinstance(value, Decimal):
         return exp.Literal.number(str(value)) if value >= 0 else exp.Neg(this=exp.Literal.number(str(-value)))
     return exp.Literal.string(str(value))

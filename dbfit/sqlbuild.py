@@ -114,7 +114,7 @@ class ValuesTemplate:
             key = self._keys.get(cache_key)
             if key is None:
                 key = self._keys[cache_key] = literal.sql(dialect=self.dialect)
-            values = [_float_text(v) for v in numbers]
+            values = [float_text(v) for v in numbers]
             if index == 0:
                 # The first row's types fix the columns' types: a plain decimal literal would make them
                 # DECIMAL (NUMERIC), and per-row decimal arithmetic costs more than the rest of the pass.
@@ -124,7 +124,7 @@ class ValuesTemplate:
         return f"{self.before}(VALUES {', '.join(texts)}) AS {self.alias}({names}){self.after}"
 
 
-def _float_text(value: float) -> str:
+def float_text(value: float) -> str:
     """``repr`` (exact round trip) in exponent form, which DuckDB and Spark read as DOUBLE, not DECIMAL."""
     value = float(value)
     if not math.isfinite(value):

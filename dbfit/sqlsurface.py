@@ -20,7 +20,9 @@ from dbfit.engine import DuckDBEngine
 from dbfit.deploy import build_scoring, check_score_columns, publish
 from dbfit.drift import psi_table
 from dbfit.errors import SourceError, StoreError
+from dbfit.model import Model
 from dbfit.names import model_name
+from dbfit.segments import SegmentedFit
 from dbfit.source import source_relation
 
 CATALOG = "dbfit"
@@ -28,6 +30,11 @@ T = duckdb.sqltype
 COEFFICIENT_FIELDS = {"model": T("VARCHAR"), "version": T("INTEGER"), "term": T("VARCHAR")} | {
     c: T("DOUBLE") for c in store.COEFFICIENT_COLUMNS[1:]
 }
+# dbfit.fit: with by := each segment's model is stored as 'model.segment'; a segment that could not be fitted
+# is one row with its reason in ``note`` and no model. ``note`` otherwise holds the model's warnings.
+FIT_FIELDS = {"model": T("VARCHAR"), "version": T("INTEGER"), "segment": T("VARCHAR"), "term": T("VARCHAR")} | {
+    c: T("DOUBLE") for c in store.COEFFICIENT_COLUMNS[1:]
+} | {"note": T("VARCHAR")}
 VERSION_FIELDS = {
     "model": T("VARCHAR"), "version": T("INTEGER"), "created_at": T("TIMESTAMP"), "formula": T("VARCHAR"),
     "source": T("VARCHAR"), "source_rows": T("BIGINT"), "rows_used": T("BIGINT"), "deviance": T("DOUBLE"),
@@ -49,10 +56,10 @@ MACROS = {
     "fit": [(
         "model, source, formula, weights := NULL, \"offset\" := NULL, trials := NULL, reference := NULL, "
         "positive := NULL, max_iter := 50, tol := 1e-10, robust := NULL, \"cluster\" := NULL, firth := false, "
-        "population_rate := NULL, shrinkage := NULL, l1_share := 0.0",
+        "population_rate := NULL, shrinkage := NULL, l1_share := 0.0, \"by\" := NULL",
         _ROWS.format(call="dbfit_sql_fit(model, source, formula, weights, \"offset\", trials, reference, positive, "
                           "max_iter, tol, (SELECT dbfit_count.n FROM query(dbfit_sql_count(source)) AS dbfit_count), "
-                          "robust, \"cluster\", firth, population_rate, shrinkage, l1_share)"),
+                          "robust, \"cluster\", firth, population_rate, shrinkage, l1_share, \"by\")"),
     )],
     "models": [("", _ROWS.format(call="dbfit_sql_models()"))],
     "coefficients": [
@@ -103,7 +110,7 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
         return con.cursor()
 
     def fit_rows(model, source, formula, weights, offset, trials, reference, positive, max_iter, tol, visible_rows,
-                 robust, cluster, firth, population_rate, shrinkage, l1_share):
+                 robust, cluster, firth, population_rate, shrinkage, l1_share, by):
         model_name(model)
         with second() as reader:
             fitted = _fit_on_second_connection(reader, source, formula, visible_rows, weights=weights, offset=offset,
@@ -111,9 +118,13 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
                                                max_iter=50 if max_iter is None else max_iter,
                                                tol=1e-10 if tol is None else tol, robust=robust, cluster=cluster,
                                                firth=bool(firth), population_rate=population_rate,
-                                               shrinkage=shrinkage, l1_share=0.0 if l1_share is None else l1_share)
+                                               shrinkage=shrinkage, l1_share=0.0 if l1_share is None else l1_share,
+                                               by=by)
+            if isinstance(fitted, SegmentedFit):
+                return _segment_rows(fitted, fitted.save(reader, model))
             version = fitted.save(reader, model)
-        return [{"model": model, "version": version, **row} for row in fitted.coefficients.to_pylist()]
+        return [{"model": model, "version": version, "segment": None, **row, "note": _warnings_note(fitted)}
+                for row in fitted.coefficients.to_pylist()]
 
     def count_sql(source):
         return exp.select(exp.alias_(exp.Count(this=exp.Star()), "n")).from_(source_relation(source)).sql("duckdb")
@@ -167,8 +178,8 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
     V, I, D, B = T("VARCHAR"), T("INTEGER"), T("DOUBLE"), T("BOOLEAN")
     reference_type = duckdb.map_type(V, V)
     functions: list[tuple[str, Callable[..., Any], list[Any], Any]] = [
-        ("dbfit_sql_fit", fit_rows, [V, V, V, V, V, V, reference_type, V, I, D, T("BIGINT"), V, V, B, D, D, D],
-         _rows_of(COEFFICIENT_FIELDS)),
+        ("dbfit_sql_fit", fit_rows, [V, V, V, V, V, V, reference_type, V, I, D, T("BIGINT"), V, V, B, D, D, D, V],
+         _rows_of(FIT_FIELDS)),
         ("dbfit_sql_count", count_sql, [V], V),
         ("dbfit_sql_models", version_rows, [], _rows_of(VERSION_FIELDS)),
         ("dbfit_sql_coefficients", coefficient_rows, [V, I], _rows_of(COEFFICIENT_FIELDS)),
@@ -192,6 +203,20 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
             # installed on this connection before: the existing function serves the same connection
 
 
+def _segment_rows(fitted: SegmentedFit, saved: dict[Any, tuple[str, int]]) -> list[dict[str, Any]]:
+    """Every stored segment model's coefficient rows, then one row per segment that could not be fitted."""
+    rows = [{"model": saved[value][0], "version": saved[value][1], "segment": str(value), **row,
+             "note": _warnings_note(model)}
+            for value, model in fitted.models.items() for row in model.coefficients.to_pylist()]
+    blank = {c: None for c in store.COEFFICIENT_COLUMNS}
+    return rows + [{"model": None, "version": None, "segment": str(value), **blank, "note": f"not fitted: {reason}"}
+                   for value, reason in fitted.failures.items()]
+
+
+def _warnings_note(model: Model) -> str | None:
+    return "; ".join(model.warnings) or None
+
+
 def _rows_of(fields: dict[str, Any]) -> Any:
     return duckdb.list_type(duckdb.struct_type(fields))
 
@@ -209,6 +234,6 @@ def _fit_on_second_connection(reader: duckdb.DuckDBPyConnection, source: str, fo
         model = fitting.fit(reader, formula, source, progress=False, **options)
     except SourceError as err:
         raise SourceError(f"{invisible} cannot read it ({err}): {advice}") from None
-    if visible_rows is not None and model.design.rows_total != visible_rows:
-        raise SourceError(f"{invisible} sees {model.design.rows_total}: {advice}")
+    if visible_rows is not None and model.rows_total != visible_rows:
+        raise SourceError(f"{invisible} sees {model.rows_total}: {advice}")
     return model

@@ -181,15 +181,21 @@ def _product(a: str | None, b: str | None) -> exp.Expression:
 
 def unpack(row: tuple, size: int, score_only: bool = False) -> PassResult:
     """Turn the query's single row into the symmetric Gram matrix, the score and the log-likelihood."""
-    values = np.array([np.nan if v is None else float(v) for v in row])
+    return unpack_many([row], size, score_only)[0]
+
+
+def unpack_many(rows: list[tuple], size: int, score_only: bool = False) -> list[PassResult]:
+    """:func:`unpack` for many rows of the same layout at once (one per segment); NULL sums become NaN."""
+    values = np.array(rows, dtype=float).reshape(len(rows), -1)
     if score_only:
-        gram, count = np.zeros((0, 0)), 0
+        grams, count = np.zeros((len(rows), 0, 0)), 0
     else:
-        gram = np.zeros((size, size))
         upper = np.triu_indices(size)
         count = len(upper[0])
-        gram[upper] = values[:count]
-        gram = gram + np.triu(gram, 1).T
-    score = values[count : count + size]
-    loglik, extreme, misfit = values[count + size : count + size + 3]
-    return PassResult(gram=gram, score=score, loglik=float(loglik), extreme=float(extreme), misfit_extreme=float(misfit))
+        grams = np.zeros((len(rows), size, size))
+        grams[:, upper[0], upper[1]] = values[:, :count]
+        grams[:, upper[1], upper[0]] = values[:, :count]
+    scores = values[:, count : count + size]
+    tails = values[:, count + size : count + size + 3].tolist()
+    return [PassResult(gram=grams[k], score=scores[k], loglik=tail[0], extreme=tail[1], misfit_extreme=tail[2])
+            for k, tail in enumerate(tails)]

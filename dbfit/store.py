@@ -28,7 +28,7 @@ import pyarrow as pa
 from dbfit.errors import StoreConflictError, StoreError
 from dbfit.model import Model
 from dbfit.names import model_name
-from dbfit.serialize import from_document, to_document, to_json
+from dbfit.serialize import from_document, to_document
 
 SCHEMA = "dbfit_store"
 WRITE_ATTEMPTS = 10
@@ -71,27 +71,34 @@ def save_model(con: duckdb.DuckDBPyConnection, model: Model, name: str, *, promo
     ``promote=True`` makes it the current version in the same transaction; ``promote=False`` stores a candidate.
     ``extra`` adds rows to per-version tables (``fingerprints``, ``drift_bins``) in the same transaction.
     """
-    name = model_name(name)
-    if extra is None:
-        extra = save_time_rows(con, model)
+    return save_models(con, [(model, name, extra)], promote=promote)[0]
+
+
+def save_models(con: duckdb.DuckDBPyConnection, entries: list[tuple[Model, str, Extra | None]], *,
+                promote: bool = True) -> list[int]:
+    """Write each ``(model, name, extra)`` as the next version of its name, all in one transaction: every one
+    of them or none. Returns the version numbers in order."""
+    names = [model_name(name) for _, name, _ in entries]
+    repeated = sorted({n for n in names if names.count(n) > 1})
+    if repeated:
+        raise StoreError(f"model names given more than once in one save: {', '.join(repeated[:5])}")
+    extras = [save_time_rows(con, model) if extra is None else extra for model, _, extra in entries]
     preamble = ensure_schema_statements(con)
     for attempt in range(WRITE_ATTEMPTS):
-        version = None
+        versions: list[int] = []
         try:
             with _transaction(con, preamble) as writer:
-                version = _next_version(writer, name)
-                _write_version(writer, model, name, version)
-                for table, columns in (extra or {}).items():
-                    _insert(writer, table, {"model": [name], "version": [version], **columns})
-                if promote:
-                    _set_current(writer, name, version)
+                versions = _next_versions(writer, names)
+                _write_versions(writer, [model for model, _, _ in entries], names, versions, extras, promote)
             break
         except StoreConflictError:
-            if attempt == WRITE_ATTEMPTS - 1 or version is None or _orphan_rows(con, name, version):
+            if attempt == WRITE_ATTEMPTS - 1 or not versions or any(
+                    _orphan_rows(con, n, v) for n, v in zip(names, versions)):
                 raise
             time.sleep(random.uniform(0.001, 0.02) * (attempt + 1))
-    model.name, model.version = name, version
-    return version
+    for (model, _, _), name, version in zip(entries, names, versions):
+        model.name, model.version = name, version
+    return versions
 
 
 def save_time_rows(con: duckdb.DuckDBPyConnection, model: Model) -> Extra:
@@ -279,9 +286,12 @@ def version_table(con: duckdb.DuckDBPyConnection, table: str, name: str, version
 
 
 def _set_current(writer: duckdb.DuckDBPyConnection, name: str, version: int) -> None:
-    now = datetime.now(timezone.utc).replace(tzinfo=None)
-    _run(writer, [f"DELETE FROM {SCHEMA}.current_versions WHERE model = ?"], [name])
-    _run(writer, [f"INSERT INTO {SCHEMA}.current_versions VALUES (?, ?, ?)"], [name, version, now])
+    _set_current_versions(writer, [name], [version], datetime.now(timezone.utc).replace(tzinfo=None))
+
+
+def _set_current_versions(writer: duckdb.DuckDBPyConnection, names: list[str], versions: list[int], now: datetime) -> None:
+    _run(writer, [f"DELETE FROM {SCHEMA}.current_versions WHERE model IN (SELECT unnest(?))"], [names])
+    _insert(writer, "current_versions", {"model": names, "version": versions, "promoted_at": [now] * len(names)})
 
 
 @contextmanager
@@ -321,45 +331,76 @@ def _schema_statements() -> list[str]:
     ]
 
 
-def _next_version(writer: duckdb.DuckDBPyConnection, name: str) -> int:
-    rows = _fetch(writer, f"SELECT coalesce(max(version), 0) + 1 FROM {SCHEMA}.versions WHERE model = ?", [name])
-    return int(rows[0][0])
+def _next_versions(writer: duckdb.DuckDBPyConnection, names: list[str]) -> list[int]:
+    rows = _fetch(writer, f"SELECT model, max(version) FROM {SCHEMA}.versions WHERE model IN (SELECT unnest(?)) "
+                  "GROUP BY model", [names])
+    latest = dict(rows)
+    return [int(latest.get(name) or 0) + 1 for name in names]
 
 
-def _write_version(writer: duckdb.DuckDBPyConnection, model: Model, name: str, version: int) -> None:
+def _write_versions(writer: duckdb.DuckDBPyConnection, models: list[Model], names: list[str], versions: list[int],
+                    extras: list[Extra], promote: bool) -> None:
+    """All rows of all the versions, one INSERT per table (a store of many segment models writes in seconds)."""
     now = datetime.now(timezone.utc).replace(tzinfo=None)
+    batches: dict[str, list[dict[str, list[Any]]]] = {}
+    for model, name, version, extra in zip(models, names, versions, extras):
+        for table, columns in _version_rows(model, name, version, now).items():
+            batches.setdefault(table, []).append(columns)
+        for table, columns in extra.items():
+            batches.setdefault(table, []).append({"model": [name], "version": [version], **columns})
+    _run(writer, [f"INSERT INTO {SCHEMA}.models SELECT name, ? FROM (SELECT unnest(?) AS name) "
+                  f"WHERE name NOT IN (SELECT model FROM {SCHEMA}.models)"], [now, names])
+    for table, parts in batches.items():
+        _insert(writer, table, _stacked(parts))
+    if promote:
+        _set_current_versions(writer, names, versions, now)
+
+
+def _stacked(parts: list[dict[str, list[Any]]]) -> dict[str, list[Any]]:
+    """Column-wise rows of several versions as one: each part's one-element (key) lists repeated first."""
+    stacked: dict[str, list[Any]] = {}
+    for part in parts:
+        rows = max(len(v) for v in part.values())
+        if rows == 0 or any(len(v) == 0 for v in part.values()):
+            continue
+        for column, values in part.items():
+            stacked.setdefault(column, []).extend(values * rows if len(values) == 1 else values)
+    return stacked
+
+
+def _version_rows(model: Model, name: str, version: int, now: datetime) -> dict[str, dict[str, list[Any]]]:
+    """The rows of one version in each of its tables, column-wise."""
     document = to_document(model)
     stats = model.stats
-    _run(writer, [f"INSERT INTO {SCHEMA}.models SELECT ?, ? WHERE NOT EXISTS (SELECT 1 FROM {SCHEMA}.models WHERE model = ?)"],
-         [name, now, name])
-    _run(
-        writer,
-        [f"INSERT INTO {SCHEMA}.versions VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)"],
-        [name, version, now, model.formula, model.source, int(model.design.rows_total), int(stats["n_used"]),
-         model.fitted_at.astimezone(timezone.utc).replace(tzinfo=None), _finite(stats.get("deviance")),
-         _finite(stats.get("aic")), bool(stats["converged"]), len(model.warnings), to_json(model)],
-    )
     key = {"model": [name], "version": [version]}
+    rows: dict[str, dict[str, list[Any]]] = {"versions": {
+        **key, "created_at": [now], "formula": [model.formula], "source": [model.source],
+        "source_rows": [int(model.design.rows_total)], "rows_used": [int(stats["n_used"])],
+        "fitted_at": [model.fitted_at.astimezone(timezone.utc).replace(tzinfo=None)],
+        "deviance": [_finite(stats.get("deviance"))], "aic": [_finite(stats.get("aic"))],
+        "converged": [bool(stats["converged"])], "warnings_count": [len(model.warnings)],
+        "document": [json.dumps(document, allow_nan=False, sort_keys=False)]}}
     coefficients = model.coefficients
-    _insert(writer, "coefficients", {**key, "position": list(range(coefficients.num_rows)),
-                                     **{c: coefficients[c].to_pylist() for c in COEFFICIENT_COLUMNS}})
+    rows["coefficients"] = {**key, "position": list(range(coefficients.num_rows)),
+                            **{c: coefficients[c].to_pylist() for c in COEFFICIENT_COLUMNS}}
     factors = document["factors"]
-    _insert(writer, "factors", {**key, "position": list(range(len(factors))),
-                                "expression": [f["expression"] for f in factors], "kind": [f["kind"] for f in factors],
-                                "sql_type": [f["sql_type"] for f in factors],
-                                "levels": [json.dumps(f["levels"]) for f in factors],
-                                "reference": [None if f["reference"] is None else json.dumps(f["reference"]) for f in factors]})
+    rows["factors"] = {**key, "position": list(range(len(factors))),
+                       "expression": [f["expression"] for f in factors], "kind": [f["kind"] for f in factors],
+                       "sql_type": [f["sql_type"] for f in factors],
+                       "levels": [json.dumps(f["levels"]) for f in factors],
+                       "reference": [None if f["reference"] is None else json.dumps(f["reference"]) for f in factors]}
     columns = model.design.columns
     texts = [f.text for f in model.design.factors]
-    _insert(writer, "encodings", {**key, "position": list(range(len(columns))), "label": [c.label for c in columns],
-                                  "term": [c.term for c in columns],
-                                  "numeric_factors": [json.dumps([texts[i] for i in c.numeric]) for c in columns],
-                                  "indicators": [json.dumps([[texts[i], level] for i, level in c.indicators]) for c in columns],
-                                  "centre": [c.centre for c in columns], "scale": [c.scale for c in columns]})
+    rows["encodings"] = {**key, "position": list(range(len(columns))), "label": [c.label for c in columns],
+                         "term": [c.term for c in columns],
+                         "numeric_factors": [json.dumps([texts[i] for i in c.numeric]) for c in columns],
+                         "indicators": [json.dumps([[texts[i], level] for i, level in c.indicators]) for c in columns],
+                         "centre": [c.centre for c in columns], "scale": [c.scale for c in columns]}
     labels = model.labels
-    _insert(writer, "covariance", {**key, "row_term": [a for a in labels for _ in labels],
-                                   "column_term": [b for _ in labels for b in labels],
-                                   "value": [_finite(v) for v in model.covariance.ravel()]})
+    rows["covariance"] = {**key, "row_term": [a for a in labels for _ in labels],
+                          "column_term": [b for _ in labels for b in labels],
+                          "value": [_finite(v) for v in model.covariance.ravel()]}
+    return rows
 
 
 def _insert(writer: duckdb.DuckDBPyConnection, table: str, columns: dict[str, list[Any]]) -> None:

@@ -199,3 +199,19 @@ def test_two_refits_started_at_once_leave_one_promotion_and_one_clear_error(data
     assert con.execute("SELECT version FROM dbfit_store.current_versions").fetchall() == [(2,)]
     assert con.execute("SELECT decision FROM dbfit_store.decisions").fetchall() == [("promoted",)]
     con.close()
+
+
+def test_fit_by_segment_stores_one_model_per_segment_and_refits_each(database):
+    done = run("fit", "--database", database, "--name", "late", "--formula", "late ~ distance_km + rain",
+               "--source", "deliveries", "--by", "depot", "--json")
+    assert done.returncode == 0, done.stderr
+    result = one_object(done)
+    con = duckdb.connect(str(database), read_only=True)
+    depots = [r[0] for r in con.execute("SELECT DISTINCT depot FROM deliveries ORDER BY 1").fetchall()]
+    counts = dict(con.execute("SELECT depot, count(*) FROM deliveries GROUP BY 1").fetchall())
+    con.close()
+    assert [m["segment"] for m in result["models"]] == depots and result["failures"] == {}
+    assert all(m["model"] == f"late.{m['segment']}" and m["version"] == 1 for m in result["models"])
+    assert all(m["rows_used"] == counts[m["segment"]] for m in result["models"])
+    refit = one_object(run("refit", f"late.{depots[0]}", "--database", database, "--skip-unchanged", "--json"))
+    assert refit["decision"] == "skipped" and refit["source_rows"] == counts[depots[0]]

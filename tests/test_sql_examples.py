@@ -20,7 +20,8 @@ EXAMPLES = sorted((Path(__file__).resolve().parents[1] / "sql_examples").glob("*
 
 def test_examples_run_in_order_and_leave_what_they_promise(tmp_path, capsys):
     assert [p.name for p in EXAMPLES] == ["01_fit.sql", "02_inspect.sql", "03_score.sql", "04_publish.sql",
-                                          "05_refit.sql", "06_drift.sql", "07_drop.sql"]
+                                          "05_refit.sql", "06_drift.sql", "07_drop.sql",
+                                          "08_by_depot.sql"]
     path = str(tmp_path / "courier.duckdb")
     with dbfit.connect(path) as con:
         build_deliveries(con, 20_000)
@@ -51,6 +52,14 @@ def test_examples_run_in_order_and_leave_what_they_promise(tmp_path, capsys):
     assert first.rows == [("late_deliveries", 1)] and rest.rows == [("late_deliveries", 2)] and left.rows == [(0,)]
     views = con.execute("SELECT count(*) FROM duckdb_views() WHERE NOT internal").fetchall()
     assert views == [(0,)]
+    segments, listing, scored = outcomes["08_by_depot.sql"]
+    by_depot = dbfit.fit(con, "late ~ distance_km + parcel_kg + rain", "deliveries", by="depot", progress=False)
+    assert [row[0] for row in listing.rows] == [f"late_by_depot.{d}" for d in sorted(by_depot.models)]
+    for depot, model in by_depot.models.items():
+        estimates = [row[4] for row in segments.rows if row[2] == depot]
+        np.testing.assert_allclose(estimates, model.estimates, rtol=1e-12)
+    north_rows = con.execute("SELECT count(*) FROM deliveries WHERE depot = 'North'").fetchall()[0][0]
+    assert scored.rows == [(north_rows,)]
     con.close()
 
 

@@ -40,13 +40,13 @@ def test_sql_fit_stores_a_version_and_returns_its_coefficients(grades):
     result = con.execute("SELECT * FROM dbfit.fit('grades', 'spector', 'GRADE ~ GPA + TUCE + PSI', tol := 1e-12)")
     columns = [d[0] for d in result.description]
     rows = result.fetchall()
-    assert columns == ["model", "version"] + list(COEFFICIENT_COLUMNS)
-    assert {(r[0], r[1]) for r in rows} == {("grades", 1)}
+    assert columns == ["model", "version", "segment"] + list(COEFFICIENT_COLUMNS) + ["note"]
+    assert {(r[0], r[1], r[2], r[-1]) for r in rows} == {("grades", 1, None, None)}
     reference, _ = reference_logit()
-    np.testing.assert_allclose([r[3] for r in rows], reference.params.values, rtol=1e-8)
-    np.testing.assert_allclose([r[4] for r in rows], reference.bse.values, rtol=1e-6)
+    np.testing.assert_allclose([r[4] for r in rows], reference.params.values, rtol=1e-8)
+    np.testing.assert_allclose([r[5] for r in rows], reference.bse.values, rtol=1e-6)
     python = dbfit.load(con, "grades")
-    assert [r[3] for r in rows] == list(python.estimates)
+    assert [r[4] for r in rows] == list(python.estimates)
     again = con.execute("SELECT DISTINCT version FROM dbfit.fit('grades', 'spector', 'GRADE ~ GPA')").fetchall()
     assert again == [(2,)]
     listing = con.execute("SELECT model, version, formula, source, rows_used, converged, warnings_count FROM dbfit.models()")
