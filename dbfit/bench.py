@@ -137,7 +137,16 @@ def _worker(task: dict[str, Any]) -> dict[str, Any]:
     return result
 
 
-def _measure(task: dict[str, Any]) -> dict[str, Any] | None:
+def _measure(task: dict[str, Any], repeat: int = 1) -> dict[str, Any] | None:
+    """Run ``task`` ``repeat`` times, each in a fresh process; the run of median time, with every run's seconds."""
+    runs = [_measure_once(task) for _ in range(max(1, repeat))]
+    if any(r is None for r in runs):
+        return None
+    ordered = sorted(runs, key=lambda r: r["seconds"])
+    return {**ordered[len(ordered) // 2], "runs": [r["seconds"] for r in runs]}
+
+
+def _measure_once(task: dict[str, Any]) -> dict[str, Any] | None:
     done = subprocess.run([sys.executable, "-m", "dbfit.bench", json.dumps(task)], capture_output=True, text=True,
                           check=False)
     marked = [line[line.index(RESULT_MARK):] for line in done.stdout.splitlines() if RESULT_MARK in line]
@@ -156,6 +165,8 @@ def _line(label: str, r: dict[str, Any] | None) -> None:
         extra = f", {r['scans']} scans ({r['score_passes']} score-only + {r['newton_passes']} full Newton passes)"
     elif "models" in r:
         extra = f", {r['models']} models" + (f", {r['passes']} grouped passes" if "passes" in r else "")
+    if len(r.get("runs", [])) > 1:
+        extra += f"; median of {len(r['runs'])} runs ({min(r['runs']):.2f}-{max(r['runs']):.2f} s)"
     print(f"  {label:<34} {r['seconds']:8.2f} s   peak RSS {r['peak_rss_mb']:8.0f} MB{extra}")
 
 
@@ -169,15 +180,15 @@ def _ratio(name: str, a: dict[str, Any] | None, b: dict[str, Any] | None) -> Non
     print(text)
 
 
-def bench_core(folder: str, rows: int, predictors: int, keep: str | None) -> dict[str, Any]:
+def bench_core(folder: str, rows: int, predictors: int, keep: str | None, repeat: int = 1) -> dict[str, Any]:
     path = keep or os.path.join(folder, "core.duckdb")
     if not Path(path).exists():
         build_table(path, numeric_select(rows, predictors))
     print(f"core: {rows:,} rows x {predictors} numeric predictors")
     names = [f"x{j}" for j in range(predictors)]
-    a = _measure({"kind": "dbfit", "path": path, "formula": formula(predictors)})
-    b = _measure({"kind": "statsmodels", "path": path, "columns": names})
-    c = _measure({"kind": "numpy", "path": path, "columns": names})
+    a = _measure({"kind": "dbfit", "path": path, "formula": formula(predictors)}, repeat)
+    b = _measure({"kind": "statsmodels", "path": path, "columns": names}, repeat)
+    c = _measure({"kind": "numpy", "path": path, "columns": names}, repeat)
     _line("(a) dbfit in-database", a)
     _line("(b) export + statsmodels", b)
     _line("(c) in-memory numpy IRLS", c)
@@ -186,26 +197,26 @@ def bench_core(folder: str, rows: int, predictors: int, keep: str | None) -> dic
     return {"a": a, "b": b, "c": c}
 
 
-def bench_levels(folder: str, rows: int, predictors: int, levels: int) -> dict[str, Any]:
+def bench_levels(folder: str, rows: int, predictors: int, levels: int, repeat: int = 1) -> dict[str, Any]:
     path = os.path.join(folder, "levels.duckdb")
     effect = f"((hash(id, 77) % {levels})::DOUBLE - {levels / 2}) / {levels / 2}"
     build_table(path, numeric_select(rows, predictors, f", 'L' || (hash(id, 77) % {levels}) AS level", effect))
     print(f"levels: {rows:,} rows, one {levels:,}-level categorical and {predictors} numeric predictors")
-    a = _measure({"kind": "dbfit", "path": path, "formula": formula(predictors, "level")})
+    a = _measure({"kind": "dbfit", "path": path, "formula": formula(predictors, "level")}, repeat)
     _line("(a) dbfit, blocks by level", a)
     dense_bytes = rows * (levels + predictors) * 8
     print(f"  export + statsmodels: not run; its dense design would take {dense_bytes / 2**30:,.1f} GiB of memory")
     return {"a": a}
 
 
-def bench_segments(folder: str, rows: int, predictors: int, segments: int) -> dict[str, Any]:
+def bench_segments(folder: str, rows: int, predictors: int, segments: int, repeat: int = 1) -> dict[str, Any]:
     path = os.path.join(folder, "segments.duckdb")
     build_table(path, numeric_select(rows, predictors, f", hash(id, 55) % {segments} AS seg"))
     print(f"segments: {rows:,} rows x {predictors} numeric predictors, {segments:,} segments")
     names = [f"x{j}" for j in range(predictors)]
-    by = _measure({"kind": "dbfit-by", "path": path, "formula": formula(predictors), "by": "seg"})
-    pooled = _measure({"kind": "dbfit", "path": path, "formula": formula(predictors)})
-    b = _measure({"kind": "statsmodels-by", "path": path, "columns": names})
+    by = _measure({"kind": "dbfit-by", "path": path, "formula": formula(predictors), "by": "seg"}, repeat)
+    pooled = _measure({"kind": "dbfit", "path": path, "formula": formula(predictors)}, repeat)
+    b = _measure({"kind": "statsmodels-by", "path": path, "columns": names}, repeat)
     _line("(a) dbfit, one model per segment", by)
     _line("(p) dbfit, one pooled model", pooled)
     _line("(b) export + statsmodels per segment", b)
@@ -214,7 +225,7 @@ def bench_segments(folder: str, rows: int, predictors: int, segments: int) -> di
     return {"a": by, "p": pooled, "b": b}
 
 
-def bench_outofcore(folder: str, rows: int, predictors: int, memory_limit: str) -> dict[str, Any]:
+def bench_outofcore(folder: str, rows: int, predictors: int, memory_limit: str, repeat: int = 1) -> dict[str, Any]:
     import duckdb
 
     lake = os.path.join(folder, "lake")
@@ -232,7 +243,7 @@ def bench_outofcore(folder: str, rows: int, predictors: int, memory_limit: str) 
     for used in (parts // 4, parts // 2, parts):
         files = f"{lake}/part[0-{used - 1}].parquet"
         results[used] = _measure({"kind": "dbfit", "path": ":memory:", "formula": formula(predictors), "source": files,
-                                  "config": {"memory_limit": memory_limit, "threads": 2}})
+                                  "config": {"memory_limit": memory_limit, "threads": 2}}, repeat)
         _line(f"(a) dbfit on {used * (rows // parts):,} rows", results[used])
     firsts = [r for r in results.values() if r]
     if len(firsts) == len(results):
@@ -242,20 +253,20 @@ def bench_outofcore(folder: str, rows: int, predictors: int, memory_limit: str) 
 
 
 def run_bench(scenario: str = "core", rows: int | None = None, predictors: int | None = None, keep: str | None = None,
-              levels: int = 5000, segments: int = 1000, memory_limit: str = "2GB") -> dict[str, Any]:
-    """Run one scenario (or ``all``) and print its figures."""
+              levels: int = 5000, segments: int = 1000, memory_limit: str = "2GB", repeat: int = 1) -> dict[str, Any]:
+    """Run one scenario (or ``all``) and print its figures; each measurement ``repeat`` times (the median shown)."""
     folder = tempfile.mkdtemp(prefix="dbfit_bench_")
     chosen = SCENARIOS if scenario == "all" else (scenario,)
     results = {}
     for name in chosen:
         if name == "core":
-            results[name] = bench_core(folder, rows or 5_000_000, predictors or 20, keep)
+            results[name] = bench_core(folder, rows or 5_000_000, predictors or 20, keep, repeat)
         elif name == "levels":
-            results[name] = bench_levels(folder, rows or 2_000_000, predictors or 10, levels)
+            results[name] = bench_levels(folder, rows or 2_000_000, predictors or 10, levels, repeat)
         elif name == "segments":
-            results[name] = bench_segments(folder, rows or 5_000_000, predictors or 5, segments)
+            results[name] = bench_segments(folder, rows or 5_000_000, predictors or 5, segments, repeat)
         elif name == "outofcore":
-            results[name] = bench_outofcore(folder, rows or 100_000_000, predictors or 10, memory_limit)
+            results[name] = bench_outofcore(folder, rows or 100_000_000, predictors or 10, memory_limit, repeat)
         else:
             raise ValueError(f"unknown scenario {name!r}; choose from {', '.join(SCENARIOS)} or all")
     return results

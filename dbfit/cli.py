@@ -40,6 +40,7 @@ def build_parser() -> argparse.ArgumentParser:
     bench.add_argument("--segments", type=int, default=1000, help="segments in 'segments'")
     bench.add_argument("--memory-limit", default="2GB", help="DuckDB memory_limit in 'outofcore'")
     bench.add_argument("--keep", default=None, help="core: reuse or keep the data in this DuckDB file")
+    bench.add_argument("--repeat", type=int, default=1, help="run each measurement this many times; show the median")
 
     script = command("sql", "run a .sql script with the dbfit. SQL functions installed")
     script.add_argument("file", help="the script, e.g. sql_examples/01_fit.sql")
@@ -61,7 +62,8 @@ def main(argv: list[str] | None = None) -> int:
         elif args.command == "bench":
             from dbfit.bench import run_bench
 
-            run_bench(args.scenario, args.rows, args.predictors, args.keep, args.levels, args.segments, args.memory_limit)
+            run_bench(args.scenario, args.rows, args.predictors, args.keep, args.levels, args.segments, args.memory_limit,
+                      args.repeat)
         elif args.command == "sql":
             _run_sql_file(args.file, args.database)
         else:
