@@ -74,17 +74,19 @@ def _bin_number(value: exp.Expression, edges: list[float]) -> exp.Expression:
 
 def _numeric_counts(engine: DuckDBEngine, scored: exp.Expression, variables: list[tuple[str, exp.Expression]],
                     edges: dict[str, list[float]]) -> dict[str, list[int]]:
-    """One scan: the rows in each bin of each numeric variable."""
-    columns, layout = [], []
-    for name, value in variables:
-        number = _bin_number(value, edges[name])
+    """One scan: the rows in each bin of each numeric variable (each row's bin numbered once, then counted)."""
+    columns, layout, bins = [], [], []
+    for index, (name, value) in enumerate(variables):
+        alias = f"dbfit_bin_{index}"
+        bins.append(exp.alias_(_bin_number(value, edges[name]), alias, quoted=True))
         for k in range(len(edges[name]) + 1):
-            columns.append(exp.Sum(this=exp.If(this=exp.EQ(this=number.copy(), expression=sb.number(k)),
+            columns.append(exp.Sum(this=exp.If(this=exp.EQ(this=sb.column(alias), expression=sb.number(k)),
                                                true=sb.number(1), false=sb.number(0))))
             layout.append(name)
     if not columns:
         return {}
-    row = engine.fetch(exp.select(*columns).from_(scored.copy()))[0]
+    numbered = exp.select(*bins).from_(scored.copy()).subquery("dbfit_bins")
+    row = engine.fetch(exp.select(*columns).from_(numbered))[0]
     counts: dict[str, list[int]] = {name: [] for name, _ in variables}
     for name, value in zip(layout, row):
         counts[name].append(int(value or 0))
