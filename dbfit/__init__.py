@@ -13,6 +13,7 @@ from dbfit.errors import (DbfitError, FitError, FormulaError, GateRefusedError, 
 from dbfit.irls import IterationReport
 from dbfit.model import Model
 from dbfit.segments import SegmentedFit
+from dbfit.segmentscoring import publish_segments
 from dbfit.priorcorrection import prior_corrected
 from dbfit.robust import with_robust_errors
 
@@ -48,6 +49,7 @@ __all__ = [
     "prior_corrected",
     "promote",
     "publish",
+    "publish_segments",
     "refit",
     "score",
     "set_gates",

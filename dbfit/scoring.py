@@ -120,12 +120,17 @@ def scoring_query(
     *,
     coefficient: Coefficient | None = None,
     joined: exp.Expression | None = None,
+    join_on: exp.Expression | None = None,
     unseen: str = "null",
     with_standard_error: bool = False,
     level: float = 0.95,
     dialect: str = "duckdb",
 ) -> exp.Select:
-    """SELECT every column of ``relation`` plus the score columns (and on request the interval columns)."""
+    """SELECT every column of ``relation`` plus the score columns (and on request the interval columns).
+
+    ``joined`` is a relation the ``coefficient`` expressions read: cross-joined (one row), or LEFT JOINed
+    on ``join_on`` (one row per segment, see :mod:`dbfit.segmentscoring`).
+    """
     check_options(dialect, unseen)
     design = model.design
     relation = _aliased(relation)
@@ -135,7 +140,9 @@ def scoring_query(
         se = standard_error(design, model.covariance, unseen, dialect)
         inner = inner.select(exp.alias_(se, "linear_predictor_se", quoted=True))
     inner = inner.from_(relation)
-    if joined is not None:
+    if joined is not None and join_on is not None:
+        inner = inner.join(joined, on=join_on, join_type="LEFT")
+    elif joined is not None:
         inner = inner.join(joined, join_type="CROSS")
     lp = sb.column("linear_predictor")
     outer = exp.select(

@@ -95,6 +95,14 @@ class SegmentedFit:
         versions = save_models(con, entries, promote=promote)
         return {value: (names[value], version) for value, version in zip(self.models, versions)}
 
+    def scoring_sql(self, source: str | None = None, *, unseen: str = "null") -> str:
+        """A DuckDB SELECT over ``source`` (default: the fitted source) scoring each row with its segment's model."""
+        from dbfit.segmentscoring import segment_scoring_query
+
+        if self.by_expression is None:
+            raise StoreError("this segmented fit does not know its by expression")
+        return segment_scoring_query(self.models, self.by_expression, source or self.source, unseen=unseen).sql("duckdb")
+
     def summary(self) -> str:
         lines = [f"dbfit | one model per value of  {self.by}: {len(self.models)} fitted, {len(self.failures)} not"
                  f" ({self.passes} grouped passes, {self.scans} scans of the data)"]

@@ -23,6 +23,7 @@ from dbfit.errors import SourceError, StoreError
 from dbfit.model import Model
 from dbfit.names import model_name
 from dbfit.segments import SegmentedFit
+from dbfit.segmentscoring import publish_segments
 from dbfit.source import source_relation
 
 CATALOG = "dbfit"
@@ -41,6 +42,7 @@ VERSION_FIELDS = {
     "aic": T("DOUBLE"), "converged": T("BOOLEAN"), "warnings_count": T("INTEGER"), "current": T("BOOLEAN"),
 }
 PUBLISHED_FIELDS = {"view": T("VARCHAR"), "model": T("VARCHAR"), "version": T("INTEGER"), "mode": T("VARCHAR")}
+SEGMENT_VIEW_FIELDS = {"view": T("VARCHAR"), "segments": T("INTEGER"), "mode": T("VARCHAR")}
 DROPPED_FIELDS = {"model": T("VARCHAR"), "version": T("INTEGER")}
 CUTOFF_COLUMNS = ("threshold", "true_positive_rate", "false_positive_rate", "precision", "recall", "specificity",
                   "share_flagged")
@@ -73,6 +75,10 @@ MACROS = {
     "publish": [(
         "model, source, view, version := NULL, live := false, unseen := 'null'",
         _ROWS.format(call="dbfit_sql_publish(model, source, view, version, live, unseen)"),
+    )],
+    "publish_segments": [(
+        "model, source, view, unseen := 'null'",
+        _ROWS.format(call="dbfit_sql_publish_segments(model, source, view, unseen)"),
     )],
     "assess": [("model, source, threshold := 0.5", _ROWS.format(call="dbfit_sql_assess(model, source, threshold, 'metrics')"))],
     "confusion": [("model, source, threshold := 0.5", _ROWS.format(call="dbfit_sql_confusion(model, source, threshold, 'confusion')"))],
@@ -153,6 +159,11 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
             made = publish(writer, model, view, source, version=version, live=bool(live), unseen=unseen or "null")
         return [{k: made[k] for k in PUBLISHED_FIELDS}]
 
+    def publish_segment_rows(model, source, view, unseen):
+        with second() as writer:
+            made = publish_segments(writer, model, view, source, unseen=unseen or "null")
+        return [{k: made[k] for k in SEGMENT_VIEW_FIELDS}]
+
     def drop_rows(model, version):
         with second() as writer:
             return [{"model": m, "version": v} for m, v in store.drop_model(writer, model, version)]
@@ -185,6 +196,7 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
         ("dbfit_sql_coefficients", coefficient_rows, [V, I], _rows_of(COEFFICIENT_FIELDS)),
         ("dbfit_sql_score", score_sql, [V, V, I, B, D, V], V),
         ("dbfit_sql_publish", publish_rows, [V, V, V, I, B, V], _rows_of(PUBLISHED_FIELDS)),
+        ("dbfit_sql_publish_segments", publish_segment_rows, [V, V, V, V], _rows_of(SEGMENT_VIEW_FIELDS)),
         ("dbfit_sql_drop", drop_rows, [V, I], _rows_of(DROPPED_FIELDS)),
         ("dbfit_sql_assess", assessment_rows, [V, V, D, V], _rows_of({"metric": V, "value": D, "note": V})),
         ("dbfit_sql_confusion", assessment_rows, [V, V, D, V], _rows_of({"actual": I, "predicted": I, "rows": T("BIGINT")})),

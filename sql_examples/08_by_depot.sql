@@ -5,3 +5,7 @@ FROM dbfit.fit('late_by_depot', 'deliveries', 'late ~ distance_km + parcel_kg + 
 SELECT model, rows_used, converged FROM dbfit.models() ORDER BY model;
 SELECT count(*) AS north_rows_scored
 FROM dbfit.score('late_by_depot.North', 'SELECT * FROM deliveries WHERE depot = ''North''');
+-- One view that scores every delivery with its own depot's model:
+SELECT * FROM dbfit.publish_segments('late_by_depot', 'deliveries', 'late_by_depot_risk');
+SELECT depot, count(probability) AS scored, avg(probability) AS mean_risk
+FROM late_by_depot_risk GROUP BY depot ORDER BY depot;

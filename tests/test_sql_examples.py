@@ -50,9 +50,9 @@ def test_examples_run_in_order_and_leave_what_they_promise(tmp_path, capsys):
     assert readings["distance_km"] == "stable" and readings["depot"] == "stable"
     first, rest, left, *_ = outcomes["07_drop.sql"]
     assert first.rows == [("late_deliveries", 1)] and rest.rows == [("late_deliveries", 2)] and left.rows == [(0,)]
-    views = con.execute("SELECT count(*) FROM duckdb_views() WHERE NOT internal").fetchall()
-    assert views == [(0,)]
-    segments, listing, scored = outcomes["08_by_depot.sql"]
+    views = con.execute("SELECT view_name FROM duckdb_views() WHERE NOT internal").fetchall()
+    assert views == [("late_by_depot_risk",)]  # 07 dropped its views; 08 made this one
+    segments, listing, scored, published, per_depot = outcomes["08_by_depot.sql"]
     by_depot = dbfit.fit(con, "late ~ distance_km + parcel_kg + rain", "deliveries", by="depot", progress=False)
     assert [row[0] for row in listing.rows] == [f"late_by_depot.{d}" for d in sorted(by_depot.models)]
     for depot, model in by_depot.models.items():
@@ -60,6 +60,10 @@ def test_examples_run_in_order_and_leave_what_they_promise(tmp_path, capsys):
         np.testing.assert_allclose(estimates, model.estimates, rtol=1e-12)
     north_rows = con.execute("SELECT count(*) FROM deliveries WHERE depot = 'North'").fetchall()[0][0]
     assert scored.rows == [(north_rows,)]
+    assert published.rows == [('"late_by_depot_risk"', len(by_depot.models), "pinned")]
+    counts = dict(con.execute("SELECT depot, count(*) FROM deliveries WHERE distance_km IS NOT NULL AND "
+                              "parcel_kg IS NOT NULL AND rain IS NOT NULL GROUP BY depot").fetchall())
+    assert [(depot, n) for depot, n, _ in per_depot.rows] == sorted(counts.items())
     con.close()
 
 
