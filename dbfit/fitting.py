@@ -114,8 +114,8 @@ def fit(
         raise FitError("shrinkage cannot be combined with firth=True or robust standard errors")
     special = FitVariants(robust_kind, cluster, firth, population_rate, penalty_request)
     engine = engine_for(con)
-    if engine.dialect != "duckdb" and (trials is not None or by is not None or not special.ordinary):
-        raise FitError(f"on {engine.dialect}, dbfit fits plain models (weights and offset allowed); trials, by, "
+    if engine.dialect != "duckdb" and (trials is not None or not special.ordinary):
+        raise FitError(f"on {engine.dialect}, dbfit fits plain models (weights, offset and by= allowed); trials, "
                        "firth, shrinkage, robust and population_rate need DuckDB for now")
     if by is not None and not special.ordinary:
         raise FitError("by= cannot yet be combined with firth, robust, shrinkage or population_rate")

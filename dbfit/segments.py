@@ -22,7 +22,7 @@ from sqlglot import exp
 from dbfit import inference
 from dbfit import sqlbuild as sb
 from dbfit.design import SEGMENT, Design, segment_profiles
-from dbfit.engine import DuckDBEngine
+from dbfit.engine import Engine
 from dbfit.errors import FitError, StoreError
 from dbfit.irls import IterationReport, NewtonResult, newton_iterations
 from dbfit.model import Model
@@ -116,7 +116,7 @@ class SegmentedFit:
 
 
 def fit_segments(
-    engine: DuckDBEngine,
+    engine: Engine,
     design: Design,
     fitted: list[int],
     constant: list[int],
@@ -156,7 +156,7 @@ def fit_segments(
 
     models: dict[Any, Model] = {}
     own_options = {k: v for k, v in options.items() if k != "by"}
-    sources = segment_sources(source, design.segment, list(results))
+    sources = segment_sources(source, design.segment, list(results), engine.dialect)
     for value in segments:
         if value not in results:
             continue
@@ -206,7 +206,7 @@ def _segment_start(part: Design, fitted: list[int]) -> np.ndarray:
 
 
 def _run_together(
-    engine: DuckDBEngine,
+    engine: Engine,
     design: Design,
     fitted: list[int],
     steps: dict[Any, Steps],
@@ -276,7 +276,7 @@ def _coefficient_rows(requests: dict[Any, tuple[np.ndarray, list[int]]], size: i
     return rows
 
 
-def segment_sources(source: str, by: exp.Expression | None, values: list[Any]) -> dict[Any, str]:
+def segment_sources(source: str, by: exp.Expression | None, values: list[Any], dialect: str = "duckdb") -> dict[Any, str]:
     """Each segment's rows as a SELECT over ``source`` (rebuilt by sqlglot): the source of that segment's model.
 
     The query is written once around a placeholder, into which each value's literal (written by sqlglot) goes.
@@ -285,11 +285,12 @@ def segment_sources(source: str, by: exp.Expression | None, values: list[Any]) -
         raise AssertionError("segment sources need the by expression")
     placeholder = exp.column("dbfit_segment_value_placeholder", quoted=True)
     condition = exp.EQ(this=exp.Paren(this=by.copy()), expression=placeholder)
-    text = exp.select("*").from_(source_relation(source)).where(condition).sql("duckdb")
-    if text.count(placeholder.sql("duckdb")) != 1:
-        raise FitError(f"the source or by expression may not mention {placeholder.sql('duckdb')}")
-    before, after = text.split(placeholder.sql("duckdb"))
-    return {value: before + segment_literal(value).sql("duckdb") + after for value in values}
+    text = exp.select("*").from_(source_relation(source)).where(condition).sql(dialect)
+    marker = placeholder.sql(dialect)
+    if text.count(marker) != 1:
+        raise FitError(f"the source or by expression may not mention {marker}")
+    before, after = text.split(marker)
+    return {value: before + segment_literal(value).sql(dialect) + after for value in values}
 
 
 def segment_literal(value: Any) -> exp.Expression:

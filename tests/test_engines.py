@@ -113,3 +113,29 @@ def test_spark_fit_equals_duckdb(spark, duckdb_fit):
                  1e-9, "standard errors")
     exported = dbfit.from_json(on_spark.to_json())
     assert_close(exported.estimates, on_spark.estimates, 1e-15, "model exported from Spark as JSON")
+
+
+def _assert_segments_equal(elsewhere: dbfit.SegmentedFit, on_duckdb: dbfit.SegmentedFit, engine: str) -> None:
+    assert list(elsewhere.models) == list(on_duckdb.models) and elsewhere.failures == on_duckdb.failures
+    for value, model in on_duckdb.models.items():
+        other = elsewhere.models[value]
+        assert_close(other.estimates, model.estimates, 1e-9, f"{engine} estimates for {value}")
+        assert_close(other.coefficients["std_error"].to_numpy(), model.coefficients["std_error"].to_numpy(), 1e-9,
+                     f"{engine} standard errors for {value}")
+    assert elsewhere.passes == on_duckdb.passes
+
+
+def test_postgres_segments_equal_duckdb(postgres, duckdb_fit):
+    # Reference: the same by= fit in DuckDB (checked per segment against statsmodels in test_segments).
+    on_duckdb = duckdb_fit("low ~ age + lwt + smoke", by="race_name", weights="1 + visits / 10")
+    on_postgres = dbfit.fit(postgres, "low ~ age + lwt + smoke", "birthwt", by="race_name",
+                            weights="1 + visits / 10", progress=False)
+    _assert_segments_equal(on_postgres, on_duckdb, "PostgreSQL")
+    assert on_postgres.models["white"].source == 'SELECT * FROM "birthwt" WHERE (race_name) = \'white\''
+
+
+def test_spark_segments_equal_duckdb(spark, duckdb_fit):
+    # Reference: the same by= fit in DuckDB; on Spark the segments' sums come from one GROUP BY per pass.
+    on_duckdb = duckdb_fit("low ~ age + lwt + smoke", by="race_name")
+    on_spark = dbfit.fit(spark, "low ~ age + lwt + smoke", "birthwt", by="race_name", progress=False)
+    _assert_segments_equal(on_spark, on_duckdb, "Spark")
