@@ -29,6 +29,7 @@ NUMERIC_TYPE = re.compile(
 CATEGORICAL_TYPE = re.compile(r"^(VARCHAR|BOOLEAN|ENUM.*)$", re.IGNORECASE)
 
 TARGET, WEIGHT, OFFSET, TRIALS, SEGMENT = "dbfit_y", "dbfit_w", "dbfit_o", "dbfit_n", "dbfit_seg"
+NAMED_TARGET = "dbfit_named_target"
 MAX_OFFENDING_SHOWN = 10
 
 
@@ -85,6 +86,7 @@ class Design:
     positive: str | None
     segment: exp.Expression | None = None
     segment_text: str | None = None
+    named_target: exp.Expression | None = None  # with positive=: the target as given, which must be two-valued
     rows_total: int = 0
     rows_used: int = 0
     weight_sum: float = 0.0
@@ -208,6 +210,7 @@ def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
         literal = exp.Boolean(this=positive) if isinstance(positive, bool) else (
             sb.number(positive) if isinstance(positive, (int, float)) else exp.Literal.string(str(positive))
         )
+        design.named_target = design.target.copy()
         design.target = sb.truth_as_double(exp.EQ(this=sb.paren(design.target), expression=literal))
     elif target_type.upper() == "BOOLEAN":
         design.target = sb.truth_as_double(design.target)
@@ -280,9 +283,13 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
         aggregates[f"min_{key}"] = exp.Min(this=value.copy())
         aggregates[f"max_{key}"] = exp.Max(this=value.copy())
 
+    extra = {}
+    if design.named_target is not None:
+        extra[NAMED_TARGET] = design.named_target
+        aggregates["target_values"] = exp.Count(this=exp.Distinct(expressions=[sb.column(NAMED_TARGET)]))
     names = list(aggregates)
     query = exp.select(*[exp.alias_(node, name, quoted=True) for name, node in aggregates.items()]).from_(
-        design.base_query().subquery("dbfit_base")
+        design.base_query(extra).subquery("dbfit_base")
     )
     total_query = exp.select(exp.Count(this=exp.Star())).from_(design.relation.copy())
     query = query.select(exp.alias_(total_query.subquery(), "total", quoted=True))
@@ -298,6 +305,8 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
         )
     if row["bad_target"]:
         raise FitError(_bad_target_message(engine, design, int(row["bad_target"])))
+    if design.named_target is not None and int(row["target_values"]) > 2:
+        raise FitError(_many_valued_target_message(engine, design, int(row["target_values"])))
     if row.get("bad_weight"):
         raise FitError(f"weights '{design.weights_text}' has {row['bad_weight']} negative or non-finite values")
     if row.get("bad_offset"):
@@ -488,6 +497,17 @@ def _bad_target_message(engine: DuckDBEngine, design: Design, count: int) -> str
         f"the target '{design.formula.target_text}' must be 0/1 or true/false; {count} rows hold other values "
         f"({shown}); write a condition such as \"status = 'late'\" or pass positive=..."
     )
+
+
+def _many_valued_target_message(engine: DuckDBEngine, design: Design, count: int) -> str:
+    values_query = (exp.select(sb.column(NAMED_TARGET)).distinct()
+                    .from_(design.base_query({NAMED_TARGET: design.named_target}).subquery("dbfit_base"))
+                    .order_by(sb.column(NAMED_TARGET)).limit(MAX_OFFENDING_SHOWN))
+    shown = ", ".join(_format_value(r[0]) for r in engine.fetch(values_query))
+    target = design.formula.target_text
+    return (f"positive= names one of two outcome values, but the target '{target}' has {count} values among the rows "
+            f"used ({shown}{', ...' if count > MAX_OFFENDING_SHOWN else ''}); to fit one value against all the others, "
+            f"write it as the target, e.g. \"{target} = '{design.positive}' ~ ...\"")
 
 
 def _format_value(value: Any) -> str:

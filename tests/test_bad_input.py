@@ -113,3 +113,14 @@ def test_errors_share_one_family():
     assert issubclass(dbfit.FormulaError, dbfit.DbfitError)
     assert issubclass(dbfit.FitError, dbfit.DbfitError)
     assert issubclass(dbfit.DbfitError, ValueError)
+
+
+def test_positive_on_a_target_of_more_than_two_values_is_refused(deliveries):
+    deliveries.execute("CREATE TABLE s AS SELECT x, CASE WHEN x > 2.5 THEN 'late' WHEN x > 1 THEN 'on_time' "
+                       "ELSE 'cancelled' END AS status FROM t")
+    with pytest.raises(dbfit.FitError, match=r"target 'status' has 3 values among the rows used \(cancelled, late, "
+                                             r"on_time\).*\"status = 'late' ~ \.\.\.\""):
+        dbfit.fit(deliveries, "status ~ x", "s", positive="late", progress=False)
+    two = dbfit.fit(deliveries, "status ~ x", "SELECT * FROM s WHERE status <> 'cancelled'", positive="late",
+                    progress=False)
+    assert two.stats["n_used"] == 5
