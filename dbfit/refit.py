@@ -48,6 +48,8 @@ def refit(con: duckdb.DuckDBPyConnection, name: str, *, source: str | None = Non
     start = None if cold else {label: float(v) for label, v in zip(current.labels, current.estimates) if math.isfinite(v)}
     candidate = api.fit(con, current.formula, source, split=holdout, start=start, progress=progress,
                         threshold=split["threshold"] if split else 0.5, **options)
+    if current.options.get("segment"):
+        candidate.options["segment"] = current.options["segment"]  # still one segment of its by= fit
     version = store.save_model(con, candidate, name, promote=False)
     figures_source = api._part_source(source, holdout, "holdout") if holdout else source
     candidate_metrics = candidate.stats.get("holdout") or _metrics(con, candidate, figures_source)

@@ -150,8 +150,13 @@ def test_segment_models_are_ordinary_models_of_their_own_rows(con, birthwt):
     decision = dbfit.refit(con, "by_race.2", skip_unchanged=True)
     assert decision["decision"] == "skipped"
     con.execute("DELETE FROM birthwt WHERE race = 2 AND age > 30")
-    assert dbfit.refit(con, "by_race.2", skip_unchanged=True)["decision"] in ("promoted", "refused")
+    refitted = dbfit.refit(con, "by_race.2", skip_unchanged=True)
+    assert refitted["decision"] in ("promoted", "refused") and refitted["candidate_version"] == 2
     assert dbfit.refit(con, "by_race.1", skip_unchanged=True)["decision"] == "skipped"
+    dbfit.promote(con, "by_race.2", 2, force=True)
+    assert dbfit.load(con, "by_race.2").options["segment"] == {"by": "race", "value": 2}
+    made = dbfit.publish_segments(con, "by_race", "race_scores", "birthwt")
+    assert made["segments"] == 3
 
 
 def test_segment_names_that_collide_are_refused_before_anything_is_written(con):
