@@ -157,6 +157,8 @@ def test_segment_models_are_ordinary_models_of_their_own_rows(con, birthwt):
     assert dbfit.load(con, "by_race.2").options["segment"] == {"by": "race", "value": 2}
     made = dbfit.publish_segments(con, "by_race", "race_scores", "birthwt")
     assert made["segments"] == 3
+    with pytest.raises(dbfit.StoreError, match="one segment of a by= fit, which records no training snapshot"):
+        dbfit.population_stability(con, "by_race.1", "birthwt")
 
 
 def test_segment_names_that_collide_are_refused_before_anything_is_written(con):
