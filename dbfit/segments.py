@@ -23,7 +23,7 @@ from dbfit import inference
 from dbfit import sqlbuild as sb
 from dbfit.design import SEGMENT, Design, segment_profiles
 from dbfit.engine import Engine
-from dbfit.errors import FitError, StoreError
+from dbfit.errors import DbfitError, FitError, StoreError
 from dbfit.irls import IterationReport, NewtonResult, newton_iterations
 from dbfit.model import Model
 from dbfit.names import model_name
@@ -87,10 +87,13 @@ class SegmentedFit:
         names = self.model_names(name)
         if self.by_expression is None:
             raise StoreError("this segmented fit does not know its by expression and cannot be stored")
-        prints = segment_fingerprints(con, self.source, self.by_expression,
-                                      {value: model.source for value, model in self.models.items()})
+        try:
+            prints = segment_fingerprints(con, self.source, self.by_expression,
+                                          {value: model.source for value, model in self.models.items()})
+        except DbfitError:
+            prints = {}  # the source cannot be read here (fitted on another engine): no fingerprints, as for one model
         # No drift snapshot per segment: one per segment would scan the source once per segment.
-        entries = [(model, names[value], {"fingerprints": {k: [v] for k, v in prints[value].items()}})
+        entries = [(model, names[value], {"fingerprints": {k: [v] for k, v in prints[value].items()}} if prints else {})
                    for value, model in self.models.items()]
         versions = save_models(con, entries, promote=promote)
         return {value: (names[value], version) for value, version in zip(self.models, versions)}

@@ -31,7 +31,8 @@ from dbfit.names import model_name
 from dbfit.serialize import from_document, to_document
 
 SCHEMA = "dbfit_store"
-WRITE_ATTEMPTS = 10
+WRITE_ATTEMPTS = 40
+MAX_BACKOFF_SECONDS = 0.25
 COEFFICIENT_COLUMNS = ("term", "estimate", "std_error", "wald_z", "p_value", "ci_low", "ci_high",
                        "odds_ratio", "odds_ratio_low", "odds_ratio_high")
 _KEY = "model VARCHAR NOT NULL, version INTEGER NOT NULL"
@@ -95,7 +96,8 @@ def save_models(con: duckdb.DuckDBPyConnection, entries: list[tuple[Model, str, 
             if attempt == WRITE_ATTEMPTS - 1 or not versions or any(
                     _orphan_rows(con, n, v) for n, v in zip(names, versions)):
                 raise
-            time.sleep(random.uniform(0.001, 0.02) * (attempt + 1))
+            # Randomised exponential back-off: with several busy writers a fixed short wait can lose every round.
+            time.sleep(random.uniform(0.0, min(MAX_BACKOFF_SECONDS, 0.002 * 2**attempt)))
     for (model, _, _), name, version in zip(entries, names, versions):
         model.name, model.version = name, version
     return versions
