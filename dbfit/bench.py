@@ -2,7 +2,8 @@
 
 Scenarios: ``core`` (numeric predictors: dbfit vs export + statsmodels vs an in-memory numpy IRLS),
 ``levels`` (one high-cardinality categorical), ``segments`` (one model per segment vs one pooled model),
-``outofcore`` (a Parquet folder larger than DuckDB's memory limit, at growing sizes). Each measurement runs
+``outofcore`` (a Parquet folder larger than DuckDB's memory limit, at growing sizes), ``spark`` (the same
+pooled and per-segment fits on Spark SQL in local mode, reading the same Parquet file). Each measurement runs
 in a subprocess so its peak resident memory is its own; figures are ratios against baselines measured in
 the same run.
 """
@@ -12,6 +13,7 @@ from __future__ import annotations
 import json
 import os
 import resource
+import shutil
 import subprocess
 import sys
 import tempfile
@@ -22,7 +24,7 @@ from typing import Any
 import numpy as np
 
 RESULT_MARK = "dbfit-bench-result "
-SCENARIOS = ("core", "levels", "segments", "outofcore")
+SCENARIOS = ("core", "levels", "segments", "outofcore", "spark")
 
 
 def _uniform(stream: int, scale: float = 1.0) -> str:
@@ -96,11 +98,29 @@ def _worker(task: dict[str, Any]) -> dict[str, Any]:
         result["seconds"] = time.perf_counter() - began
         if isinstance(fitted, dbfit.SegmentedFit):
             result.update(scans=fitted.scans, models=len(fitted.models), failures=len(fitted.failures),
-                          passes=fitted.passes)
+                          passes=fitted.passes,
+                          estimates=np.concatenate([np.nan_to_num(m.estimates) for m in fitted.models.values()]).tolist())
         else:
             result.update(scans=fitted.stats["scans"], estimates=np.nan_to_num(fitted.estimates).tolist(),
                           newton_passes=phases.count("full data"),
                           score_passes=phases.count("full data, score only"))
+    elif kind == "spark":
+        os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
+        from pyspark.sql import SparkSession
+
+        session = (SparkSession.builder.master("local[2]").appName("dbfit-bench").config("spark.ui.enabled", "false")
+                   .config("spark.sql.shuffle.partitions", "2").getOrCreate())
+        session.sparkContext.setLogLevel("ERROR")
+        session.read.parquet(task["parquet"]).createOrReplaceTempView("bench")
+        began = time.perf_counter()
+        fitted = dbfit.fit(session, task["formula"], "bench", by=task.get("by"), progress=False)
+        result["seconds"] = time.perf_counter() - began  # the session's start-up is not counted
+        if isinstance(fitted, dbfit.SegmentedFit):
+            result.update(models=len(fitted.models), passes=fitted.passes,
+                          estimates=np.concatenate([np.nan_to_num(m.estimates) for m in fitted.models.values()]).tolist())
+        else:
+            result.update(estimates=np.nan_to_num(fitted.estimates).tolist())
+        session.stop()
     elif kind in ("statsmodels", "numpy"):
         import statsmodels.api as sm
 
@@ -252,6 +272,39 @@ def bench_outofcore(folder: str, rows: int, predictors: int, memory_limit: str, 
     return results
 
 
+def bench_spark(folder: str, rows: int, predictors: int, segments: int, repeat: int = 1) -> dict[str, Any]:
+    """The same fits on DuckDB and on Spark SQL in local mode (2 cores), both reading one Parquet file."""
+    import duckdb
+
+    parquet = os.path.join(folder, "spark_bench.parquet")
+    con = duckdb.connect()
+    con.execute("SET enable_progress_bar = false")
+    select = numeric_select(rows, predictors, f", hash(id, 55) % {segments} AS seg")
+    con.execute(f"COPY ({select}) TO '{parquet}' (FORMAT parquet)")
+    con.close()
+    print(f"spark: {rows:,} rows x {predictors} numeric predictors in one Parquet file, {segments:,} segments")
+    try:
+        import pyspark  # noqa: F401
+    except ImportError:
+        print("  Spark not run: pyspark is not installed")
+        return {}
+    if shutil.which("java") is None:
+        print("  Spark not run: no Java runtime on PATH")
+        return {}
+    results = {}
+    for label, by in (("one pooled model", None), ("one model per segment", "seg")):
+        duck = _measure({"kind": "dbfit-by" if by else "dbfit", "path": ":memory:", "formula": formula(predictors),
+                         "source": parquet, "by": by}, repeat)
+        spark = _measure({"kind": "spark", "path": "", "parquet": parquet, "formula": formula(predictors), "by": by},
+                         repeat)
+        _line(f"(a) DuckDB, {label}", duck)
+        _line(f"(s) Spark local[2], {label}", spark)
+        _ratio(f"s/a ({label})", spark, duck)
+        results[label] = {"a": duck, "s": spark}
+    print("  Spark's peak RSS is its Python driver's only: the JVM runs in a child process and is not counted")
+    return results
+
+
 def run_bench(scenario: str = "core", rows: int | None = None, predictors: int | None = None, keep: str | None = None,
               levels: int = 5000, segments: int = 1000, memory_limit: str = "2GB", repeat: int = 1) -> dict[str, Any]:
     """Run one scenario (or ``all``) and print its figures; each measurement ``repeat`` times (the median shown)."""
@@ -265,6 +318,8 @@ def run_bench(scenario: str = "core", rows: int | None = None, predictors: int |
             results[name] = bench_levels(folder, rows or 2_000_000, predictors or 10, levels, repeat)
         elif name == "segments":
             results[name] = bench_segments(folder, rows or 5_000_000, predictors or 5, segments, repeat)
+        elif name == "spark":
+            results[name] = bench_spark(folder, rows or 2_000_000, predictors or 5, min(segments, 100), repeat)
         elif name == "outofcore":
             results[name] = bench_outofcore(folder, rows or 100_000_000, predictors or 10, memory_limit, repeat)
         else:

@@ -32,7 +32,7 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument("--quiet", action="store_true", help="no per-pass progress lines")
 
     bench = command("bench", "measure dbfit against export+statsmodels and in-memory numpy")
-    bench.add_argument("--scenario", default="core", choices=["core", "levels", "segments", "outofcore", "all"],
+    bench.add_argument("--scenario", default="core", choices=["core", "levels", "segments", "outofcore", "spark", "all"],
                        help="what to measure (default: %(default)s)")
     bench.add_argument("--rows", type=int, default=None, help="rows (default: the scenario's own size)")
     bench.add_argument("--predictors", type=int, default=None, help="numeric predictors (default: per scenario)")

@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 import re
+import shutil
 import subprocess
 import sys
 
 import duckdb
+import pytest
 
 from dbfit.demo import TRUE_COEFFICIENTS
 
@@ -62,3 +64,13 @@ def test_bench_scenarios_run_at_small_size():
     done = run("bench", "--scenario", "outofcore", "--rows", "80000", "--predictors", "2", "--memory-limit", "100MB")
     assert done.returncode == 0, done.stderr
     assert "seconds per million rows" in done.stdout
+
+
+def test_bench_spark_scenario_agrees_with_duckdb():
+    pytest.importorskip("pyspark")
+    if shutil.which("java") is None:
+        pytest.skip("no Java runtime for Spark")
+    done = run("bench", "--scenario", "spark", "--rows", "20000", "--segments", "5", "--predictors", "2")
+    assert done.returncode == 0, done.stderr
+    gaps = [float(g) for g in re.findall(r"largest estimate difference (\S+)", done.stdout)]
+    assert len(gaps) == 2 and max(gaps) < 1e-9, done.stdout  # pooled and per segment, Spark vs DuckDB
