@@ -194,7 +194,7 @@ def _ratio(name: str, a: dict[str, Any] | None, b: dict[str, Any] | None) -> Non
     if a is None or b is None:
         return
     text = f"  {name}: time {a['seconds'] / b['seconds']:.2f}, peak memory {a['peak_rss_mb'] / b['peak_rss_mb']:.2f}"
-    if "estimates" in a and "estimates" in b:
+    if "estimates" in a and "estimates" in b and len(a["estimates"]) == len(b["estimates"]):
         gap = np.max(np.abs(np.array(a["estimates"]) - np.array(b["estimates"])))
         text += f", largest estimate difference {gap:.1e}"
     print(text)
