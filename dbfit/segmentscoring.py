@@ -16,11 +16,13 @@ from sqlglot import exp
 from dbfit import sqlbuild as sb
 from dbfit.deploy import check_score_columns
 from dbfit.errors import StoreError
+from dbfit.formula import parse_expression
 from dbfit.model import Model
 from dbfit.names import model_name, relation_name
 from dbfit.scoring import Coefficient, scoring_query
 from dbfit.segments import SegmentedFit, segment_literal
 from dbfit.source import source_relation
+from dbfit.store import load_model, names_starting_with
 
 SEGMENT_ALIAS = "dbfit_segment_estimates"
 KEY = "dbfit_segment"
@@ -44,17 +46,10 @@ def segment_scoring_query(models: dict[Any, Model], by: exp.Expression, source: 
 
 def stored_segments(con: duckdb.DuckDBPyConnection, name: str) -> tuple[dict[Any, Model], exp.Expression]:
     """The current version of every stored ``name.<segment>`` model of one by= fit, and its by expression."""
-    from dbfit.formula import parse_expression
-    from dbfit.store import load_model, store_exists
-
     model_name(name)
-    names = []
-    if store_exists(con):
-        names = [row[0] for row in con.execute("SELECT DISTINCT model FROM dbfit_store.versions "
-                                               "WHERE starts_with(model, ?) ORDER BY model", [name + "."]).fetchall()]
     models: dict[Any, Model] = {}
     by_texts = set()
-    for stored in names:
+    for stored in names_starting_with(con, name + "."):
         model = load_model(con, stored)
         segment = model.options.get("segment") or {}
         if segment.get("by"):

@@ -175,6 +175,15 @@ def stored_versions(con: duckdb.DuckDBPyConnection, name: str) -> list[int]:
     return [int(r[0]) for r in rows]
 
 
+def names_starting_with(con: duckdb.DuckDBPyConnection, prefix: str) -> list[str]:
+    """The stored model names that begin with ``prefix`` (such as the ``name.<segment>`` models of a by= fit)."""
+    if not store_exists(con):
+        return []
+    rows = _fetch(con, f"SELECT DISTINCT model FROM {SCHEMA}.versions WHERE starts_with(model, ?) ORDER BY model",
+                  [prefix])
+    return [r[0] for r in rows]
+
+
 def store_exists(con: duckdb.DuckDBPyConnection) -> bool:
     return has_table(con, "versions")
 
