@@ -83,12 +83,7 @@ def publish(
     target = relation_name(view, "view name")
     resolved = resolve_model(con, model, version)
     query = build_scoring(con, resolved, source, live=live, unseen=unseen)
-    statement = exp.Create(this=target, kind="VIEW", replace=True, expression=query)
-    try:
-        con.execute(statement.sql("duckdb")).fetchall()
-    except duckdb.Error as err:
-        first = (str(err).strip().splitlines() or [type(err).__name__])[0]
-        raise StoreError(f"view {target.sql('duckdb')} cannot be created or replaced: {first}") from None
+    statement = create_view(con, target, query)
     return {
         "view": target.sql("duckdb"),
         "model": resolved.name,
@@ -96,6 +91,17 @@ def publish(
         "mode": "live" if live else "pinned",
         "sql": statement.sql("duckdb"),
     }
+
+
+def create_view(con: duckdb.DuckDBPyConnection, target: exp.Table, query: exp.Select) -> exp.Create:
+    """CREATE OR REPLACE VIEW ``target`` AS ``query``; a failure becomes a StoreError naming the view."""
+    statement = exp.Create(this=target, kind="VIEW", replace=True, expression=query)
+    try:
+        con.execute(statement.sql("duckdb")).fetchall()
+    except duckdb.Error as err:
+        first = (str(err).strip().splitlines() or [type(err).__name__])[0]
+        raise StoreError(f"view {target.sql('duckdb')} cannot be created or replaced: {first}") from None
+    return statement
 
 
 def _live_coefficients(model: Model) -> tuple[Coefficient, exp.Expression]:

@@ -14,7 +14,7 @@ import duckdb
 from sqlglot import exp
 
 from dbfit import sqlbuild as sb
-from dbfit.deploy import check_score_columns
+from dbfit.deploy import check_score_columns, create_view
 from dbfit.errors import StoreError
 from dbfit.formula import parse_expression
 from dbfit.model import Model
@@ -79,13 +79,7 @@ def publish_segments(con: duckdb.DuckDBPyConnection, fitted: str | SegmentedFit,
             raise StoreError("publishing stored segment models needs the source to score")
         models, by = stored_segments(con, fitted)
     check_score_columns(con, source_relation(source), False)
-    statement = exp.Create(this=target, kind="VIEW", replace=True,
-                           expression=segment_scoring_query(models, by, source, unseen=unseen))
-    try:
-        con.execute(statement.sql("duckdb")).fetchall()
-    except duckdb.Error as err:
-        first = (str(err).strip().splitlines() or [type(err).__name__])[0]
-        raise StoreError(f"view {target.sql('duckdb')} cannot be created or replaced: {first}") from None
+    statement = create_view(con, target, segment_scoring_query(models, by, source, unseen=unseen))
     return {"view": target.sql("duckdb"), "segments": len(models), "mode": "pinned", "sql": statement.sql("duckdb")}
 
 
