@@ -253,7 +253,7 @@ def scored_relation(model, source: str | None) -> exp.Expression:
     target = design.formula.target.copy()
     if design.positive is not None:
         target = exp.EQ(this=exp.Paren(this=target), expression=exp.Literal.string(design.positive))
-    scored = scoring_query(model, source_relation(source if source is not None else model.source))
+    scored = scoring_query(model, source_relation(model.source_or_own(source)))
     y = exp.Cast(this=target, to=exp.DataType.build("DOUBLE"))
     rows = exp.select(exp.alias_(y, "y", quoted=True), exp.alias_(exp.column("probability", quoted=True), "p", quoted=True))
     rows = rows.from_(scored.subquery("dbfit_scored_rows"))

@@ -44,7 +44,7 @@ def build_scoring(
     level: float = 0.95,
 ) -> exp.Select:
     """The DuckDB scoring query of ``model`` over ``source``, after checking the source's columns on ``con``."""
-    relation = source_relation(source if source is not None else model.source)
+    relation = source_relation(model.source_or_own(source))
     if con is not None:
         check_score_columns(con, relation, standard_error)
     coefficient, joined = None, None

@@ -16,26 +16,12 @@ from sqlglot.errors import SqlglotError
 from sqlglot.tokens import TokenType
 
 from dbfit.errors import FormulaError
+from dbfit.expression_rules import check_expression
 
 DIALECT = "duckdb"
 
 _OPENERS = {TokenType.L_PAREN, TokenType.L_BRACKET, TokenType.L_BRACE, TokenType.CASE}
 _CLOSERS = {TokenType.R_PAREN, TokenType.R_BRACKET, TokenType.R_BRACE, TokenType.END}
-
-# Nodes that make an expression something other than a single scalar value per row.
-_REFUSED_NODES: tuple[type[exp.Expression], ...] = (
-    exp.Query,
-    exp.Subquery,
-    exp.AggFunc,
-    exp.Window,
-    exp.Star,
-    exp.Placeholder,
-    exp.Command,
-    exp.DDL,
-    exp.DML,
-    exp.Lambda,
-)
-
 
 @dataclass(frozen=True)
 class Term:
@@ -68,10 +54,12 @@ class Formula:
         return list(seen)
 
 
-def parse_expression(text: str, what: str) -> exp.Expression:
-    """Parse one scalar SQL expression, refusing anything else (subqueries, aggregates, statements).
+def parse_expression(text: str, what: str, where: str | None = None) -> exp.Expression:
+    """Parse one row-wise scalar SQL expression, refusing anything off the allowlist of
+    :mod:`dbfit.expression_rules` (subqueries, aggregates, statements, volatile or unknown functions).
 
-    ``what`` names the place the text comes from, for the error message.
+    ``what`` names the place the text comes from, for the error message; ``where`` ("term 3 of the formula")
+    says it in full when it differs.
     """
     if not isinstance(text, str) or not text.strip():
         raise FormulaError(f"{what} is empty")
@@ -89,15 +77,9 @@ def parse_expression(text: str, what: str) -> exp.Expression:
     if len(parsed) != 1:
         raise FormulaError(f"{what} {text!r} must be exactly one scalar SQL expression")
     node = parsed[0]
-    for sub in node.walk():
-        if isinstance(sub, _REFUSED_NODES):
-            raise FormulaError(
-                f"{what} {text!r} contains {type(sub).__name__.lower()} '{sub.sql(DIALECT)[:60]}': "
-                "only a single scalar expression per row is allowed (no subqueries, aggregates, windows)"
-            )
     if isinstance(node, (exp.Alias,)):
         raise FormulaError(f"{what} {text!r} must not carry an alias")
-    return node
+    return check_expression(node, where or what)
 
 
 def parse_formula(text: str) -> Formula:
@@ -170,7 +152,7 @@ def _parse_terms(text: str, tokens: list) -> tuple[bool, list[Term]]:
         if piece_text in ("0", "1"):
             intercept = (piece_text == "1") == (sign == "+")
             continue
-        term = _parse_term(text, piece)
+        term = _parse_term(text, piece, len(terms) + len(removed) + 1)
         (terms if sign == "+" else removed).append(term)
 
     kept: list[Term] = []
@@ -184,7 +166,7 @@ def _parse_terms(text: str, tokens: list) -> tuple[bool, list[Term]]:
     return intercept, kept
 
 
-def _parse_term(text: str, tokens: list) -> Term:
+def _parse_term(text: str, tokens: list, position: int) -> Term:
     groups: list[list] = [[]]
     depth = 0
     for token in tokens:
@@ -198,7 +180,7 @@ def _parse_term(text: str, tokens: list) -> Term:
     texts = tuple(text[g[0].start : g[-1].end + 1].strip() for g in groups)
     if len(set(texts)) != len(texts):
         raise FormulaError(f"interaction '{':'.join(texts)}' repeats a factor")
-    factors = tuple(parse_expression(t, "term") for t in texts)
+    factors = tuple(parse_expression(t, "term", f"term {position} of the formula") for t in texts)
     return Term(factors=factors, texts=texts)
 
 

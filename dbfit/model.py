@@ -39,6 +39,20 @@ class Model:
     fitted_at: datetime = field(default_factory=lambda: datetime.now(timezone.utc))
     name: str | None = None  # set once saved to (or loaded from) a model store
     version: int | None = None
+    source_is_data: bool = False  # read from a model document: its source is text to show, never run unasked
+
+    def source_or_own(self, source: str | None) -> str:
+        """``source`` when given, else the training source (refused for a model read from a document)."""
+        if source is not None:
+            return source
+        if self.source_is_data:
+            from dbfit.errors import DbfitError
+
+            raise DbfitError(
+                "this model was read from a JSON document, whose source is data, not a query dbfit runs: "
+                "give the source to score or assess explicitly (source=...)"
+            )
+        return self.source
 
     @property
     def rows_total(self) -> int:

@@ -165,7 +165,7 @@ def scoring_sql(model: Any, dialect: str = "duckdb", *, source: str | None = Non
                 standard_error: bool = False, level: float = 0.95) -> str:
     """The scoring SELECT as text in ``dialect`` (see :meth:`dbfit.Model.scoring_sql`)."""
     check_options(dialect, unseen)
-    query = scoring_query(model, source_relation(source if source is not None else model.source), unseen=unseen,
+    query = scoring_query(model, source_relation(model.source_or_own(source)), unseen=unseen,
                           with_standard_error=standard_error, level=level, dialect=dialect)
     return query.sql(dialect=dialect)
 

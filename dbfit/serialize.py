@@ -75,12 +75,14 @@ def to_json(model: Model) -> str:
 
 
 def from_json(text: str) -> Model:
-    """Read a model written by :meth:`Model.to_json`."""
+    """Read a model written by :meth:`Model.to_json`; its source is kept as data (scoring it needs a source)."""
     try:
         document = json.loads(text)
     except (TypeError, json.JSONDecodeError) as err:
         raise StoreError(f"not a dbfit model document: {err}") from None
-    return from_document(document)
+    model = from_document(document)
+    model.source_is_data = True
+    return model
 
 
 def from_document(document: dict[str, Any], name: str | None = None, version: int | None = None) -> Model:
@@ -100,10 +102,11 @@ def from_document(document: dict[str, Any], name: str | None = None, version: in
 def _rebuild(document: dict[str, Any], name: str | None, version: int | None) -> Model:
     options = dict(document["options"])
     formula = parse_formula(document["formula"])
+    check_option_expressions(options, document.get("offset"))
     factors = [
         Factor(
             text=f["expression"],
-            expression=parse_expression(f["expression"], "term"),
+            expression=parse_expression(f["expression"], "term", f"factor {i + 1} of the model document"),
             alias=f"dbfit_f{i}",
             sql_type=f["sql_type"],
             kind=f["kind"],
@@ -175,6 +178,28 @@ def _rebuild(document: dict[str, Any], name: str | None, version: int | None) ->
         name=name,
         version=version,
     )
+
+
+# Option expressions a model keeps (top-level option, or option inside a nested record): checked on load, so a
+# tampered document or store row is refused before anything runs.
+_EXPRESSION_OPTIONS = (("weights",), ("offset",), ("trials",), ("cluster",), ("by",), ("split_key",),
+                       ("split", "key"), ("segment", "by"))
+
+
+def check_option_expressions(options: dict[str, Any], offset: Any = None) -> None:
+    """Parse (and so check against the allowlist) every expression a model's options hold."""
+    found = [(("offset",), offset)]
+    for path in _EXPRESSION_OPTIONS:
+        value: Any = options
+        for key in path:
+            value = value.get(key) if isinstance(value, dict) else None
+        found.append((path, value))
+    for path, value in found:
+        if value is not None:
+            label = ".".join(path)
+            if not isinstance(value, str):
+                raise StoreError(f"option {label} of the model document is {value!r}, not an expression text")
+            parse_expression(value, label, f"option {label} of the model document")
 
 
 def _finite_or_none(value: float) -> float | None:

@@ -1,6 +1,8 @@
 """Turn the user's ``source`` (table or view name, file path, or single SELECT) into a FROM item.
 
-The text is parsed with sqlglot and rebuilt as an expression tree; it is never spliced into SQL.
+The text is parsed with sqlglot and rebuilt as an expression tree; it is never spliced into SQL. A SELECT is
+the user's own query, read-only, and calls only the functions :func:`dbfit.expression_rules.check_source_query`
+allows (row-wise scalars, aggregates, windows, file readers and set-returning functions).
 """
 
 from __future__ import annotations
@@ -12,6 +14,7 @@ from sqlglot import exp
 from sqlglot.errors import SqlglotError
 
 from dbfit.errors import SourceError
+from dbfit.expression_rules import check_source_query
 from dbfit.formula import DIALECT
 
 _FILE_READERS = {
@@ -41,6 +44,7 @@ def source_relation(source: str) -> exp.Expression:
     node = statements[0]
     if isinstance(node, exp.Query):
         _refuse_writes(node, text)
+        check_source_query(node, text)
         return exp.Subquery(this=node, alias=exp.TableAlias(this=exp.to_identifier("dbfit_source")))
     table = _as_table(node)
     if table is None:

@@ -93,7 +93,7 @@ class KFold:
 
 def labelled_rows(relation: exp.Expression, split: Holdout | KFold) -> exp.Select:
     """Every row of ``relation`` with a column ``dbfit_part``: 'train'/'holdout', or the fold number."""
-    keys = [parse_expression(split.key, "split key")]
+    keys = [parse_expression(split.key, "split key", f"the {type(split).__name__} key")]
     if isinstance(split, Holdout):
         part: exp.Expression = exp.If(this=holdout_condition(keys, split.share, held_out=True),
                                       true=exp.Literal.string("holdout"), false=exp.Literal.string("train"))

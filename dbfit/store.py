@@ -111,7 +111,7 @@ def save_time_rows(con: duckdb.DuckDBPyConnection, model: Model) -> Extra:
     from dbfit.fingerprint import fingerprint, origin_source
 
     try:
-        return {"fingerprints": {k: [v] for k, v in fingerprint(con, origin_source(model.options, model.source)).items()},
+        return {"fingerprints": {k: [v] for k, v in fingerprint(con, origin_source(model.options, model.source_or_own(None))).items()},
                 "drift_bins": training_snapshot(con, model)}
     except DbfitError:
         return {}

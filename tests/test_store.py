@@ -90,7 +90,7 @@ def test_json_document_moves_a_model_between_databases(spector_file, tmp_path):
     moved.save(other, "grades")
     assert np.array_equal(dbfit.load(other, "grades").estimates, model.estimates)
     here = con.execute(model.scoring_sql()).fetchall()
-    there = other.execute(moved.scoring_sql()).fetchall()
+    there = other.execute(moved.scoring_sql(source="spector")).fetchall()
     assert here == there
     other.close()
     with pytest.raises(dbfit.StoreError, match="not a dbfit model document"):
