@@ -82,10 +82,10 @@ def main(argv: list[str] | None = None) -> int:
 def _run_sql_file(path: str, database: str) -> None:
     from pathlib import Path
 
-    from dbfit.connection import connect
+    from dbfit.connection import connect_existing
     from dbfit.sqlscript import format_result, run_script
 
-    con = connect(database)
+    con = connect_existing(database)
     try:
         for result in run_script(con, Path(path).read_text()):
             print(result.text.splitlines()[0][:100] + (" ..." if "\n" in result.text else ""))

@@ -63,11 +63,13 @@ def add_model_commands(command: Command) -> None:
     promote.add_argument("--force", action="store_true", help="skip the gates (the audit row says so)")
     base("decisions", "the audit trail of promotion decisions of a model")
 
-    publish = base("publish", "create or replace a scoring view of a model")
+    publish = base("publish", "create a scoring view of a model (or replace one dbfit published)")
     publish.add_argument("--view", required=True, help="view name ([schema.]name)")
     publish.add_argument("--source", help="rows to score (default: the source it was fitted from, all rows)")
     publish.add_argument("--version", type=int, help="pin this version (default: the current one)")
     publish.add_argument("--live", action="store_true", help="read the current version's estimates at query time")
+    publish.add_argument("--replace", action="store_true",
+                         help="replace a view of that name even when dbfit did not publish it")
 
     assess = base("assess", "metrics of a model on a source (AUC, log loss, Brier score, ...)")
     assess.add_argument("--source", help="rows to assess on (default: the training source)")
@@ -108,9 +110,11 @@ def run_model_command(args: argparse.Namespace) -> int:
 def _run(args: argparse.Namespace) -> tuple[dict[str, Any], int]:
     import dbfit
 
+    from dbfit.connection import connect_existing
+
     if args.command == "fit":
         return _fit(args), OK
-    con = dbfit.connect(args.database)
+    con = connect_existing(args.database)
     try:
         if args.command == "refit":
             result = dbfit.refit(con, args.name, source=args.source, skip_unchanged=args.skip_unchanged, cold=args.cold)
@@ -125,7 +129,7 @@ def _run(args: argparse.Namespace) -> tuple[dict[str, Any], int]:
             return {"model": args.name, "decisions": dbfit.decisions(con, args.name)}, OK
         if args.command == "publish":
             made = dbfit.publish(con, args.name, args.view, args.source or _fitted_source(con, args.name, args.version),
-                                 version=args.version, live=args.live)
+                                 version=args.version, live=args.live, replace=args.replace)
             return made, OK
         if args.command == "assess":
             table = dbfit.assess(con, args.name, args.source, threshold=args.threshold, version=args.version)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import re
+from pathlib import Path
 from typing import Any
 
 import duckdb
@@ -20,6 +21,15 @@ def connect(database: str = ":memory:", **config: Any) -> duckdb.DuckDBPyConnect
     except duckdb.IOException as err:
         raise _lock_error(database, err) from None
     return install(con)
+
+
+def connect_existing(database: str, **config: Any) -> duckdb.DuckDBPyConnection:
+    """As :func:`connect`, but refuse a database file that does not exist instead of creating an empty one
+    (a mistyped path would otherwise list no models, or run a script on a new empty file)."""
+    if database != ":memory:" and not Path(database).exists():
+        raise StoreError(f"the database file '{database}' does not exist: check the path (only 'dbfit fit' creates "
+                         "a database file)")
+    return connect(database, **config)
 
 
 def install(con: duckdb.DuckDBPyConnection) -> duckdb.DuckDBPyConnection:

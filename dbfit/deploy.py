@@ -19,7 +19,7 @@ from dbfit.model import Model
 from dbfit.names import model_name, relation_name
 from dbfit.scoring import INTERVAL_COLUMNS, SCORE_COLUMNS, Coefficient, scoring_query
 from dbfit.source import source_relation
-from dbfit.store import SCHEMA, load_model
+from dbfit.store import SCHEMA, load_model, publish_view
 
 LIVE_ALIAS = "dbfit_coefficients"
 
@@ -74,34 +74,28 @@ def publish(
     version: int | None = None,
     live: bool = False,
     unseen: str = "null",
+    replace: bool = False,
 ) -> dict[str, Any]:
-    """Create or replace ``view``: every column of ``source`` plus ``linear_predictor`` and ``probability``.
+    """Create ``view``, or replace the one dbfit published under that name: every column of ``source`` plus
+    ``linear_predictor`` and ``probability``.
 
     ``model`` is a stored model's name (``version`` picks one; default the current one) or a Model object.
     ``live=True`` reads the current version's stored estimates at query time instead of writing them in as constants.
+    A view of that name that dbfit did not publish (or that was changed since) is refused unless ``replace=True``.
     """
     target = relation_name(view, "view name")
     resolved = resolve_model(con, model, version)
     query = build_scoring(con, resolved, source, live=live, unseen=unseen)
-    statement = create_view(con, target, query)
-    return {
-        "view": target.sql("duckdb"),
-        "model": resolved.name,
-        "version": None if live else resolved.version,
-        "mode": "live" if live else "pinned",
-        "sql": statement.sql("duckdb"),
-    }
+    record = {"model": resolved.name, "version": None if live else resolved.version, "mode": "live" if live else "pinned"}
+    statement = create_view(con, target, query, record, replace=replace)
+    return {"view": target.sql("duckdb"), **record, "sql": statement.sql("duckdb")}
 
 
-def create_view(con: duckdb.DuckDBPyConnection, target: exp.Table, query: exp.Select) -> exp.Create:
-    """CREATE OR REPLACE VIEW ``target`` AS ``query``; a failure becomes a StoreError naming the view."""
-    statement = exp.Create(this=target, kind="VIEW", replace=True, expression=query)
-    try:
-        con.execute(statement.sql("duckdb")).fetchall()
-    except duckdb.Error as err:
-        first = (str(err).strip().splitlines() or [type(err).__name__])[0]
-        raise StoreError(f"view {target.sql('duckdb')} cannot be created or replaced: {first}") from None
-    return statement
+def create_view(con: duckdb.DuckDBPyConnection, target: exp.Table, query: exp.Select, record: dict[str, Any], *,
+                replace: bool = False) -> exp.Create:
+    """CREATE OR REPLACE VIEW ``target`` AS ``query`` on the store's own connection, recorded as dbfit's
+    (see :func:`dbfit.store.publish_view`); a failure or a view dbfit did not publish is a StoreError naming it."""
+    return publish_view(con, target, query, record, replace=replace)
 
 
 def _live_coefficients(model: Model) -> tuple[Coefficient, exp.Expression]:

@@ -6,13 +6,13 @@ Later engines (PostgreSQL, Spark) implement the same three methods; dialect quir
 from __future__ import annotations
 
 import re
-from typing import Any
+from typing import Any, Callable
 
 import duckdb
 from sqlglot import exp
 
 from dbfit.dialects import adapt
-from dbfit.errors import DbfitError, FormulaError, SourceError
+from dbfit.errors import AbortedTransactionError, DbfitError, FormulaError, SourceError
 from dbfit.progress import watch_scan
 
 
@@ -55,26 +55,113 @@ class Engine:
 
 
 class DuckDBEngine(Engine):
-    """Runs sqlglot trees on a DuckDB connection and counts the queries that scan the data."""
+    """Runs sqlglot trees on a DuckDB connection and counts the queries that scan the data.
+
+    Inside the caller's open transaction every query is parsed and bound before it runs, through DuckDB's
+    relation API, which reports an unknown column, table or type without touching that transaction (a failing
+    ``execute`` would abort it: DuckDB has no savepoints). Only an error while the rows are read (a value that
+    cannot be converted, an unreadable file, memory) can still end it; :class:`AbortedTransactionError` says so.
+    """
 
     dialect = "duckdb"
     parameters = True  # coefficients may be bound as ? parameters
 
+    def __init__(self, connection: Any) -> None:
+        super().__init__(connection)
+        self.aborted = False
+        self._checked: set[str] = set()  # query texts already bound inside the caller's transaction
+
     def describe(self, query: exp.Expression) -> list[tuple[str, str]]:
         """Column names and SQL types of ``query`` without reading its rows."""
-        rows = self._run(f"DESCRIBE {self.sql(query)}")
-        return [(row[0], row[1]) for row in rows]
+        sql = self.sql(query)
+        self._parse(sql)
+        relation = self._bind(sql)
+        return [(name, str(kind)) for name, kind in zip(relation.columns, relation.types)]
+
+    def execute(self, *, sql: str, scan: bool) -> None:
+        """Run a statement dbfit wrote itself (``CREATE TEMP TABLE name AS SELECT ...``, ``DROP TABLE``); its
+        query is bound first. Skipped once DuckDB has aborted the caller's transaction: the ROLLBACK the caller
+        must run then removes dbfit's temporary tables too."""
+        if self.aborted:
+            return
+        created = _CREATE_AS.match(sql)
+        if created and in_transaction(self.connection):
+            self._parse(sql)
+            self._bind(sql[created.end():])
+        super().execute(sql=sql, scan=scan)
 
     def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
+        # Outside a transaction a failing statement ends only its own; inside, it must fail before it runs. A
+        # query text is bound once (the Newton passes repeat one text with new parameters): binding a wide
+        # statistics query costs about a third of running it on a small table.
+        if sql not in self._checked and in_transaction(self.connection):
+            if self._parse(sql).type == duckdb.StatementType.SELECT:
+                self._bind(sql, parameters)
+            self._checked.add(sql)
+        return self._read(lambda: self.connection.execute(sql, parameters).fetchall())
+
+    def _parse(self, sql: str) -> Any:
+        """The parsed statement (a parser error, unlike one from ``execute``, leaves the transaction alone)."""
         try:
-            if self.live_progress:
-                with watch_scan(self.connection, f"dbfit scan {self.scans}"):
-                    return self.connection.execute(sql, parameters).fetchall()
-            return self.connection.execute(sql, parameters).fetchall()
+            statements = self.connection.extract_statements(sql)
+        except duckdb.Error as err:
+            raise translate_error(err) from None
+        if len(statements) != 1:
+            raise DbfitError(f"dbfit runs one statement at a time, not {len(statements)}")
+        return statements[0]
+
+    def _bind(self, sql: str, parameters: list[Any] | None = None) -> duckdb.DuckDBPyRelation:
+        """The bound (not yet run) query of parsed ``sql``: names, types and functions checked, nothing read."""
+        try:
+            return self.connection.sql(sql, params=parameters) if parameters else self.connection.sql(sql)
         except duckdb.Error as err:
             raise translate_error(err) from None
 
+    def _read(self, run: Callable[[], list[tuple[Any, ...]]]) -> list[tuple[Any, ...]]:
+        try:
+            if self.live_progress:
+                with watch_scan(self.connection, f"dbfit scan {self.scans}"):
+                    return run()
+            return run()
+        except duckdb.TransactionException as err:
+            if "aborted" not in str(err):
+                raise translate_error(err) from None
+            raise AbortedTransactionError(
+                "your open transaction was aborted by an earlier failure, before dbfit ran: ROLLBACK first"
+            ) from None
+        except duckdb.Error as err:
+            translated = translate_error(err)
+            if transaction_aborted(self.connection):
+                self.aborted = True
+                raise AbortedTransactionError(
+                    f"{translated}. DuckDB has aborted your open transaction because of it (DuckDB has no "
+                    "savepoints): run ROLLBACK, then fit outside a transaction or after COMMIT"
+                ) from None
+            raise translated from None
 
+
+def in_transaction(connection: duckdb.DuckDBPyConnection) -> bool:
+    """Whether ``connection`` is inside a transaction it opened with BEGIN: two reads of the transaction id
+    agree only there (outside, each statement is a transaction of its own). Reads nothing else, changes nothing."""
+    try:
+        first = connection.execute("SELECT txid_current()").fetchall()
+        return first == connection.execute("SELECT txid_current()").fetchall()
+    except duckdb.TransactionException:
+        return True  # an aborted transaction is still open until the caller's ROLLBACK
+
+
+def transaction_aborted(connection: duckdb.DuckDBPyConnection) -> bool:
+    """Whether ``connection``'s open transaction has been aborted by an earlier failure (it then refuses all)."""
+    try:
+        connection.execute("SELECT 1").fetchall()
+    except duckdb.TransactionException:
+        return True
+    except duckdb.Error:
+        return False
+    return False
+
+
+_CREATE_AS = re.compile(r'\s*CREATE\s+TEMP(?:ORARY)?\s+TABLE\s+"[^"]+"\s+AS\s+', re.IGNORECASE)
 _MISSING_COLUMN = re.compile(r'Referenced column "?([^"\s]+)"? not found', re.IGNORECASE)
 
 

@@ -19,6 +19,12 @@ class SourceError(DbfitError):
     """The data source is not a table, view, file path or single SELECT, or cannot be read."""
 
 
+class AbortedTransactionError(DbfitError):
+    """A query failed while reading rows inside the caller's open DuckDB transaction, and DuckDB (which has no
+    savepoints) aborted that transaction: the caller must ROLLBACK. Never raised for errors dbfit finds before
+    running a query (unknown columns, tables, types, bad options)."""
+
+
 class FitError(DbfitError):
     """The data cannot be fitted as asked (bad target values, no rows, non-finite predictors, ...)."""
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, Callable
 
 from sqlglot import exp
 
@@ -15,32 +15,41 @@ TYPE_NAMES = {16: "BOOLEAN", 20: "BIGINT", 21: "SMALLINT", 23: "INTEGER", 700: "
 
 
 class PostgresEngine(Engine):
-    """Runs dbfit's query trees on a psycopg connection, written in PostgreSQL's dialect."""
+    """Runs dbfit's query trees on a psycopg connection, written in PostgreSQL's dialect.
+
+    Each query runs in a transaction of its own, or, inside the caller's open transaction, in a savepoint:
+    a failing query is rolled back to that savepoint only, so the caller's transaction and its rows stay as
+    they were. JIT compilation is off for dbfit's queries only (``set_config(..., true)`` inside that
+    transaction or savepoint, set back to the value read before): a wide aggregate costs more to compile than
+    the scan it speeds up.
+    """
 
     dialect = "postgres"
-    def __init__(self, connection: Any) -> None:
-        super().__init__(connection)
-        self._run("SET jit = off")  # JIT compilation of a wide aggregate costs more than the scan it speeds up
 
     def describe(self, query: exp.Expression) -> list[tuple[str, str]]:
         probe = exp.select("*").from_(query.subquery("dbfit_probe")).limit(0)
-        with self.connection.cursor() as cursor:
-            self._execute(cursor, self.sql(probe))
-            return [(column.name, TYPE_NAMES.get(column.type_code, f"OID{column.type_code}")) for column in cursor.description]
+        description = self._guarded(self.sql(probe), lambda cursor: cursor.description)
+        return [(column.name, TYPE_NAMES.get(column.type_code, f"OID{column.type_code}")) for column in description]
 
     def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
-        with self.connection.cursor() as cursor:
-            self._execute(cursor, sql)
-            return cursor.fetchall() if cursor.description is not None else []
+        return self._guarded(sql, lambda cursor: cursor.fetchall() if cursor.description is not None else [])
 
-    def _execute(self, cursor: Any, sql: str) -> None:
+    def _guarded(self, sql: str, result: Callable[[Any], Any]) -> Any:
+        """Run ``sql`` inside a transaction or savepoint of dbfit's own and return ``result(cursor)``."""
         import psycopg
+        from psycopg.pq import TransactionStatus
 
+        if self.connection.info.transaction_status == TransactionStatus.INERROR:
+            raise DbfitError("the connection's open transaction has already failed: roll it back before fitting")
         try:
-            cursor.execute(sql)
+            with self.connection.transaction(), self.connection.cursor() as cursor:
+                cursor.execute("SELECT current_setting('jit'), set_config('jit', 'off', true)")
+                before = cursor.fetchone()[0]
+                cursor.execute(sql)
+                value = result(cursor)
+                cursor.execute("SELECT set_config('jit', %s, true)", [before])
+                return value
         except psycopg.Error as err:
-            if not self.connection.autocommit:
-                self.connection.rollback()
             raise translate_error(err) from None
 
 

@@ -45,7 +45,16 @@ def watch_scan(connection: duckdb.DuckDBPyConnection, label: str, stream: TextIO
 
 @contextmanager
 def progress_settings(connection: duckdb.DuckDBPyConnection, *, track: bool = True) -> Iterator[None]:
-    """Turn off DuckDB's own printed bar (and, with ``track``, on its progress tracking); restore them after."""
+    """Turn off DuckDB's own printed bar (and, with ``track``, on its progress tracking); restore them after.
+
+    Inside the caller's open transaction nothing is changed: a query failing there would leave DuckDB's
+    transaction aborted, and a setting could not be restored until the caller's ROLLBACK.
+    """
+    from dbfit.engine import in_transaction
+
+    if in_transaction(connection):
+        yield
+        return
     names = ("enable_progress_bar", "enable_progress_bar_print")
     before = {name: connection.execute(f"SELECT current_setting('{name}')").fetchall()[0][0] for name in names}
     connection.execute(f"SET enable_progress_bar = {'true' if track else 'false'}")

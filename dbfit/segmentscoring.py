@@ -63,8 +63,9 @@ def stored_segments(con: duckdb.DuckDBPyConnection, name: str) -> tuple[dict[Any
 
 
 def publish_segments(con: duckdb.DuckDBPyConnection, fitted: str | SegmentedFit, view: str, source: str | None = None,
-                     *, unseen: str = "null") -> dict[str, Any]:
-    """Create or replace ``view`` scoring each row of ``source`` with its segment's model, estimates pinned.
+                     *, unseen: str = "null", replace: bool = False) -> dict[str, Any]:
+    """Create ``view`` (or replace the one dbfit published under that name) scoring each row of ``source`` with
+    its segment's model, estimates pinned. Another view of that name is refused unless ``replace=True``.
 
     ``fitted`` is a :class:`SegmentedFit` (``source`` defaults to the source it was fitted on) or the name the
     segment models were stored under (then ``source`` is required).
@@ -79,7 +80,9 @@ def publish_segments(con: duckdb.DuckDBPyConnection, fitted: str | SegmentedFit,
             raise StoreError("publishing stored segment models needs the source to score")
         models, by = stored_segments(con, fitted)
     check_score_columns(con, source_relation(source), False)
-    statement = create_view(con, target, segment_scoring_query(models, by, source, unseen=unseen))
+    statement = create_view(con, target, segment_scoring_query(models, by, source, unseen=unseen),
+                            {"model": fitted if isinstance(fitted, str) else None, "version": None, "mode": "pinned"},
+                            replace=replace)
     return {"view": target.sql("duckdb"), "segments": len(models), "mode": "pinned", "sql": statement.sql("duckdb")}
 
 

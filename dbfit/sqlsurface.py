@@ -73,12 +73,12 @@ MACROS = {
         ("model, source, version" + _SCORE_OPTIONS, _SCORE.format(version="version")),
     ],
     "publish": [(
-        "model, source, view, version := NULL, live := false, unseen := 'null'",
-        _ROWS.format(call="dbfit_sql_publish(model, source, view, version, live, unseen)"),
+        "model, source, view, version := NULL, live := false, unseen := 'null', \"replace\" := false",
+        _ROWS.format(call="dbfit_sql_publish(model, source, view, version, live, unseen, \"replace\")"),
     )],
     "publish_segments": [(
-        "model, source, view, unseen := 'null'",
-        _ROWS.format(call="dbfit_sql_publish_segments(model, source, view, unseen)"),
+        "model, source, view, unseen := 'null', \"replace\" := false",
+        _ROWS.format(call="dbfit_sql_publish_segments(model, source, view, unseen, \"replace\")"),
     )],
     "assess": [("model, source, threshold := 0.5", _ROWS.format(call="dbfit_sql_assess(model, source, threshold, 'metrics')"))],
     "confusion": [("model, source, threshold := 0.5", _ROWS.format(call="dbfit_sql_confusion(model, source, threshold, 'confusion')"))],
@@ -154,14 +154,15 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
                               level=0.95 if level is None else level)
         return query.sql("duckdb")
 
-    def publish_rows(model, source, view, version, live, unseen):
+    def publish_rows(model, source, view, version, live, unseen, replace):
         with second() as writer:
-            made = publish(writer, model, view, source, version=version, live=bool(live), unseen=unseen or "null")
+            made = publish(writer, model, view, source, version=version, live=bool(live), unseen=unseen or "null",
+                           replace=bool(replace))
         return [{k: made[k] for k in PUBLISHED_FIELDS}]
 
-    def publish_segment_rows(model, source, view, unseen):
+    def publish_segment_rows(model, source, view, unseen, replace):
         with second() as writer:
-            made = publish_segments(writer, model, view, source, unseen=unseen or "null")
+            made = publish_segments(writer, model, view, source, unseen=unseen or "null", replace=bool(replace))
         return [{k: made[k] for k in SEGMENT_VIEW_FIELDS}]
 
     def drop_rows(model, version):
@@ -195,8 +196,8 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
         ("dbfit_sql_models", version_rows, [], _rows_of(VERSION_FIELDS)),
         ("dbfit_sql_coefficients", coefficient_rows, [V, I], _rows_of(COEFFICIENT_FIELDS)),
         ("dbfit_sql_score", score_sql, [V, V, I, B, D, V], V),
-        ("dbfit_sql_publish", publish_rows, [V, V, V, I, B, V], _rows_of(PUBLISHED_FIELDS)),
-        ("dbfit_sql_publish_segments", publish_segment_rows, [V, V, V, V], _rows_of(SEGMENT_VIEW_FIELDS)),
+        ("dbfit_sql_publish", publish_rows, [V, V, V, I, B, V, B], _rows_of(PUBLISHED_FIELDS)),
+        ("dbfit_sql_publish_segments", publish_segment_rows, [V, V, V, V, B], _rows_of(SEGMENT_VIEW_FIELDS)),
         ("dbfit_sql_drop", drop_rows, [V, I], _rows_of(DROPPED_FIELDS)),
         ("dbfit_sql_assess", assessment_rows, [V, V, D, V], _rows_of({"metric": V, "value": D, "note": V})),
         ("dbfit_sql_confusion", assessment_rows, [V, V, D, V], _rows_of({"actual": I, "predicted": I, "rows": T("BIGINT")})),

@@ -7,9 +7,14 @@ column: numeric factors, level indicators, centre and scale) and ``covariance`` 
 also ``fingerprints`` (the training source's row count and row checksum) and ``drift_bins`` (the training
 snapshot of :mod:`dbfit.drift`). ``current_versions`` names the promoted version of each model (the one that
 loads without a version and that live views read; a model without a row there reads its latest version),
-``gates`` holds each model's promotion gates and ``decisions`` the audit trail of every promotion decision.
-Every version is written in one transaction on a connection of its own: an error, a KeyboardInterrupt or a
-killed process leaves either the whole version or none of it. Model names travel as bound parameters.
+``gates`` holds each model's promotion gates and ``decisions`` the audit trail of every promotion decision;
+``published_views`` records each view dbfit published (with DuckDB's text of it), so that publishing again
+replaces only a view dbfit made and that nobody has changed since.
+Every write is one transaction on a connection of its own (the caller's connection and its open transaction
+are never used for it): an error, a KeyboardInterrupt or a killed process leaves either the whole version or
+none of it. After the commit a CHECKPOINT moves the write from the write-ahead log into the database file,
+so that a copy of the file alone holds it even when the writing session never closes its connection.
+Model names travel as bound parameters.
 """
 
 from __future__ import annotations
@@ -24,6 +29,7 @@ from typing import Any
 
 import duckdb
 import pyarrow as pa
+from sqlglot import exp
 
 from dbfit.errors import StoreConflictError, StoreError
 from dbfit.model import Model
@@ -60,6 +66,9 @@ _TABLES = {
     "gates": "model VARCHAR PRIMARY KEY, settings VARCHAR NOT NULL, set_at TIMESTAMP NOT NULL",
     "decisions": """decided_at TIMESTAMP NOT NULL, model VARCHAR NOT NULL, candidate_version INTEGER,
         current_version INTEGER, decision VARCHAR NOT NULL, reason VARCHAR NOT NULL, figures VARCHAR NOT NULL""",
+    "published_views": """database_name VARCHAR NOT NULL, schema_name VARCHAR NOT NULL, view_name VARCHAR NOT NULL,
+        model VARCHAR, version INTEGER, mode VARCHAR NOT NULL, definition VARCHAR NOT NULL,
+        published_at TIMESTAMP NOT NULL, PRIMARY KEY (database_name, schema_name, view_name)""",
 }
 VERSION_TABLES = ("drift_bins", "fingerprints", "covariance", "encodings", "factors", "coefficients", "versions")
 Extra = dict[str, dict[str, list[Any]]]  # more per-version rows, column-wise by table (the key is added)
@@ -107,12 +116,14 @@ def save_time_rows(con: duckdb.DuckDBPyConnection, model: Model) -> Extra:
     """The fingerprint of the source the user gave and the drift snapshot of the training rows, computed before the
     version's transaction; none when the source cannot be read here (a model moved in as JSON)."""
     from dbfit.drift import training_snapshot
-    from dbfit.errors import DbfitError
+    from dbfit.errors import AbortedTransactionError, DbfitError
     from dbfit.fingerprint import fingerprint, origin_source
 
     try:
         return {"fingerprints": {k: [v] for k, v in fingerprint(con, origin_source(model.options, model.source_or_own(None))).items()},
                 "drift_bins": training_snapshot(con, model)}
+    except AbortedTransactionError:
+        raise
     except DbfitError:
         return {}
 
@@ -283,6 +294,52 @@ def read_setting(con: duckdb.DuckDBPyConnection, table: str, name: str) -> dict[
     return json.loads(rows[0][0]) if rows else None
 
 
+def publish_view(con: duckdb.DuckDBPyConnection, target: exp.Table, query: exp.Select, record: dict[str, Any], *,
+                 replace: bool = False) -> exp.Create:
+    """Create or replace the view ``target`` AS ``query`` and record it in ``published_views``, one transaction.
+
+    An existing view is replaced only when dbfit published it and DuckDB's text of it is still the recorded
+    one; any other view (one the user wrote, or changed since) is refused, naming it, unless ``replace``.
+    ``record`` holds the view's ``model``, ``version`` and ``mode``. The view is made on the store's own
+    connection, in the caller's current database and schema when ``target`` does not name them.
+    """
+    here, schema = _fetch(con, "SELECT current_database(), current_schema()")[0]
+    database = target.catalog or here
+    qualified = exp.Table(this=exp.to_identifier(target.name, quoted=True),
+                          db=exp.to_identifier(target.db or schema, quoted=True),
+                          catalog=exp.to_identifier(database, quoted=True))
+    statement = exp.Create(this=target.copy(), kind="VIEW", replace=True, expression=query)
+    shown = target.sql("duckdb")
+    with _transaction(con, ensure_schema_statements(con)) as writer:
+        key = [database if database.lower() != here.lower() else "", target.db or schema, target.name]
+        found = _view_text(writer, database, key[1], key[2])
+        if found is not None and not replace:
+            recorded = _fetch(writer, f"SELECT definition FROM {SCHEMA}.published_views WHERE database_name = ? "
+                                      "AND lower(schema_name) = lower(?) AND lower(view_name) = lower(?)", key)
+            if not recorded or recorded[0][0] != found:
+                raise StoreError(f"view {shown} already exists and was not published by dbfit (or was changed "
+                                 "since): choose another name, or pass replace=True to replace it")
+        try:
+            writer.execute(exp.Create(this=qualified, kind="VIEW", replace=True, expression=query).sql("duckdb"))
+        except duckdb.Error as err:
+            first = (str(err).strip().splitlines() or [type(err).__name__])[0]
+            raise StoreError(f"view {shown} cannot be created or replaced: {first}") from None
+        now = datetime.now(timezone.utc).replace(tzinfo=None)
+        _run(writer, [f"DELETE FROM {SCHEMA}.published_views WHERE database_name = ? AND lower(schema_name) = "
+                      "lower(?) AND lower(view_name) = lower(?)"], key)
+        _run(writer, [f"INSERT INTO {SCHEMA}.published_views VALUES (?, ?, ?, ?, ?, ?, ?, ?)"],
+             key + [record.get("model"), record.get("version"), record["mode"],
+                    _view_text(writer, database, key[1], key[2]), now])
+    return statement
+
+
+def _view_text(connection: duckdb.DuckDBPyConnection, database: str, schema: str, view: str) -> str | None:
+    """DuckDB's text of a view (None when there is no such view); names compare as DuckDB compares them."""
+    rows = _fetch(connection, "SELECT sql FROM duckdb_views() WHERE lower(database_name) = lower(?) AND "
+                              "lower(schema_name) = lower(?) AND lower(view_name) = lower(?)", [database, schema, view])
+    return rows[0][0] if rows else None
+
+
 def version_table(con: duckdb.DuckDBPyConnection, table: str, name: str, version: int,
                   order: str = "") -> list[dict[str, Any]]:
     """The rows of one version in a per-version table (``fingerprints``, ``drift_bins``) as dicts."""
@@ -318,8 +375,18 @@ def _transaction(con: duckdb.DuckDBPyConnection, preamble: list[str] | None = No
         except BaseException:
             _rollback(writer)
             raise
+        _checkpoint(writer)
     finally:
         writer.close()
+
+
+def _checkpoint(writer: duckdb.DuckDBPyConnection) -> None:
+    """Move committed writes from the write-ahead log into the database file. Never FORCE (that aborts the
+    transactions of other connections); when DuckDB declines, the commit stays safe in the log."""
+    try:
+        writer.execute("CHECKPOINT").fetchall()
+    except duckdb.Error:
+        pass
 
 
 def _orphan_rows(con: duckdb.DuckDBPyConnection, name: str, version: int) -> bool:

@@ -63,3 +63,16 @@ def running_server(binaries: Path) -> Iterator[dict[str, object]]:
         subprocess.run(prefix + [str(binaries / "pg_ctl"), "-D", str(data), "-m", "fast", "-w", "stop"],
                        capture_output=True, timeout=120)
         shutil.rmtree(root, ignore_errors=True)
+
+
+@contextmanager
+def server_or_skip() -> Iterator[dict[str, object]]:
+    """``running_server`` on the installed binaries; the test is skipped when psycopg or PostgreSQL is missing."""
+    import pytest
+
+    pytest.importorskip("psycopg")
+    binaries = find_binaries()
+    if binaries is None:
+        pytest.skip("PostgreSQL binaries are not installed")
+    with running_server(binaries) as keywords:
+        yield keywords
