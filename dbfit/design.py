@@ -449,10 +449,9 @@ def marginal_codings(design: Design) -> list[list[Coding]]:
         numeric = frozenset(i for i in factors if design.factors[i].kind == "numeric")
         categorical = [i for i in factors if design.factors[i].kind == "categorical"]
         used = spanned.setdefault(numeric, set())
-        subsets = sorted(
-            (tuple(i for k, i in enumerate(categorical) if mask >> k & 1) for mask in range(1 << len(categorical))),
-            key=len,
-        )
+        masks = range(1 << len(categorical))
+        subsets = sorted((tuple(i for k, i in enumerate(categorical) if mask >> k & 1) for mask in masks),
+                         key=len)
         needed = [frozenset((i, False) for i in subset) for subset in subsets]
         needed = [s for s in needed if s not in used]
         used.update(needed)
@@ -463,7 +462,7 @@ def marginal_codings(design: Design) -> list[list[Coding]]:
 
 
 def _merge_subterms(subterms: list[frozenset[tuple[int, bool]]]) -> list[frozenset[tuple[int, bool]]]:
-    """Merge ``s`` into a later ``s`` plus one reduced factor, that factor becoming full; repeat while any merge."""
+    """Merge ``s`` into a later ``s`` plus one reduced factor, which becomes full, while any pair merges."""
     subterms = list(subterms)
     merged = True
     while merged:
@@ -490,7 +489,8 @@ def _layout_columns(design: Design, row: dict[str, Any], products: dict[str, tup
         for coding in codings:
             centre, scale, constant = 0.0, 1.0, False
             if numeric:
-                centre, scale, constant = _centre_and_scale(row, "_".join(map(str, numeric)), design.rows_used,
+                key = "_".join(map(str, numeric))
+                centre, scale, constant = _centre_and_scale(row, key, design.rows_used,
                                                             centred=not coding and design.intercept)
             level_sets = [
                 [(i, v) for v in design.factors[i].levels if full or v != design.factors[i].reference]

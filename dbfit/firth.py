@@ -30,7 +30,7 @@ from dbfit.statsquery import PassResult
 
 Evaluate = Callable[[list[int], np.ndarray], PassResult]
 FINAL_STEP = 1e-10  # largest step on the internal scale accepted at convergence
-CURVATURE_MAX_PARAMETERS = 30  # up to this many, the Newton matrix includes the penalty's curvature (p^3 / 6 sums)
+CURVATURE_MAX_PARAMETERS = 30  # up to this many, the Newton matrix has the penalty's curvature (p^3 / 6 sums)
 
 
 def hat_value_expression(z: list[exp.Expression], inverse: np.ndarray) -> exp.Expression:
@@ -60,10 +60,10 @@ def adjustment_query(design: Design, parameters: list[int], beta: np.ndarray, in
     columns.append(exp.alias_(sb.mul(hat_value_expression(z, inverse), half_minus_mu), "h", quoted=True))
     if curvature:
         mu_variance = sb.mul(sb.column("mu"), sb.paren(sb.sub(exp.Literal.number(1), sb.column("mu"))))
-        columns.append(exp.alias_(
-            sb.mul(hat_value_expression(z, inverse), sb.paren(sb.sub(exp.Literal.number(0.5),
-                                                                     sb.mul(exp.Literal.number(3), mu_variance)))),
-            "g", quoted=True))
+        three_variances = sb.mul(exp.Literal.number(3), mu_variance)
+        curvature_factor = sb.paren(sb.sub(exp.Literal.number(0.5), three_variances))
+        hat = hat_value_expression(z, inverse)
+        columns.append(exp.alias_(sb.mul(hat, curvature_factor), "g", quoted=True))
         columns.append(exp.alias_(sb.mul(sb.column("wt"), half_minus_mu.copy()), "q", quoted=True))
     with_hat = exp.select(*columns).from_(terms.subquery())
     a = [sb.column(f"a{k}") for k in range(size)]
@@ -129,7 +129,8 @@ def firth_evaluator(engine: DuckDBEngine, design: Design, evaluate: Evaluate, pr
             raise FitError("the information matrix is singular at the current estimates; the Firth penalty is undefined")
         inverse = np.linalg.inv(gram)
         curvature = len(keep) == len(parameters) and len(keep) <= CURVATURE_MAX_PARAMETERS
-        row = engine.fetch(adjustment_query(design, [parameters[k] for k in keep], beta[keep], inverse, curvature))[0]
+        kept = [parameters[k] for k in keep]
+        row = engine.fetch(adjustment_query(design, kept, beta[keep], inverse, curvature))[0]
         values = np.array([0.0 if v is None else float(v) for v in row])
         score = core.score.copy()
         score[keep] += values[: len(keep)]
@@ -140,7 +141,8 @@ def firth_evaluator(engine: DuckDBEngine, design: Design, evaluate: Evaluate, pr
                                               values[len(keep) + pairs:])
             if _positive_definite(candidate):
                 newton_matrix = candidate
-        return PassResult(newton_matrix, score, core.loglik + 0.5 * log_determinant, core.extreme, core.misfit_extreme)
+        penalised = core.loglik + 0.5 * log_determinant
+        return PassResult(newton_matrix, score, penalised, core.extreme, core.misfit_extreme)
 
     return evaluate_firth
 

@@ -3,7 +3,8 @@
 The solver only ever sees p x p numbers. Steps, in the order they run: set-up (start values, aliasing
 check on the first Gram), Newton step by Cholesky solve, step-halving when the deviance rises, convergence
 check on the relative deviance change and the step size, one more scan at the final estimate (so the
-information, log-likelihood and covariance returned are those of the estimate returned), and a separation check.
+information, log-likelihood and covariance returned are those of the estimate returned), and a separation
+check.
 References: Green (1984), "Iteratively reweighted least squares for maximum likelihood estimation",
 JRSS B 46(2), 149-192; Albert and Anderson (1984), "On the existence of maximum likelihood estimates in
 logistic regression models", Biometrika 71(1), 1-10, doi:10.1093/biomet/71.1.1 (separation).

@@ -286,10 +286,11 @@ def annotate(model: Model, fit: PenalisedFit, request: PenaltyRequest) -> Model:
     warnings = list(model.warnings)
     if fit.chosen is not None and len(fit.path) > 1 and fit.chosen in (0, len(fit.path) - 1):
         end = ("strongest" if fit.chosen == 0 else "weakest")
+        beyond = fit.penalty.shrinkage > 0 or fit.chosen == 0
         warnings.append(
-            f"shrinkage at the end of the grid: the cross-validated deviance is least at the {end} value tried, "
-            f"{fit.penalty.shrinkage:.6g}; "
-            + ("the best strength may lie beyond it: widen the grid" if fit.penalty.shrinkage > 0 or fit.chosen == 0
+            f"shrinkage at the end of the grid: the cross-validated deviance is least at the {end} value "
+            f"tried, {fit.penalty.shrinkage:.6g}; "
+            + ("the best strength may lie beyond it: widen the grid" if beyond
                else "the data need no penalty (the estimates are the maximum-likelihood ones)")
         )
     if fit.unconverged:

@@ -5,8 +5,9 @@ Format ``dbfit-model`` version 1 (our own; documented in README.md). Top-level k
 indicators follow the marginality rule of :func:`dbfit.design.marginal_codings`; absent in older documents,
 whose categoricals were all coded against their reference level), ``offset``, ``factors`` (expression text,
 kind, SQL type, levels, reference level), ``columns`` (label, term, indices of the numeric factors multiplied
-together, indicator pairs ``[factor index, level]``, internal centre and scale, constant flag), ``labels``, ``estimates`` (original scale, ``null`` when aliased), ``covariance`` (p x p,
-``null`` for aliased rows and columns), ``stats``, ``warnings`` and ``fingerprint`` (rows in the source, rows
+together, indicator pairs ``[factor index, level]``, internal centre and scale, constant flag), ``labels``,
+``estimates`` (original scale, ``null`` when aliased), ``covariance`` (p x p, ``null`` for aliased rows and
+columns), ``stats``, ``warnings`` and ``fingerprint`` (rows in the source, rows
 used, source text, fit time in UTC). Floats are written with Python's shortest round-trip repr, so a document
 read back gives bit-identical numbers.
 """

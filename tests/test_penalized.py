@@ -250,9 +250,10 @@ def test_a_path_cut_short_by_max_iter_says_so(con, cancer):
 
 
 def test_automatic_ridge_grid_walks_on_down_until_the_least_deviance_is_inside(con, cancer):
-    # On the six breast-cancer columns the ridge strength with the least cross-validated deviance lies far below
-    # the end of the first 12 values (top / 1000). Reference: scikit-learn LogisticRegression (lbfgs) fitted on
-    # each fold's training rows (same hash split, C = 1 / (s N_train)), held-out deviance summed over folds.
+    # On the six breast-cancer columns the ridge strength with the least cross-validated deviance lies far
+    # below the end of the first 12 values (top / 1000). Reference: scikit-learn LogisticRegression (lbfgs)
+    # fitted on each fold's training rows (same hash split, C = 1 / (s N_train)), held-out deviance summed
+    # over the folds.
     frame, x, y = cancer
     folds = 3
     model = dbfit.fit(con, FORMULA, "cancer", shrinkage="cv", folds=folds, split_key="rid", progress=False)
@@ -268,15 +269,16 @@ def test_automatic_ridge_grid_walks_on_down_until_the_least_deviance_is_inside(c
             b = reference_fit(x[fold != k], y[fold != k], strengths[g], 0.0)
             eta = b[0] + x[fold == k] @ b[1:]
             expected -= 2.0 * np.sum(y[fold == k] * eta - np.logaddexp(0.0, eta))
-        assert_close(path[g]["cv_deviance"], expected, RTOL, f"cross-validated deviance at {strengths[g]:.3g}")
+        assert_close(path[g]["cv_deviance"], expected, RTOL, f"cv deviance at {strengths[g]:.3g}")
     assert not any(w.startswith("shrinkage at the end of the grid") for w in model.warnings)
 
 
 def test_choice_at_an_end_of_the_grid_is_warned(con, cancer):
-    model = dbfit.fit(con, FORMULA, "cancer", shrinkage=[5.0, 1.0, 0.5], folds=3, split_key="rid", progress=False)
+    model = dbfit.fit(con, FORMULA, "cancer", shrinkage=[5.0, 1.0, 0.5], folds=3, split_key="rid",
+                      progress=False)
     assert model.stats["shrinkage"] == 0.5
-    assert any(w.startswith("shrinkage at the end of the grid: the cross-validated deviance is least at the weakest")
-               for w in model.warnings)
+    warned = "shrinkage at the end of the grid: the cross-validated deviance is least at the weakest"
+    assert any(w.startswith(warned) for w in model.warnings)
 
 
 def test_extension_below_the_grid_ends_at_zero():
@@ -288,4 +290,5 @@ def test_extension_below_the_grid_ends_at_zero():
         added = _weaker(grid)
         assert added and all(a > b for a, b in zip([grid[-1], *added], added))
         grid.extend(added)
-    assert min(v for v in grid if v > 0) >= 2.0 * FLOOR_SHARE and grid[-1] == 0.0 and grid[-2] < 2.0 * FLOOR_SHARE * 10
+    assert min(v for v in grid if v > 0) >= 2.0 * FLOOR_SHARE
+    assert grid[-1] == 0.0 and grid[-2] < 2.0 * FLOOR_SHARE * 10

@@ -204,7 +204,7 @@ def test_standard_errors_belong_to_the_estimates_returned(con):
     mu = 1.0 / (1.0 + np.exp(-X @ model.estimates))
     information = X.T @ ((mu * (1.0 - mu))[:, None] * X)
     at_estimates = np.sqrt(np.diag(np.linalg.inv(information)))
-    assert_close(model.coefficients["std_error"].to_numpy(), at_estimates, 1e-10, "standard errors at the estimates")
+    assert_close(model.coefficients["std_error"].to_numpy(), at_estimates, 1e-10, "errors at the estimates")
     loglik = float(np.sum(frame.low * np.log(mu) + (1 - frame.low) * np.log1p(-mu)))
     assert_close(model.stats["log_likelihood"], loglik, 1e-12, "log-likelihood at the estimates")
     reference = sm.Logit(frame.low, sm.add_constant(frame[names])).fit(disp=0, tol=1e-12)
