@@ -4,7 +4,8 @@ One profiling scan over the complete rows (no NULL in any used expression) count
 weights and predictors, finds categorical levels and the centre and scale of every numeric column.
 Numeric columns are centred (when there is an intercept) and scaled internally so that the Gram matrix is
 well conditioned; estimates are mapped back to the original scale in :mod:`dbfit.inference`.
-Categorical factors use treatment (indicator) coding against a reference level.
+Categorical factors use treatment (indicator) coding against a reference level, or indicators for all their
+levels where the marginality rule asks for them (see :func:`marginal_codings`).
 """
 
 from __future__ import annotations
@@ -87,6 +88,9 @@ class Design:
     segment: exp.Expression | None = None
     segment_text: str | None = None
     named_target: exp.Expression | None = None  # with positive=: the target as given, which must be two-valued
+    # "marginal": indicators follow the marginality rule (marginal_codings); "reference": every categorical
+    # against its reference level (documents written before the rule, which carry no coding key)
+    coding: str = "marginal"
     rows_total: int = 0
     rows_used: int = 0
     weight_sum: float = 0.0
@@ -201,7 +205,40 @@ def _factor_expression(formula: Formula, text: str) -> exp.Expression:
     raise AssertionError(text)
 
 
+def _product_operands(node: exp.Expression) -> list[exp.Expression]:
+    """The operands of a chain of ``*`` at the top of an expression (``a * b * c`` -> a, b, c)."""
+    node = node.unnest() if isinstance(node, exp.Paren) else node
+    if isinstance(node, exp.Mul):
+        return _product_operands(node.this) + _product_operands(node.expression)
+    return [node]
+
+
+def _refuse_categorical_products(engine: DuckDBEngine, design: Design) -> None:
+    """``*`` inside a factor is SQL multiplication; of a categorical it means nothing, and Wilkinson-Rogers
+    readers expect the crossing ``a + b + a:b``, so say how to write that instead."""
+    products = [(f, _product_operands(f.expression)) for f in design.factors]
+    products = [(f, operands) for f, operands in products if len(operands) > 1]
+    if not products:
+        return
+    probe = exp.select(*[exp.alias_(operand.copy(), f"dbfit_p{i}_{k}", quoted=True)
+                         for i, (_, operands) in enumerate(products) for k, operand in enumerate(operands)])
+    types = [sql_type for _, sql_type in engine.describe(probe.from_(design.relation.copy()))]
+    at = 0
+    for factor, operands in products:
+        kinds = types[at: at + len(operands)]
+        at += len(operands)
+        if any(CATEGORICAL_TYPE.match(kind) for kind in kinds):
+            texts = [operand.sql(dialect="duckdb") for operand in operands]
+            crossing = [":".join(texts[k] for k in range(len(texts)) if mask >> k & 1)
+                        for mask in sorted(range(1, 1 << len(texts)), key=lambda m: (bin(m).count("1"), m))]
+            raise FormulaError(
+                f"'{factor.text}' multiplies a categorical: write '{' + '.join(crossing)}' for the crossing "
+                "('*' inside a term is SQL multiplication of numbers)"
+            )
+
+
 def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
+    _refuse_categorical_products(engine, design)
     probe = exp.select(*[exp.alias_(node.copy(), name, quoted=True) for node, name in design.used_expressions()])
     types = dict(engine.describe(probe.from_(design.relation.copy())))
 
@@ -385,45 +422,100 @@ def _numeric_products(design: Design) -> dict[str, tuple[int, ...]]:
     return products
 
 
+Coding = tuple[tuple[int, bool], ...]  # (categorical factor index, all levels?) in the term's factor order
+
+
+def marginal_codings(design: Design) -> list[list[Coding]]:
+    """For every term, the sub-terms its columns span: which categorical factors appear, each coded with
+    indicators for all its levels (full) or for all but its reference level (reduced).
+
+    The marginality rule of Chambers and Hastie (1992), Statistical Models in S, chapter 2 (cited from
+    memory), in the form patsy documents for its coding algorithm ("redundancy" / full-rank coding): a term's
+    categorical part expands into the products of every subset of its categorical factors, reduced-coded; the
+    subsets already spanned by a term with the same numeric factors (the intercept spans the empty subset of
+    the terms without numeric factors) are left out; then a sub-term ``s`` and one with one more factor ``f``
+    merge into ``s`` with ``f`` full-coded, as long as any pair merges. So ``~ x:g`` without ``x`` gets one
+    slope of ``x`` per level of ``g``, and ``~ 0 + g`` one indicator per level. Terms with the same numeric
+    factors are taken in order of their number of factors, lower first, as R and patsy do.
+    """
+    index = {f.text: i for i, f in enumerate(design.factors)}
+    spanned: dict[frozenset[int], set[frozenset[tuple[int, bool]]]] = {}
+    if design.intercept:
+        spanned[frozenset()] = {frozenset()}
+    codings: list[list[Coding]] = [[] for _ in design.formula.terms]
+    order = sorted(range(len(design.formula.terms)), key=lambda t: len(design.formula.terms[t].texts))
+    for t in order:
+        factors = [index[text] for text in design.formula.terms[t].texts]
+        numeric = frozenset(i for i in factors if design.factors[i].kind == "numeric")
+        categorical = [i for i in factors if design.factors[i].kind == "categorical"]
+        used = spanned.setdefault(numeric, set())
+        masks = range(1 << len(categorical))
+        subsets = sorted((tuple(i for k, i in enumerate(categorical) if mask >> k & 1) for mask in masks),
+                         key=len)
+        needed = [frozenset((i, False) for i in subset) for subset in subsets]
+        needed = [s for s in needed if s not in used]
+        used.update(needed)
+        merged = _merge_subterms(needed)
+        position = {i: k for k, i in enumerate(categorical)}
+        codings[t] = [tuple(sorted(s, key=lambda pair: position[pair[0]])) for s in merged]
+    return codings
+
+
+def _merge_subterms(subterms: list[frozenset[tuple[int, bool]]]) -> list[frozenset[tuple[int, bool]]]:
+    """Merge ``s`` into a later ``s`` plus one reduced factor, which becomes full, while any pair merges."""
+    subterms = list(subterms)
+    merged = True
+    while merged:
+        merged = False
+        for short_at, short in enumerate(subterms):
+            for long_at in range(short_at + 1, len(subterms)):
+                extra = subterms[long_at] - short
+                if len(subterms[long_at]) == len(short) + 1 and short <= subterms[long_at]:
+                    (factor, _), = extra
+                    subterms[long_at] = short | {(factor, True)}
+                    del subterms[short_at]
+                    merged = True
+                    break
+            if merged:
+                break
+    return subterms
+
+
 def _layout_columns(design: Design, row: dict[str, Any], products: dict[str, tuple[int, ...]]) -> list[DesignColumn]:
     index = {f.text: i for i, f in enumerate(design.factors)}
     columns: list[DesignColumn] = []
-    full_coding_used = False
-    for term in design.formula.terms:
+    for term, codings in zip(design.formula.terms, marginal_codings(design)):
         numeric = tuple(index[t] for t in term.texts if design.factors[index[t]].kind == "numeric")
-        categorical = [index[t] for t in term.texts if design.factors[index[t]].kind == "categorical"]
-        centre, scale, constant = 0.0, 1.0, False
-        if numeric:
-            centre, scale, constant = _centre_and_scale(row, "_".join(map(str, numeric)), design.rows_used,
-                                                        centred=not categorical and design.intercept)
-        # Without an intercept the first categorical main effect gets one indicator per level, as in
-        # Chambers and Hastie (1992), Statistical Models in S, section 2.3.
-        full_coding = not design.intercept and not full_coding_used and not numeric and len(categorical) == 1
-        full_coding_used = full_coding_used or full_coding
-        level_sets = [
-            [(i, v) for v in design.factors[i].levels if full_coding or v != design.factors[i].reference]
-            for i in categorical
-        ]
-        for combination in product(*level_sets):
-            pieces = []
-            for text in term.texts:
-                i = index[text]
-                if design.factors[i].kind == "numeric":
-                    pieces.append(text)
-                else:
-                    value = dict(combination)[i]
-                    pieces.append(f"{text}={level_label(value)}")
-            columns.append(
-                DesignColumn(
-                    label=":".join(pieces),
-                    term=term.label,
-                    numeric=numeric,
-                    indicators=tuple(combination),
-                    centre=centre,
-                    scale=scale,
-                    constant=constant,
+        for coding in codings:
+            centre, scale, constant = 0.0, 1.0, False
+            if numeric:
+                key = "_".join(map(str, numeric))
+                centre, scale, constant = _centre_and_scale(row, key, design.rows_used,
+                                                            centred=not coding and design.intercept)
+            level_sets = [
+                [(i, v) for v in design.factors[i].levels if full or v != design.factors[i].reference]
+                for i, full in coding
+            ]
+            for combination in product(*level_sets):
+                levels = dict(combination)
+                pieces = []
+                for text in term.texts:
+                    i = index[text]
+                    if design.factors[i].kind == "numeric":
+                        pieces.append(text)
+                    elif i in levels:
+                        pieces.append(f"{text}={level_label(levels[i])}")
+                columns.append(
+                    DesignColumn(
+                        label=":".join(pieces),
+                        term=term.label,
+                        numeric=numeric,
+                        indicators=tuple(combination),
+                        centre=centre,
+                        scale=scale,
+                        constant=constant,
+                    )
                 )
-            )
     return columns
 
 

@@ -393,8 +393,9 @@ def assemble_model(
         warnings.append(
             "separation: the outcome is (quasi-)completely separated, fitted probabilities reach 0 or 1 and the "
             f"maximum-likelihood estimates do not exist; suspected terms: {', '.join(suspects)}. The estimates "
-            "and standard errors shown are not trustworthy: drop or merge those terms, or refit with "
-            "dbfit.fit(..., firth=True) for Firth's bias-reduced estimates, which stay finite"
+            "and standard errors shown are not trustworthy: drop or merge those terms"
+            + ("" if options.get("firth") else ", or refit with dbfit.fit(..., firth=True) for Firth's "
+               "bias-reduced estimates, which stay finite")
         )
     elif not newton.converged:
         warnings.append(

@@ -2,7 +2,9 @@
 
 The solver only ever sees p x p numbers. Steps, in the order they run: set-up (start values, aliasing
 check on the first Gram), Newton step by Cholesky solve, step-halving when the deviance rises, convergence
-check on the relative deviance change and the step size, and a separation check.
+check on the relative deviance change and the step size, one more scan at the final estimate (so the
+information, log-likelihood and covariance returned are those of the estimate returned), and a separation
+check.
 References: Green (1984), "Iteratively reweighted least squares for maximum likelihood estimation",
 JRSS B 46(2), 149-192; Albert and Anderson (1984), "On the existence of maximum likelihood estimates in
 logistic regression models", Biometrika 71(1), 1-10, doi:10.1093/biomet/71.1.1 (separation).
@@ -140,11 +142,23 @@ def newton_iterations(
     result: PassResult | None = None
     converged = separation = False
     suspects: list[int] = []
+    confirming: tuple[np.ndarray, PassResult] | None = None  # estimate and scan before the last step
 
-    while iteration < max_iter:
+    while iteration < max_iter or confirming is not None:
         iteration += 1
         result = yield beta, active
         deviance = 2.0 * (saturated_loglik - result.loglik)
+        if confirming is not None:
+            # The scan at the estimate returned, so its information (and covariance) belong to that estimate.
+            if not deviance <= previous_deviance + 1e-12 * (abs(previous_deviance) + 1.0):
+                beta, result = confirming  # the last step only added rounding: keep the point before it
+            else:
+                trace.append(deviance)
+            if report:
+                step = newton_step(result.gram, result.score)
+                report(IterationReport(iteration, deviance, time.perf_counter() - began,
+                                       float(np.max(np.abs(step))) if step.size else 0.0))
+            break
         if iteration == 1 and _weights_collapsed(result, weight_total) and fallback_start is not None:
             # The start puts every row at a fitted 0 or 1: no curvature to step on. Start again from the default.
             if report:
@@ -177,9 +191,10 @@ def newton_iterations(
             report(IterationReport(iteration, deviance, time.perf_counter() - began, step_size))
         change = abs(previous_deviance - deviance) / (abs(deviance) + 0.1) if np.isfinite(previous_deviance) else np.inf
         if (change < tol and step_size < STEP_TOLERANCE) or step_size < STEP_TOLERANCE * 1e-3:
+            confirming, previous_deviance = (beta, result), deviance
             beta = beta + step
             converged = True
-            break
+            continue
         step_history.append(step_size)
         if _diverging(step_history, change, result):
             separation = True

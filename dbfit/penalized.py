@@ -6,7 +6,9 @@ J. Statistical Software 33(1), doi:10.18637/jss.v033.i01). Under cross-validatio
 all rows walk the grid together and share each scan (:mod:`dbfit.foldscan`), which also returns each fold's
 held-out log-likelihood, so the folds add width to the scans, not scans.
 The chosen shrinkage minimises the cross-validated deviance -2 sum_k l_k(b_-k) (Hastie, Tibshirani and
-Friedman 2009, The Elements of Statistical Learning, 2nd ed., section 7.10).
+Friedman 2009, The Elements of Statistical Learning, 2nd ed., section 7.10). An automatic grid whose least
+deviance falls on its weakest value is walked on down, a decade at a time, until the least deviance lies
+inside it or the strength reaches 0; a choice at either end of the grid is reported in the warnings.
 """
 
 from __future__ import annotations
@@ -32,6 +34,7 @@ from dbfit.statsquery import PassResult
 
 GRID_POINTS = 12
 RIDGE_TOP_SHARE = 1e-3  # the top of a ridge grid is placed as for an L1 share of 1e-3 (common practice)
+FLOOR_SHARE = 1e-9  # an automatic grid extended downwards ends with 0 once below this share of its top
 
 Evaluate = Callable[[list[int], np.ndarray], PassResult]
 
@@ -148,6 +151,12 @@ def fit_penalised(
     passes += walk_together(engine, design, parameters, fold, runners, on_scan)
     deviance = -2.0 * np.sum([runner.held_out_logliks for runner in runners[1:]], axis=0)
     chosen = int(np.argmin(deviance))
+    while request.shrinkage == "cv" and chosen == len(grid) - 1 and grid[-1] > 0.0:
+        # The deviance is still falling at the weak end: walk on down (the runners share ``grid``).
+        grid.extend(_weaker(grid))
+        passes += walk_together(engine, design, parameters, fold, runners, on_scan)
+        deviance = -2.0 * np.sum([runner.held_out_logliks for runner in runners[1:]], axis=0)
+        chosen = int(np.argmin(deviance))
     result = runners[0].solutions[chosen]
     path = [PathPoint(s, float(d)) for s, d in zip(grid, deviance)]
     unconverged = sum(not point.converged for runner in runners[1:] for point in runner.solutions)
@@ -165,22 +174,26 @@ class PathRunner:
         self.solutions: list[PenalisedResult] = []
         self.held_out_logliks: list[float] = []
         self._held_out_now = 0.0  # held-out log-likelihood at the solver's last accepted point
-        self.solver = PenalisedSolver(start, Penalty(grid[0], l1_share, mask), trials, max_iter, first)
+        self.solver: PenalisedSolver | None = PenalisedSolver(start, Penalty(grid[0], l1_share, mask), trials,
+                                                              max_iter, first)
 
     def wanted(self) -> np.ndarray | None:
+        """The point to scan next, or None at the end of the grid (which may grow: see :func:`_weaker`)."""
         while len(self.solutions) < len(self.grid):
+            if self.solver is None:
+                last = self.solutions[-1]
+                penalty = Penalty(self.grid[len(self.solutions)], self.l1_share, self.mask)
+                self.solver = PenalisedSolver(last.scanned, penalty, self.trials, self.max_iter, last.last)
             point = self.solver.wanted()
             if point is not None:
                 return point
             self.solutions.append(self.solver.result())
             self.held_out_logliks.append(self._held_out_now)
-            if len(self.solutions) < len(self.grid):
-                last = self.solutions[-1]
-                penalty = Penalty(self.grid[len(self.solutions)], self.l1_share, self.mask)
-                self.solver = PenalisedSolver(last.scanned, penalty, self.trials, self.max_iter, last.last)
+            self.solver = None
         return None
 
     def take(self, scan: FoldPass) -> None:
+        assert self.solver is not None
         if self.solver.take(scan.result):
             self._held_out_now = scan.held_out_loglik
 
@@ -217,6 +230,16 @@ def _grid(request: PenaltyRequest, null: PenalisedResult, mask: np.ndarray, tria
     top = float(np.max(np.abs(null.last.score[mask]))) / (trials * max(request.l1_share, RIDGE_TOP_SHARE))
     ratio = 1e-3 if trials > size else 1e-2
     return [float(v) for v in top * ratio ** np.linspace(0.0, 1.0, GRID_POINTS)]
+
+
+def _weaker(grid: list[float]) -> list[float]:
+    """About a decade of strengths below the end of an automatic grid, in its own spacing; once below
+    ``FLOOR_SHARE`` of the top, the last value is 0 (no penalty)."""
+    spacing = grid[1] / grid[0]
+    count = math.ceil(math.log(0.1) / math.log(spacing))
+    values = [grid[-1] * spacing ** k for k in range(1, count + 1)]
+    kept = [v for v in values if v >= grid[0] * FLOOR_SHARE]
+    return kept if len(kept) == len(values) else kept + [0.0]
 
 
 def _as_newton(result: PenalisedResult, keep: list[int], dropped: list[int], passes: int) -> NewtonResult:
@@ -261,6 +284,15 @@ def annotate(model: Model, fit: PenalisedFit, request: PenaltyRequest) -> Model:
         "no Wald standard errors for penalised estimates",
     ]
     warnings = list(model.warnings)
+    if fit.chosen is not None and len(fit.path) > 1 and fit.chosen in (0, len(fit.path) - 1):
+        end = ("strongest" if fit.chosen == 0 else "weakest")
+        beyond = fit.penalty.shrinkage > 0 or fit.chosen == 0
+        warnings.append(
+            f"shrinkage at the end of the grid: the cross-validated deviance is least at the {end} value "
+            f"tried, {fit.penalty.shrinkage:.6g}; "
+            + ("the best strength may lie beyond it: widen the grid" if beyond
+               else "the data need no penalty (the estimates are the maximum-likelihood ones)")
+        )
     if fit.unconverged:
         warnings.append(f"not converged: {fit.unconverged} fold fit(s) along the path stopped after max_iter passes; "
                         "their held-out deviance is approximate: raise max_iter")

@@ -181,9 +181,11 @@ def _aliased(relation: exp.Expression) -> exp.Expression:
 
 
 def _columns_by_term(design: Design) -> list[list[tuple[int, DesignColumn]]]:
-    groups: dict[str, list[tuple[int, DesignColumn]]] = {}
+    """Columns of one term and one set of indicator factors (a term may span several: marginal_codings)."""
+    groups: dict[tuple[Any, ...], list[tuple[int, DesignColumn]]] = {}
     for j, column in enumerate(design.columns):
-        groups.setdefault(column.term, []).append((j, column))
+        key = (column.term, column.numeric, tuple(i for i, _ in column.indicators))
+        groups.setdefault(key, []).append((j, column))
     return list(groups.values())
 
 

