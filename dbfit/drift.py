@@ -116,9 +116,9 @@ def _plain(value: Any) -> Any:
 
 
 def training_snapshot(con: Any, model: Model) -> dict[str, list[Any]]:
-    """The ``drift_bins`` rows (column-wise) of ``model`` on its training source: edges, levels and shares."""
+    """The ``drift_bins`` rows (column-wise) of ``model`` on its training rows: edges, levels and shares."""
     engine = DuckDBEngine(con)
-    scored = _scored(model, model.source)
+    scored = _scored(model, model.rows_source("training"))
     variables = _variables(model)
     numeric = [(name, value) for name, kind, value in variables if kind != "categorical"]
     rows: dict[str, list[Any]] = {k: [] for k in ("variable", "kind", "position", "lower", "upper", "level", "rows", "share")}

@@ -162,7 +162,7 @@ def _rebuild(document: dict[str, Any], name: str | None, version: int | None) ->
         )
     return Model(
         formula=document["formula"],
-        source=document["source"],
+        source=_whole_source(document["source"], options),
         design=design,
         labels=labels,
         estimates=estimates,
@@ -175,6 +175,13 @@ def _rebuild(document: dict[str, Any], name: str | None, version: int | None) ->
         name=name,
         version=version,
     )
+
+
+def _whole_source(source: str, options: dict[str, Any]) -> str:
+    """The whole source: documents of holdout fits written before the split rule was kept apart name the
+    training part (a SELECT ... EXCLUDE of the split) as their source; the split records the whole one."""
+    split = options.get("split")
+    return split["source"] if isinstance(split, dict) and isinstance(split.get("source"), str) else source
 
 
 def _finite_or_none(value: float) -> float | None:
