@@ -238,6 +238,13 @@ def _column_value(design: Design, column: DesignColumn, dialect: str) -> exp.Exp
     return sb.mul(product, indicator) if product is not None else indicator
 
 
+def _unseen_message(factor: Factor) -> exp.Expression:
+    """The text of the unseen-level error, naming the row's value and the factor: 'Airport' of depot was not ..."""
+    value = exp.Cast(this=factor.expression.copy(), to=exp.DataType.build("VARCHAR"))
+    return exp.Concat(expressions=[exp.Literal.string("dbfit: '"), value,
+                                   exp.Literal.string(f"' of {factor.text} was not seen in training")])
+
+
 def _guarded(design: Design, body: exp.Expression, unseen: str, dialect: str) -> exp.Expression:
     inputs = [f.expression for f in design.factors] + ([design.offset] if design.offset is not None else [])
     ifs: list[exp.Expression] = []
@@ -251,8 +258,6 @@ def _guarded(design: Design, body: exp.Expression, unseen: str, dialect: str) ->
             levels = [_level(factor, v, dialect) for v in factor.levels]
             unknown = exp.Not(this=exp.In(this=factor.expression.copy(), expressions=levels))
             outcome = exp.Null() if unseen == "null" else exp.Anonymous(
-                this=RAISE_FUNCTIONS[dialect],
-                expressions=[exp.Literal.string(f"dbfit: a level of '{factor.text}' was not seen in training")],
-            )
+                this=RAISE_FUNCTIONS[dialect], expressions=[_unseen_message(factor)])
             ifs.append(exp.If(this=unknown, true=outcome))
     return exp.Case(ifs=ifs, default=body) if ifs else body
