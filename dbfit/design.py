@@ -94,6 +94,7 @@ class Design:
     trial_sum: float = 0.0  # weighted sum of trials (= weight_sum for 0/1 targets)
     loglik_constant: float = 0.0  # weighted sum of log binomial coefficients
     saturated_loglik: float = 0.0
+    rows_zero_trials: int = 0  # grouped rows with 0 trials: used, but they carry no information
 
     @property
     def labels(self) -> list[str]:
@@ -262,6 +263,8 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
     products = _numeric_products(design)
     aggregates = outcome_sums(design)
     aggregates["bad_target"] = _count_where(_bad_target_condition(design))
+    if design.trials is not None:
+        aggregates["zero_trials"] = _count_where(exp.EQ(this=sb.column(TRIALS), expression=exp.Literal.number(0)))
     if design.weights is not None:
         aggregates["bad_weight"] = _count_where(
             exp.Or(this=exp.LT(this=w.copy(), expression=exp.Literal.number(0)), expression=exp.Not(this=sb.func("isfinite", w.copy())))
@@ -326,6 +329,7 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
         )
     design.loglik_constant = float(row.get("loglik_constant") or 0.0)
     design.saturated_loglik = float(row.get("saturated_loglik") or 0.0)
+    design.rows_zero_trials = int(row.get("zero_trials") or 0)
 
     for i, f in enumerate(design.factors):
         if f.kind == "categorical":
@@ -472,7 +476,7 @@ def _bad_target_condition(design: Design) -> exp.Expression:
         return exp.or_(
             exp.LT(this=y.copy(), expression=exp.Literal.number(0)),
             exp.GT(this=y.copy(), expression=n.copy()),
-            exp.LTE(this=n.copy(), expression=exp.Literal.number(0)),
+            exp.LT(this=n.copy(), expression=exp.Literal.number(0)),
             exp.Not(this=sb.func("isfinite", n.copy())),
         )
     return exp.Not(this=exp.In(this=y, expressions=[exp.Literal.number(0), exp.Literal.number(1)]))
@@ -491,7 +495,7 @@ def _bad_target_message(engine: DuckDBEngine, design: Design, count: int) -> str
     if design.trials is not None:
         return (
             f"the target '{design.formula.target_text}' must count successes between 0 and trials "
-            f"'{design.trials_text}' (> 0) on every row; {count} rows break this (target values: {shown})"
+            f"'{design.trials_text}' (>= 0) on every row; {count} rows break this (target values: {shown})"
         )
     return (
         f"the target '{design.formula.target_text}' must be 0/1 or true/false; {count} rows hold other values "

@@ -404,7 +404,9 @@ def assemble_model(
 
     loglik = newton.last.loglik + design.loglik_constant
     parameters = len(active)
-    aic, bic = inference.information_criteria(loglik, parameters, design.rows_used)
+    # Rows with 0 trials carry no information: they count in neither the residual df nor BIC's n.
+    informative = design.rows_used - design.rows_zero_trials
+    aic, bic = inference.information_criteria(loglik, parameters, informative)
     stats = {
         "n_used": design.rows_used,
         "n_excluded": design.rows_total - design.rows_used,
@@ -419,10 +421,12 @@ def assemble_model(
         "separation": newton.separation,
         "parameters": parameters,
         "aliased": len(aliased),
-        "df_residual": design.rows_used - parameters,
+        "df_residual": informative - parameters,
         "scans": scans,
         "weight_sum": design.weight_sum,
     }
+    if design.trials is not None:
+        stats["rows_zero_trials"] = design.rows_zero_trials
     return Model(
         formula=formula,
         source=source,

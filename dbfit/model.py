@@ -141,7 +141,8 @@ class Model:
             f"  data      {self.source}",
             *([f"  split     fitted on the training rows; share {self.split.share:g} held out by the hash of "
                f"{self.split.key} (figures in stats['holdout'])"] if self.split is not None else []),
-            f"  rows      {s['n_used']:,} used, {s['n_excluded']:,} set aside for NULLs",
+            f"  rows      {s['n_used']:,} used, {s['n_excluded']:,} set aside for NULLs"
+            + (f"; {s['rows_zero_trials']:,} used rows have 0 trials (no information)" if s.get("rows_zero_trials") else ""),
             f"  fit       {'converged' if s['converged'] else 'NOT converged'} after {s['iterations']} Newton passes"
             f" ({s['scans']} scans of the data)",
             f"  deviance  {s['deviance']:,.4f} on {s['df_residual']:,} df; intercept-only {s['null_deviance']:,.4f}",
