@@ -44,6 +44,7 @@ class Factor:
     kind: str = ""  # "numeric" or "categorical"
     levels: list[Any] = field(default_factory=list)  # python values, sorted; first non-dropped is reference
     reference: Any = None
+    cast_from: str | None = None  # a text factor cast from this numeric type: scoring compares levels as numbers
 
     def level_label(self, value: Any) -> str:
         return level_label(value)
@@ -204,6 +205,9 @@ def _factor_expression(formula: Formula, text: str) -> exp.Expression:
 
 def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
     probe = exp.select(*[exp.alias_(node.copy(), name, quoted=True) for node, name in design.used_expressions()])
+    casts = {f"{f.alias}_cast": f.expression.this for f in design.factors
+             if isinstance(f.expression, exp.Cast) and f.expression.to.is_type(*exp.DataType.TEXT_TYPES)}
+    probe = probe.select(*[exp.alias_(node.copy(), name, quoted=True) for name, node in casts.items()])
     types = dict(engine.describe(probe.from_(design.relation.copy())))
 
     target_type = types[TARGET]
@@ -226,6 +230,8 @@ def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
 
     for f in design.factors:
         f.sql_type = types[f.alias]
+        inner = types.get(f"{f.alias}_cast")
+        f.cast_from = inner.upper() if inner is not None and NUMERIC_TYPE.match(inner) else None
         if NUMERIC_TYPE.match(f.sql_type):
             f.kind = "numeric"
         elif CATEGORICAL_TYPE.match(f.sql_type):

@@ -2,7 +2,8 @@
 
 Format ``dbfit-model`` version 1 (our own; documented in README.md). Top-level keys:
 ``format``, ``format_version``, ``formula``, ``source``, ``options``, ``intercept``, ``offset``,
-``factors`` (expression text, kind, SQL type, levels, reference level), ``columns`` (label, term, indices of the
+``factors`` (expression text, kind, SQL type, levels, reference level; ``cast_from``, the numeric type of a
+text factor written as a cast of a number, whose levels scoring compares as numbers), ``columns`` (label, term, indices of the
 numeric factors multiplied together, indicator pairs ``[factor index, level]``, internal centre and scale,
 constant flag), ``labels``, ``estimates`` (original scale, ``null`` when aliased), ``covariance`` (p x p,
 ``null`` for aliased rows and columns), ``stats``, ``warnings`` and ``fingerprint`` (rows in the source, rows
@@ -41,7 +42,8 @@ def to_document(model: Model) -> dict[str, Any]:
         "intercept": design.intercept,
         "offset": design.offset_text,
         "factors": [
-            {"expression": f.text, "kind": f.kind, "sql_type": f.sql_type, "levels": list(f.levels), "reference": f.reference}
+            {"expression": f.text, "kind": f.kind, "sql_type": f.sql_type, "levels": list(f.levels), "reference": f.reference,
+             **({"cast_from": f.cast_from} if f.cast_from else {})}
             for f in design.factors
         ],
         "columns": [
@@ -109,6 +111,7 @@ def _rebuild(document: dict[str, Any], name: str | None, version: int | None) ->
             kind=f["kind"],
             levels=list(f["levels"]),
             reference=f["reference"],
+            cast_from=f.get("cast_from"),
         )
         for i, f in enumerate(document["factors"])
     ]

