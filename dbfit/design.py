@@ -18,6 +18,7 @@ from typing import Any
 from sqlglot import exp
 
 from dbfit import sqlbuild as sb
+from dbfit.dialects import resolve_columns
 from dbfit.engine import DuckDBEngine
 from dbfit.errors import FitError, FormulaError
 from dbfit.formula import Formula, parse_expression
@@ -96,6 +97,7 @@ class Design:
     loglik_constant: float = 0.0  # weighted sum of log binomial coefficients
     saturated_loglik: float = 0.0
     rows_zero_trials: int = 0  # grouped rows with 0 trials: used, but they carry no information
+    source_columns: list[str] = field(default_factory=list)  # the source's columns used, spelled as the source does
 
     @property
     def labels(self) -> list[str]:
@@ -189,6 +191,8 @@ def build_design(
         segment=parse_expression(by, "by") if by is not None else None,
         segment_text=by,
     )
+    present = [name for name, _ in engine.describe(exp.select("*").from_(relation.copy()))]
+    design.source_columns = resolve_columns([node for node, _ in design.used_expressions()], present)
     _assign_types(engine, design, positive)
     _check_references(design, reference or {})
     _profile(engine, design, reference or {})

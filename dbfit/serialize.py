@@ -6,7 +6,8 @@ Format ``dbfit-model`` version 1 (our own; documented in README.md). Top-level k
 text factor written as a cast of a number, whose levels scoring compares as numbers), ``columns`` (label, term, indices of the
 numeric factors multiplied together, indicator pairs ``[factor index, level]``, internal centre and scale,
 constant flag), ``labels``, ``estimates`` (original scale, ``null`` when aliased), ``covariance`` (p x p,
-``null`` for aliased rows and columns), ``stats``, ``warnings`` and ``fingerprint`` (rows in the source, rows
+``null`` for aliased rows and columns), ``source_columns`` (the source's columns the formula and options use,
+spelled as the source does; the expressions are matched to them case-insensitively and quoted), ``stats``, ``warnings`` and ``fingerprint`` (rows in the source, rows
 used, source text, fit time in UTC). Floats are written with Python's shortest round-trip repr, so a document
 read back gives bit-identical numbers.
 """
@@ -22,6 +23,7 @@ import numpy as np
 
 from dbfit import inference
 from dbfit.design import Design, DesignColumn, Factor
+from dbfit.dialects import resolve_columns
 from dbfit.errors import StoreError
 from dbfit.formula import parse_expression, parse_formula
 from dbfit.model import Model
@@ -41,6 +43,7 @@ def to_document(model: Model) -> dict[str, Any]:
         "options": _plain(model.options),
         "intercept": design.intercept,
         "offset": design.offset_text,
+        **({"source_columns": list(design.source_columns)} if design.source_columns else {}),
         "factors": [
             {"expression": f.text, "kind": f.kind, "sql_type": f.sql_type, "levels": list(f.levels), "reference": f.reference,
              **({"cast_from": f.cast_from} if f.cast_from else {})}
@@ -154,6 +157,9 @@ def _rebuild(document: dict[str, Any], name: str | None, version: int | None) ->
         rows_total=int(fingerprint["rows_total"]),
         rows_used=int(fingerprint["rows_used"]),
     )
+    # Documents from before columns were resolved have no source_columns: their names stay as written.
+    recorded = [str(name) for name in document.get("source_columns") or []]
+    design.source_columns = resolve_columns([node for node, _ in design.used_expressions()], recorded)
     labels = list(document["labels"])
     if labels != design.labels:
         raise StoreError(f"the document's labels {labels} do not match its columns {design.labels}")
