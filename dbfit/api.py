@@ -8,7 +8,6 @@ import duckdb
 import pyarrow as pa
 
 import numpy as np
-from sqlglot import exp
 
 from dbfit import assessment, deploy, fitting, serialize, store
 from dbfit.engine import DuckDBEngine, translate_error

@@ -89,6 +89,7 @@ def publish(
         "model": resolved.name,
         "version": None if live else resolved.version,
         "mode": "live" if live else "pinned",
+        "rows": resolved.rows_note("all", source),
         "sql": statement.sql("duckdb"),
     }
 

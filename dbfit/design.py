@@ -100,6 +100,11 @@ class Design:
     source_columns: list[str] = field(default_factory=list)  # the source's columns used, spelled as the source does
 
     @property
+    def rows_informative(self) -> int:
+        """Rows used that carry information: grouped rows with 0 trials add nothing to the likelihood."""
+        return self.rows_used - self.rows_zero_trials
+
+    @property
     def labels(self) -> list[str]:
         return (["intercept"] if self.intercept else []) + [c.label for c in self.columns]
 

@@ -404,8 +404,7 @@ def assemble_model(
 
     loglik = newton.last.loglik + design.loglik_constant
     parameters = len(active)
-    # Rows with 0 trials carry no information: they count in neither the residual df nor BIC's n.
-    informative = design.rows_used - design.rows_zero_trials
+    informative = design.rows_informative  # rows with 0 trials count in neither the residual df nor BIC's n
     aic, bic = inference.information_criteria(loglik, parameters, informative)
     stats = {
         "n_used": design.rows_used,

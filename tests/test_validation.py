@@ -114,6 +114,7 @@ def test_a_holdout_model_has_one_source_and_each_command_says_which_rows_it_used
     assert "held out by the hash of id" in model.summary()
     scored = dbfit.score(con, model)
     assert scored.num_rows == len(birthwt) and b"all rows of birthwt" in scored.schema.metadata[b"dbfit_rows"]
+    assert dbfit.publish(con, model, "low_scores")["rows"].startswith("all rows of birthwt, training and held-out")
     default = dbfit.assess(con, model).to_pydict()
     rows = default["metric"].index("rows")
     assert default["value"][rows] == sum(held) and default["note"][rows].startswith("held-out rows of birthwt")
