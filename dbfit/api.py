@@ -8,13 +8,11 @@ import duckdb
 import pyarrow as pa
 
 import numpy as np
-from sqlglot import exp
 
 from dbfit import assessment, deploy, fitting, serialize, store
 from dbfit.engine import DuckDBEngine, translate_error
 from dbfit.errors import FitError
-from dbfit.source import source_relation
-from dbfit.splits import Holdout, KFold, part_relation
+from dbfit.splits import Holdout, KFold, part_source
 from dbfit.model import Model
 from dbfit.names import model_name
 
@@ -24,7 +22,8 @@ def fit(con: duckdb.DuckDBPyConnection, formula: str, source: str, *, name: str 
     """Fit as :func:`dbfit.fitting.fit`; with ``name=...`` also store the model as that name's next version.
 
     With ``split=dbfit.Holdout(key, share)`` the model is fitted on the training part only and its held-out
-    metrics (at ``threshold``) go to ``model.stats["holdout"]``.
+    metrics (at ``threshold``) go to ``model.stats["holdout"]``. ``model.source`` stays the whole source and
+    ``model.split`` the rule; ``assess`` and reports then default to the held-out rows, ``score`` scores all rows.
     """
     if name is not None:
         model_name(name)
@@ -36,9 +35,10 @@ def fit(con: duckdb.DuckDBPyConnection, formula: str, source: str, *, name: str 
     model = fitting.fit(con, formula, training, **options)
     if split is not None:
         assessment.check_threshold(threshold)
-        held_out = assess(con, model, _part_source(source, split, "holdout"), threshold=threshold)
-        model.stats["holdout"] = dict(zip(held_out["metric"].to_pylist(), held_out["value"].to_pylist()))
+        model.source = source
         model.options["split"] = {"key": split.key, "share": split.share, "source": source, "threshold": threshold}
+        held_out = assess(con, model, rows="held_out", threshold=threshold)
+        model.stats["holdout"] = dict(zip(held_out["metric"].to_pylist(), held_out["value"].to_pylist()))
     if name is not None:
         model.save(con, name)
     return model
@@ -46,22 +46,29 @@ def fit(con: duckdb.DuckDBPyConnection, formula: str, source: str, *, name: str 
 
 def _part_source(source: str, split: Holdout | KFold, part: str | int, keep: bool = True) -> str:
     """A SELECT (as SQL text written by sqlglot from the parsed source) of one part of the split."""
-    rows = part_relation(source_relation(source), split, part, keep=keep)
-    return exp.select(exp.Star(except_=[exp.column("dbfit_part", quoted=True)])).from_(rows).sql("duckdb")
+    return part_source(source, split, part, keep=keep)
 
 
-def assess(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *,
+def assess(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *, rows: str | None = None,
            threshold: float = 0.5, version: int | None = None) -> pa.Table:
-    """One row per metric (metric, value, note) of ``model`` on ``source`` (default: its training source)."""
+    """One row per metric (metric, value, note) of ``model``; the note of metric ``rows`` says which rows.
+
+    Default: the held-out rows of a holdout fit, else all rows of the model's source (in-sample). ``source``
+    assesses all rows of another source; ``rows`` ("held_out", "training", "all") picks a part of the split.
+    """
     resolved = deploy.resolve_model(con, model, version)
-    return assessment.metrics(DuckDBEngine(con), assessment.scored_relation(resolved, source), threshold).table()
+    text, note = resolved.assessed_rows(source, rows)
+    return assessment.metrics(DuckDBEngine(con), assessment.scored_relation(resolved, text), threshold,
+                              rows_note=note).table()
 
 
 def assessment_tables(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *,
-                      threshold: float = 0.5, version: int | None = None) -> dict[str, pa.Table]:
-    """Metrics, confusion counts, cut-off curve, calibration and gains of ``model`` on ``source``."""
+                      rows: str | None = None, threshold: float = 0.5, version: int | None = None) -> dict[str, pa.Table]:
+    """Metrics, confusion counts, cut-off curve, calibration and gains of ``model`` (rows as in :func:`assess`)."""
     resolved = deploy.resolve_model(con, model, version)
-    return assessment.assessment_tables(DuckDBEngine(con), assessment.scored_relation(resolved, source), threshold)
+    text, note = resolved.assessed_rows(source, rows)
+    return assessment.assessment_tables(DuckDBEngine(con), assessment.scored_relation(resolved, text), threshold,
+                                        rows_note=note)
 
 
 def cross_validate(con: duckdb.DuckDBPyConnection, formula: str, source: str, split: KFold, *,
@@ -102,18 +109,22 @@ def from_json(text: str) -> Model:
     return serialize.from_json(text)
 
 
-def score(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *, version: int | None = None,
-          standard_error: bool = False, level: float = 0.95, unseen: str = "null") -> pa.Table:
-    """Every column of ``source`` (default: the training source) plus the score columns, as a pyarrow table.
+def score(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *, rows: str = "all",
+          version: int | None = None, standard_error: bool = False, level: float = 0.95, unseen: str = "null") -> pa.Table:
+    """Every column of the rows plus the score columns, as a pyarrow table; its schema metadata ``dbfit_rows``
+    says which rows (default: all rows of ``source``, else of the model's whole source).
 
-    ``model`` is a stored model's name or a Model; the options are those of :meth:`Model.scoring_sql`.
+    ``model`` is a stored model's name or a Model; ``rows`` picks a part of a holdout model's split
+    ("held_out", "training", "all"); the other options are those of :meth:`Model.scoring_sql`.
     """
     resolved = deploy.resolve_model(con, model, version)
-    query = deploy.build_scoring(con, resolved, source, unseen=unseen, standard_error=standard_error, level=level)
+    text, note = resolved.assessed_rows(source, rows)
+    query = deploy.build_scoring(con, resolved, text, unseen=unseen, standard_error=standard_error, level=level)
     try:
-        return con.sql(query.sql("duckdb")).to_arrow_table()
+        table = con.sql(query.sql("duckdb")).to_arrow_table()
     except duckdb.Error as err:
         raise translate_error(err) from None
+    return table.replace_schema_metadata({**(table.schema.metadata or {}), b"dbfit_rows": note.encode()})
 
 
 def models(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:

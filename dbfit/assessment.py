@@ -63,8 +63,9 @@ class Metrics:
         })
 
 
-def metrics(engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5) -> Metrics:
-    """Every metric of the assessment from two scans of the scored rows."""
+def metrics(engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5,
+            rows_note: str | None = None) -> Metrics:
+    """Every metric of the assessment from two scans of the scored rows; ``rows_note`` says which rows they are."""
     threshold = check_threshold(threshold)
     point = parse_one(
         f"""SELECT count(*) AS n, sum(y) AS positives,
@@ -97,7 +98,7 @@ def metrics(engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5
         0.0 if precision is not None and recall is not None else None)
     denominator = math.sqrt(float((tp + fp) * (tp + fn) * (tn + fp) * (tn + fn)))
     values["matthews_correlation"] = (tp * tn - fp * fn) / denominator if denominator else None
-    notes: dict[str, str] = {}
+    notes: dict[str, str] = {"rows": rows_note} if rows_note else {}
     for name in ("precision", "recall", "specificity", "f1", "matthews_correlation"):
         if values[name] is None:
             notes[name] = "undefined: a count in its denominator is zero at this threshold"
@@ -240,7 +241,7 @@ def gains_table(engine: DuckDBEngine, scored: exp.Expression, groups: int = GROU
 
 
 def scored_relation(model, source: str | None) -> exp.Expression:
-    """The rows of ``source`` as (y, p): the model's 0/1 target and its probability, complete rows only.
+    """The rows of ``source`` (default: all rows of the model's source) as (y, p), complete rows only.
 
     ``model`` is a :class:`dbfit.Model`; the scoring query is the one a published view runs.
     """
@@ -264,10 +265,11 @@ def scored_relation(model, source: str | None) -> exp.Expression:
     return complete.subquery("dbfit_scored")
 
 
-def assessment_tables(engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5) -> dict[str, pa.Table]:
+def assessment_tables(engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5,
+                      rows_note: str | None = None) -> dict[str, pa.Table]:
     """Every table of the assessment: metrics, confusion, the cut-off curve, calibration and gains."""
     return {
-        "metrics": metrics(engine, scored, threshold).table(),
+        "metrics": metrics(engine, scored, threshold, rows_note).table(),
         "confusion": confusion_table(engine, scored, threshold),
         "curve": curve_points(engine, scored),
         "calibration": calibration_table(engine, scored),

@@ -14,6 +14,7 @@ from typing import Any
 import duckdb
 
 from dbfit.errors import DbfitError, GateRefusedError, UsageError
+from dbfit.model import ROW_CHOICES
 
 OK, REFUSED, DATA_ERROR = 0, 3, 4
 Command = Callable[[str, str], argparse.ArgumentParser]
@@ -72,7 +73,9 @@ def add_model_commands(command: Command) -> None:
                          help="replace a view of that name even when dbfit did not publish it")
 
     assess = base("assess", "metrics of a model on a source (AUC, log loss, Brier score, ...)")
-    assess.add_argument("--source", help="rows to assess on (default: the training source)")
+    assess.add_argument("--source", help="rows to assess on (default: the held-out rows of a holdout fit, else all "
+                        "rows of the model's source)")
+    assess.add_argument("--rows", choices=ROW_CHOICES, help="this part of the model's split (of --source if given)")
     assess.add_argument("--version", type=int, help="stored version (default: the current one)")
     assess.add_argument("--threshold", type=float, default=0.5, help="probability cut-off (default %(default)s)")
 
@@ -82,7 +85,8 @@ def add_model_commands(command: Command) -> None:
 
     report = base("report", "write the HTML report of a model")
     report.add_argument("--output", required=True, help="HTML file to write")
-    report.add_argument("--source", help="rows to assess in the report (default: none)")
+    report.add_argument("--source", help="rows to assess in the report (default: as for assess)")
+    report.add_argument("--rows", choices=ROW_CHOICES, help="this part of the model's split (of --source if given)")
     report.add_argument("--version", type=int, help="stored version (default: the current one)")
 
 
@@ -132,8 +136,9 @@ def _run(args: argparse.Namespace) -> tuple[dict[str, Any], int]:
                                  version=args.version, live=args.live, replace=args.replace)
             return made, OK
         if args.command == "assess":
-            table = dbfit.assess(con, args.name, args.source, threshold=args.threshold, version=args.version)
-            return {"model": args.name, "metrics": table.to_pylist()}, OK
+            table = dbfit.assess(con, args.name, args.source, rows=args.rows, threshold=args.threshold,
+                                 version=args.version)
+            return {"model": args.name, "rows": _rows_note(table), "metrics": table.to_pylist()}, OK
         if args.command == "drift":
             table = dbfit.population_stability(con, args.name, args.source, version=args.version)
             return {"model": args.name, "source": args.source, "variables": table.to_pylist(),
@@ -226,18 +231,17 @@ def _report(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[st
 
     model = dbfit.load(con, args.name, args.version)
     # Assessed on --source, else on the held-out rows of a holdout fit, else on the rows it was fitted on.
-    split = model.options.get("split") or {}
-    source = args.source or (_held_out_source(split) if split else None)
-    tables = None if model.design.trials is not None else dbfit.assessment_tables(con, model, source)
+    tables = None
+    if model.design.trials is None:
+        tables = dbfit.assessment_tables(con, model, args.source, rows=args.rows)
     path = write_report(model, args.output, assessment=tables)
-    return {"model": model.name, "version": model.version, "output": str(path)}
+    rows = _rows_note(tables["metrics"]) if tables else "none: a model of successes out of trials is not assessed"
+    return {"model": model.name, "version": model.version, "rows": rows, "output": str(path)}
 
 
-def _held_out_source(split: dict[str, Any]) -> str:
-    from dbfit.api import _part_source
-    from dbfit.splits import Holdout
-
-    return _part_source(split["source"], Holdout(split["key"], split["share"]), "holdout")
+def _rows_note(metrics: Any) -> str | None:
+    """Which rows an assessment used: the note of its metric ``rows``."""
+    return dict(zip(metrics["metric"].to_pylist(), metrics["note"].to_pylist())).get("rows")
 
 
 def _number_or_none(text: str) -> float | str:

@@ -88,7 +88,7 @@ def publish(
     query = build_scoring(con, resolved, source, live=live, unseen=unseen)
     record = {"model": resolved.name, "version": None if live else resolved.version, "mode": "live" if live else "pinned"}
     statement = create_view(con, target, query, record, replace=replace)
-    return {"view": target.sql("duckdb"), **record, "sql": statement.sql("duckdb")}
+    return {"view": target.sql("duckdb"), **record, "rows": resolved.rows_note("all", source), "sql": statement.sql("duckdb")}
 
 
 def create_view(con: duckdb.DuckDBPyConnection, target: exp.Table, query: exp.Select, record: dict[str, Any], *,

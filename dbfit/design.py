@@ -19,6 +19,7 @@ from typing import Any
 from sqlglot import exp
 
 from dbfit import sqlbuild as sb
+from dbfit.dialects import resolve_columns
 from dbfit.engine import DuckDBEngine
 from dbfit.errors import FitError, FormulaError
 from dbfit.formula import Formula, parse_expression
@@ -45,6 +46,7 @@ class Factor:
     kind: str = ""  # "numeric" or "categorical"
     levels: list[Any] = field(default_factory=list)  # python values, sorted; first non-dropped is reference
     reference: Any = None
+    cast_from: str | None = None  # a text factor cast from this numeric type: scoring compares levels as numbers
 
     def level_label(self, value: Any) -> str:
         return level_label(value)
@@ -98,6 +100,13 @@ class Design:
     trial_sum: float = 0.0  # weighted sum of trials (= weight_sum for 0/1 targets)
     loglik_constant: float = 0.0  # weighted sum of log binomial coefficients
     saturated_loglik: float = 0.0
+    rows_zero_trials: int = 0  # grouped rows with 0 trials: used, but they carry no information
+    source_columns: list[str] = field(default_factory=list)  # the source's columns used, spelled as the source does
+
+    @property
+    def rows_informative(self) -> int:
+        """Rows used that carry information: grouped rows with 0 trials add nothing to the likelihood."""
+        return self.rows_used - self.rows_zero_trials
 
     @property
     def labels(self) -> list[str]:
@@ -191,6 +200,8 @@ def build_design(
         segment=parse_expression(by, "by") if by is not None else None,
         segment_text=by,
     )
+    present = [name for name, _ in engine.describe(exp.select("*").from_(relation.copy()))]
+    design.source_columns = resolve_columns([node for node, _ in design.used_expressions()], present)
     _assign_types(engine, design, positive)
     _check_references(design, reference or {})
     _profile(engine, design, reference or {})
@@ -240,6 +251,9 @@ def _refuse_categorical_products(engine: DuckDBEngine, design: Design) -> None:
 def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
     _refuse_categorical_products(engine, design)
     probe = exp.select(*[exp.alias_(node.copy(), name, quoted=True) for node, name in design.used_expressions()])
+    casts = {f"{f.alias}_cast": f.expression.this for f in design.factors
+             if isinstance(f.expression, exp.Cast) and f.expression.to.is_type(*exp.DataType.TEXT_TYPES)}
+    probe = probe.select(*[exp.alias_(node.copy(), name, quoted=True) for name, node in casts.items()])
     types = dict(engine.describe(probe.from_(design.relation.copy())))
 
     target_type = types[TARGET]
@@ -262,6 +276,8 @@ def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
 
     for f in design.factors:
         f.sql_type = types[f.alias]
+        inner = types.get(f"{f.alias}_cast")
+        f.cast_from = inner.upper() if inner is not None and NUMERIC_TYPE.match(inner) else None
         if NUMERIC_TYPE.match(f.sql_type):
             f.kind = "numeric"
         elif CATEGORICAL_TYPE.match(f.sql_type):
@@ -299,6 +315,8 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
     products = _numeric_products(design)
     aggregates = outcome_sums(design)
     aggregates["bad_target"] = _count_where(_bad_target_condition(design))
+    if design.trials is not None:
+        aggregates["zero_trials"] = _count_where(exp.EQ(this=sb.column(TRIALS), expression=exp.Literal.number(0)))
     if design.weights is not None:
         aggregates["bad_weight"] = _count_where(
             exp.Or(this=exp.LT(this=w.copy(), expression=exp.Literal.number(0)), expression=exp.Not(this=sb.func("isfinite", w.copy())))
@@ -363,6 +381,7 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
         )
     design.loglik_constant = float(row.get("loglik_constant") or 0.0)
     design.saturated_loglik = float(row.get("saturated_loglik") or 0.0)
+    design.rows_zero_trials = int(row.get("zero_trials") or 0)
 
     for i, f in enumerate(design.factors):
         if f.kind == "categorical":
@@ -564,7 +583,7 @@ def _bad_target_condition(design: Design) -> exp.Expression:
         return exp.or_(
             exp.LT(this=y.copy(), expression=exp.Literal.number(0)),
             exp.GT(this=y.copy(), expression=n.copy()),
-            exp.LTE(this=n.copy(), expression=exp.Literal.number(0)),
+            exp.LT(this=n.copy(), expression=exp.Literal.number(0)),
             exp.Not(this=sb.func("isfinite", n.copy())),
         )
     return exp.Not(this=exp.In(this=y, expressions=[exp.Literal.number(0), exp.Literal.number(1)]))
@@ -583,7 +602,7 @@ def _bad_target_message(engine: DuckDBEngine, design: Design, count: int) -> str
     if design.trials is not None:
         return (
             f"the target '{design.formula.target_text}' must count successes between 0 and trials "
-            f"'{design.trials_text}' (> 0) on every row; {count} rows break this (target values: {shown})"
+            f"'{design.trials_text}' (>= 0) on every row; {count} rows break this (target values: {shown})"
         )
     return (
         f"the target '{design.formula.target_text}' must be 0/1 or true/false; {count} rows hold other values "

@@ -7,11 +7,15 @@ that another engine treats differently, and sqlglot then writes the tree in that
 - isfinite(x): neither PostgreSQL (for numbers) nor Spark has it.
 - the sorted list of distinct levels: Spark collects a set and sorts it.
 - PostgreSQL inlines a subquery's expressions into every aggregate above it; ``OFFSET 0`` fences each one.
+- column names: DuckDB matches them case-insensitively, PostgreSQL folds unquoted names to lower case and
+  refuses reserved words (``default``), so :func:`resolve_columns` spells each column as the source does, quoted.
 """
 
 from __future__ import annotations
 
 from sqlglot import exp
+
+from dbfit.errors import FormulaError
 
 EXP_LIMIT = 700.0
 
@@ -50,3 +54,36 @@ def _rewrite(node: exp.Expression, dialect: str) -> exp.Expression:
         return exp.Anonymous(this="array_sort", expressions=[
             exp.Anonymous(this="collect_set", expressions=[distinct.expressions[0].copy()])])
     return node
+
+
+def resolve_columns(trees: list[exp.Expression | None], columns: list[str]) -> list[str]:
+    """Spell every unqualified column of ``trees`` (changed in place) as the source column it names, quoted.
+
+    Names match case-insensitively, as in DuckDB; when several columns differ only in case, a quoted name that
+    matches one exactly picks it, otherwise the name is ambiguous and refused. A name matching no column is left
+    as written (the engine then reports it). Returns the source columns used, in order of first use.
+    """
+    by_folded: dict[str, list[str]] = {}
+    for name in columns:
+        by_folded.setdefault(name.lower(), []).append(name)
+    used: list[str] = []
+    for tree in trees:
+        if tree is None:
+            continue
+        for column in list(tree.find_all(exp.Column)):
+            if column.table or not isinstance(column.this, exp.Identifier):
+                continue
+            written, quoted = column.name, column.this.quoted
+            matches = by_folded.get(written.lower(), [])
+            if len(matches) > 1 and quoted and written in matches:
+                matches = [written]
+            if len(matches) > 1:
+                raise FormulaError(f"column '{written}' is ambiguous: the source has columns "
+                                   f"{' and '.join(repr(m) for m in matches)}, which differ only in case; "
+                                   "write the one you mean in double quotes, spelled exactly")
+            if matches:
+                column.set("this", exp.to_identifier(matches[0], quoted=True))
+                if matches[0] not in used:
+                    used.append(matches[0])
+    return used
+

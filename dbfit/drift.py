@@ -21,7 +21,7 @@ from sqlglot import exp
 
 from dbfit import sqlbuild as sb
 from dbfit.engine import DuckDBEngine
-from dbfit.errors import StoreError
+from dbfit.errors import DbfitError, StoreError
 from dbfit.model import Model
 from dbfit.scoring import scoring_query
 from dbfit.source import source_relation
@@ -116,9 +116,9 @@ def _plain(value: Any) -> Any:
 
 
 def training_snapshot(con: Any, model: Model) -> dict[str, list[Any]]:
-    """The ``drift_bins`` rows (column-wise) of ``model`` on its training source: edges, levels and shares."""
+    """The ``drift_bins`` rows (column-wise) of ``model`` on its training rows: edges, levels and shares."""
     engine = DuckDBEngine(con)
-    scored = _scored(model, model.source_or_own(None))
+    scored = _scored(model, model.rows_source("training"))
     variables = _variables(model)
     numeric = [(name, value) for name, kind, value in variables if kind != "categorical"]
     rows: dict[str, list[Any]] = {k: [] for k in ("variable", "kind", "position", "lower", "upper", "level", "rows", "share")}
@@ -150,6 +150,17 @@ def _append(rows: dict[str, list[Any]], *values: Any) -> None:
         rows[key].append(value)
 
 
+def _check_new_rows(source: str, rows: dict[str, int]) -> None:
+    """Refuse a comparison with no new rows: a PSI against zero rows reads as a large shift that is not there."""
+    empty = [name for name, n in rows.items() if n == 0]
+    if rows and len(empty) == len(rows):
+        raise DbfitError(f"the source {source} has 0 rows with values of the model's variables; drift compares new "
+                         "rows with the training snapshot and needs some")
+    if empty:
+        raise DbfitError(f"the source {source} has 0 rows with a value of {', '.join(empty)}; drift needs new rows "
+                         "for every variable")
+
+
 def psi_table(con: Any, model: Model, source: str) -> pa.Table:
     """One row per variable: kind, bins, training and new rows, PSI and its reading (common-practice bands)."""
     from dbfit.store import version_table
@@ -176,6 +187,8 @@ def psi_table(con: Any, model: Model, source: str) -> pa.Table:
     categorical = _level_counts(engine, scored, [(name, expressions[name][1]) for name, bins in by_variable.items()
                                                  if bins[0]["kind"] == "categorical" and name in expressions])
     out: dict[str, list[Any]] = {k: [] for k in ("variable", "kind", "bins", "training_rows", "new_rows", "psi", "reading")}
+    _check_new_rows(source, {name: sum(counts[name]) if name in counts else sum(categorical.get(name, {}).values())
+                             for name in by_variable if name in expressions})
     for name, bins in by_variable.items():
         expected = [b["share"] for b in bins]
         if bins[0]["kind"] == "categorical":

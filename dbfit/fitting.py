@@ -405,7 +405,8 @@ def assemble_model(
 
     loglik = newton.last.loglik + design.loglik_constant
     parameters = len(active)
-    aic, bic = inference.information_criteria(loglik, parameters, design.rows_used)
+    informative = design.rows_informative  # rows with 0 trials count in neither the residual df nor BIC's n
+    aic, bic = inference.information_criteria(loglik, parameters, informative)
     stats = {
         "n_used": design.rows_used,
         "n_excluded": design.rows_total - design.rows_used,
@@ -420,10 +421,12 @@ def assemble_model(
         "separation": newton.separation,
         "parameters": parameters,
         "aliased": len(aliased),
-        "df_residual": design.rows_used - parameters,
+        "df_residual": informative - parameters,
         "scans": scans,
         "weight_sum": design.weight_sum,
     }
+    if design.trials is not None:
+        stats["rows_zero_trials"] = design.rows_zero_trials
     return Model(
         formula=formula,
         source=source,

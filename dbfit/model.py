@@ -16,6 +16,10 @@ from dbfit.design import Design
 if TYPE_CHECKING:
     import duckdb
 
+    from dbfit.splits import Holdout
+
+ROW_CHOICES = ("held_out", "training", "all")
+
 
 @dataclass
 class Model:
@@ -27,7 +31,7 @@ class Model:
     """
 
     formula: str
-    source: str
+    source: str  # the whole source the user gave; with a holdout split the fit used its training rows
     design: Design
     labels: list[str]
     estimates: np.ndarray
@@ -58,6 +62,62 @@ class Model:
     def rows_total(self) -> int:
         """Rows of the source, used or not."""
         return int(self.design.rows_total)
+
+    @property
+    def split(self) -> "Holdout | None":
+        """The holdout split the model was fitted with (recorded in ``options["split"]``), or None."""
+        from dbfit.splits import Holdout
+
+        recorded = self.options.get("split")
+        return Holdout(recorded["key"], recorded["share"]) if recorded else None
+
+    @property
+    def default_rows(self) -> str:
+        """The rows assessed and reported by default: the held-out rows of a holdout fit, else all rows."""
+        return "held_out" if self.split is not None else "all"
+
+    def rows_source(self, rows: str, source: str | None = None) -> str:
+        """``rows`` ("held_out", "training" or "all") of ``source`` (default: the model's source) as source text."""
+        from dbfit.errors import UsageError
+        from dbfit.splits import part_source
+
+        if rows not in ROW_CHOICES:
+            raise UsageError(f"rows={rows!r} is not a choice; choose one of {', '.join(ROW_CHOICES)}")
+        whole = self.source_or_own(source)
+        if rows == "all":
+            return whole
+        split = self.split
+        if split is None:
+            if rows == "training" and source is None:
+                return whole
+            raise UsageError(f"rows={rows!r} needs a model fitted with split=dbfit.Holdout(...); this one has none")
+        return part_source(whole, split, "holdout" if rows == "held_out" else "train")
+
+    def rows_note(self, rows: str | None, source: str | None = None) -> str:
+        """Which rows a command used, in words (``rows=None``: the rows of a given ``source``, all of them)."""
+        whole = source if source is not None else self.source
+        split = self.split
+        if rows is None:
+            return f"all rows of the given source {whole}"
+        if split is None:
+            return f"all rows of {whole}" + (": the rows the model was fitted on (in-sample)" if source is None else "")
+        how = f"split on the hash of {split.key}, held-out share {split.share:g}"
+        return {
+            "held_out": f"held-out rows of {whole} ({how}): out-of-sample",
+            "training": f"training rows of {whole} ({how}): the rows the model was fitted on (in-sample)",
+            "all": f"all rows of {whole}, training and held-out together ({how})",
+        }[rows]
+
+    def assessed_rows(self, source: str | None, rows: str | None) -> tuple[str, str]:
+        """The source text and the rows note of an assessment or report on ``source`` / ``rows``.
+
+        Neither given: the model's :attr:`default_rows`. ``source`` alone: all its rows. ``rows`` alone: that part
+        of the model's source. Both: that part of ``source`` by the model's split rule.
+        """
+        if rows is None and source is None:
+            rows = self.default_rows
+        text = source if rows is None else self.rows_source(rows, source)
+        return text, self.rows_note(rows, source)
 
     def save(self, con: "duckdb.DuckDBPyConnection", name: str, *, promote: bool = True) -> int:
         """Store this model as a new version of ``name`` in ``con``'s database; return the version number.
@@ -93,7 +153,10 @@ class Model:
         lines = [
             f"dbfit | logistic model of  {self.formula}",
             f"  data      {self.source}",
-            f"  rows      {s['n_used']:,} used, {s['n_excluded']:,} set aside for NULLs",
+            *([f"  split     fitted on the training rows; share {self.split.share:g} held out by the hash of "
+               f"{self.split.key} (figures in stats['holdout'])"] if self.split is not None else []),
+            f"  rows      {s['n_used']:,} used, {s['n_excluded']:,} set aside for NULLs"
+            + (f"; {s['rows_zero_trials']:,} used rows have 0 trials (no information)" if s.get("rows_zero_trials") else ""),
             f"  fit       {'converged' if s['converged'] else 'NOT converged'} after {s['iterations']} Newton passes"
             f" ({s['scans']} scans of the data)",
             f"  deviance  {s['deviance']:,.4f} on {s['df_residual']:,} df; intercept-only {s['null_deviance']:,.4f}",

@@ -267,10 +267,11 @@ def annotate(model: Model, fit: PenalisedFit, request: PenaltyRequest) -> Model:
              if value == 0.0 and not (design.intercept and k == 0)]
     df = effective_df(fit.newton.last.gram, fit.newton.beta, fit.penalty, design.trial_sum)
     stats = dict(model.stats)
-    aic, bic = inference.information_criteria(stats["log_likelihood"], 0, design.rows_used)
+    rows = design.rows_informative
+    aic, bic = inference.information_criteria(stats["log_likelihood"], 0, rows)
     stats.update(
         shrinkage=fit.penalty.shrinkage, l1_share=fit.penalty.l1_share, effective_df=df, exact_zeros=zeros,
-        aic=aic + 2.0 * df, bic=bic + math.log(design.rows_used) * df, df_residual=round(design.rows_used - df, 3),
+        aic=aic + 2.0 * df, bic=bic + math.log(rows) * df, df_residual=round(rows - df, 3),
         passes=fit.passes,
         path=[{"shrinkage": p.shrinkage, "cv_deviance": p.cv_deviance} for p in fit.path],
     )

@@ -82,8 +82,11 @@ def job_sentence(model: Model) -> str:
     terms = sum(1 for label in model.labels if label != "intercept")
     stats = model.stats
     excluded = f", after leaving out {stats['n_excluded']:,} with missing values" if stats["n_excluded"] else ""
+    split = model.split
+    held = (f" (its training rows: a share {split.share:g} was held out by the hash of "
+            f"<code>{escape(split.key)}</code>)") if split is not None else ""
     return (f"A logistic regression that estimates {outcome} from {terms} term{'s' if terms != 1 else ''}, "
-            f"fitted on {stats['n_used']:,} rows of <code>{escape(model.source)}</code>{excluded}.")
+            f"fitted on {stats['n_used']:,} rows of <code>{escape(model.source)}</code>{held}{excluded}.")
 
 
 def _warnings_section(warnings: list[str]) -> str:
@@ -179,7 +182,10 @@ def _assessment_section(assessment: dict[str, pa.Table]) -> str:
     ]
     figures = "".join(f"<figure><h3>{name}</h3>{svg}<figcaption>{caption}</figcaption></figure>"
                       for name, svg, caption in charts)
-    return (f"<section><h2>Assessment on scored rows</h2>{_metrics_table(assessment['metrics'])}</section>"
+    notes = dict(zip(assessment["metrics"]["metric"].to_pylist(), assessment["metrics"]["note"].to_pylist()))
+    rows = notes.get("rows") or "rows the caller scored (the assessment does not say which)"
+    return (f"<section><h2>Assessment</h2><p class=\"rows\">Rows assessed: {escape(rows)}.</p>"
+            f"{_metrics_table(assessment['metrics'])}</section>"
             f"<section><h2>Discrimination and calibration</h2><div class=\"charts\">{figures}</div></section>")
 
 

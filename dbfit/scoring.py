@@ -13,6 +13,8 @@ Analysis, 3rd ed., Wiley, on inference for logistic regression, cited from memor
 
 from __future__ import annotations
 
+import math
+import re
 from collections.abc import Callable
 from typing import Any
 
@@ -31,6 +33,8 @@ EXP_GUARD = 708.0
 SOURCE_ALIAS, SCORED_ALIAS = "dbfit_source", "dbfit_scored"
 SCORE_COLUMNS = ("linear_predictor", "probability")
 INTERVAL_COLUMNS = ("linear_predictor_se", "probability_low", "probability_high")
+
+INTEGER_TYPE = re.compile(r"^U?(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT)$|^INT\d*$", re.IGNORECASE)
 
 Coefficient = Callable[[int], "exp.Expression | None"]
 
@@ -195,8 +199,37 @@ def _numeric_product(design: Design, column: DesignColumn) -> exp.Expression | N
     return sb.mul(*[sb.as_double(design.factors[i].expression.copy()) for i in column.numeric])
 
 
+def _numeric_levels(factor: Factor) -> list[float | int] | None:
+    """The levels as numbers when the factor casts a number to text (``x::VARCHAR``), else None.
+
+    Engines write numbers as text differently (a DOUBLE 2 is '2.0' in DuckDB and Spark, '2' in PostgreSQL), so
+    such levels are compared as numbers with the uncast value: exact for integers, and for floating-point values
+    exact too, since each engine writes a double with the shortest text that reads back as the same double.
+    """
+    if factor.cast_from is None:
+        return None
+    whole = INTEGER_TYPE.match(factor.cast_from) is not None
+    try:
+        values = [int(str(v)) if whole else float(str(v)) for v in factor.levels]
+    except ValueError:
+        return None
+    return values if all(math.isfinite(v) for v in values) else None
+
+
+def _compared(factor: Factor) -> exp.Expression:
+    """What a factor's levels are compared with: the uncast number for numeric levels, else the expression."""
+    if _numeric_levels(factor) is None:
+        return factor.expression.copy()
+    inner = factor.expression.this.copy()
+    return inner if INTEGER_TYPE.match(factor.cast_from or "") else sb.as_double(inner)
+
+
 def _level(factor: Factor, value: Any, dialect: str) -> exp.Expression:
-    """A level as a literal; T-SQL has no boolean values, so its BIT levels are 1 and 0."""
+    """A level as a literal (a number for numeric levels); T-SQL has no boolean values, so its BIT levels are 1, 0."""
+    numbers = _numeric_levels(factor)
+    if numbers is not None:
+        number = numbers[factor.levels.index(value)]
+        return exp.Literal.number(number) if isinstance(number, int) else double(number)
     if isinstance(value, bool) and dialect == "tsql":
         return exp.Literal.number(1 if value else 0)
     return factor.level_literal(value)
@@ -204,7 +237,7 @@ def _level(factor: Factor, value: Any, dialect: str) -> exp.Expression:
 
 def _indicator_condition(design: Design, column: DesignColumn, dialect: str) -> exp.Expression:
     checks = [
-        exp.EQ(this=design.factors[i].expression.copy(), expression=_level(design.factors[i], level, dialect))
+        exp.EQ(this=_compared(design.factors[i]), expression=_level(design.factors[i], level, dialect))
         for i, level in column.indicators
     ]
     return exp.and_(*checks) if len(checks) > 1 else checks[0]
@@ -220,7 +253,7 @@ def _term_contribution(design: Design, weighted: list[tuple[exp.Expression, Desi
     if len(factors) == 1:
         factor = design.factors[factors[0]]
         case = exp.Case(
-            this=factor.expression.copy(),
+            this=_compared(factor),
             ifs=[exp.If(this=_level(factor, c.indicators[0][1], dialect), true=b) for b, c in weighted],
             default=double(0.0),
         )
@@ -240,6 +273,13 @@ def _column_value(design: Design, column: DesignColumn, dialect: str) -> exp.Exp
     return sb.mul(product, indicator) if product is not None else indicator
 
 
+def _unseen_message(factor: Factor) -> exp.Expression:
+    """The text of the unseen-level error, naming the row's value and the factor: 'Airport' of depot was not ..."""
+    value = exp.Cast(this=factor.expression.copy(), to=exp.DataType.build("VARCHAR"))
+    return exp.Concat(expressions=[exp.Literal.string("dbfit: '"), value,
+                                   exp.Literal.string(f"' of {factor.text} was not seen in training")])
+
+
 def _guarded(design: Design, body: exp.Expression, unseen: str, dialect: str) -> exp.Expression:
     inputs = [f.expression for f in design.factors] + ([design.offset] if design.offset is not None else [])
     ifs: list[exp.Expression] = []
@@ -251,10 +291,8 @@ def _guarded(design: Design, body: exp.Expression, unseen: str, dialect: str) ->
             if factor.kind != "categorical":
                 continue
             levels = [_level(factor, v, dialect) for v in factor.levels]
-            unknown = exp.Not(this=exp.In(this=factor.expression.copy(), expressions=levels))
+            unknown = exp.Not(this=exp.In(this=_compared(factor), expressions=levels))
             outcome = exp.Null() if unseen == "null" else exp.Anonymous(
-                this=RAISE_FUNCTIONS[dialect],
-                expressions=[exp.Literal.string(f"dbfit: a level of '{factor.text}' was not seen in training")],
-            )
+                this=RAISE_FUNCTIONS[dialect], expressions=[_unseen_message(factor)])
             ifs.append(exp.If(this=unknown, true=outcome))
     return exp.Case(ifs=ifs, default=body) if ifs else body

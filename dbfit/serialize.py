@@ -3,11 +3,12 @@
 Format ``dbfit-model`` version 1 (our own; documented in README.md). Top-level keys:
 ``format``, ``format_version``, ``formula``, ``source``, ``options``, ``intercept``, ``coding`` (``marginal``:
 indicators follow the marginality rule of :func:`dbfit.design.marginal_codings`; absent in older documents,
-whose categoricals were all coded against their reference level), ``offset``, ``factors`` (expression text,
-kind, SQL type, levels, reference level), ``columns`` (label, term, indices of the numeric factors multiplied
-together, indicator pairs ``[factor index, level]``, internal centre and scale, constant flag), ``labels``,
-``estimates`` (original scale, ``null`` when aliased), ``covariance`` (p x p, ``null`` for aliased rows and
-columns), ``stats``, ``warnings`` and ``fingerprint`` (rows in the source, rows
+whose categoricals were all coded against their reference level), ``offset``, ``factors`` (expression text, kind, SQL type, levels, reference level; ``cast_from``, the numeric type of a
+text factor written as a cast of a number, whose levels scoring compares as numbers), ``columns`` (label, term, indices of the
+numeric factors multiplied together, indicator pairs ``[factor index, level]``, internal centre and scale,
+constant flag), ``labels``, ``estimates`` (original scale, ``null`` when aliased), ``covariance`` (p x p,
+``null`` for aliased rows and columns), ``source_columns`` (the source's columns the formula and options use,
+spelled as the source does; the expressions are matched to them case-insensitively and quoted), ``stats``, ``warnings`` and ``fingerprint`` (rows in the source, rows
 used, source text, fit time in UTC). Floats are written with Python's shortest round-trip repr, so a document
 read back gives bit-identical numbers.
 """
@@ -23,6 +24,7 @@ import numpy as np
 
 from dbfit import inference
 from dbfit.design import Design, DesignColumn, Factor
+from dbfit.dialects import resolve_columns
 from dbfit.errors import StoreError
 from dbfit.formula import parse_expression, parse_formula
 from dbfit.model import Model
@@ -43,8 +45,10 @@ def to_document(model: Model) -> dict[str, Any]:
         "intercept": design.intercept,
         "coding": design.coding,
         "offset": design.offset_text,
+        **({"source_columns": list(design.source_columns)} if design.source_columns else {}),
         "factors": [
-            {"expression": f.text, "kind": f.kind, "sql_type": f.sql_type, "levels": list(f.levels), "reference": f.reference}
+            {"expression": f.text, "kind": f.kind, "sql_type": f.sql_type, "levels": list(f.levels), "reference": f.reference,
+             **({"cast_from": f.cast_from} if f.cast_from else {})}
             for f in design.factors
         ],
         "columns": [
@@ -115,6 +119,7 @@ def _rebuild(document: dict[str, Any], name: str | None, version: int | None) ->
             kind=f["kind"],
             levels=list(f["levels"]),
             reference=f["reference"],
+            cast_from=f.get("cast_from"),
         )
         for i, f in enumerate(document["factors"])
     ]
@@ -158,6 +163,9 @@ def _rebuild(document: dict[str, Any], name: str | None, version: int | None) ->
         rows_used=int(fingerprint["rows_used"]),
         coding=str(document.get("coding", "reference")),
     )
+    # Documents from before columns were resolved have no source_columns: their names stay as written.
+    recorded = [str(name) for name in document.get("source_columns") or []]
+    design.source_columns = resolve_columns([node for node, _ in design.used_expressions()], recorded)
     labels = list(document["labels"])
     if labels != design.labels:
         raise StoreError(f"the document's labels {labels} do not match its columns {design.labels}")
@@ -169,7 +177,7 @@ def _rebuild(document: dict[str, Any], name: str | None, version: int | None) ->
         )
     return Model(
         formula=document["formula"],
-        source=document["source"],
+        source=_whole_source(document["source"], options),
         design=design,
         labels=labels,
         estimates=estimates,
@@ -204,6 +212,13 @@ def check_option_expressions(options: dict[str, Any], offset: Any = None) -> Non
             if not isinstance(value, str):
                 raise StoreError(f"option {label} of the model document is {value!r}, not an expression text")
             parse_expression(value, label, f"option {label} of the model document")
+
+
+def _whole_source(source: str, options: dict[str, Any]) -> str:
+    """The whole source: documents of holdout fits written before the split rule was kept apart name the
+    training part (a SELECT ... EXCLUDE of the split) as their source; the split records the whole one."""
+    split = options.get("split")
+    return split["source"] if isinstance(split, dict) and isinstance(split.get("source"), str) else source
 
 
 def _finite_or_none(value: float) -> float | None:

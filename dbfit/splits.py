@@ -17,6 +17,7 @@ from dbfit.design import Design
 from dbfit.engine import DuckDBEngine
 from dbfit.errors import FitError
 from dbfit.formula import parse_expression
+from dbfit.source import source_relation
 
 FOLD = "dbfit_fold"
 
@@ -105,9 +106,31 @@ def labelled_rows(relation: exp.Expression, split: Holdout | KFold) -> exp.Selec
     return exp.select("*", exp.alias_(part, "dbfit_part", quoted=True)).from_(relation.copy())
 
 
+def part_condition(split: Holdout | KFold, part: str | int, *, keep: bool = True) -> exp.Expression:
+    """The WHERE condition of one part of the split (or, with ``keep=False``, of all the others).
+
+    A row whose key hashes to NULL trains (as in :func:`labelled_rows`) and belongs to no fold.
+    """
+    keys = [parse_expression(split.key, "split key")]
+    if isinstance(split, Holdout):
+        held_out = exp.Coalesce(this=holdout_condition(keys, split.share, held_out=True), expressions=[exp.false()])
+        wanted = (part == "holdout") == keep
+        return held_out if wanted else exp.Not(this=exp.Paren(this=held_out))
+    if not isinstance(split.folds, int) or split.folds < 2:
+        raise FitError(f"folds must be a whole number of at least 2 (got {split.folds!r})")
+    fold = exp.Floor(this=sb.mul(unit_hash(keys), exp.Literal.number(split.folds)))
+    return (exp.EQ if keep else exp.NEQ)(this=fold, expression=exp.Literal.number(part))
+
+
 def part_relation(relation: exp.Expression, split: Holdout | KFold, part: str | int, *, keep: bool = True) -> exp.Expression:
-    """The rows of ``relation`` in ``part`` (or, with ``keep=False``, all the others), as an aliased subquery."""
-    value = exp.Literal.string(part) if isinstance(part, str) else exp.Literal.number(part)
-    condition = (exp.EQ if keep else exp.NEQ)(this=sb.column("dbfit_part"), expression=value)
-    rows = exp.select("*").from_(labelled_rows(relation, split).subquery("dbfit_labelled")).where(condition)
+    """The rows of ``relation`` in ``part`` (or, with ``keep=False``, all the others), as an aliased subquery.
+
+    The rows keep exactly the source's columns (no part column to drop), so the SELECT is portable SQL.
+    """
+    rows = exp.select("*").from_(relation.copy()).where(part_condition(split, part, keep=keep))
     return rows.subquery("dbfit_part_rows")
+
+
+def part_source(source: str, split: Holdout | KFold, part: str | int, *, keep: bool = True) -> str:
+    """One part of the split of ``source`` as a SELECT (SQL text written by sqlglot from the parsed source)."""
+    return exp.select("*").from_(part_relation(source_relation(source), split, part, keep=keep)).sql("duckdb")

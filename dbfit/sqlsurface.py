@@ -173,10 +173,11 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
         with second() as reader:
             fitted = store.load_model(reader, model, None)
             engine = DuckDBEngine(reader)
-            scored = assessment.scored_relation(fitted, source)
+            text, note = fitted.assessed_rows(source, None)
+            scored = assessment.scored_relation(fitted, text)
             threshold = 0.5 if threshold is None else threshold
             if table == "metrics":
-                return assessment.metrics(engine, scored, threshold).table().to_pylist()
+                return assessment.metrics(engine, scored, threshold, rows_note=note).table().to_pylist()
             builders = {"confusion": lambda: assessment.confusion_table(engine, scored, threshold),
                         "curve": lambda: assessment.curve_points(engine, scored),
                         "calibration": lambda: assessment.calibration_table(engine, scored),

@@ -102,3 +102,10 @@ def test_unseen_levels_pool_into_one_bin_and_bad_input_is_named(con):
 def test_reading_bands_are_the_common_practice_ones():
     assert [reading(v) for v in (0.0, 0.099, 0.1, 0.25, 0.26)] == ["stable", "stable", "some shift", "some shift",
                                                                     "large shift"]
+
+
+def test_drift_on_an_empty_source_is_refused_with_the_count(con):
+    # common practice: a stability index needs rows on both sides; an empty source is no evidence of a shift.
+    con.execute("CREATE TABLE nothing_yet AS SELECT * FROM fresh LIMIT 0").fetchall()
+    with pytest.raises(dbfit.DbfitError, match="nothing_yet has 0 rows"):
+        dbfit.population_stability(con, "late", "nothing_yet")

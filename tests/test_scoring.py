@@ -144,8 +144,10 @@ def test_null_predictor_gives_null_and_unseen_levels_follow_the_policy(con, fitt
     expected = expit(params[0] + 30 * params[1] + 120 * params[2] + params[5] + 120 * params[6])
     assert by_reference[3] == pytest.approx(expected, rel=1e-12) and np.isnan(by_reference[1:3]).all()
     assert len(scores(con, model.scoring_sql(unseen="error"))) == 189  # raises only where an unseen level occurs
-    with pytest.raises(Exception, match="race_name' was not seen in training"):
+    with pytest.raises(Exception, match="'asian' of race_name was not seen in training"):
         con.execute(model.scoring_sql(source="newcomers", unseen="error")).fetchall()
+    with pytest.raises(dbfit.DbfitError, match="'asian' of race_name was not seen in training"):
+        dbfit.score(con, model, "newcomers", unseen="error")
     with pytest.raises(dbfit.DbfitError, match="unseen='error' needs"):
         model.scoring_sql("postgres", unseen="error")
     with pytest.raises(dbfit.DbfitError, match="not a policy"):

@@ -79,8 +79,8 @@ def test_statistics_query_golden_sql(con):
         '17.0 AND "y" < "n") OR ("eta" < -17.0 AND "y" > 0) THEN "pw" ELSE 0 END AS "bad" FROM (SELECT *, '
         'EXP(-ABS("eta")) AS "e" FROM (SELECT "dbfit_z0", "y", "pw", "n", "off" + 0.5 + -0.25 * "dbfit_z0" AS "eta" '
         'FROM (SELECT ((CAST("dbfit_f0" AS DOUBLE)) - 4.5) / 2.8722813232690143 AS "dbfit_z0", 0 AS "off", "dbfit_y" '
-        'AS "y", 1 AS "pw", 1 AS "n" FROM (SELECT * FROM (SELECT CASE WHEN y THEN CAST(1 AS DOUBLE) WHEN NOT (y) THEN '
-        'CAST(0 AS DOUBLE) END AS "dbfit_y", x AS "dbfit_f0" '
+        'AS "y", 1 AS "pw", 1 AS "n" FROM (SELECT * FROM (SELECT CASE WHEN "y" THEN CAST(1 AS DOUBLE) WHEN NOT ("y") THEN '
+        'CAST(0 AS DOUBLE) END AS "dbfit_y", "x" AS "dbfit_f0" '
         'FROM "t") AS dbfit_rows WHERE NOT "dbfit_y" IS NULL AND NOT "dbfit_f0" IS NULL) AS dbfit_base) AS '
         'dbfit_cols) AS dbfit_lin) AS dbfit_e) AS dbfit_terms) AS dbfit_w'
     )

@@ -83,7 +83,7 @@ def test_json_document_moves_a_model_between_databases(spector_file, tmp_path):
     document = json.loads(text)
     assert document["format"] == "dbfit-model" and document["format_version"] == 1
     assert document["factors"][2] == {"expression": "PSI::VARCHAR", "kind": "categorical", "sql_type": "VARCHAR",
-                                      "levels": ["0.0", "1.0"], "reference": "0.0"}
+                                      "levels": ["0.0", "1.0"], "reference": "0.0", "cast_from": "DOUBLE"}
     other = dbfit.connect(str(tmp_path / "elsewhere.duckdb"))
     load_frame(other, "spector", sm.datasets.spector.load_pandas().data)
     moved = dbfit.from_json(text)

