@@ -16,7 +16,7 @@ from dbfit import sqlbuild as sb
 from dbfit.engine import DuckDBEngine
 from dbfit.errors import DbfitError, StoreError
 from dbfit.model import Model
-from dbfit.names import model_name, relation_name
+from dbfit.names import model_name, model_version, relation_name
 from dbfit.scoring import INTERVAL_COLUMNS, SCORE_COLUMNS, Coefficient, scoring_query
 from dbfit.source import source_relation
 from dbfit.store import SCHEMA, load_model
@@ -26,6 +26,7 @@ LIVE_ALIAS = "dbfit_coefficients"
 
 def resolve_model(con: duckdb.DuckDBPyConnection, model: str | Model, version: int | None) -> Model:
     """A Model as given, or the stored version of a model name."""
+    version = model_version(version)
     if isinstance(model, Model):
         if version is not None and version != model.version:
             raise StoreError(f"version={version} was given with a Model object (version {model.version}); pass the name")

@@ -27,7 +27,7 @@ import pyarrow as pa
 
 from dbfit.errors import StoreConflictError, StoreError
 from dbfit.model import Model
-from dbfit.names import model_name
+from dbfit.names import model_name, model_version
 from dbfit.serialize import from_document, to_document
 
 SCHEMA = "dbfit_store"
@@ -127,6 +127,7 @@ def load_model(con: duckdb.DuckDBPyConnection, name: str, version: int | None = 
 
 def resolve_version(con: duckdb.DuckDBPyConnection, name: str, version: int | None) -> int:
     """The stored version asked for (default: the current one), or a StoreError naming what exists."""
+    version = model_version(version)
     versions = stored_versions(con, name)
     if not versions:
         known = [row[0] for row in _fetch(con, f"SELECT model FROM {SCHEMA}.models ORDER BY model")] if store_exists(con) else []
