@@ -143,7 +143,9 @@ def _run(args: argparse.Namespace) -> tuple[dict[str, Any], int]:
 
 def _fit(args: argparse.Namespace) -> dict[str, Any]:
     import dbfit
+    from dbfit.api import fit_options
     from dbfit.fitspec import merge, read_spec
+    from dbfit.options import FitOptions
 
     reference = None
     if args.reference:
@@ -162,10 +164,11 @@ def _fit(args: argparse.Namespace) -> dict[str, Any]:
         split = dbfit.Holdout(settings["holdout_key"], settings.get("holdout_share") or 0.2)
     elif settings.get("holdout_share") is not None:
         raise UsageError("--holdout-share needs --holdout-key")
+    chosen = FitOptions.of(**options)
     con = dbfit.connect(settings["database"])
     try:
-        model = dbfit.fit(con, settings["formula"], settings["source"], name=settings["name"], split=split,
-                          threshold=settings.get("threshold") or 0.5, progress=False, **options)
+        model = fit_options(con, settings["formula"], settings["source"], chosen, name=settings["name"], split=split,
+                            threshold=settings.get("threshold") or 0.5, progress=False)
         if isinstance(model, dbfit.SegmentedFit):
             return _segmented_result(con, model, settings.get("gates"))
         if settings.get("gates"):
@@ -225,7 +228,10 @@ def _report(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[st
     split = model.options.get("split") or {}
     source = args.source or (_held_out_source(split) if split else None)
     tables = None if model.design.trials is not None else dbfit.assessment_tables(con, model, source)
-    path = write_report(model, args.output, assessment=tables)
+    try:
+        path = write_report(model, args.output, assessment=tables)
+    except OSError as err:
+        raise DbfitError(f"the report cannot be written to --output {args.output}: {err.strerror}") from None
     return {"model": model.name, "version": model.version, "output": str(path)}
 
 

@@ -6,6 +6,8 @@ Later engines (PostgreSQL, Spark) implement the same three methods; dialect quir
 from __future__ import annotations
 
 import re
+import threading
+import weakref
 from typing import Any
 
 import duckdb
@@ -14,6 +16,23 @@ from sqlglot import exp
 from dbfit.dialects import adapt
 from dbfit.errors import DbfitError, FormulaError, SourceError
 from dbfit.progress import watch_scan
+
+
+_LOCKS: weakref.WeakKeyDictionary[Any, threading.RLock] = weakref.WeakKeyDictionary()
+_LOCKS_GUARD = threading.Lock()
+
+
+def connection_lock(connection: Any) -> threading.RLock:
+    """The lock dbfit holds on ``connection`` from running a query to fetching its last row.
+
+    A DuckDB connection runs one query at a time; two threads sharing one would interleave their results
+    (one thread fetching the other's rows), so dbfit's own reads on it take turns.
+    """
+    with _LOCKS_GUARD:
+        lock = _LOCKS.get(connection)
+        if lock is None:
+            lock = _LOCKS[connection] = threading.RLock()
+        return lock
 
 
 class Engine:
@@ -67,10 +86,11 @@ class DuckDBEngine(Engine):
 
     def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
         try:
-            if self.live_progress:
-                with watch_scan(self.connection, f"dbfit scan {self.scans}"):
-                    return self.connection.execute(sql, parameters).fetchall()
-            return self.connection.execute(sql, parameters).fetchall()
+            with connection_lock(self.connection):
+                if self.live_progress:
+                    with watch_scan(self.connection, f"dbfit scan {self.scans}"):
+                        return self.connection.execute(sql, parameters).fetchall()
+                return self.connection.execute(sql, parameters).fetchall()
         except duckdb.Error as err:
             raise translate_error(err) from None
 

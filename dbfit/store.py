@@ -25,6 +25,7 @@ from typing import Any
 import duckdb
 import pyarrow as pa
 
+from dbfit.engine import connection_lock
 from dbfit.errors import StoreConflictError, StoreError
 from dbfit.model import Model
 from dbfit.names import model_name, model_version
@@ -291,10 +292,11 @@ def version_table(con: duckdb.DuckDBPyConnection, table: str, name: str, version
         raise StoreError(f"no per-version store table {table!r}")
     if not has_table(con, table):
         return []
-    cursor = con.execute(f"SELECT * FROM {SCHEMA}.{table} WHERE model = ? AND version = ?"
-                         + (f" ORDER BY {order}" if order else ""), [name, version])
-    names = [d[0] for d in cursor.description]
-    return [dict(zip(names, row)) for row in cursor.fetchall()]
+    with connection_lock(con):
+        cursor = con.execute(f"SELECT * FROM {SCHEMA}.{table} WHERE model = ? AND version = ?"
+                             + (f" ORDER BY {order}" if order else ""), [name, version])
+        names = [d[0] for d in cursor.description]
+        return [dict(zip(names, row)) for row in cursor.fetchall()]
 
 
 def _set_current(writer: duckdb.DuckDBPyConnection, name: str, version: int) -> None:
@@ -449,7 +451,8 @@ def _run(connection: duckdb.DuckDBPyConnection, statements: list[str], parameter
 
 def _fetch(connection: duckdb.DuckDBPyConnection, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
     try:
-        return connection.execute(sql, parameters).fetchall() if parameters else connection.execute(sql).fetchall()
+        with connection_lock(connection):
+            return connection.execute(sql, parameters).fetchall() if parameters else connection.execute(sql).fetchall()
     except duckdb.Error as err:
         raise store_error(err) from None
 
