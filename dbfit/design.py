@@ -206,6 +206,9 @@ def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
     types = dict(engine.describe(probe.from_(design.relation.copy())))
 
     target_type = types[TARGET]
+    if isinstance(positive, str) and (NUMERIC_TYPE.match(target_type) or target_type.upper() == "BOOLEAN"):
+        raise FitError(f"positive={positive!r} is text, but the target '{design.formula.target_text}' has type "
+                       f"{target_type}: name one of its values as a {target_type.lower()}")
     if positive is not None:
         literal = exp.Boolean(this=positive) if isinstance(positive, bool) else (
             sb.number(positive) if isinstance(positive, (int, float)) else exp.Literal.string(str(positive))

@@ -5,6 +5,7 @@ Later engines (PostgreSQL, Spark) implement the same three methods; dialect quir
 
 from __future__ import annotations
 
+import difflib
 import re
 import threading
 import weakref
@@ -81,7 +82,15 @@ class DuckDBEngine(Engine):
 
     def describe(self, query: exp.Expression) -> list[tuple[str, str]]:
         """Column names and SQL types of ``query`` without reading its rows."""
-        rows = self._run(f"DESCRIBE {self.sql(query)}")
+        try:
+            rows = self._run(f"DESCRIBE {self.sql(query)}")
+        except FormulaError as err:
+            missing = _MISSING_NAME.search(str(err))
+            source = query.args.get("from_") if isinstance(query, exp.Select) else None
+            if missing is None or source is None:
+                raise
+            columns = [row[0] for row in self._run(f"DESCRIBE {self.sql(exp.select('*').from_(source.this.copy()))}")]
+            raise FormulaError(unknown_column_message(missing.group(1), columns)) from None
         return [(row[0], row[1]) for row in rows]
 
     def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
@@ -93,6 +102,21 @@ class DuckDBEngine(Engine):
                 return self.connection.execute(sql, parameters).fetchall()
         except duckdb.Error as err:
             raise translate_error(err) from None
+
+
+_MISSING_NAME = re.compile(r"^unknown column '([^']+)'")
+SHOWN_COLUMNS = 60  # a source's columns listed in full up to this many
+
+
+def unknown_column_message(name: str, columns: list[str]) -> str:
+    """Name the unknown column, the closest of the source's columns and the source's columns (all, or the
+    first SHOWN_COLUMNS and how many more)."""
+    close = difflib.get_close_matches(name, columns, n=3, cutoff=0.5)
+    nearest = f"; closest: {', '.join(close)}" if close else ""
+    listed = ", ".join(columns[:SHOWN_COLUMNS])
+    more = f" and {len(columns) - SHOWN_COLUMNS} more" if len(columns) > SHOWN_COLUMNS else ""
+    return (f"unknown column '{name}' in the formula or options{nearest} (the source's {len(columns)} columns: "
+            f"{listed}{more})")
 
 
 _MISSING_COLUMN = re.compile(r'Referenced column "?([^"\s]+)"? not found', re.IGNORECASE)
