@@ -115,8 +115,7 @@ def fit_with(con: duckdb.DuckDBPyConnection, formula: str, source: str, options:
              progress: Progress = None) -> Model | SegmentedFit:
     """:func:`fit` with its options already checked (each entry point builds :class:`FitOptions` once)."""
     check_progress(progress)
-    special = FitVariants(options.robust_kind, options.cluster, options.firth, options.population_rate,
-                          options.penalty_request)
+    special = options.variants()
     engine = engine_for(con)
     options.check_engine(engine.dialect)
     engine.live_progress = (engine.dialect == "duckdb" and progress is not False and not callable(progress)

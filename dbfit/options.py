@@ -101,27 +101,23 @@ class FitOptions:
                 raise FitError(f"{name} := {value!r} is not a {_wanted(name)}") from None
         return cls.of(**{k: v for k, v in converted.items() if v is not None or k not in DEFAULTS})
 
-    @property
-    def plain(self) -> bool:
-        """The estimates are the maximum-likelihood ones (no Firth adjustment, no penalty)."""
-        return not self.firth and self.penalty_request is None
+    def variants(self) -> Any:
+        """The options that change how the estimates or their errors are computed (a ``FitVariants``)."""
+        from dbfit.fitting import FitVariants
 
-    @property
-    def ordinary(self) -> bool:
-        """Plain estimates with model-based errors on the sampled scale: nothing beyond the core fit."""
-        return self.plain and self.robust_kind is None and self.population_rate is None
+        return FitVariants(self.robust_kind, self.cluster, self.firth, self.population_rate, self.penalty_request)
 
     def _check_combinations(self) -> None:
         if self.penalty_request is not None and (self.firth or self.robust_kind is not None):
             raise FitError("shrinkage cannot be combined with firth=True or robust standard errors")
-        if self.by is not None and not self.ordinary:
+        if self.by is not None and not self.variants().ordinary:
             raise FitError("by= cannot yet be combined with firth, robust, shrinkage or population_rate")
         if self.by is not None and self.start is not None:
             raise FitError("start= cannot be combined with by=: every segment starts from its own intercept")
 
     def check_engine(self, dialect: str) -> None:
         """Refuse what only DuckDB can fit."""
-        if dialect != "duckdb" and (self.trials is not None or not self.ordinary):
+        if dialect != "duckdb" and (self.trials is not None or not self.variants().ordinary):
             raise FitError(f"on {dialect}, dbfit fits plain models (weights, offset and by= allowed); trials, "
                            "firth, shrinkage, robust and population_rate need DuckDB for now")
 
