@@ -83,6 +83,8 @@ def cross_validate(con: duckdb.DuckDBPyConnection, formula: str, source: str, sp
     """
     if not isinstance(split, KFold):
         raise FitError("cross_validate takes split=dbfit.KFold(key, folds)")
+    if isinstance(split.folds, bool) or not isinstance(split.folds, int) or split.folds < 2:
+        raise FitError(f"KFold folds must be a whole number of at least 2 (got {split.folds!r})")
     assessment.check_threshold(threshold)
     progress = options.pop("progress", False)
     chosen = FitOptions.of(**options)

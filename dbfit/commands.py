@@ -228,10 +228,7 @@ def _report(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[st
     split = model.options.get("split") or {}
     source = args.source or (_held_out_source(split) if split else None)
     tables = None if model.design.trials is not None else dbfit.assessment_tables(con, model, source)
-    try:
-        path = write_report(model, args.output, assessment=tables)
-    except OSError as err:
-        raise DbfitError(f"the report cannot be written to --output {args.output}: {err.strerror}") from None
+    path = write_report(model, args.output, assessment=tables)
     return {"model": model.name, "version": model.version, "output": str(path)}
 
 

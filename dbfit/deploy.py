@@ -45,6 +45,7 @@ def build_scoring(
     level: float = 0.95,
 ) -> exp.Select:
     """The DuckDB scoring query of ``model`` over ``source``, after checking the source's columns on ``con``."""
+    check_scoring_options(live=live, standard_error=standard_error, level=level)
     relation = source_relation(source if source is not None else model.source)
     if con is not None:
         check_score_columns(con, relation, standard_error)
@@ -55,6 +56,15 @@ def build_scoring(
         coefficient, joined = _live_coefficients(model)
     return scoring_query(model, relation, coefficient=coefficient, joined=joined, unseen=unseen,
                          with_standard_error=standard_error, level=level)
+
+
+def check_scoring_options(*, live: Any = False, standard_error: Any = False, level: Any = 0.95) -> None:
+    """Refuse scoring options of the wrong type or range, naming the option."""
+    for name, flag in (("live", live), ("standard_error", standard_error)):
+        if not isinstance(flag, bool):
+            raise DbfitError(f"{name} must be True or False (got {type(flag).__name__} {flag!r})")
+    if isinstance(level, bool) or not isinstance(level, (int, float)) or not 0.0 < level < 1.0:
+        raise DbfitError(f"level must be a number strictly between 0 and 1, e.g. 0.95 (got {level!r})")
 
 
 def check_score_columns(con: duckdb.DuckDBPyConnection, relation: exp.Expression, standard_error: bool) -> None:

@@ -92,6 +92,23 @@ def test_version_that_is_not_a_whole_number_is_refused(stored, call, version):
     refused(lambda: VERSION_CALLS[call](stored, version), ["version must be a whole number", repr(version)])
 
 
+SCORING_CASES = {
+    "score level as text": (lambda con: dbfit.score(con, "m", "t", standard_error=True, level="x"), ["level", "'x'"]),
+    "score standard_error as text": (lambda con: dbfit.score(con, "m", "t", standard_error="yes"),
+                                     ["standard_error", "yes"]),
+    "publish live as text": (lambda con: dbfit.publish(con, "m", "scored", "t", live="yes"), ["live", "yes"]),
+    "report to a missing folder": (lambda con: dbfit.load(con, "m").report("/no/such/dir/r.html"),
+                                   ["/no/such/dir/r.html"]),
+    "k folds as text": (lambda con: dbfit.cross_validate(con, "y ~ x", "t", dbfit.KFold("x", "3")), ["folds", "'3'"]),
+}
+
+
+@pytest.mark.parametrize("case", sorted(SCORING_CASES))
+def test_scoring_and_report_bad_input_is_refused(stored, case):
+    call, words = SCORING_CASES[case]
+    refused(lambda: call(stored), words)
+
+
 SQL_CASES = [
     ("SELECT * FROM dbfit.fit('m2', 't', 'y ~ x', max_iter := 'abc')", ["max_iter", "abc"]),
     ("SELECT * FROM dbfit.fit('m2', 't', 'y ~ x', max_iter := 'ten')", ["max_iter", "ten"]),
@@ -152,17 +169,17 @@ def spec_file(tmp_path, database: str, **settings) -> str:
 
 
 CLI_CASES = [
-    (lambda db, tmp: ["report", "m", "--database", db, "--output", "/no/such/dir/r.html"], ["--output", "/no/such/dir"]),
+    (lambda db, tmp: ["report", "m", "--database", db, "--output", "/no/such/dir/r.html"], ["/no/such/dir/r.html"]),
     (lambda db, tmp: ["sql", str(tmp / "nope.sql"), "--database", db], ["nope.sql"]),
     (lambda db, tmp: ["sql", str(tmp), "--database", db], ["cannot be read"]),
     (lambda db, tmp: ["assess", "m", "--database", db, "--version", "0"], ["version must be a whole number", "0"]),
     (lambda db, tmp: ["publish", "m", "--database", db, "--view", "v", "--version", "0"], ["version must be a whole number", "0"]),
     (lambda db, tmp: ["drift", "m", "--database", db, "--source", "t", "--version", "-1"], ["version must be a whole number", "-1"]),
-    (lambda db, tmp: ["report", "m", "--database", db, "--output", str(tmp)], ["--output", "directory"]),
+    (lambda db, tmp: ["report", "m", "--database", db, "--output", str(tmp)], ["cannot be written", "directory"]),
     (lambda db, tmp: ["fit", "--spec", spec_file(tmp, db, positive="late")], ["positive", "late"]),
     (lambda db, tmp: ["fit", "--database", db, "--name", "m", "--formula", "y ~ x", "--source", "t", "--positive",
                       "7"], ["positive", "7"]),
-    (lambda db, tmp: ["report", "m", "--database", db, "--output", spec_file(tmp, db) + "/r.html"], ["--output"]),
+    (lambda db, tmp: ["report", "m", "--database", db, "--output", spec_file(tmp, db) + "/r.html"], ["r.html"]),
 ]
 
 
