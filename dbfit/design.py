@@ -323,7 +323,8 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
         raise FitError("the weights of the rows used add up to zero; nothing to fit")
     if design.positive is not None and design.success_sum <= 0:
         raise FitError(f"positive={design.positive!r} is not among the values of the target "
-                       f"'{design.formula.target_text}' on the {design.rows_used} rows used: name one of its two values")
+                       f"'{design.formula.target_text}' on the {design.rows_used} rows used: "
+                       "name one of its two values")
     if design.success_sum <= 0 or design.success_sum >= design.trial_sum:
         outcome = "0 (no successes)" if design.success_sum <= 0 else "1 (no failures)"
         raise FitError(

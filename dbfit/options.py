@@ -148,7 +148,8 @@ def _reference(value: Any) -> dict[str, Any] | None:
 
 def _positive(value: Any) -> Any:
     if value is not None and not isinstance(value, (str, numbers.Real)):
-        raise FitError(f"positive must be one target value (text, number or boolean), got {type(value).__name__} {value!r}")
+        raise FitError("positive must be one target value (text, number or boolean), "
+                       f"got {type(value).__name__} {value!r}")
     return value
 
 

@@ -173,8 +173,10 @@ CLI_CASES = [
     (lambda db, tmp: ["sql", str(tmp / "nope.sql"), "--database", db], ["nope.sql"]),
     (lambda db, tmp: ["sql", str(tmp), "--database", db], ["cannot be read"]),
     (lambda db, tmp: ["assess", "m", "--database", db, "--version", "0"], ["version must be a whole number", "0"]),
-    (lambda db, tmp: ["publish", "m", "--database", db, "--view", "v", "--version", "0"], ["version must be a whole number", "0"]),
-    (lambda db, tmp: ["drift", "m", "--database", db, "--source", "t", "--version", "-1"], ["version must be a whole number", "-1"]),
+    (lambda db, tmp: ["publish", "m", "--database", db, "--view", "v", "--version", "0"],
+     ["version must be a whole number", "0"]),
+    (lambda db, tmp: ["drift", "m", "--database", db, "--source", "t", "--version", "-1"],
+     ["version must be a whole number", "-1"]),
     (lambda db, tmp: ["report", "m", "--database", db, "--output", str(tmp)], ["cannot be written", "directory"]),
     (lambda db, tmp: ["fit", "--spec", spec_file(tmp, db, positive="late")], ["positive", "late"]),
     (lambda db, tmp: ["fit", "--database", db, "--name", "m", "--formula", "y ~ x", "--source", "t", "--positive",
@@ -259,7 +261,7 @@ def test_thousand_predictors_are_refused_before_any_statistics_pass(con, monkeyp
     original = statsquery.unpack
     monkeypatch.setattr(statsquery, "unpack", lambda *a, **k: passes.append(1) or original(*a, **k))
     formula = "y ~ " + " + ".join(f"x{k}" for k in range(1000))
-    refused(lambda: dbfit.fit(con, formula, "wide", progress=False), ["1001 columns", "fewer columns"])
+    refused(lambda: dbfit.fit(con, formula, "wide", progress=False), ["1000 columns", "fewer columns"])
     assert passes == []
 
 
