@@ -15,6 +15,7 @@ from dbfit.errors import FitError
 from dbfit.splits import Holdout, KFold, part_source
 from dbfit.model import Model
 from dbfit.names import model_name
+from dbfit.options import FitOptions
 
 
 def fit(con: duckdb.DuckDBPyConnection, formula: str, source: str, *, name: str | None = None,
@@ -25,16 +26,26 @@ def fit(con: duckdb.DuckDBPyConnection, formula: str, source: str, *, name: str 
     metrics (at ``threshold``) go to ``model.stats["holdout"]``. ``model.source`` stays the whole source and
     ``model.split`` the rule; ``assess`` and reports then default to the held-out rows, ``score`` scores all rows.
     """
+    progress = options.pop("progress", None)
+    chosen = FitOptions.of(**options)
+    return fit_options(con, formula, source, chosen, name=name, split=split, threshold=threshold, progress=progress)
+
+
+def fit_options(con: duckdb.DuckDBPyConnection, formula: str, source: str, options: FitOptions, *,
+                name: str | None = None, split: Holdout | None = None, threshold: float = 0.5,
+                progress: fitting.Progress = None) -> Model:
+    """:func:`fit` with the fit's options already checked (the command line, spec files and refit build them)."""
     if name is not None:
         model_name(name)
     if split is not None and not isinstance(split, Holdout):
         raise FitError("split= takes dbfit.Holdout(key, share); for k folds use dbfit.cross_validate")
-    if split is not None and options.get("by") is not None:
+    if split is not None and options.by is not None:
         raise FitError("split= cannot be combined with by=")
-    training = source if split is None else _part_source(source, split, "train")
-    model = fitting.fit(con, formula, training, **options)
     if split is not None:
         assessment.check_threshold(threshold)
+    training = source if split is None else _part_source(source, split, "train")
+    model = fitting.fit_with(con, formula, training, options, progress)
+    if split is not None:
         model.source = source
         model.options["split"] = {"key": split.key, "share": split.share, "source": source, "threshold": threshold}
         held_out = assess(con, model, rows="held_out", threshold=threshold)
@@ -79,10 +90,14 @@ def cross_validate(con: duckdb.DuckDBPyConnection, formula: str, source: str, sp
     """
     if not isinstance(split, KFold):
         raise FitError("cross_validate takes split=dbfit.KFold(key, folds)")
+    if isinstance(split.folds, bool) or not isinstance(split.folds, int) or split.folds < 2:
+        raise FitError(f"KFold folds must be a whole number of at least 2 (got {split.folds!r})")
     assessment.check_threshold(threshold)
+    progress = options.pop("progress", False)
+    chosen = FitOptions.of(**options)
     per_fold: list[dict[str, float | None]] = []
     for fold in range(split.folds):
-        model = fitting.fit(con, formula, _part_source(source, split, fold, keep=False), **{"progress": False, **options})
+        model = fitting.fit_with(con, formula, _part_source(source, split, fold, keep=False), chosen, progress)
         table = assess(con, model, _part_source(source, split, fold), threshold=threshold)
         per_fold.append(dict(zip(table["metric"].to_pylist(), table["value"].to_pylist())))
     names = list(per_fold[0])

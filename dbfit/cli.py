@@ -85,9 +85,13 @@ def _run_sql_file(path: str, database: str) -> None:
     from dbfit.connection import connect_existing
     from dbfit.sqlscript import format_result, run_script
 
+    try:
+        text = Path(path).read_text()
+    except OSError as err:
+        raise UsageError(f"the script {path} cannot be read: {err.strerror or err}") from None
     con = connect_existing(database)
     try:
-        for result in run_script(con, Path(path).read_text()):
+        for result in run_script(con, text):
             print(result.text.splitlines()[0][:100] + (" ..." if "\n" in result.text else ""))
             print(format_result(result))
             print()

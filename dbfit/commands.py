@@ -152,7 +152,9 @@ def _run(args: argparse.Namespace) -> tuple[dict[str, Any], int]:
 
 def _fit(args: argparse.Namespace) -> dict[str, Any]:
     import dbfit
-    from dbfit.fitspec import merge, read_spec
+    from dbfit.api import fit_options
+    from dbfit.fitspec import FIT_OPTIONS, merge, read_spec
+    from dbfit.options import FitOptions
 
     reference = None
     if args.reference:
@@ -164,17 +166,17 @@ def _fit(args: argparse.Namespace) -> dict[str, Any]:
                                            "positive", "max_iter", "tol", "firth", "by", "holdout_key",
                                            "holdout_share", "threshold")}
     settings = merge(read_spec(args.spec) if args.spec else {}, given | {"reference": reference})
-    options = {k: settings[k] for k in ("weights", "offset", "trials", "positive", "reference", "max_iter", "tol",
-                                        "firth", "by") if settings.get(k) is not None}
+    options = {k: settings[k] for k in FIT_OPTIONS if settings.get(k) is not None}
     split = None
     if settings.get("holdout_key"):
         split = dbfit.Holdout(settings["holdout_key"], settings.get("holdout_share") or 0.2)
     elif settings.get("holdout_share") is not None:
         raise UsageError("--holdout-share needs --holdout-key")
+    chosen = FitOptions.of(**options)
     con = dbfit.connect(settings["database"])
     try:
-        model = dbfit.fit(con, settings["formula"], settings["source"], name=settings["name"], split=split,
-                          threshold=settings.get("threshold") or 0.5, progress=False, **options)
+        model = fit_options(con, settings["formula"], settings["source"], chosen, name=settings["name"], split=split,
+                            threshold=settings.get("threshold") or 0.5, progress=False)
         if isinstance(model, dbfit.SegmentedFit):
             return _segmented_result(con, model, settings.get("gates"))
         if settings.get("gates"):

@@ -16,7 +16,7 @@ from dbfit import sqlbuild as sb
 from dbfit.engine import DuckDBEngine
 from dbfit.errors import DbfitError, StoreError
 from dbfit.model import Model
-from dbfit.names import model_name, relation_name
+from dbfit.names import model_name, model_version, relation_name
 from dbfit.scoring import INTERVAL_COLUMNS, SCORE_COLUMNS, Coefficient, scoring_query
 from dbfit.source import source_relation
 from dbfit.store import SCHEMA, load_model, publish_view
@@ -26,6 +26,7 @@ LIVE_ALIAS = "dbfit_coefficients"
 
 def resolve_model(con: duckdb.DuckDBPyConnection, model: str | Model, version: int | None) -> Model:
     """A Model as given, or the stored version of a model name."""
+    version = model_version(version)
     if isinstance(model, Model):
         if version is not None and version != model.version:
             raise StoreError(f"version={version} was given with a Model object (version {model.version}); pass the name")
@@ -44,6 +45,7 @@ def build_scoring(
     level: float = 0.95,
 ) -> exp.Select:
     """The DuckDB scoring query of ``model`` over ``source``, after checking the source's columns on ``con``."""
+    check_scoring_options(live=live, standard_error=standard_error, level=level)
     relation = source_relation(model.source_or_own(source))
     if con is not None:
         check_score_columns(con, relation, standard_error)
@@ -54,6 +56,15 @@ def build_scoring(
         coefficient, joined = _live_coefficients(model)
     return scoring_query(model, relation, coefficient=coefficient, joined=joined, unseen=unseen,
                          with_standard_error=standard_error, level=level)
+
+
+def check_scoring_options(*, live: Any = False, standard_error: Any = False, level: Any = 0.95) -> None:
+    """Refuse scoring options of the wrong type or range, naming the option."""
+    for name, flag in (("live", live), ("standard_error", standard_error)):
+        if not isinstance(flag, bool):
+            raise DbfitError(f"{name} must be True or False (got {type(flag).__name__} {flag!r})")
+    if isinstance(level, bool) or not isinstance(level, (int, float)) or not 0.0 < level < 1.0:
+        raise DbfitError(f"level must be a number strictly between 0 and 1, e.g. 0.95 (got {level!r})")
 
 
 def check_score_columns(con: duckdb.DuckDBPyConnection, relation: exp.Expression, standard_error: bool) -> None:

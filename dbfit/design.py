@@ -257,6 +257,9 @@ def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
     types = dict(engine.describe(probe.from_(design.relation.copy())))
 
     target_type = types[TARGET]
+    if isinstance(positive, str) and (NUMERIC_TYPE.match(target_type) or target_type.upper() == "BOOLEAN"):
+        raise FitError(f"positive={positive!r} is text, but the target '{design.formula.target_text}' has type "
+                       f"{target_type}: name one of its values as a {target_type.lower()}")
     if positive is not None:
         literal = exp.Boolean(this=positive) if isinstance(positive, bool) else (
             sb.number(positive) if isinstance(positive, (int, float)) else exp.Literal.string(str(positive))
@@ -373,6 +376,10 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
     design.trial_sum = float(row["trial_sum"] or 0.0)
     if design.weight_sum <= 0:
         raise FitError("the weights of the rows used add up to zero; nothing to fit")
+    if design.positive is not None and design.success_sum <= 0:
+        raise FitError(f"positive={design.positive!r} is not among the values of the target "
+                       f"'{design.formula.target_text}' on the {design.rows_used} rows used: "
+                       "name one of its two values")
     if design.success_sum <= 0 or design.success_sum >= design.trial_sum:
         outcome = "0 (no successes)" if design.success_sum <= 0 else "1 (no failures)"
         raise FitError(

@@ -5,7 +5,10 @@ Later engines (PostgreSQL, Spark) implement the same three methods; dialect quir
 
 from __future__ import annotations
 
+import difflib
 import re
+import threading
+import weakref
 from typing import Any, Callable
 
 import duckdb
@@ -14,6 +17,23 @@ from sqlglot import exp
 from dbfit.dialects import adapt
 from dbfit.errors import AbortedTransactionError, DbfitError, FormulaError, SourceError
 from dbfit.progress import watch_scan
+
+
+_LOCKS: weakref.WeakKeyDictionary[Any, threading.RLock] = weakref.WeakKeyDictionary()
+_LOCKS_GUARD = threading.Lock()
+
+
+def connection_lock(connection: Any) -> threading.RLock:
+    """The lock dbfit holds on ``connection`` from running a query to fetching its last row.
+
+    A DuckDB connection runs one query at a time; two threads sharing one would interleave their results
+    (one thread fetching the other's rows), so dbfit's own reads on it take turns.
+    """
+    with _LOCKS_GUARD:
+        lock = _LOCKS.get(connection)
+        if lock is None:
+            lock = _LOCKS[connection] = threading.RLock()
+        return lock
 
 
 class Engine:
@@ -74,9 +94,18 @@ class DuckDBEngine(Engine):
     def describe(self, query: exp.Expression) -> list[tuple[str, str]]:
         """Column names and SQL types of ``query`` without reading its rows."""
         sql = self.sql(query)
-        self._parse(sql)
-        relation = self._bind(sql)
-        return [(name, str(kind)) for name, kind in zip(relation.columns, relation.types)]
+        try:
+            with connection_lock(self.connection):
+                self._parse(sql)
+                relation = self._bind(sql)
+                return [(name, str(kind)) for name, kind in zip(relation.columns, relation.types)]
+        except FormulaError as err:
+            missing = _MISSING_NAME.search(str(err))
+            source = query.args.get("from_") if isinstance(query, exp.Select) else None
+            if missing is None or source is None:
+                raise
+            columns = [name for name, _ in self.describe(exp.select("*").from_(source.this.copy()))]
+            raise FormulaError(unknown_column_message(missing.group(1), columns)) from None
 
     def execute(self, *, sql: str, scan: bool) -> None:
         """Run a statement dbfit wrote itself (``CREATE TEMP TABLE name AS SELECT ...``, ``DROP TABLE``); its
@@ -94,11 +123,12 @@ class DuckDBEngine(Engine):
         # Outside a transaction a failing statement ends only its own; inside, it must fail before it runs. A
         # query text is bound once (the Newton passes repeat one text with new parameters): binding a wide
         # statistics query costs about a third of running it on a small table.
-        if sql not in self._checked and in_transaction(self.connection):
-            if self._parse(sql).type == duckdb.StatementType.SELECT:
-                self._bind(sql, parameters)
-            self._checked.add(sql)
-        return self._read(lambda: self.connection.execute(sql, parameters).fetchall())
+        with connection_lock(self.connection):
+            if sql not in self._checked and in_transaction(self.connection):
+                if self._parse(sql).type == duckdb.StatementType.SELECT:
+                    self._bind(sql, parameters)
+                self._checked.add(sql)
+            return self._read(lambda: self.connection.execute(sql, parameters).fetchall())
 
     def _parse(self, sql: str) -> Any:
         """The parsed statement (a parser error, unlike one from ``execute``, leaves the transaction alone)."""
@@ -162,6 +192,23 @@ def transaction_aborted(connection: duckdb.DuckDBPyConnection) -> bool:
 
 
 _CREATE_AS = re.compile(r'\s*CREATE\s+TEMP(?:ORARY)?\s+TABLE\s+"[^"]+"\s+AS\s+', re.IGNORECASE)
+
+
+_MISSING_NAME = re.compile(r"^unknown column '([^']+)'")
+SHOWN_COLUMNS = 60  # a source's columns listed in full up to this many
+
+
+def unknown_column_message(name: str, columns: list[str]) -> str:
+    """Name the unknown column, the closest of the source's columns and the source's columns (all, or the
+    first SHOWN_COLUMNS and how many more)."""
+    close = difflib.get_close_matches(name, columns, n=3, cutoff=0.5)
+    nearest = f"; closest: {', '.join(close)}" if close else ""
+    listed = ", ".join(columns[:SHOWN_COLUMNS])
+    more = f" and {len(columns) - SHOWN_COLUMNS} more" if len(columns) > SHOWN_COLUMNS else ""
+    return (f"unknown column '{name}' in the formula or options{nearest} (the source's {len(columns)} columns: "
+            f"{listed}{more})")
+
+
 _MISSING_COLUMN = re.compile(r'Referenced column "?([^"\s]+)"? not found', re.IGNORECASE)
 
 

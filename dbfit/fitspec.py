@@ -1,9 +1,10 @@
 """A fit specification for ``dbfit fit --spec FILE``: a JSON or TOML file (read with tomllib) of the fit's settings.
 
 Keys: ``database``, ``name``, ``formula``, ``source`` (required unless given on the command line), and optionally
-``weights``, ``offset``, ``trials``, ``positive``, ``reference`` (a table of term = level), ``max_iter``, ``tol``,
-``firth``, ``by`` (one model per segment, stored as ``name.<segment>``), ``holdout_key``, ``holdout_share``,
-``threshold`` and ``gates`` (a table of gate settings).
+the options of :func:`dbfit.fit` (``weights``, ``offset``, ``trials``, ``positive``, ``reference`` (a table of
+term = level), ``max_iter``, ``tol``, ``firth``, ``by`` (one model per segment, stored as ``name.<segment>``),
+``robust``, ``cluster``, ``population_rate``, ``shrinkage``, ``l1_share``, ``folds``, ``split_key``),
+``holdout_key``, ``holdout_share``, ``threshold`` and ``gates`` (a table of gate settings).
 """
 
 from __future__ import annotations
@@ -16,9 +17,12 @@ from typing import Any
 from dbfit.errors import DbfitError, UsageError
 
 REQUIRED = ("database", "name", "formula", "source")
-OPTIONAL = {"weights": str, "offset": str, "trials": str, "positive": (str, int, bool), "reference": dict,
-            "max_iter": int, "tol": float, "firth": bool, "by": str, "holdout_key": str, "holdout_share": float,
-            "threshold": float, "gates": dict}
+# The fit's own options: checked by dbfit.options.FitOptions where the command builds the fit (with the
+# command line's values over these), so their rules live in one place.
+FIT_OPTIONS = ("weights", "offset", "trials", "positive", "reference", "max_iter", "tol", "firth", "by", "robust",
+               "cluster", "population_rate", "shrinkage", "l1_share", "folds", "split_key")
+OPTIONAL = {**{key: object for key in FIT_OPTIONS}, "holdout_key": str, "holdout_share": (int, float),
+            "threshold": (int, float), "gates": dict}
 
 
 def read_spec(path: str) -> dict[str, Any]:
@@ -39,9 +43,7 @@ def read_spec(path: str) -> dict[str, Any]:
         raise DbfitError(f"the spec file {path} has unknown key(s) {unknown}; known: {sorted(REQUIRED + tuple(OPTIONAL))}")
     for key, value in spec.items():
         wanted = OPTIONAL.get(key, str)
-        if key == "tol" and isinstance(value, int) and not isinstance(value, bool):
-            continue
-        if not isinstance(value, wanted) or (wanted is int and isinstance(value, bool)):
+        if not isinstance(value, wanted) or (wanted != object and isinstance(value, bool)):
             raise DbfitError(f"the spec file {path}: {key} = {value!r} has the wrong type")
     return spec
 

@@ -26,6 +26,7 @@ from dbfit.errors import FitError
 from dbfit.formula import parse_formula
 from dbfit.irls import IterationReport, NewtonResult, fit_newton, refine_with_fixed_information
 from dbfit.model import Model
+from dbfit.options import FitOptions
 from dbfit.progress import progress_settings
 from dbfit.source import source_relation
 from dbfit.segments import SegmentedFit, fit_segments
@@ -103,31 +104,35 @@ def fit(
     ----------
     McCullagh and Nelder (1989), Generalized Linear Models, 2nd ed., Chapman & Hall, chapter 4.
     """
-    if max_iter < 1:
-        raise FitError(f"max_iter must be at least 1 (got {max_iter})")
-    if not tol > 0:
-        raise FitError(f"tol must be positive (got {tol})")
-    robust_kind = robust_errors.choose_kind(robust, cluster)
-    priorcorrection.check_population_rate(population_rate)
-    penalty_request = penalized.check_request(shrinkage, l1_share, folds, split_key)
-    if penalty_request is not None and (firth or robust_kind is not None):
-        raise FitError("shrinkage cannot be combined with firth=True or robust standard errors")
-    special = FitVariants(robust_kind, cluster, firth, population_rate, penalty_request)
+    chosen = FitOptions.of(weights=weights, offset=offset, trials=trials, reference=reference, positive=positive,
+                           max_iter=max_iter, tol=tol, start=start, by=by, robust=robust, cluster=cluster,
+                           firth=firth, population_rate=population_rate, shrinkage=shrinkage, l1_share=l1_share,
+                           folds=folds, split_key=split_key)
+    return fit_with(con, formula, source, chosen, progress)
+
+
+def fit_with(con: duckdb.DuckDBPyConnection, formula: str, source: str, options: FitOptions,
+             progress: Progress = None) -> Model | SegmentedFit:
+    """:func:`fit` with its options already checked (each entry point builds :class:`FitOptions` once)."""
+    check_progress(progress)
+    special = options.variants()
     engine = engine_for(con)
-    if engine.dialect != "duckdb" and (trials is not None or not special.ordinary):
-        raise FitError(f"on {engine.dialect}, dbfit fits plain models (weights, offset and by= allowed); trials, "
-                       "firth, shrinkage, robust and population_rate need DuckDB for now")
-    if by is not None and not special.ordinary:
-        raise FitError("by= cannot yet be combined with firth, robust, shrinkage or population_rate")
+    options.check_engine(engine.dialect)
     engine.live_progress = (engine.dialect == "duckdb" and progress is not False and not callable(progress)
                             and sys.stderr.isatty())
-    arguments = dict(weights=weights, offset=offset, trials=trials, reference=reference, positive=positive,
-                     max_iter=max_iter, tol=tol, start=start, progress=progress, by=by, special=special)
+    arguments = dict(weights=options.weights, offset=options.offset, trials=options.trials,
+                     reference=options.reference, positive=options.positive, max_iter=options.max_iter,
+                     tol=options.tol, start=options.start, progress=progress, by=options.by, special=special)
     if engine.dialect == "duckdb":
         # dbfit reports progress itself (or is quiet): DuckDB's own printed bar stays off during the fit.
         with progress_settings(con, track=engine.live_progress):
             return _fit(engine, formula, source, **arguments)
     return _fit(engine, formula, source, **arguments)
+
+
+def check_progress(progress: Any) -> None:
+    if progress is not None and not isinstance(progress, bool) and not callable(progress):
+        raise FitError(f"progress must be True, False, None or a function of one report (got {progress!r})")
 
 
 @dataclass(frozen=True)

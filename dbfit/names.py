@@ -6,6 +6,7 @@ literal tree; a view name is parsed with sqlglot and rebuilt as a quoted (catalo
 
 from __future__ import annotations
 
+import numbers
 import re
 
 import sqlglot
@@ -26,6 +27,15 @@ def model_name(name: object) -> str:
             "(at most 128 characters)"
         )
     return name
+
+
+def model_version(version: object) -> int | None:
+    """Return ``version`` if it is None or a whole number of at least 1 (a stored version number)."""
+    if version is None:
+        return None
+    if isinstance(version, bool) or not isinstance(version, numbers.Integral) or version < 1:
+        raise StoreError(f"version must be a whole number of at least 1, or None for the current one (got {version!r})")
+    return int(version)
 
 
 def relation_name(text: object, what: str = "view name") -> exp.Table:

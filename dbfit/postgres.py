@@ -29,7 +29,17 @@ class PostgresEngine(Engine):
     def describe(self, query: exp.Expression) -> list[tuple[str, str]]:
         probe = exp.select("*").from_(query.subquery("dbfit_probe")).limit(0)
         description = self._guarded(self.sql(probe), lambda cursor: cursor.description)
-        return [(column.name, TYPE_NAMES.get(column.type_code, f"OID{column.type_code}")) for column in description]
+        columns = [(column.name, column.type_code) for column in description]
+        unknown = sorted({code for _, code in columns if code not in TYPE_NAMES})
+        named = dict(self._type_names(unknown)) if unknown else {}
+        return [(name, TYPE_NAMES.get(code) or named.get(code, f"OID{code}")) for name, code in columns]
+
+    def _type_names(self, oids: list[int]) -> list[tuple[int, str]]:
+        """PostgreSQL's own names (pg_type, upper case: DATE, TIMESTAMP, ...) of type OIDs outside TYPE_NAMES."""
+        listed = exp.Tuple(expressions=[exp.Literal.number(int(oid)) for oid in oids])
+        query = exp.select("oid::INT", "upper(typname)").from_("pg_catalog.pg_type").where(
+            exp.In(this=exp.column("oid"), expressions=listed.expressions))
+        return [(int(oid), str(name)) for oid, name in self._run(self.sql(query))]
 
     def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
         return self._guarded(sql, lambda cursor: cursor.fetchall() if cursor.description is not None else [])

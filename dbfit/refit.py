@@ -20,6 +20,7 @@ from dbfit.fingerprint import fingerprint, origin_source
 from dbfit.gates import evaluate, gates_of
 from dbfit.model import Model
 from dbfit.names import model_name
+from dbfit.options import FitOptions
 from dbfit.splits import Holdout
 
 REUSED_OPTIONS = ("weights", "offset", "trials", "reference", "positive", "max_iter", "tol", "firth", "robust", "cluster",
@@ -46,8 +47,9 @@ def refit(con: duckdb.DuckDBPyConnection, name: str, *, source: str | None = Non
     split = current.options.get("split")
     holdout = Holdout(split["key"], split["share"]) if split else None
     start = None if cold else {label: float(v) for label, v in zip(current.labels, current.estimates) if math.isfinite(v)}
-    candidate = api.fit(con, current.formula, source, split=holdout, start=start, progress=progress,
-                        threshold=split["threshold"] if split else 0.5, **options)
+    chosen = FitOptions.of(start=start, **options)
+    candidate = api.fit_options(con, current.formula, source, chosen, split=holdout, progress=progress,
+                                threshold=split["threshold"] if split else 0.5)
     if current.options.get("segment"):
         candidate.options["segment"] = current.options["segment"]  # still one segment of its by= fit
     version = store.save_model(con, candidate, name, promote=False)

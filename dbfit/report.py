@@ -217,7 +217,11 @@ def render_report(model: Model, assessment: dict[str, pa.Table] | None = None) -
 def write_report(model: Model, path: str | Path, assessment: dict[str, pa.Table] | None = None) -> Path:
     """Write the report page to ``path`` (UTF-8) and return the path."""
     path = Path(path)
-    path.write_text(render_report(model, assessment), encoding="utf-8")
+    page = render_report(model, assessment)
+    try:
+        path.write_text(page, encoding="utf-8")
+    except OSError as err:
+        raise DbfitError(f"the report cannot be written to {path}: {err.strerror or err}") from None
     return path
 
 

@@ -25,7 +25,7 @@ import numpy as np
 from dbfit import inference
 from dbfit.design import Design, DesignColumn, Factor
 from dbfit.dialects import resolve_columns
-from dbfit.errors import StoreError
+from dbfit.errors import DbfitError, StoreError
 from dbfit.formula import parse_expression, parse_formula
 from dbfit.model import Model
 from dbfit.source import source_relation
@@ -100,10 +100,39 @@ def from_document(document: dict[str, Any], name: str | None = None, version: in
         raise StoreError(
             f"dbfit model document version {document.get('format_version')!r} is not supported (this dbfit reads {FORMAT_VERSION})"
         )
+    _check_shape(document)
     try:
         return _rebuild(document, name, version)
-    except (KeyError, TypeError, IndexError) as err:
+    except DbfitError:
+        raise
+    except (KeyError, TypeError, IndexError, ValueError, AttributeError) as err:
         raise StoreError(f"the dbfit model document is incomplete or malformed: {type(err).__name__} {err}") from None
+
+
+SHAPE = {"formula": str, "source": str, "options": dict, "intercept": bool, "factors": list, "columns": list,
+         "labels": list, "estimates": list, "covariance": list, "stats": dict, "warnings": list, "fingerprint": dict}
+
+
+def _check_shape(document: dict[str, Any]) -> None:
+    """Refuse a document whose keys are missing or of the wrong type, naming the key."""
+    for key, wanted in SHAPE.items():
+        if key not in document:
+            raise StoreError(f"the dbfit model document lacks the key '{key}'")
+        if not isinstance(document[key], wanted):
+            raise StoreError(f"the dbfit model document's '{key}' must be a {wanted.__name__} "
+                             f"(got {type(document[key]).__name__} {document[key]!r:.60})")
+    size = len(document["labels"])
+    if len(document["estimates"]) != size:
+        raise StoreError(f"the dbfit model document has {len(document['estimates'])} estimates for {size} labels")
+    for position, value in enumerate(document["estimates"]):
+        if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))):
+            raise StoreError(f"the dbfit model document's estimate {position} ('{document['labels'][position]}') is "
+                             f"not a number: {value!r}")
+    rows = document["covariance"]
+    if len(rows) != size or any(not isinstance(row, list) or len(row) != size for row in rows):
+        raise StoreError(f"the dbfit model document's covariance must be {size} x {size}, one row per label")
+    if any(v is not None and (isinstance(v, bool) or not isinstance(v, (int, float))) for row in rows for v in row):
+        raise StoreError("the dbfit model document's covariance holds a value that is not a number")
 
 
 def _rebuild(document: dict[str, Any], name: str | None, version: int | None) -> Model:

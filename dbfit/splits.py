@@ -51,7 +51,7 @@ def fold_expression(design: Design, key_text: str | None, folds: int) -> exp.Exp
 
 def holdout_condition(keys: list[exp.Expression], share: float, *, held_out: bool) -> exp.Expression:
     """The rows whose hash falls below ``share`` are held out; the others train."""
-    if not 0.0 < share < 1.0:
+    if isinstance(share, bool) or not isinstance(share, (int, float)) or not 0.0 < share < 1.0:
         raise FitError(f"the holdout share must lie strictly between 0 and 1 (got {share!r})")
     unit = unit_hash(keys)
     return (exp.LT if held_out else exp.GTE)(this=unit, expression=sb.number(share))

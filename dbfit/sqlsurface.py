@@ -19,8 +19,9 @@ from dbfit import assessment, fitting, store
 from dbfit.engine import DuckDBEngine
 from dbfit.deploy import build_scoring, check_score_columns, publish
 from dbfit.drift import psi_table
-from dbfit.errors import SourceError, StoreError
+from dbfit.errors import FitError, SourceError, StoreError
 from dbfit.model import Model
+from dbfit.options import FitOptions
 from dbfit.names import model_name
 from dbfit.segments import SegmentedFit
 from dbfit.segmentscoring import publish_segments
@@ -53,15 +54,16 @@ GAINS_COLUMNS = ("share_of_rows", "share_of_positives", "lift", "cumulative_lift
 
 _ROWS = "SELECT dbfit_row.* FROM (SELECT unnest({call}) AS dbfit_row)"
 _SCORE_OPTIONS = ", standard_error := false, level := 0.95, unseen := 'null'"
-_SCORE = "SELECT * FROM query(dbfit_sql_score(model, source, {version}, standard_error, level, unseen))"
+_SCORE = "SELECT * FROM query(dbfit_sql_score(model, source, {version}, standard_error, level::VARCHAR, unseen))"
 MACROS = {
     "fit": [(
         "model, source, formula, weights := NULL, \"offset\" := NULL, trials := NULL, reference := NULL, "
         "positive := NULL, max_iter := 50, tol := 1e-10, robust := NULL, \"cluster\" := NULL, firth := false, "
         "population_rate := NULL, shrinkage := NULL, l1_share := 0.0, \"by\" := NULL",
         _ROWS.format(call="dbfit_sql_fit(model, source, formula, weights, \"offset\", trials, reference, positive, "
-                          "max_iter, tol, (SELECT dbfit_count.n FROM query(dbfit_sql_count(source)) AS dbfit_count), "
-                          "robust, \"cluster\", firth, population_rate, shrinkage, l1_share, \"by\")"),
+                          "max_iter::VARCHAR, tol::VARCHAR, (SELECT dbfit_count.n FROM query(dbfit_sql_count(source)) "
+                          "AS dbfit_count), robust, \"cluster\", firth::VARCHAR, "
+                          "population_rate::VARCHAR, shrinkage::VARCHAR, l1_share::VARCHAR, \"by\")"),
     )],
     "models": [("", _ROWS.format(call="dbfit_sql_models()"))],
     "coefficients": [
@@ -80,13 +82,13 @@ MACROS = {
         "model, source, view, unseen := 'null', \"replace\" := false",
         _ROWS.format(call="dbfit_sql_publish_segments(model, source, view, unseen, \"replace\")"),
     )],
-    "assess": [("model, source, threshold := 0.5", _ROWS.format(call="dbfit_sql_assess(model, source, threshold, 'metrics')"))],
-    "confusion": [("model, source, threshold := 0.5", _ROWS.format(call="dbfit_sql_confusion(model, source, threshold, 'confusion')"))],
-    "cutoffs": [("model, source", _ROWS.format(call="dbfit_sql_cutoffs(model, source, 0.5, 'curve')"))],
+    "assess": [("model, source, threshold := 0.5", _ROWS.format(call="dbfit_sql_assess(model, source, threshold::VARCHAR, 'metrics')"))],
+    "confusion": [("model, source, threshold := 0.5", _ROWS.format(call="dbfit_sql_confusion(model, source, threshold::VARCHAR, 'confusion')"))],
+    "cutoffs": [("model, source", _ROWS.format(call="dbfit_sql_cutoffs(model, source, '0.5', 'curve')"))],
     "roc": [("model, source", "SELECT threshold, false_positive_rate, true_positive_rate FROM "
-             + _ROWS.format(call="dbfit_sql_cutoffs(model, source, 0.5, 'curve')").replace("SELECT ", "(SELECT ", 1) + ")")],
-    "calibration": [("model, source", _ROWS.format(call="dbfit_sql_calibration(model, source, 0.5, 'calibration')"))],
-    "gains": [("model, source", _ROWS.format(call="dbfit_sql_gains(model, source, 0.5, 'gains')"))],
+             + _ROWS.format(call="dbfit_sql_cutoffs(model, source, '0.5', 'curve')").replace("SELECT ", "(SELECT ", 1) + ")")],
+    "calibration": [("model, source", _ROWS.format(call="dbfit_sql_calibration(model, source, '0.5', 'calibration')"))],
+    "gains": [("model, source", _ROWS.format(call="dbfit_sql_gains(model, source, '0.5', 'gains')"))],
     "drift": [("model, source", _ROWS.format(call="dbfit_sql_drift(model, source)"))],
     "drop_model": [
         ("model", _ROWS.format(call="dbfit_sql_drop(model, NULL)")),
@@ -118,14 +120,12 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
     def fit_rows(model, source, formula, weights, offset, trials, reference, positive, max_iter, tol, visible_rows,
                  robust, cluster, firth, population_rate, shrinkage, l1_share, by):
         model_name(model)
+        options = FitOptions.from_text(weights=weights, offset=offset, trials=trials, reference=reference,
+                                       positive=positive, max_iter=max_iter, tol=tol, robust=robust, cluster=cluster,
+                                       firth=firth, population_rate=population_rate, shrinkage=shrinkage,
+                                       l1_share=l1_share, by=by)
         with second() as reader:
-            fitted = _fit_on_second_connection(reader, source, formula, visible_rows, weights=weights, offset=offset,
-                                               trials=trials, reference=reference, positive=positive,
-                                               max_iter=50 if max_iter is None else max_iter,
-                                               tol=1e-10 if tol is None else tol, robust=robust, cluster=cluster,
-                                               firth=bool(firth), population_rate=population_rate,
-                                               shrinkage=shrinkage, l1_share=0.0 if l1_share is None else l1_share,
-                                               by=by)
+            fitted = _fit_on_second_connection(reader, source, formula, visible_rows, options)
             if isinstance(fitted, SegmentedFit):
                 return _segment_rows(fitted, fitted.save(reader, model))
             version = fitted.save(reader, model)
@@ -133,6 +133,8 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
                 for row in fitted.coefficients.to_pylist()]
 
     def count_sql(source):
+        with second() as reader:
+            check_readable(reader, source)
         return exp.select(exp.alias_(exp.Count(this=exp.Star()), "n")).from_(source_relation(source)).sql("duckdb")
 
     def version_rows():
@@ -144,14 +146,17 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
             return store.coefficient_rows(reader, model, version)
 
     def score_sql(model, source, version, standard_error, level, unseen):
+        level = _text_number(level, "level", 0.95)
         with second() as reader:
+            if source is not None:
+                check_readable(reader, source)
             fitted = store.load_model(reader, model, version)
             try:
                 check_score_columns(reader, source_relation(source), bool(standard_error))
             except SourceError:
                 pass  # not visible to the second connection (a temporary table?): the calling query reads it
         query = build_scoring(None, fitted, source, unseen=unseen or "null", standard_error=bool(standard_error),
-                              level=0.95 if level is None else level)
+                              level=level)
         return query.sql("duckdb")
 
     def publish_rows(model, source, view, version, live, unseen, replace):
@@ -175,7 +180,7 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
             engine = DuckDBEngine(reader)
             text, note = fitted.assessed_rows(source, None)
             scored = assessment.scored_relation(fitted, text)
-            threshold = 0.5 if threshold is None else threshold
+            threshold = _text_number(threshold, "threshold", 0.5)
             if table == "metrics":
                 return assessment.metrics(engine, scored, threshold, rows_note=note).table().to_pylist()
             builders = {"confusion": lambda: assessment.confusion_table(engine, scored, threshold),
@@ -191,21 +196,21 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
     V, I, D, B = T("VARCHAR"), T("INTEGER"), T("DOUBLE"), T("BOOLEAN")
     reference_type = duckdb.map_type(V, V)
     functions: list[tuple[str, Callable[..., Any], list[Any], Any]] = [
-        ("dbfit_sql_fit", fit_rows, [V, V, V, V, V, V, reference_type, V, I, D, T("BIGINT"), V, V, B, D, D, D, V],
+        ("dbfit_sql_fit", fit_rows, [V, V, V, V, V, V, reference_type, V, V, V, T("BIGINT"), V, V, V, V, V, V, V],
          _rows_of(FIT_FIELDS)),
         ("dbfit_sql_count", count_sql, [V], V),
         ("dbfit_sql_models", version_rows, [], _rows_of(VERSION_FIELDS)),
         ("dbfit_sql_coefficients", coefficient_rows, [V, I], _rows_of(COEFFICIENT_FIELDS)),
-        ("dbfit_sql_score", score_sql, [V, V, I, B, D, V], V),
+        ("dbfit_sql_score", score_sql, [V, V, I, B, V, V], V),
         ("dbfit_sql_publish", publish_rows, [V, V, V, I, B, V, B], _rows_of(PUBLISHED_FIELDS)),
         ("dbfit_sql_publish_segments", publish_segment_rows, [V, V, V, V, B], _rows_of(SEGMENT_VIEW_FIELDS)),
         ("dbfit_sql_drop", drop_rows, [V, I], _rows_of(DROPPED_FIELDS)),
-        ("dbfit_sql_assess", assessment_rows, [V, V, D, V], _rows_of({"metric": V, "value": D, "note": V})),
-        ("dbfit_sql_confusion", assessment_rows, [V, V, D, V], _rows_of({"actual": I, "predicted": I, "rows": T("BIGINT")})),
-        ("dbfit_sql_cutoffs", assessment_rows, [V, V, D, V], _rows_of({c: D for c in CUTOFF_COLUMNS})),
-        ("dbfit_sql_calibration", assessment_rows, [V, V, D, V], _rows_of(
+        ("dbfit_sql_assess", assessment_rows, [V, V, V, V], _rows_of({"metric": V, "value": D, "note": V})),
+        ("dbfit_sql_confusion", assessment_rows, [V, V, V, V], _rows_of({"actual": I, "predicted": I, "rows": T("BIGINT")})),
+        ("dbfit_sql_cutoffs", assessment_rows, [V, V, V, V], _rows_of({c: D for c in CUTOFF_COLUMNS})),
+        ("dbfit_sql_calibration", assessment_rows, [V, V, V, V], _rows_of(
             {"group": I, "rows": T("BIGINT"), **{c: D for c in CALIBRATION_COLUMNS}})),
-        ("dbfit_sql_gains", assessment_rows, [V, V, D, V], _rows_of({"group": I, **{c: D for c in GAINS_COLUMNS}})),
+        ("dbfit_sql_gains", assessment_rows, [V, V, V, V], _rows_of({"group": I, **{c: D for c in GAINS_COLUMNS}})),
         ("dbfit_sql_drift", drift_rows, [V, V], _rows_of(DRIFT_FIELDS)),
     ]
     for name, function, parameters, returns in functions:
@@ -236,7 +241,7 @@ def _rows_of(fields: dict[str, Any]) -> Any:
 
 
 def _fit_on_second_connection(reader: duckdb.DuckDBPyConnection, source: str, formula: str, visible_rows: int | None,
-                              **options: Any):
+                              options: FitOptions):
     """Fit on the second connection; explain plainly when it sees other rows than the calling connection."""
     invisible = (
         f"source {source!r} has {visible_rows} rows on your connection, but the second connection that the SQL "
@@ -245,9 +250,28 @@ def _fit_on_second_connection(reader: duckdb.DuckDBPyConnection, source: str, fo
     advice = ("temporary tables and rows or tables of a transaction not yet committed are invisible to it. "
               "COMMIT first, copy the data into a permanent table, or call dbfit.fit from Python, which has no such limit")
     try:
-        model = fitting.fit(reader, formula, source, progress=False, **options)
+        model = fitting.fit_with(reader, formula, source, options, progress=False)
     except SourceError as err:
         raise SourceError(f"{invisible} cannot read it ({err}): {advice}") from None
     if visible_rows is not None and model.rows_total != visible_rows:
         raise SourceError(f"{invisible} sees {model.rows_total}: {advice}")
     return model
+
+
+def check_readable(reader: duckdb.DuckDBPyConnection, source: str) -> None:
+    """Refuse a source the database cannot read (a missing file, say); a table the second connection cannot find
+    may be a temporary table of the calling connection, which the calling query itself reads."""
+    try:
+        DuckDBEngine(reader).describe(exp.select("*").from_(source_relation(source)))
+    except SourceError as err:
+        if "cannot be found" not in str(err):
+            raise
+
+
+def _text_number(text: str | None, name: str, default: float) -> float:
+    if text is None:
+        return default
+    try:
+        return float(text)
+    except ValueError:
+        raise FitError(f"{name} := {text!r} is not a number") from None

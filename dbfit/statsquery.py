@@ -16,7 +16,12 @@ from sqlglot import exp
 from dbfit import sqlbuild as sb
 from dbfit.design import SEGMENT, TARGET, Design
 from dbfit.engine import DuckDBEngine
+from dbfit.errors import FitError
 
+# The statistics query carries p(p + 1) / 2 sums for p dense columns (the intercept's besides): 45,150 at 300,
+# 500,500 at 1,000, where building and planning the one aggregate costs minutes and gigabytes. Wider designs
+# (numeric terms and indicator columns, not counting the levels of a factor fitted by blocks) are refused.
+MAX_DENSE_COLUMNS = 300
 EXTREME_ETA = 17.0  # |eta| beyond this puts the fitted probability within 4e-8 of 0 or 1
 
 
@@ -29,6 +34,19 @@ class PassResult:
     loglik: float
     extreme: float  # weighted count of rows fitted (numerically) at 0 or 1
     misfit_extreme: float  # of those, rows fitted at the wrong extreme
+
+
+def check_width(columns: int) -> None:
+    """Refuse a design too wide for one statistics query, before anything of it is built or run."""
+    if columns > MAX_DENSE_COLUMNS:
+        sums = columns * (columns + 1) // 2
+        raise FitError(
+            f"the design has {columns} columns besides the intercept (numeric terms and indicator columns): its "
+            f"statistics query would carry {sums:,} sums, and dbfit fits at most {MAX_DENSE_COLUMNS} in one query. "
+            "Use fewer "
+            "columns, put a categorical of many levels in the formula as one factor (fitted by blocks) instead "
+            "of indicator or numeric columns, or select predictors first (e.g. shrinkage on a subset)"
+        )
 
 
 def statistics_query(
@@ -52,6 +70,7 @@ def statistics_query(
     joined in and added to the linear predictor, and the sums are grouped by level, always including the
     sums of the constant column (per-level totals), so that the information can be assembled by blocks.
     """
+    check_width(len(active))
     z_names = [f"dbfit_z{j}" for j in active]
     segmented = coefficients is not None
     key_name = SEGMENT if segmented else (level_join[0] if level_join else None)

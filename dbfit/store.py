@@ -31,9 +31,10 @@ import duckdb
 import pyarrow as pa
 from sqlglot import exp
 
+from dbfit.engine import connection_lock
 from dbfit.errors import StoreConflictError, StoreError
 from dbfit.model import Model
-from dbfit.names import model_name
+from dbfit.names import model_name, model_version
 from dbfit.serialize import from_document, to_document
 
 SCHEMA = "dbfit_store"
@@ -138,6 +139,7 @@ def load_model(con: duckdb.DuckDBPyConnection, name: str, version: int | None = 
 
 def resolve_version(con: duckdb.DuckDBPyConnection, name: str, version: int | None) -> int:
     """The stored version asked for (default: the current one), or a StoreError naming what exists."""
+    version = model_version(version)
     versions = stored_versions(con, name)
     if not versions:
         known = [row[0] for row in _fetch(con, f"SELECT model FROM {SCHEMA}.models ORDER BY model")] if store_exists(con) else []
@@ -347,10 +349,11 @@ def version_table(con: duckdb.DuckDBPyConnection, table: str, name: str, version
         raise StoreError(f"no per-version store table {table!r}")
     if not has_table(con, table):
         return []
-    cursor = con.execute(f"SELECT * FROM {SCHEMA}.{table} WHERE model = ? AND version = ?"
-                         + (f" ORDER BY {order}" if order else ""), [name, version])
-    names = [d[0] for d in cursor.description]
-    return [dict(zip(names, row)) for row in cursor.fetchall()]
+    with connection_lock(con):
+        cursor = con.execute(f"SELECT * FROM {SCHEMA}.{table} WHERE model = ? AND version = ?"
+                             + (f" ORDER BY {order}" if order else ""), [name, version])
+        names = [d[0] for d in cursor.description]
+        return [dict(zip(names, row)) for row in cursor.fetchall()]
 
 
 def _set_current(writer: duckdb.DuckDBPyConnection, name: str, version: int) -> None:
@@ -515,7 +518,8 @@ def _run(connection: duckdb.DuckDBPyConnection, statements: list[str], parameter
 
 def _fetch(connection: duckdb.DuckDBPyConnection, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
     try:
-        return connection.execute(sql, parameters).fetchall() if parameters else connection.execute(sql).fetchall()
+        with connection_lock(connection):
+            return connection.execute(sql, parameters).fetchall() if parameters else connection.execute(sql).fetchall()
     except duckdb.Error as err:
         raise store_error(err) from None
 
