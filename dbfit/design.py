@@ -224,6 +224,14 @@ def _product_operands(node: exp.Expression) -> list[exp.Expression]:
     return [node]
 
 
+def _as_written(node: exp.Expression) -> str:
+    """``node`` as SQL text with its identifiers unquoted, as a user writes them in a formula."""
+    plain = node.copy()
+    for identifier in plain.find_all(exp.Identifier):
+        identifier.set("quoted", False)
+    return plain.sql(dialect="duckdb")
+
+
 def _refuse_categorical_products(engine: DuckDBEngine, design: Design) -> None:
     """``*`` inside a factor is SQL multiplication; of a categorical it means nothing, and Wilkinson-Rogers
     readers expect the crossing ``a + b + a:b``, so say how to write that instead."""
@@ -239,7 +247,7 @@ def _refuse_categorical_products(engine: DuckDBEngine, design: Design) -> None:
         kinds = types[at: at + len(operands)]
         at += len(operands)
         if any(CATEGORICAL_TYPE.match(kind) for kind in kinds):
-            texts = [operand.sql(dialect="duckdb") for operand in operands]
+            texts = [_as_written(operand) for operand in operands]
             crossing = [":".join(texts[k] for k in range(len(texts)) if mask >> k & 1)
                         for mask in sorted(range(1, 1 << len(texts)), key=lambda m: (bin(m).count("1"), m))]
             raise FormulaError(
