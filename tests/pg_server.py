@@ -63,3 +63,18 @@ def running_server(binaries: Path) -> Iterator[dict[str, object]]:
         subprocess.run(prefix + [str(binaries / "pg_ctl"), "-D", str(data), "-m", "fast", "-w", "stop"],
                        capture_output=True, timeout=120)
         shutil.rmtree(root, ignore_errors=True)
+
+
+@contextmanager
+def superuser_connection() -> Iterator[object]:
+    """An autocommit psycopg connection, as the superuser that initdb made, to a server started for the caller;
+    skips the test when psycopg or the PostgreSQL binaries are absent."""
+    import pytest
+
+    psycopg = pytest.importorskip("psycopg")
+    binaries = find_binaries()
+    if binaries is None:
+        pytest.skip("PostgreSQL binaries are not installed")
+    with running_server(binaries) as keywords:
+        with psycopg.connect(**keywords, autocommit=True) as connection:
+            yield connection
