@@ -2,15 +2,16 @@
 
 Every expression dbfit runs for the user (formula terms, the target, ``weights``, ``offset``, ``trials``,
 ``cluster``, ``by``, split keys, and every expression read back from a stored model or a model document) goes
-through :func:`check_expression`. A node is allowed only when its sqlglot class is in ``ALLOWED_NODES`` (the exact
-class, never a subclass) or, for a function sqlglot does not know (``exp.Anonymous``), when its name is in
-``ALLOWED_FUNCTIONS`` of some engine. Everything else is refused: unknown and user-defined functions (dbfit's own
-``dbfit_*`` included), volatile and session functions, functions touching files, large objects, settings or other
-tables, set-returning functions, ``*`` and ``COLUMNS``, subqueries, aggregates, windows, lambdas, placeholders.
+through :func:`check_expression`. A node is allowed only when its sqlglot class is in ``ALLOWED_NODES`` (the
+exact class, never a subclass) or, for a function sqlglot does not know (``exp.Anonymous``), when its name is
+in ``ALLOWED_FUNCTIONS`` of some engine. Everything else is refused: unknown and user-defined functions
+(dbfit's own ``dbfit_*`` included), volatile and session functions, functions touching files, large objects,
+settings or other tables, set-returning functions, ``*`` and ``COLUMNS``, subqueries, aggregates, windows,
+lambdas, placeholders.
 
-A SELECT given as a source is the user's own query: :func:`check_source_query` lets it also aggregate, use window
-and set-returning functions and read files (``SOURCE_TABLE_FUNCTIONS``), but calls no other function.
-"""
+A SELECT given as a source is the user's own query: :func:`check_source_query` lets it also aggregate, use
+window and set-returning functions and read files (``SOURCE_TABLE_FUNCTIONS``), but calls no other
+function."""
 
 from __future__ import annotations
 
@@ -26,12 +27,14 @@ _OPERATORS = (
     exp.Neg, exp.Not, exp.And, exp.Or, exp.Add, exp.Sub, exp.Mul, exp.Div, exp.IntDiv, exp.Mod, exp.Pow,
     exp.EQ, exp.NEQ, exp.GT, exp.GTE, exp.LT, exp.LTE, exp.NullSafeEQ, exp.NullSafeNEQ, exp.Is, exp.In,
     exp.Between, exp.Like, exp.ILike, exp.SimilarTo, exp.Glob, exp.DPipe,
-    exp.BitwiseAnd, exp.BitwiseOr, exp.BitwiseXor, exp.BitwiseNot, exp.BitwiseLeftShift, exp.BitwiseRightShift,
+    exp.BitwiseAnd, exp.BitwiseOr, exp.BitwiseXor, exp.BitwiseNot,
+    exp.BitwiseLeftShift, exp.BitwiseRightShift,
 )
 _CONDITIONALS = (exp.Case, exp.If, exp.Coalesce, exp.Nullif, exp.Greatest, exp.Least)
 _MATH = (
-    exp.Abs, exp.Ln, exp.Log, exp.Exp, exp.Sqrt, exp.Cbrt, exp.Round, exp.Floor, exp.Ceil, exp.Sign, exp.Trunc,
-    exp.Sin, exp.Cos, exp.Tan, exp.Cot, exp.Asin, exp.Acos, exp.Atan, exp.Atan2, exp.Pi, exp.Degrees, exp.Radians,
+    exp.Abs, exp.Ln, exp.Log, exp.Exp, exp.Sqrt, exp.Cbrt, exp.Round, exp.Floor, exp.Ceil, exp.Sign,
+    exp.Trunc, exp.Sin, exp.Cos, exp.Tan, exp.Cot, exp.Asin, exp.Acos, exp.Atan, exp.Atan2, exp.Pi,
+    exp.Degrees, exp.Radians,
     exp.IsNan, exp.IsInf, exp.WidthBucket,
 )
 _STRINGS = (
@@ -55,7 +58,8 @@ ALLOWED_NODES: frozenset[type[exp.Expression]] = frozenset(
 # pure, deterministic and row-wise on the engine that spells it so, and harmless (or absent) on the others.
 ALLOWED_FUNCTIONS: dict[str, frozenset[str]] = {
     "duckdb": frozenset({
-        "date_part", "datepart", "date_sub", "isfinite", "hash", "prefix", "suffix", "even", "gamma", "lgamma",
+        "date_part", "datepart", "date_sub", "isfinite", "hash", "prefix", "suffix", "even", "gamma",
+        "lgamma",
         "factorial", "gcd", "lcm", "bit_count", "nextafter", "epoch_ms", "make_timestamp", "make_time",
         "strip_accents", "isoyear", "yearweek", "era", "millennium", "century", "decade", "nanosecond",
         "microsecond", "millisecond", "signbit", "ln1p",
@@ -73,7 +77,8 @@ _ANY_ENGINE = frozenset().union(*ALLOWED_FUNCTIONS.values())
 
 # Date-part and interval unit words (exp.Var): anything else spelled as a bare word is refused.
 DATE_UNITS = frozenset({
-    "year", "years", "quarter", "quarters", "month", "months", "week", "weeks", "day", "days", "hour", "hours",
+    "year", "years", "quarter", "quarters", "month", "months", "week", "weeks", "day", "days", "hour",
+    "hours",
     "minute", "minutes", "second", "seconds", "millisecond", "milliseconds", "microsecond", "microseconds",
     "dow", "doy", "isodow", "isoyear", "epoch", "decade", "century", "millennium", "yearweek", "dayofweek",
     "dayofyear", "dayofmonth", "weekday", "weekofyear", "nanosecond", "nanoseconds",
@@ -81,7 +86,8 @@ DATE_UNITS = frozenset({
 
 # Bare words that PostgreSQL reads as session functions when unquoted: as identifiers they are quoted.
 _SESSION_WORDS = frozenset({
-    "user", "current_user", "session_user", "current_role", "current_catalog", "current_schema", "system_user",
+    "user", "current_user", "session_user", "current_role", "current_catalog", "current_schema",
+    "system_user",
     "current_date", "current_time", "current_timestamp", "localtime", "localtimestamp",
 })
 
@@ -92,7 +98,7 @@ SOURCE_TABLE_FUNCTIONS = frozenset({
     "read_ndjson", "read_ndjson_auto", "range", "generate_series", "unnest",
 })
 _SOURCE_NODES = (
-    exp.Unnest, exp.Explode, exp.GenerateSeries, exp.ReadCSV, exp.ReadParquet, exp.Columns,
+    exp.Array, exp.Unnest, exp.Explode, exp.GenerateSeries, exp.ReadCSV, exp.ReadParquet, exp.Columns,
     exp.RowNumber, exp.Rank, exp.DenseRank, exp.Lag, exp.Lead, exp.FirstValue, exp.LastValue, exp.NthValue,
     exp.PercentRank, exp.CumeDist,
 )
@@ -113,26 +119,33 @@ def check_expression(node: exp.Expression, where: str) -> exp.Expression:
         elif isinstance(sub, exp.Var) and sub.name.lower() not in DATE_UNITS:
             raise FormulaError(f"the word {sub.name} in {where} is not allowed: only date-part units are")
         elif isinstance(sub, exp.DataType) and sub.this == exp.DataType.Type.USERDEFINED:
-            raise FormulaError(f"cast to type {sub.sql('duckdb')} in {where} is not allowed: only built-in types are")
+            raise FormulaError(
+                f"cast to type {sub.sql('duckdb')} in {where} is not allowed: only built-in types are"
+            )
         elif isinstance(sub, exp.Identifier) and not sub.quoted and sub.name.lower() in _SESSION_WORDS:
             sub.set("quoted", True)
     return node
 
 
 def check_source_query(node: exp.Expression, text: str) -> None:
-    """Refuse a function call in a SELECT source unless it is allowlisted scalar, aggregate, window or reader."""
+    """Refuse a function call in a SELECT source unless it is an allowlisted scalar, an aggregate, a window
+    function or a reader."""
     for sub in node.walk():
         if isinstance(sub, exp.Anonymous):
             name = sub.name.lower()
             if name not in _ANY_ENGINE and name not in SOURCE_TABLE_FUNCTIONS:
-                raise SourceError(f"source {text[:80]!r} calls function {sub.name}, which a source may not call: a "
-                                  "source reads rows (tables, files, row-wise functions, aggregates); create a view "
-                                  "for anything else")
+                raise SourceError(
+                    f"source {text[:80]!r} calls function {sub.name}, which a source may not call: a source "
+                    "reads rows (tables, files, row-wise functions, aggregates); create a view for anything "
+                    "else"
+                )
         elif isinstance(sub, (exp.Placeholder, exp.Parameter, exp.SessionParameter)):
             raise SourceError(f"source {text[:80]!r} holds a parameter placeholder {sub.sql('duckdb')}")
         elif isinstance(sub, exp.Func) and not _source_function(sub):
-            raise SourceError(f"source {text[:80]!r} calls {_describe(sub)}, which a source may not call: a source "
-                              "reads rows; volatile and session functions change between reads")
+            raise SourceError(
+                f"source {text[:80]!r} calls {_describe(sub)}, which a source may not call: a source "
+                "reads rows; volatile and session functions change between reads"
+            )
 
 
 def _source_function(node: exp.Func) -> bool:

@@ -1,8 +1,9 @@
 """Turn the user's ``source`` (table or view name, file path, or single SELECT) into a FROM item.
 
 The text is parsed with sqlglot and rebuilt as an expression tree; it is never spliced into SQL. A SELECT is
-the user's own query, read-only, and calls only the functions :func:`dbfit.expression_rules.check_source_query`
-allows (row-wise scalars, aggregates, windows, file readers and set-returning functions).
+the user's own query, read-only, and calls only the functions that
+:func:`dbfit.expression_rules.check_source_query` allows (row-wise scalars, aggregates, windows, file readers
+and set-returning functions).
 """
 
 from __future__ import annotations

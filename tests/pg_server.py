@@ -76,3 +76,13 @@ def server_or_skip() -> Iterator[dict[str, object]]:
         pytest.skip("PostgreSQL binaries are not installed")
     with running_server(binaries) as keywords:
         yield keywords
+
+
+@contextmanager
+def superuser_connection() -> Iterator[object]:
+    """An autocommit psycopg connection, as the superuser that initdb made, to a server started for the caller;
+    skips the test when psycopg or the PostgreSQL binaries are absent."""
+    import psycopg
+
+    with server_or_skip() as keywords, psycopg.connect(**keywords, autocommit=True) as connection:
+        yield connection
