@@ -30,7 +30,9 @@ from dbfit.statsquery import PassResult
 
 Evaluate = Callable[[list[int], np.ndarray], PassResult]
 FINAL_STEP = 1e-10  # largest step on the internal scale accepted at convergence
-CURVATURE_MAX_PARAMETERS = 30  # up to this many, the Newton matrix has the penalty's curvature (p^3 / 6 sums)
+# Up to this many parameters the Newton matrix has the penalty's curvature, from p^3 / 6 third moments
+# (364 at 12): beyond, that many sums would outgrow the O(p^2) numbers a pass may bring out of the database.
+CURVATURE_MAX_PARAMETERS = 12
 
 
 def hat_value_expression(z: list[exp.Expression], inverse: np.ndarray) -> exp.Expression:
@@ -44,7 +46,7 @@ def hat_value_expression(z: list[exp.Expression], inverse: np.ndarray) -> exp.Ex
 
 
 def adjustment_query(design: Design, parameters: list[int], beta: np.ndarray, inverse: np.ndarray,
-                     curvature: bool) -> exp.Select:
+                     curvature: bool = False) -> exp.Select:
     """The sums over the rows that Firth's score and its derivative need, as one row.
 
     ``s{k}``: sum_i h_i (1/2 - mu_i) z_ik, the penalty's part of the modified score. With ``curvature`` also
@@ -55,18 +57,20 @@ def adjustment_query(design: Design, parameters: list[int], beta: np.ndarray, in
     terms = row_terms(design, parameters, beta)
     size = len(parameters)
     z = [terms.z(k) for k in range(size)]
+    a = [sb.column(f"a{k}") for k in range(size)]
+    with_hat = exp.select(*[exp.alias_(zk, f"a{k}", quoted=True) for k, zk in enumerate(z)],
+                          exp.alias_(hat_value_expression(z, inverse), "hat", quoted=True),
+                          sb.column("mu"), sb.column("wt")).from_(terms.subquery())
     half_minus_mu = sb.paren(sb.sub(exp.Literal.number(0.5), sb.column("mu")))
-    columns = [exp.alias_(zk, f"a{k}", quoted=True) for k, zk in enumerate(z)]
-    columns.append(exp.alias_(sb.mul(hat_value_expression(z, inverse), half_minus_mu), "h", quoted=True))
+    factors = {"h": sb.mul(sb.column("hat"), half_minus_mu)}
     if curvature:
         mu_variance = sb.mul(sb.column("mu"), sb.paren(sb.sub(exp.Literal.number(1), sb.column("mu"))))
         three_variances = sb.mul(exp.Literal.number(3), mu_variance)
-        curvature_factor = sb.paren(sb.sub(exp.Literal.number(0.5), three_variances))
-        hat = hat_value_expression(z, inverse)
-        columns.append(exp.alias_(sb.mul(hat, curvature_factor), "g", quoted=True))
-        columns.append(exp.alias_(sb.mul(sb.column("wt"), half_minus_mu.copy()), "q", quoted=True))
-    with_hat = exp.select(*columns).from_(terms.subquery())
-    a = [sb.column(f"a{k}") for k in range(size)]
+        factors["g"] = sb.mul(sb.column("hat"), sb.paren(sb.sub(exp.Literal.number(0.5), three_variances)))
+        factors["q"] = sb.mul(sb.column("wt"), half_minus_mu.copy())
+    per_row = exp.select(*[node.copy() for node in a],
+                         *[exp.alias_(node, name, quoted=True) for name, node in factors.items()]
+                         ).from_(with_hat.subquery("dbfit_hat"))
     sums = [(f"s{k}", sb.agg_sum(sb.mul(sb.column("h"), a[k].copy()))) for k in range(size)]
     if curvature:
         sums += [(f"c{i}_{j}", sb.agg_sum(sb.mul(sb.column("g"), a[i].copy(), a[j].copy())))
@@ -74,7 +78,7 @@ def adjustment_query(design: Design, parameters: list[int], beta: np.ndarray, in
         sums += [(f"t{i}_{j}_{k}", sb.agg_sum(sb.mul(sb.column("q"), a[i].copy(), a[j].copy(), a[k].copy())))
                  for i, j, k in _triples(size)]
     return exp.select(*[exp.alias_(node, name, quoted=True) for name, node in sums]).from_(
-        with_hat.subquery("dbfit_hat")
+        per_row.subquery("dbfit_factors")
     )
 
 
@@ -95,17 +99,25 @@ def penalised_information(information: np.ndarray, inverse: np.ndarray, pair_sum
     (derived here, not taken from a paper): C = sum_i h_i (1/2 - 3 mu_i (1 - mu_i)) z_i z_i', and
     T_jk = trace(A_j M A_k M) with M = I^-1 and (A_j)_ab = sum_i w_i (1/2 - mu_i) z_ij z_ia z_ib.
     """
-    size = information.shape[0]
-    curvature = np.zeros((size, size))
+    return information - _pair_matrix(pair_sums, information.shape[0]) + _moment_cross(triple_sums, inverse)
+
+
+def _pair_matrix(pair_sums: np.ndarray, size: int) -> np.ndarray:
+    matrix = np.zeros((size, size))
     for value, (i, j) in zip(pair_sums, _pairs(size)):
-        curvature[i, j] = curvature[j, i] = value
+        matrix[i, j] = matrix[j, i] = value
+    return matrix
+
+
+def _moment_cross(triple_sums: np.ndarray, inverse: np.ndarray) -> np.ndarray:
+    """2 T with T_jk = trace(A_j M A_k M), from the third moments listed for j <= a <= b."""
+    size = inverse.shape[0]
     moments = np.zeros((size, size, size))
     for value, (i, j, k) in zip(triple_sums, _triples(size)):
         for a, b, c in {(i, j, k), (i, k, j), (j, i, k), (j, k, i), (k, i, j), (k, j, i)}:
             moments[a, b, c] = value
     scaled = np.einsum("jab,bc->jac", moments, inverse)  # A_j M
-    cross = np.einsum("jab,kba->jk", scaled, scaled)  # trace(A_j M A_k M)
-    return information - curvature + 2.0 * cross
+    return 2.0 * np.einsum("jab,kba->jk", scaled, scaled)  # 2 trace(A_j M A_k M)
 
 
 def firth_evaluator(engine: DuckDBEngine, design: Design, evaluate: Evaluate, protected: int) -> Evaluate:
@@ -128,17 +140,18 @@ def firth_evaluator(engine: DuckDBEngine, design: Design, evaluate: Evaluate, pr
         if sign <= 0:
             raise FitError("the information matrix is singular at the current estimates; the Firth penalty is undefined")
         inverse = np.linalg.inv(gram)
-        curvature = len(keep) == len(parameters) and len(keep) <= CURVATURE_MAX_PARAMETERS
+        size = len(keep)
+        curvature = size == len(parameters) and size <= CURVATURE_MAX_PARAMETERS
         kept = [parameters[k] for k in keep]
         row = engine.fetch(adjustment_query(design, kept, beta[keep], inverse, curvature))[0]
         values = np.array([0.0 if v is None else float(v) for v in row])
         score = core.score.copy()
-        score[keep] += values[: len(keep)]
+        score[keep] += values[:size]
         newton_matrix = core.gram
         if curvature:
-            pairs = len(_pairs(len(keep)))
-            candidate = penalised_information(gram, inverse, values[len(keep): len(keep) + pairs],
-                                              values[len(keep) + pairs:])
+            pairs = len(_pairs(size))
+            pair_sums, triple_sums = values[size: size + pairs], values[size + pairs:]
+            candidate = penalised_information(gram, inverse, pair_sums, triple_sums)
             if _positive_definite(candidate):
                 newton_matrix = candidate
         penalised = core.loglik + 0.5 * log_determinant

@@ -236,6 +236,7 @@ def _fit(
             fallback_start=None if start is None else default_start,
             weight_total=design.trial_sum,
             start_deviance=start_deviance,
+            detect_separation=not firth,
         )
     active = [fitted[k] for k in newton.active]
     aliased = sorted(constant + [fitted[k] for k in newton.aliased])

