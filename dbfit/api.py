@@ -24,7 +24,8 @@ def fit(con: duckdb.DuckDBPyConnection, formula: str, source: str, *, name: str 
 
     With ``split=dbfit.Holdout(key, share)`` the model is fitted on the training part only and its held-out
     metrics (at ``threshold``) go to ``model.stats["holdout"]``. ``model.source`` stays the whole source and
-    ``model.split`` the rule; ``assess`` and reports then default to the held-out rows, ``score`` scores all rows.
+    ``model.split`` the rule; ``assess`` and reports then default to the held-out rows, ``score`` scores all
+    rows.
     """
     progress = options.pop("progress", None)
     chosen = FitOptions.of(**options)
@@ -60,8 +61,8 @@ def _part_source(source: str, split: Holdout | KFold, part: str | int, keep: boo
     return part_source(source, split, part, keep=keep)
 
 
-def assess(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *, rows: str | None = None,
-           threshold: float = 0.5, version: int | None = None) -> pa.Table:
+def assess(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *,
+           rows: str | None = None, threshold: float = 0.5, version: int | None = None) -> pa.Table:
     """One row per metric (metric, value, note) of ``model``; the note of metric ``rows`` says which rows.
 
     Default: the held-out rows of a holdout fit, else all rows of the model's source (in-sample). ``source``
@@ -74,12 +75,13 @@ def assess(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | Non
 
 
 def assessment_tables(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *,
-                      rows: str | None = None, threshold: float = 0.5, version: int | None = None) -> dict[str, pa.Table]:
-    """Metrics, confusion counts, cut-off curve, calibration and gains of ``model`` (rows as in :func:`assess`)."""
+                      rows: str | None = None, threshold: float = 0.5,
+                      version: int | None = None) -> dict[str, pa.Table]:
+    """Metrics, confusion counts, cut-off curve, calibration and gains of ``model`` (rows as ``assess``)."""
     resolved = deploy.resolve_model(con, model, version)
     text, note = resolved.assessed_rows(source, rows)
-    return assessment.assessment_tables(DuckDBEngine(con), assessment.scored_relation(resolved, text), threshold,
-                                        rows_note=note)
+    scored = assessment.scored_relation(resolved, text)
+    return assessment.assessment_tables(DuckDBEngine(con), scored, threshold, rows_note=note)
 
 
 def cross_validate(con: duckdb.DuckDBPyConnection, formula: str, source: str, split: KFold, *,
@@ -125,7 +127,8 @@ def from_json(text: str) -> Model:
 
 
 def score(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *, rows: str = "all",
-          version: int | None = None, standard_error: bool = False, level: float = 0.95, unseen: str = "null") -> pa.Table:
+          version: int | None = None, standard_error: bool = False, level: float = 0.95,
+          unseen: str = "null") -> pa.Table:
     """Every column of the rows plus the score columns, as a pyarrow table; its schema metadata ``dbfit_rows``
     says which rows (default: all rows of ``source``, else of the model's whole source).
 
@@ -134,7 +137,8 @@ def score(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None
     """
     resolved = deploy.resolve_model(con, model, version)
     text, note = resolved.assessed_rows(source, rows)
-    query = deploy.build_scoring(con, resolved, text, unseen=unseen, standard_error=standard_error, level=level)
+    query = deploy.build_scoring(con, resolved, text, unseen=unseen, standard_error=standard_error,
+                                 level=level)
     try:
         table = con.sql(query.sql("duckdb")).to_arrow_table()
     except duckdb.Error as err:

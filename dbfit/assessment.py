@@ -65,7 +65,7 @@ class Metrics:
 
 def metrics(engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5,
             rows_note: str | None = None) -> Metrics:
-    """Every metric of the assessment from two scans of the scored rows; ``rows_note`` says which rows they are."""
+    """Every metric of the assessment from two scans of the scored rows; ``rows_note`` says which rows."""
     threshold = check_threshold(threshold)
     point = parse_one(
         f"""SELECT count(*) AS n, sum(y) AS positives,

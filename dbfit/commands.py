@@ -16,6 +16,8 @@ import duckdb
 from dbfit.errors import DbfitError, GateRefusedError, UsageError
 from dbfit.model import ROW_CHOICES
 
+ROWS_HELP = "this part of the model's split (of --source if given)"
+
 OK, REFUSED, DATA_ERROR = 0, 3, 4
 Command = Callable[[str, str], argparse.ArgumentParser]
 
@@ -73,9 +75,9 @@ def add_model_commands(command: Command) -> None:
                          help="replace a view of that name even when dbfit did not publish it")
 
     assess = base("assess", "metrics of a model on a source (AUC, log loss, Brier score, ...)")
-    assess.add_argument("--source", help="rows to assess on (default: the held-out rows of a holdout fit, else all "
-                        "rows of the model's source)")
-    assess.add_argument("--rows", choices=ROW_CHOICES, help="this part of the model's split (of --source if given)")
+    assess.add_argument("--source", help="rows to assess on (default: the held-out rows of a holdout fit, "
+                        "else all rows of the model's source)")
+    assess.add_argument("--rows", choices=ROW_CHOICES, help=ROWS_HELP)
     assess.add_argument("--version", type=int, help="stored version (default: the current one)")
     assess.add_argument("--threshold", type=float, default=0.5, help="probability cut-off (default %(default)s)")
 
@@ -86,7 +88,7 @@ def add_model_commands(command: Command) -> None:
     report = base("report", "write the HTML report of a model")
     report.add_argument("--output", required=True, help="HTML file to write")
     report.add_argument("--source", help="rows to assess in the report (default: as for assess)")
-    report.add_argument("--rows", choices=ROW_CHOICES, help="this part of the model's split (of --source if given)")
+    report.add_argument("--rows", choices=ROW_CHOICES, help=ROWS_HELP)
     report.add_argument("--version", type=int, help="stored version (default: the current one)")
 
 
@@ -237,7 +239,8 @@ def _report(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[st
     if model.design.trials is None:
         tables = dbfit.assessment_tables(con, model, args.source, rows=args.rows)
     path = write_report(model, args.output, assessment=tables)
-    rows = _rows_note(tables["metrics"]) if tables else "none: a model of successes out of trials is not assessed"
+    rows = _rows_note(tables["metrics"]) if tables else (
+        "none: a model of successes out of trials is not assessed")
     return {"model": model.name, "version": model.version, "rows": rows, "output": str(path)}
 
 

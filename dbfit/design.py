@@ -46,7 +46,7 @@ class Factor:
     kind: str = ""  # "numeric" or "categorical"
     levels: list[Any] = field(default_factory=list)  # python values, sorted; first non-dropped is reference
     reference: Any = None
-    cast_from: str | None = None  # a text factor cast from this numeric type: scoring compares levels as numbers
+    cast_from: str | None = None  # text cast from this numeric type: scoring compares levels as numbers
 
     def level_label(self, value: Any) -> str:
         return level_label(value)
@@ -101,7 +101,7 @@ class Design:
     loglik_constant: float = 0.0  # weighted sum of log binomial coefficients
     saturated_loglik: float = 0.0
     rows_zero_trials: int = 0  # grouped rows with 0 trials: used, but they carry no information
-    source_columns: list[str] = field(default_factory=list)  # the source's columns used, spelled as the source does
+    source_columns: list[str] = field(default_factory=list)  # columns used, as the source spells them
 
     @property
     def rows_informative(self) -> int:
@@ -327,7 +327,8 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
     aggregates = outcome_sums(design)
     aggregates["bad_target"] = _count_where(_bad_target_condition(design))
     if design.trials is not None:
-        aggregates["zero_trials"] = _count_where(exp.EQ(this=sb.column(TRIALS), expression=exp.Literal.number(0)))
+        no_trials = exp.EQ(this=sb.column(TRIALS), expression=exp.Literal.number(0))
+        aggregates["zero_trials"] = _count_where(no_trials)
     if design.weights is not None:
         aggregates["bad_weight"] = _count_where(
             exp.Or(this=exp.LT(this=w.copy(), expression=exp.Literal.number(0)), expression=exp.Not(this=sb.func("isfinite", w.copy())))

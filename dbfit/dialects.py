@@ -8,7 +8,8 @@ that another engine treats differently, and sqlglot then writes the tree in that
 - the sorted list of distinct levels: Spark collects a set and sorts it.
 - PostgreSQL inlines a subquery's expressions into every aggregate above it; ``OFFSET 0`` fences each one.
 - column names: DuckDB matches them case-insensitively, PostgreSQL folds unquoted names to lower case and
-  refuses reserved words (``default``), so :func:`resolve_columns` spells each column as the source does, quoted.
+  refuses reserved words (``default``), so :func:`resolve_columns` spells each column as the source does,
+  quoted.
 """
 
 from __future__ import annotations
@@ -59,9 +60,9 @@ def _rewrite(node: exp.Expression, dialect: str) -> exp.Expression:
 def resolve_columns(trees: list[exp.Expression | None], columns: list[str]) -> list[str]:
     """Spell every unqualified column of ``trees`` (changed in place) as the source column it names, quoted.
 
-    Names match case-insensitively, as in DuckDB; when several columns differ only in case, a quoted name that
-    matches one exactly picks it, otherwise the name is ambiguous and refused. A name matching no column is left
-    as written (the engine then reports it). Returns the source columns used, in order of first use.
+    Names match case-insensitively, as in DuckDB; when several columns differ only in case, a quoted name
+    that matches one exactly picks it, otherwise the name is ambiguous and refused. A name matching no column
+    is left as written (the engine then reports it). Returns the source columns used, in order of first use.
     """
     by_folded: dict[str, list[str]] = {}
     for name in columns:

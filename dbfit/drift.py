@@ -151,14 +151,14 @@ def _append(rows: dict[str, list[Any]], *values: Any) -> None:
 
 
 def _check_new_rows(source: str, rows: dict[str, int]) -> None:
-    """Refuse a comparison with no new rows: a PSI against zero rows reads as a large shift that is not there."""
+    """Refuse a comparison with no new rows: a PSI against zero rows reads as a shift that is not there."""
     empty = [name for name, n in rows.items() if n == 0]
     if rows and len(empty) == len(rows):
-        raise DbfitError(f"the source {source} has 0 rows with values of the model's variables; drift compares new "
-                         "rows with the training snapshot and needs some")
+        raise DbfitError(f"the source {source} has 0 rows with values of the model's variables; drift "
+                         "compares new rows with the training snapshot and needs some")
     if empty:
-        raise DbfitError(f"the source {source} has 0 rows with a value of {', '.join(empty)}; drift needs new rows "
-                         "for every variable")
+        raise DbfitError(f"the source {source} has 0 rows with a value of {', '.join(empty)}; drift needs "
+                         "new rows for every variable")
 
 
 def psi_table(con: Any, model: Model, source: str) -> pa.Table:
@@ -187,8 +187,9 @@ def psi_table(con: Any, model: Model, source: str) -> pa.Table:
     categorical = _level_counts(engine, scored, [(name, expressions[name][1]) for name, bins in by_variable.items()
                                                  if bins[0]["kind"] == "categorical" and name in expressions])
     out: dict[str, list[Any]] = {k: [] for k in ("variable", "kind", "bins", "training_rows", "new_rows", "psi", "reading")}
-    _check_new_rows(source, {name: sum(counts[name]) if name in counts else sum(categorical.get(name, {}).values())
-                             for name in by_variable if name in expressions})
+    _check_new_rows(source, {
+        name: sum(counts[name]) if name in counts else sum(categorical.get(name, {}).values())
+        for name in by_variable if name in expressions})
     for name, bins in by_variable.items():
         expected = [b["share"] for b in bins]
         if bins[0]["kind"] == "categorical":

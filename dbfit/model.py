@@ -77,7 +77,7 @@ class Model:
         return "held_out" if self.split is not None else "all"
 
     def rows_source(self, rows: str, source: str | None = None) -> str:
-        """``rows`` ("held_out", "training" or "all") of ``source`` (default: the model's source) as source text."""
+        """``rows`` ("held_out", "training", "all") of ``source`` (default: the model's) as source text."""
         from dbfit.errors import UsageError
         from dbfit.splits import part_source
 
@@ -90,17 +90,19 @@ class Model:
         if split is None:
             if rows == "training" and source is None:
                 return whole
-            raise UsageError(f"rows={rows!r} needs a model fitted with split=dbfit.Holdout(...); this one has none")
+            raise UsageError(f"rows={rows!r} needs a model fitted with split=dbfit.Holdout(...); "
+                             "this one has none")
         return part_source(whole, split, "holdout" if rows == "held_out" else "train")
 
     def rows_note(self, rows: str | None, source: str | None = None) -> str:
-        """Which rows a command used, in words (``rows=None``: the rows of a given ``source``, all of them)."""
+        """Which rows a command used, in words (``rows=None``: all rows of a given ``source``)."""
         whole = source if source is not None else self.source
         split = self.split
         if rows is None:
             return f"all rows of the given source {whole}"
         if split is None:
-            return f"all rows of {whole}" + (": the rows the model was fitted on (in-sample)" if source is None else "")
+            fitted = ": the rows the model was fitted on (in-sample)" if source is None else ""
+            return f"all rows of {whole}{fitted}"
         how = f"split on the hash of {split.key}, held-out share {split.share:g}"
         return {
             "held_out": f"held-out rows of {whole} ({how}): out-of-sample",
@@ -111,8 +113,8 @@ class Model:
     def assessed_rows(self, source: str | None, rows: str | None) -> tuple[str, str]:
         """The source text and the rows note of an assessment or report on ``source`` / ``rows``.
 
-        Neither given: the model's :attr:`default_rows`. ``source`` alone: all its rows. ``rows`` alone: that part
-        of the model's source. Both: that part of ``source`` by the model's split rule.
+        Neither given: the model's :attr:`default_rows`. ``source`` alone: all its rows. ``rows`` alone: that
+        part of the model's source. Both: that part of ``source`` by the model's split rule.
         """
         if rows is None and source is None:
             rows = self.default_rows
@@ -155,8 +157,9 @@ class Model:
             f"  data      {self.source}",
             *([f"  split     fitted on the training rows; share {self.split.share:g} held out by the hash of "
                f"{self.split.key} (figures in stats['holdout'])"] if self.split is not None else []),
-            f"  rows      {s['n_used']:,} used, {s['n_excluded']:,} set aside for NULLs"
-            + (f"; {s['rows_zero_trials']:,} used rows have 0 trials (no information)" if s.get("rows_zero_trials") else ""),
+            f"  rows      {s['n_used']:,} used, {s['n_excluded']:,} set aside for NULLs" + (
+                f"; {s['rows_zero_trials']:,} used rows have 0 trials (no information)"
+                if s.get("rows_zero_trials") else ""),
             f"  fit       {'converged' if s['converged'] else 'NOT converged'} after {s['iterations']} Newton passes"
             f" ({s['scans']} scans of the data)",
             f"  deviance  {s['deviance']:,.4f} on {s['df_residual']:,} df; intercept-only {s['null_deviance']:,.4f}",

@@ -203,8 +203,8 @@ def _numeric_levels(factor: Factor) -> list[float | int] | None:
     """The levels as numbers when the factor casts a number to text (``x::VARCHAR``), else None.
 
     Engines write numbers as text differently (a DOUBLE 2 is '2.0' in DuckDB and Spark, '2' in PostgreSQL), so
-    such levels are compared as numbers with the uncast value: exact for integers, and for floating-point values
-    exact too, since each engine writes a double with the shortest text that reads back as the same double.
+    such levels are compared as numbers with the uncast value: exact for integers, and for floating-point
+    values exact too, since each engine writes a double with the shortest text that reads back as itself.
     """
     if factor.cast_from is None:
         return None
@@ -225,7 +225,7 @@ def _compared(factor: Factor) -> exp.Expression:
 
 
 def _level(factor: Factor, value: Any, dialect: str) -> exp.Expression:
-    """A level as a literal (a number for numeric levels); T-SQL has no boolean values, so its BIT levels are 1, 0."""
+    """A level as a literal (a number for numeric levels); T-SQL has no booleans: its BIT levels are 1, 0."""
     numbers = _numeric_levels(factor)
     if numbers is not None:
         number = numbers[factor.levels.index(value)]
@@ -274,7 +274,7 @@ def _column_value(design: Design, column: DesignColumn, dialect: str) -> exp.Exp
 
 
 def _unseen_message(factor: Factor) -> exp.Expression:
-    """The text of the unseen-level error, naming the row's value and the factor: 'Airport' of depot was not ..."""
+    """The unseen-level error text naming the row's value and the factor: 'Airport' of depot was not ..."""
     value = exp.Cast(this=factor.expression.copy(), to=exp.DataType.build("VARCHAR"))
     return exp.Concat(expressions=[exp.Literal.string("dbfit: '"), value,
                                    exp.Literal.string(f"' of {factor.text} was not seen in training")])

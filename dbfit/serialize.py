@@ -1,16 +1,19 @@
 """The model document: a fitted model as plain JSON, to store it or move it between databases.
 
 Format ``dbfit-model`` version 1 (our own; documented in README.md). Top-level keys:
-``format``, ``format_version``, ``formula``, ``source``, ``options``, ``intercept``, ``coding`` (``marginal``:
-indicators follow the marginality rule of :func:`dbfit.design.marginal_codings`; absent in older documents,
-whose categoricals were all coded against their reference level), ``offset``, ``factors`` (expression text, kind, SQL type, levels, reference level; ``cast_from``, the numeric type of a
-text factor written as a cast of a number, whose levels scoring compares as numbers), ``columns`` (label, term, indices of the
-numeric factors multiplied together, indicator pairs ``[factor index, level]``, internal centre and scale,
-constant flag), ``labels``, ``estimates`` (original scale, ``null`` when aliased), ``covariance`` (p x p,
-``null`` for aliased rows and columns), ``source_columns`` (the source's columns the formula and options use,
-spelled as the source does; the expressions are matched to them case-insensitively and quoted), ``stats``, ``warnings`` and ``fingerprint`` (rows in the source, rows
-used, source text, fit time in UTC). Floats are written with Python's shortest round-trip repr, so a document
-read back gives bit-identical numbers.
+``format``, ``format_version``, ``formula``, ``source`` (the whole source, also for a holdout fit),
+``options``, ``intercept``, ``coding`` (``marginal``: indicators follow the marginality rule of
+:func:`dbfit.design.marginal_codings`; absent in older documents, whose categoricals were all coded against
+their reference level), ``offset``, ``factors`` (expression text, kind, SQL type, levels, reference level;
+``cast_from``, the numeric type of a text factor written as a cast of a number, whose levels scoring
+compares as numbers),
+``columns`` (label, term, indices of the numeric factors multiplied together, indicator pairs
+``[factor index, level]``, internal centre and scale, constant flag), ``labels``, ``estimates`` (original
+scale, ``null`` when aliased), ``covariance`` (p x p, ``null`` for aliased rows and columns),
+``source_columns`` (the source's columns the formula and options use, spelled as the source does; the
+expressions are matched to them case-insensitively and quoted), ``stats``, ``warnings`` and ``fingerprint``
+(rows in the source, rows used, source text, fit time in UTC). Floats are written with Python's shortest
+round-trip repr, so a document read back gives bit-identical numbers.
 """
 
 from __future__ import annotations
@@ -47,8 +50,8 @@ def to_document(model: Model) -> dict[str, Any]:
         "offset": design.offset_text,
         **({"source_columns": list(design.source_columns)} if design.source_columns else {}),
         "factors": [
-            {"expression": f.text, "kind": f.kind, "sql_type": f.sql_type, "levels": list(f.levels), "reference": f.reference,
-             **({"cast_from": f.cast_from} if f.cast_from else {})}
+            {"expression": f.text, "kind": f.kind, "sql_type": f.sql_type, "levels": list(f.levels),
+             "reference": f.reference, **({"cast_from": f.cast_from} if f.cast_from else {})}
             for f in design.factors
         ],
         "columns": [

@@ -113,7 +113,8 @@ def part_condition(split: Holdout | KFold, part: str | int, *, keep: bool = True
     """
     keys = [parse_expression(split.key, "split key")]
     if isinstance(split, Holdout):
-        held_out = exp.Coalesce(this=holdout_condition(keys, split.share, held_out=True), expressions=[exp.false()])
+        below = holdout_condition(keys, split.share, held_out=True)
+        held_out = exp.Coalesce(this=below, expressions=[exp.false()])
         wanted = (part == "holdout") == keep
         return held_out if wanted else exp.Not(this=exp.Paren(this=held_out))
     if not isinstance(split.folds, int) or split.folds < 2:
@@ -132,5 +133,5 @@ def part_relation(relation: exp.Expression, split: Holdout | KFold, part: str | 
 
 
 def part_source(source: str, split: Holdout | KFold, part: str | int, *, keep: bool = True) -> str:
-    """One part of the split of ``source`` as a SELECT (SQL text written by sqlglot from the parsed source)."""
+    """One part of the split of ``source`` as a SELECT (text written by sqlglot from the parsed source)."""
     return exp.select("*").from_(part_relation(source_relation(source), split, part, keep=keep)).sql("duckdb")

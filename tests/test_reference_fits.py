@@ -213,18 +213,20 @@ def test_standard_errors_belong_to_the_estimates_returned(con):
 
 def test_grouped_rows_with_zero_trials_are_accepted_counted_and_carry_no_information(con):
     # Source: the beetle mortality data and printed fit of Dobson and Barnett (3rd ed., section 7.3.2, from
-    # memory: b2 = 34.270, D = 11.23 on 6 df), plus two invented doses nobody was exposed to. Rows with 0 trials
-    # add nothing to the likelihood (common practice), so the fit, deviance and df are those of the 8 groups.
+    # memory: b2 = 34.270, D = 11.23 on 6 df), plus two invented doses nobody was exposed to. Rows with
+    # 0 trials add nothing to the likelihood (common practice), so the fit, deviance and df are those of
+    # the 8 groups.
     con.execute("""CREATE TABLE beetles AS SELECT * FROM (VALUES
-        (1.6907, 59, 6), (1.7242, 60, 13), (1.7552, 62, 18), (1.7842, 56, 28), (1.8113, 63, 52), (1.8369, 59, 53),
-        (1.8610, 62, 61), (1.8839, 60, 60), (1.70, 0, 0), (1.90, 0, 0)) v(dose, exposed, killed)""")
+        (1.6907, 59, 6), (1.7242, 60, 13), (1.7552, 62, 18), (1.7842, 56, 28), (1.8113, 63, 52),
+        (1.8369, 59, 53), (1.8610, 62, 61), (1.8839, 60, 60), (1.70, 0, 0), (1.90, 0, 0)
+        ) v(dose, exposed, killed)""")
     model = dbfit.fit(con, "killed ~ dose", "beetles", trials="exposed", progress=False)
     assert model.estimate("dose") == pytest.approx(34.270, abs=0.001)
     assert model.stats["deviance"] == pytest.approx(11.23, abs=0.005) and model.stats["df_residual"] == 6
     assert model.stats["rows_zero_trials"] == 2 and model.stats["n_used"] == 10
     assert "2 used rows have 0 trials" in model.summary()
     groups = con.execute("SELECT * FROM beetles WHERE exposed > 0").fetchdf()
-    reference = sm.GLM(np.column_stack([groups.killed, groups.exposed - groups.killed]), sm.add_constant(groups.dose),
-                       family=sm.families.Binomial()).fit(tol=1e-13)
-    assert_close(model.estimates, reference.params.values, 1e-9, "estimates without the zero-trial rows (statsmodels)")
+    outcome = np.column_stack([groups.killed, groups.exposed - groups.killed])
+    reference = sm.GLM(outcome, sm.add_constant(groups.dose), family=sm.families.Binomial()).fit(tol=1e-13)
+    assert_close(model.estimates, reference.params.values, 1e-9, "without the zero-trial rows (statsmodels)")
     assert model.stats["bic"] == pytest.approx(-2 * model.stats["log_likelihood"] + 2 * np.log(8), rel=1e-12)
