@@ -147,7 +147,7 @@ def newton_iterations(
     confirming: tuple[np.ndarray, PassResult] | None = None  # estimate and scan before the last step
 
     while iteration < max_iter or confirming is not None:
-        iteration += 1
+        iteration += confirming is None  # the confirming scan at the final estimate is not a Newton step
         result = yield beta, active
         deviance = 2.0 * (saturated_loglik - result.loglik)
         if confirming is not None:
@@ -156,15 +156,11 @@ def newton_iterations(
                 beta, result = confirming  # the last step only added rounding: keep the point before it
             else:
                 trace.append(deviance)
-            if report:
-                step = newton_step(result.gram, result.score)
-                report(IterationReport(iteration, deviance, time.perf_counter() - began,
-                                       float(np.max(np.abs(step))) if step.size else 0.0))
             break
         if iteration == 1 and _weights_collapsed(result, weight_total) and fallback_start is not None:
             # The start puts every row at a fitted 0 or 1: no curvature to step on. Start again from the default.
             if report:
-                report(IterationReport(iteration, deviance, time.perf_counter() - began, float("nan")))
+                report(IterationReport(iteration + 1, deviance, time.perf_counter() - began, float("nan")))
             beta, fallback_start = fallback_start[: len(active)].copy(), None
             iteration = 0
             continue
@@ -183,7 +179,7 @@ def newton_iterations(
             halvings += 1
             beta = 0.5 * (beta + previous_beta)
             if report:
-                report(IterationReport(iteration, deviance, time.perf_counter() - began, float("nan"), halving=True))
+                report(IterationReport(iteration + 1, deviance, time.perf_counter() - began, float("nan"), halving=True))
             continue
         halvings = 0
         trace.append(deviance)

@@ -79,7 +79,8 @@ def test_failing_segments_are_reported_while_others_succeed(con):
 def test_segments_share_scans(con, birthwt):
     result = dbfit.fit(con, "low ~ age + lwt", "birthwt", by="race", progress=False)
     single = [dbfit.fit(con, "low ~ age + lwt", f"SELECT * FROM birthwt WHERE race = {r}", progress=False) for r in (1, 2, 3)]
-    assert result.passes == max(m.stats["iterations"] for m in single)
+    # one grouped pass per Newton step of the slowest segment, and one at the final estimates (their errors)
+    assert result.passes == max(m.stats["iterations"] for m in single) + 1
     assert result.scans < sum(m.stats["scans"] for m in single)
 
 

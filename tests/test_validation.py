@@ -153,8 +153,9 @@ def test_holdout_documents_of_earlier_versions_load_with_the_whole_source(con, b
         "WHERE \"dbfit_part\" = 'train') AS dbfit_part_rows")
     old = dbfit.from_json(json.dumps(document))
     assert old.source == "birthwt" and old.split == dbfit.Holdout("id", 0.3)
-    assert "EXCLUDE" not in old.scoring_sql("postgres").upper()
-    assert dbfit.assess(con, old).to_pydict() == dbfit.assess(con, model).to_pydict()
+    # A document's source is data: the rows to assess are named explicitly, split by the recorded rule.
+    assert "EXCLUDE" not in old.scoring_sql("postgres", source="birthwt").upper()
+    assert dbfit.assess(con, old, "birthwt", rows="held_out").to_pydict() == dbfit.assess(con, model).to_pydict()
 
 
 def test_assess_and_report_commands_print_which_rows_they_used(tmp_path):
