@@ -7,7 +7,7 @@ PYTHON ?= python
 DATABASE ?= dbfit_demo.duckdb
 MODEL ?= demo_late
 VIEW ?= $(MODEL)_scores
-DBFIT = $(PYTHON) -m dbfit.cli
+DBFIT = $(PYTHON) -m dbfit
 
 .PHONY: nightly
 nightly:

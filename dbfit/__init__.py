@@ -1,21 +1,21 @@
 """dbfit: logistic regression fitted, checked and deployed inside the database."""
 
-from dbfit.connection import connect, install
-from dbfit.api import (assess, assessment_tables, cross_validate, decisions, drop_model, fit, from_json, load, models,
+from dbfit.interfaces.connection import connect, install
+from dbfit.interfaces.python_api import (assess, assessment_tables, cross_validate, decisions, drop_model, fit, from_json, load, models,
                        population_stability, score)
-from dbfit.gates import Gates, gates_of, set_gates
-from dbfit.refit import promote, refit
-from dbfit.comparison import comparison_table, likelihood_ratio_test
-from dbfit.splits import Holdout, KFold
-from dbfit.deploy import publish
+from dbfit.lifecycle.gates import Gates, gates_of, set_gates
+from dbfit.lifecycle.refit import promote, refit
+from dbfit.assessment.comparison import comparison_table, likelihood_ratio_test
+from dbfit.fitting.splits import Holdout, KFold
+from dbfit.deployment.views import publish
 from dbfit.errors import (DbfitError, FitError, FormulaError, GateRefusedError, SourceError, StoreConflictError,
                           StoreError)
-from dbfit.irls import IterationReport
-from dbfit.model import Model
-from dbfit.segments import SegmentedFit
-from dbfit.segmentscoring import publish_segments
-from dbfit.priorcorrection import prior_corrected
-from dbfit.robust import with_robust_errors
+from dbfit.solver.newton import IterationReport
+from dbfit.model.fitted import Model
+from dbfit.fitting.segments import SegmentedFit
+from dbfit.deployment.segment_views import publish_segments
+from dbfit.fitting.prior_correction import prior_corrected
+from dbfit.fitting.robust import with_robust_errors
 
 __all__ = [
     "DbfitError",

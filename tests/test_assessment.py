@@ -9,9 +9,9 @@ from sklearn import metrics as sk
 from sqlglot import exp
 
 import dbfit
-from dbfit.assessment import (calibration_table, confusion_table, curve_points, gains_table, hosmer_lemeshow,
+from dbfit.assessment.metrics import (calibration_table, confusion_table, curve_points, gains_table, hosmer_lemeshow,
                               metrics)
-from dbfit.engine import DuckDBEngine
+from dbfit.engines.duckdb_engine import DuckDBEngine
 
 
 def scored_table(con, y: np.ndarray, p: np.ndarray) -> exp.Expression:

@@ -12,8 +12,8 @@ import duckdb
 import pytest
 
 import dbfit
-from dbfit import statsquery
-from dbfit.cli import main
+from dbfit.fitting import statistics as statsquery
+from dbfit.interfaces.cli import main
 
 OPTION_CASES = [
     # (options of dbfit.fit, words the message must hold)
@@ -221,7 +221,7 @@ def test_tampered_model_document_is_refused_naming_the_key(stored, case):
 
 
 def test_threads_sharing_a_connection_get_correct_results_or_dbfit_errors(stored):
-    from dbfit.fingerprint import fingerprint
+    from dbfit.lifecycle.fingerprint import fingerprint
 
     model = dbfit.load(stored, "m")
     expected_print = fingerprint(stored, "t")

@@ -10,11 +10,11 @@ import sys
 import duckdb
 import pytest
 
-from dbfit.demo import TRUE_COEFFICIENTS
+from dbfit.interfaces.demo import TRUE_COEFFICIENTS
 
 
 def run(*args: str) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "dbfit.cli", *args], capture_output=True, text=True, timeout=600)
+    return subprocess.run([sys.executable, "-m", "dbfit", *args], capture_output=True, text=True, timeout=600)
 
 
 def test_demo_fits_the_invented_scenario_close_to_the_truth(tmp_path):

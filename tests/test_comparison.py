@@ -8,7 +8,7 @@ from scipy import stats
 
 import dbfit
 from conftest import load_frame
-from dbfit.comparison import comparison_table, likelihood_ratio_test
+from dbfit.assessment.comparison import comparison_table, likelihood_ratio_test
 
 
 @pytest.fixture

@@ -1,6 +1,6 @@
 """Drift: the training snapshot and the population stability index.
 
-Data: the invented courier scenario of dbfit.demo. The PSI reference is an independent computation from the
+Data: the invented courier scenario of dbfit.interfaces.demo. The PSI reference is an independent computation from the
 definition, PSI = sum over bins (a - e) ln(a / e) (Siddiqi 2006, "Credit Risk Scorecards", Wiley), in numpy
 on rows fetched from the database and binned on the stored edges; the reading bands are common practice.
 """
@@ -14,8 +14,8 @@ import numpy as np
 import pytest
 
 import dbfit
-from dbfit.demo import FORMULA, REFERENCE, build_deliveries
-from dbfit.drift import FLOOR, reading
+from dbfit.interfaces.demo import FORMULA, REFERENCE, build_deliveries
+from dbfit.lifecycle.drift import FLOOR, reading
 
 SHIFTED = "SELECT * REPLACE (distance_km * 1.4 AS distance_km, tier = 'express' OR depot = 'East' AS rain) FROM fresh"
 

@@ -22,8 +22,8 @@ import statsmodels.api as sm
 
 import dbfit
 from conftest import load_frame
-from dbfit.expression_rules import ALLOWED_FUNCTIONS, ALLOWED_NODES
-from dbfit.formula import parse_expression
+from dbfit.expressions.rules import ALLOWED_FUNCTIONS, ALLOWED_NODES
+from dbfit.expressions.formula import parse_expression
 from pg_server import superuser_connection
 
 SPECTOR = sm.datasets.spector.load_pandas().data
@@ -393,7 +393,7 @@ def test_cli_spec_file_refuses_injections(tmp_path):
         spec = tmp_path / f"spec{k}.json"
         spec.write_text(json.dumps({"database": str(path), "name": "m", "source": "spector", **extra}))
         done = subprocess.run(
-            [sys.executable, "-m", "dbfit.cli", "fit", "--spec", str(spec), "--json"],
+            [sys.executable, "-m", "dbfit", "fit", "--spec", str(spec), "--json"],
             capture_output=True,
             text=True,
             timeout=600,

@@ -157,7 +157,7 @@ def test_firth_converges_within_25_passes_under_separation(con, formula, table):
 def test_penalised_information_is_the_derivative_of_the_modified_score():
     # Reference: central finite differences of Firth's modified score (dense numpy, written here) on
     # statsmodels' spector data.
-    from dbfit.firth import _pairs, _triples, penalised_information
+    from dbfit.fitting.firth import _pairs, _triples, penalised_information
 
     frame = sm.datasets.spector.load_pandas().data
     x = np.column_stack([np.ones(len(frame)), frame.GPA, frame.TUCE / 10.0, frame.PSI])
@@ -190,7 +190,7 @@ def test_many_terms_step_with_the_information_and_are_never_called_separated(con
     # Beyond CURVATURE_MAX_PARAMETERS the step uses Fisher's information and shrinks only linearly; that is no
     # sign of separation (Firth's estimates exist). Data: scikit-learn's bundled breast-cancer data, first 20
     # columns; reference: the dense Firth iteration written in this test.
-    from dbfit.firth import CURVATURE_MAX_PARAMETERS
+    from dbfit.fitting.firth import CURVATURE_MAX_PARAMETERS
 
     frame = load_breast_cancer(as_frame=True).frame
     columns = list(frame.columns[:20])

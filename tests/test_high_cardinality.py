@@ -8,13 +8,13 @@ import statsmodels.api as sm
 from sqlglot import exp
 
 import dbfit
-import dbfit.blocks
+import dbfit.fitting.blocks
 from conftest import assert_close
-from dbfit.blocks import BlockedStatisticsPass, blocked_factor
-from dbfit.design import build_design
-from dbfit.engine import DuckDBEngine
-from dbfit.formula import parse_formula
-from dbfit.source import source_relation
+from dbfit.fitting.blocks import BlockedStatisticsPass, blocked_factor
+from dbfit.design.layout import build_design
+from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.expressions.formula import parse_formula
+from dbfit.expressions.source import source_relation
 
 
 def stores(con, levels: int, rows: int) -> None:
@@ -32,7 +32,7 @@ def test_blocked_fit_equals_dense_fit_and_statsmodels(con, monkeypatch):
     blocked = dbfit.fit(con, "bought ~ distance + shop + wait", "visits", progress=False)
     design = build_design(DuckDBEngine(con), parse_formula("bought ~ distance + shop + wait"), source_relation("visits"))
     assert blocked_factor(design) == 1
-    monkeypatch.setattr(dbfit.blocks, "HIGH_CARDINALITY_LEVELS", 10_000)
+    monkeypatch.setattr(dbfit.fitting.blocks, "HIGH_CARDINALITY_LEVELS", 10_000)
     dense = dbfit.fit(con, "bought ~ distance + shop + wait", "visits", progress=False)
     assert blocked.labels == dense.labels
     assert_close(blocked.estimates, dense.estimates, 1e-9, "blocked vs dense estimates")

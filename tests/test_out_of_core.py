@@ -6,7 +6,7 @@ import duckdb
 
 import dbfit
 from conftest import assert_close
-from dbfit.bench import numeric_select
+from dbfit.interfaces.bench import numeric_select
 
 
 def test_parquet_folder_larger_than_memory_limit(tmp_path):

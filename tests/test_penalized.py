@@ -26,7 +26,7 @@ from sklearn.linear_model import LogisticRegression
 
 import dbfit
 from conftest import assert_close, load_frame
-from dbfit.engine import DuckDBEngine
+from dbfit.engines.duckdb_engine import DuckDBEngine
 
 COLUMNS = ["mean radius", "mean texture", "mean smoothness", "mean concave points", "worst symmetry", "mean compactness"]
 FORMULA = "target ~ " + " + ".join(f'"{c}"' for c in COLUMNS)
@@ -283,7 +283,7 @@ def test_choice_at_an_end_of_the_grid_is_warned(con, cancer):
 
 def test_extension_below_the_grid_ends_at_zero():
     # Property: decades below the automatic grid in its own spacing, then 0 once below FLOOR_SHARE of the top.
-    from dbfit.penalized import FLOOR_SHARE, GRID_POINTS, _weaker
+    from dbfit.fitting.penalised import FLOOR_SHARE, GRID_POINTS, _weaker
 
     grid = list(2.0 * 1e-3 ** np.linspace(0.0, 1.0, GRID_POINTS))
     while grid[-1] > 0.0:

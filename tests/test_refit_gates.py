@@ -10,8 +10,8 @@ import duckdb
 import pytest
 
 import dbfit
-from dbfit import store
-from dbfit.demo import FORMULA, REFERENCE, build_deliveries
+from dbfit.store import model_store as store
+from dbfit.interfaces.demo import FORMULA, REFERENCE, build_deliveries
 
 HOLDOUT = dbfit.Holdout("delivery_id", 0.25)
 

@@ -1,7 +1,7 @@
 """The HTML report: contents and escaping from real fits, and the page rendered in headless Chromium.
 
 Data: the Spector and Mazzeo grades data bundled with statsmodels (statsmodels.datasets.spector), fitted by
-dbfit; the assessment tables come from dbfit.assessment over rows scored with the fitted estimates.
+dbfit; the assessment tables come from dbfit.assessment.metrics over rows scored with the fitted estimates.
 """
 
 from __future__ import annotations
@@ -18,11 +18,11 @@ import statsmodels.api as sm
 from sqlglot import exp
 
 import dbfit
-from dbfit import assessment as assess
-from dbfit.browser import dump_dom, find_chromium, screenshot
-from dbfit.engine import DuckDBEngine
+from dbfit.assessment import metrics as assess
+from browser import dump_dom, find_chromium, screenshot
+from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import DbfitError
-from dbfit.report import render_report, write_report
+from dbfit.assessment.report import render_report, write_report
 from conftest import load_frame
 
 FORMULA = "GRADE ~ GPA + TUCE + PSI"
@@ -287,7 +287,7 @@ def test_job_sentence_names_a_text_event_and_grouped_trials(spector):
 
 
 def test_axes_map_ticks_and_clamp():
-    from dbfit.svgplot import Axis
+    from dbfit.assessment.svg import Axis
 
     linear = Axis(0.0, 1.0, 50.0, 450.0)
     assert linear(0.0) == 50.0 and linear(1.0) == 450.0 and linear(0.25) == pytest.approx(150.0)
@@ -304,7 +304,7 @@ def test_report_command_assesses_the_stored_model_by_default(tmp_path):
     import statsmodels.api as sm
 
     import dbfit
-    from dbfit.cli import main
+    from dbfit.interfaces.cli import main
 
     database = str(tmp_path / "school.duckdb")
     con = dbfit.connect(database)

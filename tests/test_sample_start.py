@@ -5,17 +5,17 @@ from __future__ import annotations
 import statsmodels.api as sm
 
 import dbfit
-import dbfit.fitting
+import dbfit.fitting.driver
 from conftest import assert_close
-from dbfit.demo import FORMULA, REFERENCE, build_deliveries
+from dbfit.interfaces.demo import FORMULA, REFERENCE, build_deliveries
 
 
 def test_sample_start_gives_the_full_data_answer_in_fewer_passes(con, monkeypatch):
     # Reference: statsmodels GLM Binomial on the same rows (invented demo data used only as input here).
     build_deliveries(con, 40_000)
     cold = dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, progress=False)
-    monkeypatch.setattr(dbfit.fitting, "SAMPLE_START_ROWS", 10_000)
-    monkeypatch.setattr(dbfit.fitting, "SAMPLE_ROWS", 8_000)
+    monkeypatch.setattr(dbfit.fitting.driver, "SAMPLE_START_ROWS", 10_000)
+    monkeypatch.setattr(dbfit.fitting.driver, "SAMPLE_ROWS", 8_000)
     phases = []
     warm = dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, progress=lambda r: phases.append(r.phase))
     assert "sample of 8,000 rows" in phases and phases[-1] == "full data"

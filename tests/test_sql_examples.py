@@ -11,9 +11,9 @@ from pathlib import Path
 import numpy as np
 
 import dbfit
-from dbfit.cli import main
-from dbfit.demo import FORMULA, REFERENCE, build_deliveries
-from dbfit.sqlscript import run_script
+from dbfit.interfaces.cli import main
+from dbfit.interfaces.demo import FORMULA, REFERENCE, build_deliveries
+from dbfit.interfaces.sql_script import run_script
 
 EXAMPLES = sorted((Path(__file__).resolve().parents[1] / "sql_examples").glob("*.sql"))
 
@@ -71,7 +71,7 @@ def test_demo_stores_and_publishes_its_model(tmp_path, capsys):
     # The demo's own view, read back with plain duckdb; its probabilities stay within (0, 1).
     import duckdb
 
-    from dbfit.demo import run_demo
+    from dbfit.interfaces.demo import run_demo
 
     path = tmp_path / "demo.duckdb"
     model = run_demo(str(path), rows=3000, quiet=True)

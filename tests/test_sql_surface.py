@@ -14,7 +14,7 @@ import statsmodels.api as sm
 
 import dbfit
 from conftest import load_frame
-from dbfit.store import COEFFICIENT_COLUMNS
+from dbfit.store.model_store import COEFFICIENT_COLUMNS
 
 SPECTOR = sm.datasets.spector.load_pandas().data
 

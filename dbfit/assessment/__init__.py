@@ -1,0 +1,1 @@
+"""Assessment on held-out rows, model comparison and the HTML report."""

@@ -1,0 +1,1 @@
+"""Deployment: scoring SQL and the views that score new rows."""

@@ -1,0 +1,142 @@
+"""Publishing: a view in the user's database that scores a source in plain SQL (no dbfit needed to query it).
+
+A pinned view carries one version's estimates as constants; a live view reads the estimates of the current
+(promoted) version from ``dbfit_store.coefficients`` by term label (the latest version for a model that has
+none promoted), so a promoted refit of the same formula flows through and a refused candidate does not (terms or levels a later version adds are not in the published encoding; republish for those).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import duckdb
+from sqlglot import exp
+
+from dbfit.expressions import builders as sb
+from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.errors import DbfitError, StoreError
+from dbfit.model.fitted import Model
+from dbfit.expressions.names import model_name, model_version, relation_name
+from dbfit.deployment.scoring import INTERVAL_COLUMNS, SCORE_COLUMNS, Coefficient, scoring_query
+from dbfit.expressions.source import source_relation
+from dbfit.store.model_store import SCHEMA, load_model, publish_view
+
+LIVE_ALIAS = "dbfit_coefficients"
+
+
+def resolve_model(con: duckdb.DuckDBPyConnection, model: str | Model, version: int | None) -> Model:
+    """A Model as given, or the stored version of a model name."""
+    version = model_version(version)
+    if isinstance(model, Model):
+        if version is not None and version != model.version:
+            raise StoreError(f"version={version} was given with a Model object (version {model.version}); pass the name")
+        return model
+    return load_model(con, model, version)
+
+
+def build_scoring(
+    con: duckdb.DuckDBPyConnection | None,
+    model: Model,
+    source: str | None,
+    *,
+    live: bool = False,
+    unseen: str = "null",
+    standard_error: bool = False,
+    level: float = 0.95,
+) -> exp.Select:
+    """The DuckDB scoring query of ``model`` over ``source``, after checking the source's columns on ``con``."""
+    check_scoring_options(live=live, standard_error=standard_error, level=level)
+    relation = source_relation(model.source_or_own(source))
+    if con is not None:
+        check_score_columns(con, relation, standard_error)
+    coefficient, joined = None, None
+    if live:
+        if model.name is None:
+            raise StoreError("a live view reads the store: save the model first (model.save(con, name)) or pass its name")
+        coefficient, joined = _live_coefficients(model)
+    return scoring_query(model, relation, coefficient=coefficient, joined=joined, unseen=unseen,
+                         with_standard_error=standard_error, level=level)
+
+
+def check_scoring_options(*, live: Any = False, standard_error: Any = False, level: Any = 0.95) -> None:
+    """Refuse scoring options of the wrong type or range, naming the option."""
+    for name, flag in (("live", live), ("standard_error", standard_error)):
+        if not isinstance(flag, bool):
+            raise DbfitError(f"{name} must be True or False (got {type(flag).__name__} {flag!r})")
+    if isinstance(level, bool) or not isinstance(level, (int, float)) or not 0.0 < level < 1.0:
+        raise DbfitError(f"level must be a number strictly between 0 and 1, e.g. 0.95 (got {level!r})")
+
+
+def check_score_columns(con: duckdb.DuckDBPyConnection, relation: exp.Expression, standard_error: bool) -> None:
+    """Refuse a source that already has a column the scoring query adds."""
+    taken = SCORE_COLUMNS + (INTERVAL_COLUMNS if standard_error else ())
+    names = [name for name, _ in DuckDBEngine(con).describe(exp.select("*").from_(relation.copy()))]
+    clashes = [name for name in names if name.lower() in taken]
+    if clashes:
+        raise DbfitError(f"the source already has column(s) {', '.join(clashes)}, which scoring adds; rename them in a SELECT")
+
+
+def publish(
+    con: duckdb.DuckDBPyConnection,
+    model: str | Model,
+    view: str,
+    source: str | None = None,
+    *,
+    version: int | None = None,
+    live: bool = False,
+    unseen: str = "null",
+    replace: bool = False,
+) -> dict[str, Any]:
+    """Create ``view``, or replace the one dbfit published under that name: every column of ``source`` plus
+    ``linear_predictor`` and ``probability``.
+
+    ``model`` is a stored model's name (``version`` picks one; default the current one) or a Model object.
+    ``live=True`` reads the current version's stored estimates at query time instead of writing them in as constants.
+    A view of that name that dbfit did not publish (or that was changed since) is refused unless ``replace=True``.
+    """
+    target = relation_name(view, "view name")
+    resolved = resolve_model(con, model, version)
+    query = build_scoring(con, resolved, source, live=live, unseen=unseen)
+    record = {"model": resolved.name, "version": None if live else resolved.version, "mode": "live" if live else "pinned"}
+    statement = create_view(con, target, query, record, replace=replace)
+    return {"view": target.sql("duckdb"), **record, "rows": resolved.rows_note("all", source), "sql": statement.sql("duckdb")}
+
+
+def create_view(con: duckdb.DuckDBPyConnection, target: exp.Table, query: exp.Select, record: dict[str, Any], *,
+                replace: bool = False) -> exp.Create:
+    """CREATE OR REPLACE VIEW ``target`` AS ``query`` on the store's own connection, recorded as dbfit's
+    (see :func:`dbfit.store.model_store.publish_view`); a failure or a view dbfit did not publish is a StoreError naming it."""
+    return publish_view(con, target, query, record, replace=replace)
+
+
+def _live_coefficients(model: Model) -> tuple[Coefficient, exp.Expression]:
+    """A one-row subquery with the current version's stored estimate of each label, and references to it."""
+    name = exp.Literal.string(model_name(model.name))
+    store = lambda table: exp.Table(this=exp.to_identifier(table, quoted=True), db=exp.to_identifier(SCHEMA, quoted=True))  # noqa: E731
+    newest = exp.select(exp.Max(this=sb.column("version"))).from_(store("versions")).where(
+        exp.EQ(this=sb.column("model"), expression=name.copy())
+    )
+    promoted = exp.select(sb.column("version")).from_(store("current_versions")).where(
+        exp.EQ(this=sb.column("model"), expression=name.copy())
+    )
+    latest = exp.select(exp.Coalesce(this=promoted.subquery(), expressions=[newest.subquery()]))
+    picks = [
+        exp.alias_(
+            exp.Max(this=exp.Case(ifs=[exp.If(this=exp.EQ(this=sb.column("term"), expression=exp.Literal.string(label)),
+                                              true=sb.column("estimate"))])),
+            f"c{k}", quoted=True,
+        )
+        for k, label in enumerate(model.labels)
+    ]
+    rows = exp.alias_(exp.Count(this=exp.Star()), "terms_found", quoted=True)
+    subquery = exp.select(*picks, rows).from_(store("coefficients")).where(
+        exp.and_(exp.EQ(this=sb.column("model"), expression=name.copy()),
+                 exp.EQ(this=sb.column("version"), expression=latest.subquery()))
+    ).subquery(LIVE_ALIAS)
+
+    def coefficient(parameter: int) -> exp.Expression:
+        found = exp.column("terms_found", table=LIVE_ALIAS, quoted=True)
+        value = exp.Coalesce(this=exp.column(f"c{parameter}", table=LIVE_ALIAS, quoted=True), expressions=[sb.number(0.0)])
+        return exp.Case(ifs=[exp.If(this=exp.GT(this=found, expression=sb.number(0)), true=value)])
+
+    return coefficient, subquery

@@ -1,0 +1,262 @@
+"""The one place dbfit talks to a database: run a query tree, fetch its rows, describe its columns.
+
+Later engines (PostgreSQL, Spark) implement the same three methods; dialect quirks live in their module.
+"""
+
+from __future__ import annotations
+
+import difflib
+import re
+import threading
+import weakref
+from typing import Any, Callable
+
+import duckdb
+from sqlglot import exp
+
+from dbfit.expressions.dialects import adapt
+from dbfit.errors import AbortedTransactionError, DbfitError, FormulaError, SourceError
+from dbfit.engines.progress import watch_scan
+
+
+_LOCKS: weakref.WeakKeyDictionary[Any, threading.RLock] = weakref.WeakKeyDictionary()
+_LOCKS_GUARD = threading.Lock()
+
+
+def connection_lock(connection: Any) -> threading.RLock:
+    """The lock dbfit holds on ``connection`` from running a query to fetching its last row.
+
+    A DuckDB connection runs one query at a time; two threads sharing one would interleave their results
+    (one thread fetching the other's rows), so dbfit's own reads on it take turns.
+    """
+    with _LOCKS_GUARD:
+        lock = _LOCKS.get(connection)
+        if lock is None:
+            lock = _LOCKS[connection] = threading.RLock()
+        return lock
+
+
+class Engine:
+    """What every engine shares: scan counting around ``_run``, which a subclass supplies with ``sql``."""
+
+    dialect = ""
+    parameters = False
+    live_progress = False
+
+    def __init__(self, connection: Any) -> None:
+        self.connection = connection
+        self.scans = 0
+
+    def sql(self, query: exp.Expression) -> str:
+        return adapt(query, self.dialect).sql(dialect=self.dialect)
+
+    def fetch(self, query: exp.Expression, *, scan: bool = True) -> list[tuple[Any, ...]]:
+        """Run ``query`` and return all its rows; ``scan`` says whether it reads the whole source."""
+        if scan:
+            self.scans += 1
+        return self._run(self.sql(query))
+
+    def fetch_sql(self, sql: str, parameters: list[Any], *, scan: bool = True) -> list[tuple[Any, ...]]:
+        """Run SQL that dbfit generated from a tree, with ``?`` parameters where the engine takes them."""
+        if parameters and not self.parameters:
+            raise DbfitError(f"{self.dialect} queries from dbfit carry their numbers as literals, not parameters")
+        if scan:
+            self.scans += 1
+        return self._run(sql, parameters) if parameters else self._run(sql)
+
+    def execute(self, *, sql: str, scan: bool) -> None:
+        """Run a statement dbfit wrote itself from trees and its own names: temporary tables of samples."""
+        if scan:
+            self.scans += 1
+        self._run(sql)
+
+    def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
+        raise NotImplementedError
+
+
+class DuckDBEngine(Engine):
+    """Runs sqlglot trees on a DuckDB connection and counts the queries that scan the data.
+
+    Inside the caller's open transaction every query is parsed and bound before it runs, through DuckDB's
+    relation API, which reports an unknown column, table or type without touching that transaction (a failing
+    ``execute`` would abort it: DuckDB has no savepoints). Only an error while the rows are read (a value that
+    cannot be converted, an unreadable file, memory) can still end it; :class:`AbortedTransactionError` says so.
+    """
+
+    dialect = "duckdb"
+    parameters = True  # coefficients may be bound as ? parameters
+
+    def __init__(self, connection: Any) -> None:
+        super().__init__(connection)
+        self.aborted = False
+        self._checked: set[str] = set()  # query texts already bound inside the caller's transaction
+
+    def describe(self, query: exp.Expression) -> list[tuple[str, str]]:
+        """Column names and SQL types of ``query`` without reading its rows."""
+        sql = self.sql(query)
+        try:
+            with connection_lock(self.connection):
+                self._parse(sql)
+                relation = self._bind(sql)
+                return [(name, str(kind)) for name, kind in zip(relation.columns, relation.types)]
+        except FormulaError as err:
+            missing = _MISSING_NAME.search(str(err))
+            source = query.args.get("from_") if isinstance(query, exp.Select) else None
+            if missing is None or source is None:
+                raise
+            columns = [name for name, _ in self.describe(exp.select("*").from_(source.this.copy()))]
+            raise FormulaError(unknown_column_message(missing.group(1), columns)) from None
+
+    def execute(self, *, sql: str, scan: bool) -> None:
+        """Run a statement dbfit wrote itself (``CREATE TEMP TABLE name AS SELECT ...``, ``DROP TABLE``); its
+        query is bound first. Skipped once DuckDB has aborted the caller's transaction: the ROLLBACK the caller
+        must run then removes dbfit's temporary tables too."""
+        if self.aborted:
+            return
+        created = _CREATE_AS.match(sql)
+        if created and in_transaction(self.connection):
+            self._parse(sql)
+            self._bind(sql[created.end():])
+        super().execute(sql=sql, scan=scan)
+
+    def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
+        # Outside a transaction a failing statement ends only its own; inside, it must fail before it runs. A
+        # query text is bound once (the Newton passes repeat one text with new parameters): binding a wide
+        # statistics query costs about a third of running it on a small table.
+        with connection_lock(self.connection):
+            if sql not in self._checked and in_transaction(self.connection):
+                if self._parse(sql).type == duckdb.StatementType.SELECT:
+                    self._bind(sql, parameters)
+                self._checked.add(sql)
+            return self._read(lambda: self.connection.execute(sql, parameters).fetchall())
+
+    def _parse(self, sql: str) -> Any:
+        """The parsed statement (a parser error, unlike one from ``execute``, leaves the transaction alone)."""
+        try:
+            statements = self.connection.extract_statements(sql)
+        except duckdb.Error as err:
+            raise translate_error(err) from None
+        if len(statements) != 1:
+            raise DbfitError(f"dbfit runs one statement at a time, not {len(statements)}")
+        return statements[0]
+
+    def _bind(self, sql: str, parameters: list[Any] | None = None) -> duckdb.DuckDBPyRelation:
+        """The bound (not yet run) query of parsed ``sql``: names, types and functions checked, nothing read."""
+        try:
+            return self.connection.sql(sql, params=parameters) if parameters else self.connection.sql(sql)
+        except duckdb.Error as err:
+            raise translate_error(err) from None
+
+    def _read(self, run: Callable[[], list[tuple[Any, ...]]]) -> list[tuple[Any, ...]]:
+        try:
+            if self.live_progress:
+                with watch_scan(self.connection, f"dbfit scan {self.scans}"):
+                    return run()
+            return run()
+        except duckdb.TransactionException as err:
+            if "aborted" not in str(err):
+                raise translate_error(err) from None
+            raise AbortedTransactionError(
+                "your open transaction was aborted by an earlier failure, before dbfit ran: ROLLBACK first"
+            ) from None
+        except duckdb.Error as err:
+            translated = translate_error(err)
+            if transaction_aborted(self.connection):
+                self.aborted = True
+                raise AbortedTransactionError(
+                    f"{translated}. DuckDB has aborted your open transaction because of it (DuckDB has no "
+                    "savepoints): run ROLLBACK, then fit outside a transaction or after COMMIT"
+                ) from None
+            raise translated from None
+
+
+def in_transaction(connection: duckdb.DuckDBPyConnection) -> bool:
+    """Whether ``connection`` is inside a transaction it opened with BEGIN: two reads of the transaction id
+    agree only there (outside, each statement is a transaction of its own). Reads nothing else, changes nothing."""
+    try:
+        first = connection.execute("SELECT txid_current()").fetchall()
+        return first == connection.execute("SELECT txid_current()").fetchall()
+    except duckdb.TransactionException:
+        return True  # an aborted transaction is still open until the caller's ROLLBACK
+
+
+def transaction_aborted(connection: duckdb.DuckDBPyConnection) -> bool:
+    """Whether ``connection``'s open transaction has been aborted by an earlier failure (it then refuses all)."""
+    try:
+        connection.execute("SELECT 1").fetchall()
+    except duckdb.TransactionException:
+        return True
+    except duckdb.Error:
+        return False
+    return False
+
+
+_CREATE_AS = re.compile(r'\s*CREATE\s+TEMP(?:ORARY)?\s+TABLE\s+"[^"]+"\s+AS\s+', re.IGNORECASE)
+
+
+_MISSING_NAME = re.compile(r"^unknown column '([^']+)'")
+SHOWN_COLUMNS = 60  # a source's columns listed in full up to this many
+
+
+def unknown_column_message(name: str, columns: list[str]) -> str:
+    """Name the unknown column, the closest of the source's columns and the source's columns (all, or the
+    first SHOWN_COLUMNS and how many more)."""
+    close = difflib.get_close_matches(name, columns, n=3, cutoff=0.5)
+    nearest = f"; closest: {', '.join(close)}" if close else ""
+    listed = ", ".join(columns[:SHOWN_COLUMNS])
+    more = f" and {len(columns) - SHOWN_COLUMNS} more" if len(columns) > SHOWN_COLUMNS else ""
+    return (f"unknown column '{name}' in the formula or options{nearest} (the source's {len(columns)} columns: "
+            f"{listed}{more})")
+
+
+_MISSING_COLUMN = re.compile(r'Referenced column "?([^"\s]+)"? not found', re.IGNORECASE)
+
+
+def engine_for(connection: Any) -> Any:
+    """The engine for a DuckDB connection, a psycopg connection or a SparkSession (or an engine, as given)."""
+    if hasattr(connection, "fetch") and hasattr(connection, "dialect"):
+        return connection
+    if isinstance(connection, duckdb.DuckDBPyConnection):
+        return DuckDBEngine(connection)
+    module = type(connection).__module__
+    if module.startswith("psycopg"):
+        from dbfit.engines.postgres_engine import PostgresEngine
+
+        return PostgresEngine(connection)
+    if module.startswith("pyspark"):
+        from dbfit.engines.spark_engine import SparkEngine
+
+        return SparkEngine(connection)
+    raise DbfitError(
+        f"cannot fit on a {type(connection).__name__}: give a DuckDB connection, a psycopg connection or a SparkSession"
+    )
+
+
+def translate_error(err: duckdb.Error) -> DbfitError:
+    """Map a DuckDB error to the dbfit family with a message that says what to change."""
+    message = str(err).strip()
+    first = message.splitlines()[0] if message else type(err).__name__
+    missing = _MISSING_COLUMN.search(message)
+    if missing:
+        candidates = re.search(r"Candidate bindings: (.*)", message)
+        hint = f" (the source has: {candidates.group(1).strip()})" if candidates else ""
+        return FormulaError(f"unknown column '{missing.group(1)}' in the formula or options{hint}")
+    if isinstance(err, duckdb.CatalogException):
+        return SourceError(f"the source cannot be found: {first}")
+    if isinstance(err, duckdb.IOException):
+        if "lock" in message.lower():
+            return SourceError(
+                "the database file is locked by another process; wait for it to finish or open the file read-only "
+                f"({first})"
+            )
+        return SourceError(f"the source cannot be read: {first}")
+    if isinstance(err, (duckdb.BinderException, duckdb.ParserException)):
+        return FormulaError(f"the formula or an option does not fit the source: {first}")
+    if isinstance(err, duckdb.OutOfMemoryException):
+        return DbfitError(
+            f"DuckDB ran out of memory within its memory_limit ({first}); raise memory_limit, lower threads, "
+            "or set temp_directory so that it can spill to disk"
+        )
+    if isinstance(err, duckdb.ConversionException):
+        return FormulaError(f"a value cannot be converted: {first}")
+    return DbfitError(f"the database refused the query: {first}")

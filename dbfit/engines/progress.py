@@ -1,0 +1,66 @@
+"""Live progress on a terminal: the share of rows a running scan has read, from DuckDB's query progress."""
+
+from __future__ import annotations
+
+import sys
+import threading
+from contextlib import contextmanager
+from typing import Iterator, TextIO
+
+import duckdb
+
+POLL_SECONDS = 0.1
+
+
+@contextmanager
+def watch_scan(connection: duckdb.DuckDBPyConnection, label: str, stream: TextIO | None = None) -> Iterator[None]:
+    """While the body runs a query on ``connection``, keep one line on ``stream`` showing its progress."""
+    stream = stream or sys.stderr
+    finished = threading.Event()
+    shown = threading.Event()
+
+    def poll() -> None:
+        while not finished.wait(POLL_SECONDS):
+            try:
+                share = connection.query_progress()
+            except duckdb.Error:
+                return
+            if share is not None and share >= 0:
+                percent = share * 100.0 if share <= 1.0 else share
+                stream.write(f"\r{label}: {percent:5.1f}% of rows scanned")
+                stream.flush()
+                shown.set()
+
+    thread = threading.Thread(target=poll, daemon=True)
+    thread.start()
+    try:
+        yield
+    finally:
+        finished.set()
+        thread.join()
+        if shown.is_set():
+            stream.write("\r\x1b[2K")
+            stream.flush()
+
+
+@contextmanager
+def progress_settings(connection: duckdb.DuckDBPyConnection, *, track: bool = True) -> Iterator[None]:
+    """Turn off DuckDB's own printed bar (and, with ``track``, on its progress tracking); restore them after.
+
+    Inside the caller's open transaction nothing is changed: a query failing there would leave DuckDB's
+    transaction aborted, and a setting could not be restored until the caller's ROLLBACK.
+    """
+    from dbfit.engines.duckdb_engine import in_transaction
+
+    if in_transaction(connection):
+        yield
+        return
+    names = ("enable_progress_bar", "enable_progress_bar_print")
+    before = {name: connection.execute(f"SELECT current_setting('{name}')").fetchall()[0][0] for name in names}
+    connection.execute(f"SET enable_progress_bar = {'true' if track else 'false'}")
+    connection.execute("SET enable_progress_bar_print = false")
+    try:
+        yield
+    finally:
+        for name, value in before.items():
+            connection.execute(f"SET {name} = {'true' if value in (True, 'true') else 'false'}")

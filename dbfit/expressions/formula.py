@@ -1,0 +1,188 @@
+"""Parse ``target ~ term + term + ...`` into SQL expression trees.
+
+Notation after Wilkinson and Rogers (1973), "Symbolic description of factorial models for analysis of
+variance", Applied Statistics 22(3), 392-399: ``+`` adds a term, a top-level ``:`` joins factors into an
+interaction, ``- 1`` or ``+ 0`` drops the intercept and ``- term`` removes a term. Every factor is one
+scalar SQL expression in the DuckDB dialect; ``::`` keeps its SQL meaning of a cast.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import sqlglot
+from sqlglot import exp
+from sqlglot.errors import SqlglotError
+from sqlglot.tokens import TokenType
+
+from dbfit.errors import FormulaError
+from dbfit.expressions.rules import check_expression
+
+DIALECT = "duckdb"
+
+_OPENERS = {TokenType.L_PAREN, TokenType.L_BRACKET, TokenType.L_BRACE, TokenType.CASE}
+_CLOSERS = {TokenType.R_PAREN, TokenType.R_BRACKET, TokenType.R_BRACE, TokenType.END}
+
+@dataclass(frozen=True)
+class Term:
+    """One model term: a single factor, or an interaction of several factors (joined by ``:``)."""
+
+    factors: tuple[exp.Expression, ...]
+    texts: tuple[str, ...]
+
+    @property
+    def label(self) -> str:
+        return ":".join(self.texts)
+
+
+@dataclass(frozen=True)
+class Formula:
+    """A parsed formula: the target expression, the terms in order, and whether there is an intercept."""
+
+    text: str
+    target: exp.Expression
+    target_text: str
+    terms: tuple[Term, ...]
+    intercept: bool
+
+    def factor_texts(self) -> list[str]:
+        """Distinct factor texts in order of first appearance."""
+        seen: dict[str, None] = {}
+        for term in self.terms:
+            for text in term.texts:
+                seen.setdefault(text, None)
+        return list(seen)
+
+
+def parse_expression(text: str, what: str, where: str | None = None) -> exp.Expression:
+    """Parse one row-wise scalar SQL expression, refusing anything off the allowlist of
+    :mod:`dbfit.expressions.rules` (subqueries, aggregates, statements, volatile or unknown functions).
+
+    ``what`` names the place the text comes from, for the error message; ``where`` ("term 3 of the formula")
+    says it in full when it differs.
+    """
+    if not isinstance(text, str) or not text.strip():
+        raise FormulaError(f"{what} is empty")
+    try:
+        tokens = sqlglot.tokenize(text, read=DIALECT)
+    except SqlglotError as err:
+        raise FormulaError(f"{what} {text!r} is not valid SQL: {err}") from None
+    if any(token.token_type == TokenType.SEMICOLON for token in tokens):
+        raise FormulaError(f"{what} {text!r} contains ';': only a single scalar expression is allowed")
+    try:
+        parsed = sqlglot.parse(text, read=DIALECT)
+    except SqlglotError as err:
+        raise FormulaError(f"{what} {text!r} is not a valid SQL expression: {_first_line(err)}") from None
+    parsed = [node for node in parsed if node is not None]
+    if len(parsed) != 1:
+        raise FormulaError(f"{what} {text!r} must be exactly one scalar SQL expression")
+    node = parsed[0]
+    if isinstance(node, (exp.Alias,)):
+        raise FormulaError(f"{what} {text!r} must not carry an alias")
+    return check_expression(node, where or what)
+
+
+def parse_formula(text: str) -> Formula:
+    """Parse a formula ``target ~ terms``; raise :class:`FormulaError` naming the problem."""
+    if not isinstance(text, str) or not text.strip():
+        raise FormulaError("the formula is empty; write it as 'target ~ term + term'")
+    try:
+        tokens = sqlglot.tokenize(text, read=DIALECT)
+    except SqlglotError as err:
+        raise FormulaError(f"formula {text!r} cannot be read: {_first_line(err)}") from None
+    if any(token.token_type == TokenType.SEMICOLON for token in tokens):
+        raise FormulaError(f"formula {text!r} contains ';': a formula holds expressions, never statements")
+
+    depth = 0
+    tilde_at = None
+    for token in tokens:
+        depth += _depth_change(token.token_type)
+        if depth < 0:
+            raise FormulaError(f"formula {text!r} has an unbalanced ')' at position {token.start}")
+        if depth == 0 and token.token_type == TokenType.TILDE:
+            if tilde_at is not None:
+                raise FormulaError(f"formula {text!r} has more than one top-level '~'")
+            tilde_at = token
+    if depth != 0:
+        raise FormulaError(f"formula {text!r} has an unclosed '(' or CASE")
+    if tilde_at is None:
+        raise FormulaError(f"formula {text!r} has no '~'; write it as 'target ~ term + term'")
+
+    target_text = text[: tilde_at.start].strip()
+    target = parse_expression(target_text, "the target")
+    rhs_tokens = [t for t in tokens if t.start > tilde_at.end]
+    intercept, terms = _parse_terms(text, rhs_tokens)
+    return Formula(text=text, target=target, target_text=target_text, terms=tuple(terms), intercept=intercept)
+
+
+def _depth_change(token_type: TokenType) -> int:
+    if token_type in _OPENERS:
+        return 1
+    if token_type in _CLOSERS:
+        return -1
+    return 0
+
+
+def _parse_terms(text: str, tokens: list) -> tuple[bool, list[Term]]:
+    """Split the right-hand side at top-level ``+`` and ``-``; each piece may hold top-level ``:``."""
+    pieces: list[tuple[str, list]] = []  # (sign, tokens of the piece)
+    sign, current, depth = "+", [], 0
+    for token in tokens:
+        if depth == 0 and token.token_type in (TokenType.PLUS, TokenType.DASH):
+            if current:
+                pieces.append((sign, current))
+                sign, current = ("+" if token.token_type == TokenType.PLUS else "-"), []
+            elif token.token_type == TokenType.DASH:
+                sign = "-" if sign == "+" else "+"
+            continue
+        depth += _depth_change(token.token_type)
+        current.append(token)
+    if current:
+        pieces.append((sign, current))
+    elif tokens:
+        raise FormulaError(f"formula {text!r} ends with a dangling '+' or '-'")
+    if not pieces:
+        raise FormulaError(f"formula {text!r} has no terms after '~' (write '~ 1' for an intercept-only model)")
+
+    intercept = True
+    terms: list[Term] = []
+    removed: list[Term] = []
+    for sign, piece in pieces:
+        piece_text = text[piece[0].start : piece[-1].end + 1].strip()
+        if piece_text in ("0", "1"):
+            intercept = (piece_text == "1") == (sign == "+")
+            continue
+        term = _parse_term(text, piece, len(terms) + len(removed) + 1)
+        (terms if sign == "+" else removed).append(term)
+
+    kept: list[Term] = []
+    for term in terms:
+        if term.label not in {t.label for t in kept}:
+            kept.append(term)
+    for term in removed:
+        if term.label not in {t.label for t in kept}:
+            raise FormulaError(f"formula removes '{term.label}', which is not among its terms")
+        kept = [t for t in kept if t.label != term.label]
+    return intercept, kept
+
+
+def _parse_term(text: str, tokens: list, position: int) -> Term:
+    groups: list[list] = [[]]
+    depth = 0
+    for token in tokens:
+        if depth == 0 and token.token_type == TokenType.COLON:
+            groups.append([])
+            continue
+        depth += _depth_change(token.token_type)
+        groups[-1].append(token)
+    if any(not group for group in groups):
+        raise FormulaError(f"formula {text!r} has an empty factor around ':'")
+    texts = tuple(text[g[0].start : g[-1].end + 1].strip() for g in groups)
+    if len(set(texts)) != len(texts):
+        raise FormulaError(f"interaction '{':'.join(texts)}' repeats a factor")
+    factors = tuple(parse_expression(t, "term", f"term {position} of the formula") for t in texts)
+    return Term(factors=factors, texts=texts)
+
+
+def _first_line(err: Exception) -> str:
+    return str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__

@@ -1,0 +1,1 @@
+"""Fitting: statistics queries, row terms, the fit drivers and the adjustments (Firth, robust, prior correction, penalty)."""

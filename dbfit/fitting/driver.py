@@ -1,0 +1,471 @@
+"""``fit``: formula -> design -> statistics queries -> Newton steps -> model."""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass
+import math
+import dataclasses
+import sys
+import uuid
+from collections.abc import Mapping, Sequence
+from typing import Any, Callable
+
+import duckdb
+import numpy as np
+from sqlglot import exp
+
+from dbfit.fitting import firth as bias_reduction
+from dbfit.model import inference
+from dbfit.fitting import penalised as penalized
+from dbfit.fitting import prior_correction as priorcorrection
+from dbfit.expressions import builders as sb
+from dbfit.fitting import robust as robust_errors
+from dbfit.fitting.blocks import BlockedStatisticsPass, BlockInformation, blocked_factor, dense_first
+from dbfit.design.layout import Design, build_design
+from dbfit.engines.duckdb_engine import DuckDBEngine, engine_for
+from dbfit.errors import FitError
+from dbfit.expressions.formula import parse_formula
+from dbfit.solver.newton import IterationReport, NewtonResult, fit_newton, refine_with_fixed_information
+from dbfit.model.fitted import Model
+from dbfit.fitting.options import FitOptions
+from dbfit.engines.progress import progress_settings
+from dbfit.expressions.source import source_relation
+from dbfit.fitting.segments import SegmentedFit, fit_segments
+from dbfit.fitting.statistics import StatisticsPass
+
+log = logging.getLogger("dbfit")
+
+SAMPLE_START_ROWS = 500_000  # from this many rows used, start from a fit on a sample
+SAMPLE_ROWS = 100_000
+SAMPLE_SEED = 20261201
+SAMPLE_TOL = 1e-4  # the sample's estimates are within sampling error of the answer anyway
+
+Progress = bool | Callable[[IterationReport], None] | None
+
+
+def fit(
+    con: duckdb.DuckDBPyConnection,
+    formula: str,
+    source: str,
+    *,
+    weights: str | None = None,
+    offset: str | None = None,
+    trials: str | None = None,
+    reference: Mapping[str, Any] | None = None,
+    positive: Any = None,
+    max_iter: int = 50,
+    tol: float = 1e-10,
+    start: Mapping[str, float] | Sequence[float] | None = None,
+    progress: Progress = None,
+    by: str | None = None,
+    robust: str | None = None,
+    cluster: str | None = None,
+    firth: bool = False,
+    population_rate: float | None = None,
+    shrinkage: float | Sequence[float] | str | None = None,
+    l1_share: float = 0.0,
+    folds: int = 5,
+    split_key: str | None = None,
+) -> Model | SegmentedFit:
+    """Fit a logistic regression of ``formula`` on ``source`` inside the database.
+
+    Parameters
+    ----------
+    con : DuckDB connection holding (or able to read) the source.
+    formula : ``target ~ term + ...``; the target is a 0/1 or boolean SQL expression (or text with ``positive``).
+    source : table or view name, Parquet/CSV path, or a single SELECT.
+    weights : SQL expression of non-negative prior (frequency) weights; default 1.
+    offset : SQL expression added to the linear predictor with coefficient 1.
+    trials : SQL expression of the number of trials; the target then counts successes (grouped binomial).
+    reference : ``{term: level}`` reference levels of categorical terms (default: first in sort order).
+    positive : the value of a two-valued target that counts as the event.
+    max_iter : most Newton passes (>= 1), default 50.
+    tol : relative deviance change at convergence, default 1e-10.
+    start : starting estimates on the original scale, by label or in label order (warm start).
+    progress : None prints each pass (and a live share of rows scanned) on stderr when it is a terminal and
+        otherwise logs each pass at INFO on the ``dbfit`` logger; True always prints; False is quiet; a
+        callable receives an :class:`IterationReport`.
+    by : SQL expression of a segment; one model is fitted per value, all in the same scans, and a
+        :class:`SegmentedFit` is returned.
+    robust : ``"HC0"``, ``"HC1"`` or ``"cluster"``: sandwich standard errors instead of the model-based ones
+        (see :mod:`dbfit.fitting.robust`); one more scan.
+    cluster : SQL expression naming each row's cluster, for cluster-robust standard errors.
+    firth : fit Firth's bias-reduced estimates (finite under separation; see :mod:`dbfit.fitting.firth`);
+        two scans per Newton pass.
+    population_rate : the known population event rate when the rows were sampled by outcome; the intercept
+        is prior-corrected to it (see :mod:`dbfit.fitting.prior_correction`).
+    shrinkage : penalty strength on the standardised scale (ridge / elastic net, see :mod:`dbfit.solver.coordinate_descent`);
+        a list of strengths, or ``"cv"`` for an automatic grid, is walked as a path and the value with the
+        least ``folds``-fold cross-validated deviance is kept.
+    l1_share : share of the L1 part of the penalty, from 0 (ridge) to 1 (pure L1); default 0.
+    folds : number of cross-validation folds, default 5.
+    split_key : SQL expression whose hash assigns rows to folds (default: the row's used values).
+
+    References
+    ----------
+    McCullagh and Nelder (1989), Generalized Linear Models, 2nd ed., Chapman & Hall, chapter 4.
+    """
+    chosen = FitOptions.of(weights=weights, offset=offset, trials=trials, reference=reference, positive=positive,
+                           max_iter=max_iter, tol=tol, start=start, by=by, robust=robust, cluster=cluster,
+                           firth=firth, population_rate=population_rate, shrinkage=shrinkage, l1_share=l1_share,
+                           folds=folds, split_key=split_key)
+    return fit_with(con, formula, source, chosen, progress)
+
+
+def fit_with(con: duckdb.DuckDBPyConnection, formula: str, source: str, options: FitOptions,
+             progress: Progress = None) -> Model | SegmentedFit:
+    """:func:`fit` with its options already checked (each entry point builds :class:`FitOptions` once)."""
+    check_progress(progress)
+    special = options.variants()
+    engine = engine_for(con)
+    options.check_engine(engine.dialect)
+    engine.live_progress = (engine.dialect == "duckdb" and progress is not False and not callable(progress)
+                            and sys.stderr.isatty())
+    arguments = dict(weights=options.weights, offset=options.offset, trials=options.trials,
+                     reference=options.reference, positive=options.positive, max_iter=options.max_iter,
+                     tol=options.tol, start=options.start, progress=progress, by=options.by, special=special)
+    if engine.dialect == "duckdb":
+        # dbfit reports progress itself (or is quiet): DuckDB's own printed bar stays off during the fit.
+        with progress_settings(con, track=engine.live_progress):
+            return _fit(engine, formula, source, **arguments)
+    return _fit(engine, formula, source, **arguments)
+
+
+def check_progress(progress: Any) -> None:
+    if progress is not None and not isinstance(progress, bool) and not callable(progress):
+        raise FitError(f"progress must be True, False, None or a function of one report (got {progress!r})")
+
+
+@dataclass(frozen=True)
+class FitVariants:
+    """The options that change how the estimates or their errors are computed."""
+
+    robust_kind: str | None = None
+    cluster: str | None = None
+    firth: bool = False
+    population_rate: float | None = None
+    penalty_request: Any = None
+
+    @property
+    def plain(self) -> bool:
+        """The estimates are the maximum-likelihood ones (no Firth adjustment, no penalty)."""
+        return not self.firth and self.penalty_request is None
+
+    @property
+    def ordinary(self) -> bool:
+        """Plain estimates with model-based errors on the sampled scale: nothing beyond the core fit."""
+        return self.plain and self.robust_kind is None and self.population_rate is None
+
+
+def _fit(
+    engine: DuckDBEngine,
+    formula: str,
+    source: str,
+    *,
+    weights: str | None,
+    offset: str | None,
+    trials: str | None,
+    reference: Mapping[str, Any] | None,
+    positive: Any,
+    max_iter: int,
+    tol: float,
+    start: Mapping[str, float] | Sequence[float] | None,
+    progress: Progress,
+    by: str | None,
+    special: FitVariants,
+) -> Model | SegmentedFit:
+    parsed = parse_formula(formula)
+    design = build_design(
+        engine,
+        parsed,
+        source_relation(source),
+        weights=weights,
+        offset=offset,
+        trials=trials,
+        positive=positive,
+        reference=dict(reference or {}),
+        by=by,
+    )
+    has_intercept = 1 if design.intercept else 0
+    constant = [k + has_intercept for k, c in enumerate(design.columns) if c.constant]
+    all_parameters = list(range(len(design.labels)))
+    fitted = [k for k in all_parameters if k not in constant]
+    reporter = progress_reporter(progress)
+    options = dict(weights=weights, offset=offset, trials=trials, reference=dict(reference or {}),
+                   positive=positive, max_iter=max_iter, tol=tol, by=by)
+    if by is not None:
+        if start is not None:
+            raise FitError("start= cannot be combined with by=: every segment starts from its own intercept")
+        return fit_segments(engine, design, fitted, constant, max_iter=max_iter, tol=tol, reporter=reporter,
+                            assemble=assemble_model, formula=formula, source=source, options=options)
+
+    factor = blocked_factor(design) if engine.parameters else None
+    if factor is not None and not (special.plain and special.robust_kind is None):  # prior correction is fine
+        raise FitError(
+            f"'{design.factors[factor].text}' has {len(design.factors[factor].levels)} levels: firth, shrinkage and "
+            "robust errors are not available with a categorical of that many levels; merge rare levels first"
+        )
+    if factor is not None:
+        fitted = dense_first(design, fitted, factor)
+    default_start = start_values(design, None, fitted)
+    start_deviance = np.inf
+    if factor is not None:
+        full_pass = BlockedStatisticsPass(engine, design, factor)
+        beta_start = start_values(design, start, fitted)
+    else:
+        full_pass = StatisticsPass(engine, design)
+        if start is None and design.rows_used >= SAMPLE_START_ROWS and special.plain and engine.dialect == "duckdb":
+            beta_start, start_deviance = _sample_start(engine, design, fitted, default_start, max_iter, tol, reporter)
+        else:
+            beta_start = start_values(design, start, fitted)
+
+    firth = special.firth
+    step_evaluate = bias_reduction.firth_evaluator(engine, design, full_pass, has_intercept) if firth else full_pass
+    if special.penalty_request is not None:
+        penalised = penalized.fit_penalised(engine, design, full_pass, beta_start, fitted, special.penalty_request,
+                                            max_iter, reporter)
+        newton = penalised.newton
+    else:
+        newton = fit_newton(
+            lambda beta, active: step_evaluate([fitted[k] for k in active], beta),
+            beta_start,
+            saturated_loglik=design.saturated_loglik,
+            max_iter=max_iter,
+            tol=tol,
+            protected=has_intercept,
+            report=reporter,
+            fallback_start=None if start is None else default_start,
+            weight_total=design.trial_sum,
+            start_deviance=start_deviance,
+            detect_separation=not firth,
+        )
+    active = [fitted[k] for k in newton.active]
+    aliased = sorted(constant + [fitted[k] for k in newton.aliased])
+    if firth:
+        newton = bias_reduction.finish(newton, step_evaluate, full_pass, active, max_iter)
+    null_loglik = _null_loglik(engine, design, max_iter, tol)
+    model = assemble_model(design, newton, active, aliased, null_loglik, engine.scans, formula, source,
+                           {**options, "firth": firth})
+    if firth:
+        model = bias_reduction.annotate(model, newton.last)
+    if special.penalty_request is not None:
+        model = penalized.annotate(model, penalised, special.penalty_request)
+    if special.robust_kind is not None:
+        model = robust_errors.with_robust_errors(engine.connection, model, special.robust_kind, special.cluster)
+    if special.population_rate is not None:
+        model = priorcorrection.prior_corrected(model, special.population_rate)
+    return model
+
+
+def _sample_start(
+    engine: DuckDBEngine,
+    design: Design,
+    fitted: list[int],
+    default_start: np.ndarray,
+    max_iter: int,
+    tol: float,
+    reporter: Callable[[IterationReport], None] | None,
+) -> tuple[np.ndarray, float]:
+    """Fit a sample of the complete rows, kept in a temporary table, and start from its estimates.
+
+    The sample is a repeatable system sample of a table's row blocks (it reads only those blocks), or for
+    other sources a reservoir sample (one scan). From its estimates, score-only scans with the sample's
+    information scaled to the full data (a chord method) close in on the answer, and one full Newton pass
+    confirms it. Returns the start and the last deviance.
+    """
+    table = f"dbfit_sample_{uuid.uuid4().hex}"
+    if isinstance(design.relation, exp.Table) and not design.relation.args.get("sample"):
+        share = min(100.0, 100.0 * SAMPLE_ROWS / max(design.rows_total, 1))
+        sampled = design.relation.copy()
+        sampled.set("sample", exp.TableSample(method=exp.var("SYSTEM"), percent=sb.number(round(share, 6)),
+                                              seed=exp.Literal.number(SAMPLE_SEED)))
+        base_sql = engine.sql(dataclasses.replace(design, relation=sampled).base_query())
+        engine.execute(scan=False, sql=f'CREATE TEMP TABLE "{table}" AS {base_sql}')
+    else:
+        base_sql = engine.sql(design.base_query())
+        engine.execute(
+            scan=True,
+            sql=f'CREATE TEMP TABLE "{table}" AS SELECT * FROM ({base_sql}) '
+            f"USING SAMPLE reservoir({SAMPLE_ROWS} ROWS) REPEATABLE ({SAMPLE_SEED})"
+        )
+    try:
+        rows = exp.select("*").from_(exp.Table(this=exp.to_identifier(table, quoted=True)))
+
+        def sample_report(item: IterationReport) -> None:
+            item.phase = f"sample of {SAMPLE_ROWS:,} rows"
+            reporter(item)
+
+        sample_pass = StatisticsPass(engine, design, rows)
+        sample = fit_newton(
+            lambda beta, active: sample_pass([fitted[k] for k in active], beta),
+            default_start,
+            saturated_loglik=0.0,
+            max_iter=max_iter,
+            tol=max(tol, SAMPLE_TOL),
+            protected=1 if design.intercept else 0,
+            report=sample_report if reporter else None,
+        )
+        sampled_rows = engine.fetch(exp.select(exp.Count(this=exp.Star())).from_(rows.subquery("dbfit_s")), scan=False)[0][0]
+    finally:
+        engine.execute(sql=f'DROP TABLE IF EXISTS "{table}"', scan=False)
+    if not sample.converged or sample.separation:
+        return default_start, np.inf
+    start = np.zeros(len(fitted))
+    start[sample.active] = sample.beta
+    if sample.aliased:
+        return start, np.inf
+    full_pass = StatisticsPass(engine, design)
+    return refine_with_fixed_information(
+        lambda beta: full_pass.score_only(fitted, beta),
+        start,
+        sample.last.gram * (design.rows_used / sampled_rows),
+        saturated_loglik=design.saturated_loglik,
+        report=reporter,
+    )
+
+
+def start_values(design: Design, start: Mapping[str, float] | Sequence[float] | None, fitted: list[int]) -> np.ndarray:
+    labels = design.labels
+    if start is None:
+        internal = np.zeros(len(labels))
+        if design.intercept and design.offset is None:
+            rate = design.success_sum / design.trial_sum
+            internal[0] = math.log(rate / (1.0 - rate))
+        return internal[fitted]
+    if isinstance(start, Mapping):
+        unknown = [name for name in start if name not in labels]
+        if unknown:
+            raise FitError(f"start names unknown terms {unknown}; the model's terms are {labels}")
+        original = np.array([float(start.get(label, 0.0) or 0.0) for label in labels])
+    else:
+        original = np.asarray(list(start), dtype=float)
+        if original.shape != (len(labels),):
+            raise FitError(f"start has {original.size} values but the model has {len(labels)} terms: {labels}")
+    original = np.nan_to_num(original, nan=0.0)
+    return inference.internal_start(design, original)[fitted]
+
+
+def _null_loglik(engine: DuckDBEngine, design: Design, max_iter: int, tol: float) -> float:
+    """Log-likelihood of the intercept-only model with the same weights and offset."""
+    if design.offset is None:
+        return inference.null_loglik_closed_form(design)
+    rate = design.success_sum / design.trial_sum
+    intercept_only = StatisticsPass(engine, design)
+    result = fit_newton(
+        lambda beta, active: intercept_only.run((), True, beta),
+        np.array([math.log(rate / (1.0 - rate))]),
+        saturated_loglik=design.saturated_loglik,
+        max_iter=max_iter,
+        tol=tol,
+        protected=1,
+        check_aliasing=False,
+    )
+    return result.last.loglik + design.loglik_constant
+
+
+def assemble_model(
+    design: Design,
+    newton: NewtonResult,
+    active: list[int],
+    aliased: list[int],
+    null_loglik: float,
+    scans: int,
+    formula: str,
+    source: str,
+    options: dict[str, Any],
+) -> Model:
+    labels = design.labels
+    size = len(labels)
+    transform = inference.original_scale_map(design, active)
+    gram = newton.last.gram
+    try:
+        internal_covariance = gram.inverse() if isinstance(gram, BlockInformation) else np.linalg.inv(gram)
+    except np.linalg.LinAlgError:
+        internal_covariance = np.linalg.pinv(gram)
+    estimates = np.full(size, np.nan)
+    covariance = np.full((size, size), np.nan)
+    estimates[active] = transform @ newton.beta
+    covariance[np.ix_(active, active)] = transform @ internal_covariance @ transform.T
+
+    warnings: list[str] = []
+    for k in aliased:
+        warnings.append(
+            f"aliased: '{labels[k]}' is constant or a linear combination of earlier terms in these rows; "
+            "its estimate is NULL and the other estimates are valid without it"
+        )
+    if newton.separation:
+        suspects = [labels[active[k]] for k in range(len(active)) if active[k] in newton.suspects] or [
+            labels[k] for k in active if not (design.intercept and k == 0)
+        ]
+        warnings.append(
+            "separation: the outcome is (quasi-)completely separated, fitted probabilities reach 0 or 1 and the "
+            f"maximum-likelihood estimates do not exist; suspected terms: {', '.join(suspects)}. The estimates "
+            "and standard errors shown are not trustworthy: drop or merge those terms"
+            + ("" if options.get("firth") else ", or refit with dbfit.fit(..., firth=True) for Firth's "
+               "bias-reduced estimates, which stay finite")
+        )
+    elif not newton.converged:
+        warnings.append(
+            f"not converged: the deviance was still changing after {newton.iterations} passes; raise max_iter "
+            "or check the data for extreme values"
+        )
+
+    loglik = newton.last.loglik + design.loglik_constant
+    parameters = len(active)
+    informative = design.rows_informative  # rows with 0 trials count in neither the residual df nor BIC's n
+    aic, bic = inference.information_criteria(loglik, parameters, informative)
+    stats = {
+        "n_used": design.rows_used,
+        "n_excluded": design.rows_total - design.rows_used,
+        "log_likelihood": loglik,
+        "null_log_likelihood": null_loglik,
+        "deviance": 2.0 * (design.saturated_loglik + design.loglik_constant - loglik),
+        "null_deviance": 2.0 * (design.saturated_loglik + design.loglik_constant - null_loglik),
+        "aic": aic,
+        "bic": bic,
+        "iterations": newton.iterations,
+        "converged": newton.converged,
+        "separation": newton.separation,
+        "parameters": parameters,
+        "aliased": len(aliased),
+        "df_residual": informative - parameters,
+        "scans": scans,
+        "weight_sum": design.weight_sum,
+    }
+    if design.trials is not None:
+        stats["rows_zero_trials"] = design.rows_zero_trials
+    return Model(
+        formula=formula,
+        source=source,
+        design=design,
+        labels=labels,
+        estimates=estimates,
+        covariance=covariance,
+        coefficients=inference.coefficient_table(labels, estimates, covariance),
+        stats=stats,
+        warnings=warnings,
+        options=options,
+    )
+
+
+def progress_reporter(progress: Progress) -> Callable[[IterationReport], None] | None:
+    if progress is False:
+        return None
+    if callable(progress):
+        return progress
+
+    def report(item: IterationReport) -> None:
+        text = (
+            ("dbfit " if item.phase == "full data" else f"dbfit {item.phase}, ")
+            + f"pass {item.iteration}: deviance {item.deviance:.10g}"
+            + (" (rose: halving the step)" if item.halving else "")
+            + (f", step {item.step_size:.3g}" if math.isfinite(item.step_size) else "")
+            + f", {item.elapsed:.2f}s"
+        )
+        if progress is True or sys.stderr.isatty():
+            print(text, file=sys.stderr, flush=True)
+        else:
+            log.info(text)
+
+    return report

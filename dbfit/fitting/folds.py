@@ -1,0 +1,99 @@
+"""One scan for many fits: the statistics of every cross-validation fold (and of all rows) at once.
+
+Fit f has its own coefficients and a fold it holds out (or none). Each row gets one linear predictor per fit;
+a row enters fit f's information, score and log-likelihood when its fold is not the one f holds out, and its
+held-out log-likelihood otherwise. So k folds plus the fit on all rows cost one scan per pass, not k + 1.
+The per-row terms are those of :mod:`dbfit.fitting.statistics` (McCullagh and Nelder 1989, section 4.4).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from sqlglot import exp
+
+from dbfit.expressions import builders as sb
+from dbfit.design.layout import TARGET, Design
+from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.fitting.rowterms import symmetric, upper_products
+from dbfit.fitting.splits import FOLD
+from dbfit.fitting.statistics import PassResult
+
+
+@dataclass(frozen=True)
+class FoldFit:
+    held_out: int | None  # the fold this fit leaves out; None fits all rows
+    beta: np.ndarray
+
+
+@dataclass
+class FoldPass:
+    result: PassResult  # over the fit's training rows
+    held_out_loglik: float  # over the rows of the fold it leaves out (0 when none)
+
+
+def fold_scan_query(design: Design, parameters: list[int], fold: exp.Expression, fits: list[FoldFit]) -> exp.Select:
+    has_intercept = 1 if design.intercept else 0
+    names = [None if design.intercept and k == 0 else f"dbfit_z{k}" for k in parameters]
+    z = [exp.Literal.number(1) if name is None else sb.column(name) for name in names]
+    offset = design.offset_expression()
+    columns = exp.select(
+        *[exp.alias_(design.column_expression(design.columns[k - has_intercept]), name, quoted=True)
+          for k, name in zip(parameters, names) if name is not None],
+        exp.alias_(sb.column(TARGET), "y", quoted=True), exp.alias_(design.weight_expression(), "pw", quoted=True),
+        exp.alias_(design.trials_expression(), "n", quoted=True), sb.column(FOLD),
+        exp.alias_(offset if offset is not None else exp.Literal.number(0), "off", quoted=True),
+    ).from_(design.base_query({FOLD: fold}).subquery("dbfit_base"))
+    kept = [sb.column(name) for name in names if name is not None] + [sb.column(c) for c in ("y", "pw", "n", FOLD)]
+    etas = [sb.add(sb.column("off"), *[sb.mul(sb.number(b), zk.copy()) for b, zk in zip(fit.beta, z)]) for fit in fits]
+    linear = exp.select(*kept, *[exp.alias_(eta, f"eta{f}", quoted=True) for f, eta in enumerate(etas)]).from_(
+        columns.subquery("dbfit_cols"))
+    with_e = exp.select("*", *[exp.alias_(sb.exp_neg_abs(sb.column(f"eta{f}")), f"e{f}", quoted=True)
+                               for f in range(len(fits))]).from_(linear.subquery("dbfit_lin"))
+
+    one = exp.Literal.number(1)
+    row_terms: list[exp.Expression] = []
+    for f, fit in enumerate(fits):
+        eta, e = sb.column(f"eta{f}"), sb.column(f"e{f}")
+        training = exp.Literal.number(1) if fit.held_out is None else exp.If(
+            this=exp.NEQ(this=sb.column(FOLD), expression=exp.Literal.number(fit.held_out)), true=one.copy(),
+            false=exp.Literal.number(0))
+        weight = sb.mul(training, sb.column("pw"))
+        row_terms += [
+            exp.alias_(sb.div(sb.mul(weight.copy(), sb.column("n"), e.copy()),
+                              sb.paren(sb.mul(sb.paren(sb.add(one.copy(), e.copy())), sb.paren(sb.add(one.copy(), e.copy()))))),
+                       f"wt{f}", quoted=True),
+            exp.alias_(sb.mul(weight.copy(), sb.paren(sb.sub(sb.column("y"), sb.mul(sb.column("n"), sb.stable_sigmoid(eta.copy(), e.copy()))))),
+                       f"r{f}", quoted=True),
+            exp.alias_(sb.mul(sb.column("pw"), sb.paren(sb.sub(sb.mul(sb.column("y"), eta.copy()),
+                                                                sb.mul(sb.column("n"), sb.paren(sb.stable_log1pexp(eta.copy(), e.copy())))))),
+                       f"ll{f}", quoted=True),
+            exp.alias_(training.copy(), f"t{f}", quoted=True),
+        ]
+    terms = exp.select(*kept, *row_terms).from_(with_e.subquery("dbfit_e"))
+
+    sums: list[exp.Expression] = []
+    for f in range(len(fits)):
+        sums += [sb.agg_sum(sb.mul(sb.column(f"wt{f}"), product)) for product in upper_products(z)]
+        sums += [sb.agg_sum(sb.mul(sb.column(f"r{f}"), zk.copy())) for zk in z]
+        sums.append(sb.agg_sum(sb.mul(sb.column(f"t{f}"), sb.column(f"ll{f}"))))
+        sums.append(sb.agg_sum(sb.mul(sb.paren(sb.sub(one.copy(), sb.column(f"t{f}"))), sb.column(f"ll{f}"))))
+    return exp.select(*[exp.alias_(s, f"s{i}", quoted=True) for i, s in enumerate(sums)]).from_(
+        terms.subquery("dbfit_terms"))
+
+
+def fold_scan(engine: DuckDBEngine, design: Design, parameters: list[int], fold: exp.Expression,
+              fits: list[FoldFit]) -> list[FoldPass]:
+    """Run the scan and split its one row into a pass result per fit."""
+    values = [0.0 if v is None else float(v) for v in engine.fetch(fold_scan_query(design, parameters, fold, fits))[0]]
+    size = len(parameters)
+    triangle = size * (size + 1) // 2
+    width = triangle + size + 2
+    passes = []
+    for f in range(len(fits)):
+        chunk = values[f * width : (f + 1) * width]
+        result = PassResult(symmetric(chunk[:triangle], size), np.array(chunk[triangle : triangle + size]),
+                            chunk[triangle + size], 0.0, 0.0)
+        passes.append(FoldPass(result, chunk[triangle + size + 1]))
+    return passes

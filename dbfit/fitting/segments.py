@@ -1,0 +1,330 @@
+"""One model per segment, all fitted in the same scans.
+
+Each segment keeps its own Newton state (:func:`dbfit.solver.newton.newton_iterations`); one grouped statistics
+query per pass joins every still-running segment's coefficients to its rows and returns its X'WX, score and
+log-likelihood. A segment that converges drops out of the join, so later passes skip its rows' arithmetic.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import re
+import time
+from dataclasses import dataclass, field
+from decimal import Decimal
+from typing import Any, Callable, Generator
+
+import numpy as np
+import pyarrow as pa
+from sqlglot import exp
+
+from dbfit.model import inference
+from dbfit.expressions import builders as sb
+from dbfit.design.layout import SEGMENT, Design, segment_profiles
+from dbfit.engines.duckdb_engine import Engine
+from dbfit.errors import DbfitError, FitError, StoreError
+from dbfit.solver.newton import IterationReport, NewtonResult, newton_iterations
+from dbfit.model.fitted import Model
+from dbfit.expressions.names import model_name
+from dbfit.expressions.source import source_relation
+from dbfit.fitting.statistics import PassResult, statistics_query, unpack_many
+
+_UNNAMEABLE = re.compile(r"[^A-Za-z0-9_.-]")
+Steps = Generator[tuple[np.ndarray, list[int]], PassResult, NewtonResult]
+
+
+@dataclass
+class SegmentedFit:
+    """Models fitted one per value of the ``by`` expression, and the segments that could not be fitted."""
+
+    by: str
+    models: dict[Any, Model]
+    failures: dict[Any, str]
+    passes: int
+    scans: int
+    warnings: list[str] = field(default_factory=list)
+    source: str = ""
+    by_expression: exp.Expression | None = None
+    rows_total: int = 0  # rows of the whole source, segment NULL or not
+
+    @property
+    def coefficients(self) -> pa.Table:
+        """Every segment's coefficient table stacked, with the segment value first."""
+        tables = []
+        for value, model in self.models.items():
+            table = model.coefficients
+            tables.append(table.add_column(0, "segment", pa.array([str(value)] * table.num_rows, type=pa.string())))
+        return pa.concat_tables(tables) if tables else pa.table({"segment": pa.array([], type=pa.string())})
+
+    @property
+    def stats(self) -> pa.Table:
+        """One row per fitted segment with its fit statistics."""
+        keys = ["n_used", "n_excluded", "log_likelihood", "deviance", "null_deviance", "aic", "bic", "iterations",
+                "converged", "separation"]
+        rows = [{"segment": str(v), **{k: m.stats[k] for k in keys}, "warnings": len(m.warnings)}
+                for v, m in self.models.items()]
+        return pa.Table.from_pylist(rows) if rows else pa.table({"segment": pa.array([], type=pa.string())})
+
+    def model_names(self, name: str) -> dict[Any, str]:
+        """The store name of each segment's model: ``name.segment`` (characters a name cannot hold become '_')."""
+        model_name(name)
+        names = {value: model_name(f"{name}.{_UNNAMEABLE.sub('_', str(_plain(value)))}"[:128]) for value in self.models}
+        seen: dict[str, Any] = {}
+        for value, stored in names.items():
+            if stored in seen:
+                raise StoreError(f"segments {seen[stored]!r} and {value!r} would both be stored as model '{stored}': "
+                                 "recode the by expression so that its values differ in letters, digits, '_', '.' or '-'")
+            seen[stored] = value
+        return names
+
+    def save(self, con: Any, name: str, *, promote: bool = True) -> dict[Any, tuple[str, int]]:
+        """Store every segment's model as the next version of ``name.segment``, all in one transaction;
+        returns ``{segment: (model name, version)}``. Each model's source is its segment's rows."""
+        from dbfit.lifecycle.fingerprint import segment_fingerprints
+        from dbfit.store.model_store import save_models
+
+        names = self.model_names(name)
+        if self.by_expression is None:
+            raise StoreError("this segmented fit does not know its by expression and cannot be stored")
+        try:
+            prints = segment_fingerprints(con, self.source, self.by_expression,
+                                          {value: model.source for value, model in self.models.items()})
+        except DbfitError:
+            prints = {}  # the source cannot be read here (fitted on another engine): no fingerprints, as for one model
+        # No drift snapshot per segment: one per segment would scan the source once per segment.
+        entries = [(model, names[value], {"fingerprints": {k: [v] for k, v in prints[value].items()}} if prints else {})
+                   for value, model in self.models.items()]
+        versions = save_models(con, entries, promote=promote)
+        return {value: (names[value], version) for value, version in zip(self.models, versions)}
+
+    def scoring_sql(self, source: str | None = None, *, unseen: str = "null") -> str:
+        """A DuckDB SELECT over ``source`` (default: the fitted source) scoring each row with its segment's model."""
+        from dbfit.deployment.segment_views import segment_scoring_query
+
+        if self.by_expression is None:
+            raise StoreError("this segmented fit does not know its by expression")
+        return segment_scoring_query(self.models, self.by_expression, source or self.source, unseen=unseen).sql("duckdb")
+
+    def summary(self) -> str:
+        lines = [f"dbfit | one model per value of  {self.by}: {len(self.models)} fitted, {len(self.failures)} not"
+                 f" ({self.passes} grouped passes, {self.scans} scans of the data)"]
+        for value, model in self.models.items():
+            state = "converged" if model.stats["converged"] else "NOT converged"
+            lines.append(f"  {str(value):<20} {model.stats['n_used']:>10,} rows  deviance {model.stats['deviance']:,.4f}"
+                         f"  {state}  {len(model.warnings)} warnings")
+        for value, reason in self.failures.items():
+            lines.append(f"  {str(value):<20} not fitted: {reason}")
+        return "\n".join(lines)
+
+
+def fit_segments(
+    engine: Engine,
+    design: Design,
+    fitted: list[int],
+    constant: list[int],
+    *,
+    max_iter: int,
+    tol: float,
+    reporter: Callable[[IterationReport], None] | None,
+    assemble: Callable[..., Model],
+    formula: str,
+    source: str,
+    options: dict[str, Any],
+) -> SegmentedFit:
+    """Fit ``design`` separately within every segment; ``assemble`` builds each segment's model."""
+    segments: dict[Any, Design] = {}
+    failures: dict[Any, str] = {}
+    for profile in segment_profiles(engine, design):
+        value, reason = profile["segment"], _unfit_reason(profile, len(fitted))
+        if reason:
+            failures[value] = reason
+        else:
+            segments[value] = _segment_design(design, profile)
+    if not segments:
+        raise FitError(f"no segment of '{design.segment_text}' can be fitted: " + "; ".join(
+            f"{v}: {r}" for v, r in list(failures.items())[:10]))
+
+    protected = 1 if design.intercept else 0
+    steps = {
+        value: newton_iterations(
+            _segment_start(part, fitted), saturated_loglik=part.saturated_loglik, max_iter=max_iter, tol=tol,
+            protected=protected, weight_total=part.trial_sum,
+        )
+        for value, part in segments.items()
+    }
+    saturated = {value: part.saturated_loglik for value, part in segments.items()}
+    results, passes = _run_together(engine, design, fitted, steps, failures, reporter, saturated)
+    null = _null_logliks(engine, design, segments, results, max_iter, tol)
+
+    models: dict[Any, Model] = {}
+    own_options = {k: v for k, v in options.items() if k != "by"}
+    sources = segment_sources(source, design.segment, list(results), engine.dialect)
+    for value in segments:
+        if value not in results:
+            continue
+        newton, part = results[value], segments[value]
+        active = [fitted[k] for k in newton.active]
+        aliased = sorted(constant + [fitted[k] for k in newton.aliased])
+        models[value] = assemble(part, newton, active, aliased, null[value], engine.scans, formula,
+                                 sources[value],
+                                 {**own_options, "segment": {"by": design.segment_text, "value": _plain(value)}})
+    return SegmentedFit(by=design.segment_text or "", models=models, failures=failures, passes=passes,
+                        scans=engine.scans, source=source, by_expression=design.segment,
+                        rows_total=design.rows_total)
+
+
+def _unfit_reason(profile: dict[str, Any], parameters: int) -> str | None:
+    used = int(profile["used"] or 0)
+    if used < parameters + 1:
+        return f"too few rows ({used} used) for {parameters} coefficients"
+    successes, trials = float(profile["success_sum"] or 0), float(profile["trial_sum"] or 0)
+    if successes <= 0 or successes >= trials:
+        return "only one outcome class among its rows"
+    return None
+
+
+def _segment_design(design: Design, profile: dict[str, Any]) -> Design:
+    """The segment's own design: its counts and sums, and no segment expression (its source holds one segment)."""
+    return dataclasses.replace(
+        design,
+        segment=None,
+        segment_text=None,
+        rows_total=int(profile["total"]),
+        rows_used=int(profile["used"]),
+        weight_sum=float(profile["weight_sum"]),
+        success_sum=float(profile["success_sum"]),
+        trial_sum=float(profile["trial_sum"]),
+        loglik_constant=float(profile.get("loglik_constant") or 0.0),
+        saturated_loglik=float(profile.get("saturated_loglik") or 0.0),
+    )
+
+
+def _segment_start(part: Design, fitted: list[int]) -> np.ndarray:
+    start = np.zeros(len(fitted))
+    if part.intercept and part.offset is None:
+        rate = part.success_sum / part.trial_sum
+        start[0] = math.log(rate / (1.0 - rate))
+    return start
+
+
+def _run_together(
+    engine: Engine,
+    design: Design,
+    fitted: list[int],
+    steps: dict[Any, Steps],
+    failures: dict[Any, str],
+    reporter: Callable[[IterationReport], None] | None,
+    saturated: dict[Any, float] | None = None,
+    columns: list[int] | None = None,
+    intercept: bool | None = None,
+) -> tuple[dict[Any, NewtonResult], int]:
+    """Drive every segment's Newton generator with one grouped query per pass."""
+    has_intercept = 1 if design.intercept else 0
+    if columns is None:
+        columns = [k - has_intercept for k in fitted if not (design.intercept and k == 0)]
+        intercept = bool(design.intercept)
+    size = len(columns) + (1 if intercept else 0)
+    requests: dict[Any, tuple[np.ndarray, list[int]]] = {}
+    results: dict[Any, NewtonResult] = {}
+    for value, generator in steps.items():
+        _advance(value, generator, None, requests, results, failures)
+    began, passes = time.perf_counter(), 0
+    latest: dict[Any, float] = {}
+    placeholder = sb.ValuesTemplate.placeholder("dbfit_coef")
+    query = statistics_query(design, columns, bool(intercept), None, coefficients=placeholder)
+    template = sb.ValuesTemplate(engine.sql(query), engine.sql(placeholder), "dbfit_coef",
+                                 [SEGMENT] + [f"c{k}" for k in range(size)], engine.dialect)
+    while requests:
+        passes += 1
+        found = engine.fetch_sql(template.render(_coefficient_rows(requests, size)), [])
+        rows = dict(zip([row[0] for row in found], unpack_many([row[1:] for row in found], size)))
+        pending = list(requests.items())
+        requests = {}
+        for value, (_, active) in pending:
+            if value not in rows:
+                failures[value] = "no rows reached the statistics query"
+                continue
+            whole = rows[value]
+            latest[value] = 2.0 * ((saturated or {}).get(value, 0.0) - whole.loglik)
+            _advance(value, steps[value], _subset(whole, active, size), requests, results, failures)
+        if reporter:
+            reporter(IterationReport(passes, float(sum(latest.values())), time.perf_counter() - began, float("nan"),
+                                     phase=f"{len(pending)} segments ({len(requests)} still running)"))
+    return results, passes
+
+
+def _advance(value, generator, sent, requests, results, failures) -> None:
+    try:
+        requests[value] = generator.send(sent) if sent is not None else next(generator)
+    except StopIteration as finished:
+        results[value] = finished.value
+    except (FloatingPointError, np.linalg.LinAlgError) as err:
+        failures[value] = f"the fit broke down numerically ({err})"
+
+
+def _subset(result: PassResult, active: list[int], size: int) -> PassResult:
+    if len(active) == size:
+        return result
+    return dataclasses.replace(result, gram=result.gram[np.ix_(active, active)], score=result.score[active])
+
+
+def _coefficient_rows(requests: dict[Any, tuple[np.ndarray, list[int]]], size: int) -> list[tuple[Any, exp.Expression, list[float]]]:
+    """(segment, its literal, c0, c1, ...) for the running segments; inactive (aliased) coefficients are 0."""
+    rows = []
+    for value, (beta, active) in requests.items():
+        full = np.zeros(size)
+        full[active] = beta
+        rows.append((value, segment_literal(value), full.tolist()))
+    return rows
+
+
+def segment_sources(source: str, by: exp.Expression | None, values: list[Any], dialect: str = "duckdb") -> dict[Any, str]:
+    """Each segment's rows as a SELECT over ``source`` (rebuilt by sqlglot): the source of that segment's model.
+
+    The query is written once around a placeholder, into which each value's literal (written by sqlglot) goes.
+    """
+    if by is None:
+        raise AssertionError("segment sources need the by expression")
+    placeholder = exp.column("dbfit_segment_value_placeholder", quoted=True)
+    condition = exp.EQ(this=exp.Paren(this=by.copy()), expression=placeholder)
+    text = exp.select("*").from_(source_relation(source)).where(condition).sql(dialect)
+    marker = placeholder.sql(dialect)
+    if text.count(marker) != 1:
+        raise FitError(f"the source or by expression may not mention {marker}")
+    before, after = text.split(marker)
+    return {value: before + segment_literal(value).sql(dialect) + after for value in values}
+
+
+def segment_literal(value: Any) -> exp.Expression:
+    """A SQL literal for a segment value as DuckDB returned it (a float in exponent form, read as DOUBLE)."""
+    if isinstance(value, bool):
+        return exp.Boolean(this=value)
+    if isinstance(value, int):
+        return exp.Literal.number(str(value)) if value >= 0 else exp.Neg(this=exp.Literal.number(str(-value)))
+    if isinstance(value, float):
+        text = sb.float_text(abs(value))
+        return exp.Neg(this=exp.Literal.number(text)) if value < 0 else exp.Literal.number(text)
+    if isinstance(value, Decimal):
+        return exp.Literal.number(str(value)) if value >= 0 else exp.Neg(this=exp.Literal.number(str(-value)))
+    return exp.Literal.string(str(value))
+
+
+def _null_logliks(engine, design, segments, results, max_iter, tol) -> dict[Any, float]:
+    """Each segment's intercept-only log-likelihood (grouped Newton runs when there is an offset)."""
+    if design.offset is None:
+        return {value: inference.null_loglik_closed_form(segments[value]) for value in results}
+    steps = {}
+    for value in results:
+        part = segments[value]
+        rate = part.success_sum / part.trial_sum
+        steps[value] = newton_iterations(np.array([math.log(rate / (1 - rate))]), saturated_loglik=part.saturated_loglik,
+                                         max_iter=max_iter, tol=tol, protected=1, check_aliasing=False)
+    failures: dict[Any, str] = {}
+    null_results, _ = _run_together(engine, design, [0], steps, failures, None, columns=[], intercept=True)
+    return {value: (null_results[value].last.loglik + segments[value].loglik_constant if value in null_results
+                    else float("nan")) for value in results}
+
+
+def _plain(value: Any) -> Any:
+    return str(value) if isinstance(value, Decimal) else value

@@ -1,0 +1,52 @@
+"""Connections with dbfit installed."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+from typing import Any
+
+import duckdb
+
+from dbfit.errors import StoreError
+
+_LOCK_HOLDER = re.compile(r"held in (.+?) \(PID (\d+)\)")
+
+
+def connect(database: str = ":memory:", **config: Any) -> duckdb.DuckDBPyConnection:
+    """Open a DuckDB connection (``config`` as in ``duckdb.connect``) and install dbfit on it."""
+    read_only = bool(config.pop("read_only", False))
+    try:
+        con = duckdb.connect(database, read_only=read_only, config=config)
+    except duckdb.IOException as err:
+        raise _lock_error(database, err) from None
+    return install(con)
+
+
+def connect_existing(database: str, **config: Any) -> duckdb.DuckDBPyConnection:
+    """As :func:`connect`, but refuse a database file that does not exist instead of creating an empty one
+    (a mistyped path would otherwise list no models, or run a script on a new empty file)."""
+    if database != ":memory:" and not Path(database).exists():
+        raise StoreError(f"the database file '{database}' does not exist: check the path (only 'dbfit fit' creates "
+                         "a database file)")
+    return connect(database, **config)
+
+
+def install(con: duckdb.DuckDBPyConnection) -> duckdb.DuckDBPyConnection:
+    """Install dbfit on an existing connection (the ``dbfit.`` SQL functions) and return it."""
+    from dbfit.interfaces.sql_surface import register
+
+    register(con)
+    return con
+
+
+def _lock_error(database: str, err: duckdb.IOException) -> Exception:
+    message = str(err)
+    if "lock" not in message.lower():
+        return StoreError(f"the database file '{database}' cannot be opened: {message.splitlines()[0]}")
+    holder = _LOCK_HOLDER.search(message)
+    who = f"process {holder.group(2)} ({holder.group(1)})" if holder else "another process"
+    return StoreError(
+        f"the database file '{database}' is locked by {who}: DuckDB lets one process write a file at a time. "
+        "Close the other connection, or open the file with read_only=True from every process that only reads"
+    )

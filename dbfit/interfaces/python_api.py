@@ -1,0 +1,177 @@
+"""The Python entry points that touch the store: fit-and-save, load, move as JSON, publish, list, drop."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import duckdb
+import pyarrow as pa
+
+import numpy as np
+
+from dbfit.assessment import metrics as assessment
+
+from dbfit.deployment import views as deploy
+
+from dbfit.fitting import driver as fitting
+
+from dbfit.model import document as serialize
+
+from dbfit.store import model_store as store
+from dbfit.engines.duckdb_engine import DuckDBEngine, translate_error
+from dbfit.errors import FitError
+from dbfit.fitting.splits import Holdout, KFold, part_source
+from dbfit.model.fitted import Model
+from dbfit.expressions.names import model_name
+from dbfit.fitting.options import FitOptions
+
+
+def fit(con: duckdb.DuckDBPyConnection, formula: str, source: str, *, name: str | None = None,
+        split: Holdout | None = None, threshold: float = 0.5, **options: Any) -> Model:
+    """Fit as :func:`dbfit.fitting.driver.fit`; with ``name=...`` also store the model as that name's next version.
+
+    With ``split=dbfit.Holdout(key, share)`` the model is fitted on the training part only and its held-out
+    metrics (at ``threshold``) go to ``model.stats["holdout"]``. ``model.source`` stays the whole source and
+    ``model.split`` the rule; ``assess`` and reports then default to the held-out rows, ``score`` scores all
+    rows.
+    """
+    progress = options.pop("progress", None)
+    chosen = FitOptions.of(**options)
+    return fit_options(con, formula, source, chosen, name=name, split=split, threshold=threshold, progress=progress)
+
+
+def fit_options(con: duckdb.DuckDBPyConnection, formula: str, source: str, options: FitOptions, *,
+                name: str | None = None, split: Holdout | None = None, threshold: float = 0.5,
+                progress: fitting.Progress = None) -> Model:
+    """:func:`fit` with the fit's options already checked (the command line, spec files and refit build them)."""
+    if name is not None:
+        model_name(name)
+    if split is not None and not isinstance(split, Holdout):
+        raise FitError("split= takes dbfit.Holdout(key, share); for k folds use dbfit.cross_validate")
+    if split is not None and options.by is not None:
+        raise FitError("split= cannot be combined with by=")
+    if split is not None:
+        assessment.check_threshold(threshold)
+    training = source if split is None else _part_source(source, split, "train")
+    model = fitting.fit_with(con, formula, training, options, progress)
+    if split is not None:
+        model.source = source
+        model.options["split"] = {"key": split.key, "share": split.share, "source": source, "threshold": threshold}
+        held_out = assess(con, model, rows="held_out", threshold=threshold)
+        model.stats["holdout"] = dict(zip(held_out["metric"].to_pylist(), held_out["value"].to_pylist()))
+    if name is not None:
+        model.save(con, name)
+    return model
+
+
+def _part_source(source: str, split: Holdout | KFold, part: str | int, keep: bool = True) -> str:
+    """A SELECT (as SQL text written by sqlglot from the parsed source) of one part of the split."""
+    return part_source(source, split, part, keep=keep)
+
+
+def assess(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *,
+           rows: str | None = None, threshold: float = 0.5, version: int | None = None) -> pa.Table:
+    """One row per metric (metric, value, note) of ``model``; the note of metric ``rows`` says which rows.
+
+    Default: the held-out rows of a holdout fit, else all rows of the model's source (in-sample). ``source``
+    assesses all rows of another source; ``rows`` ("held_out", "training", "all") picks a part of the split.
+    """
+    resolved = deploy.resolve_model(con, model, version)
+    text, note = resolved.assessed_rows(source, rows)
+    return assessment.metrics(DuckDBEngine(con), assessment.scored_relation(resolved, text), threshold,
+                              rows_note=note).table()
+
+
+def assessment_tables(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *,
+                      rows: str | None = None, threshold: float = 0.5,
+                      version: int | None = None) -> dict[str, pa.Table]:
+    """Metrics, confusion counts, cut-off curve, calibration and gains of ``model`` (rows as ``assess``)."""
+    resolved = deploy.resolve_model(con, model, version)
+    text, note = resolved.assessed_rows(source, rows)
+    scored = assessment.scored_relation(resolved, text)
+    return assessment.assessment_tables(DuckDBEngine(con), scored, threshold, rows_note=note)
+
+
+def cross_validate(con: duckdb.DuckDBPyConnection, formula: str, source: str, split: KFold, *,
+                   threshold: float = 0.5, **options: Any) -> pa.Table:
+    """k-fold cross-validation in the database: fit on k - 1 folds, assess on the held fold, for each fold.
+
+    Returns one row per metric: the mean over folds, their standard deviation, and each fold's value.
+    """
+    if not isinstance(split, KFold):
+        raise FitError("cross_validate takes split=dbfit.KFold(key, folds)")
+    if isinstance(split.folds, bool) or not isinstance(split.folds, int) or split.folds < 2:
+        raise FitError(f"KFold folds must be a whole number of at least 2 (got {split.folds!r})")
+    assessment.check_threshold(threshold)
+    progress = options.pop("progress", False)
+    chosen = FitOptions.of(**options)
+    per_fold: list[dict[str, float | None]] = []
+    for fold in range(split.folds):
+        model = fitting.fit_with(con, formula, _part_source(source, split, fold, keep=False), chosen, progress)
+        table = assess(con, model, _part_source(source, split, fold), threshold=threshold)
+        per_fold.append(dict(zip(table["metric"].to_pylist(), table["value"].to_pylist())))
+    names = list(per_fold[0])
+    columns: dict[str, list[Any]] = {"metric": names, "mean": [], "std_dev": []}
+    for fold in range(split.folds):
+        columns[f"fold_{fold}"] = [per_fold[fold][n] for n in names]
+    for name in names:
+        values = [f[name] for f in per_fold if f[name] is not None]
+        columns["mean"].append(float(np.mean(values)) if values else None)
+        columns["std_dev"].append(float(np.std(values, ddof=1)) if len(values) > 1 else None)
+    return pa.table(columns)
+
+
+fit.__doc__ = (fitting.fit.__doc__ or "") + "\n    name : store the fitted model as the next version of this name.\n"
+
+
+def load(con: duckdb.DuckDBPyConnection, name: str, version: int | None = None) -> Model:
+    """The stored model ``name`` at ``version`` (default: the current, promoted one)."""
+    return store.load_model(con, name, version)
+
+
+def from_json(text: str) -> Model:
+    """A model from the JSON of :meth:`Model.to_json` (format ``dbfit-model`` 1)."""
+    return serialize.from_json(text)
+
+
+def score(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *, rows: str = "all",
+          version: int | None = None, standard_error: bool = False, level: float = 0.95,
+          unseen: str = "null") -> pa.Table:
+    """Every column of the rows plus the score columns, as a pyarrow table; its schema metadata ``dbfit_rows``
+    says which rows (default: all rows of ``source``, else of the model's whole source).
+
+    ``model`` is a stored model's name or a Model; ``rows`` picks a part of a holdout model's split
+    ("held_out", "training", "all"); the other options are those of :meth:`Model.scoring_sql`.
+    """
+    resolved = deploy.resolve_model(con, model, version)
+    text, note = resolved.assessed_rows(source, rows)
+    query = deploy.build_scoring(con, resolved, text, unseen=unseen, standard_error=standard_error,
+                                 level=level)
+    try:
+        table = con.sql(query.sql("duckdb")).to_arrow_table()
+    except duckdb.Error as err:
+        raise translate_error(err) from None
+    return table.replace_schema_metadata({**(table.schema.metadata or {}), b"dbfit_rows": note.encode()})
+
+
+def models(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:
+    """One dict per stored version in ``con``'s database."""
+    return store.version_rows(con)
+
+
+def drop_model(con: duckdb.DuckDBPyConnection, name: str, version: int | None = None) -> list[tuple[str, int]]:
+    """Delete one version, or every version, of a stored model; returns what was deleted."""
+    return store.drop_model(con, name, version)
+
+
+def population_stability(con: duckdb.DuckDBPyConnection, model: str | Model, source: str, *,
+                         version: int | None = None) -> pa.Table:
+    """PSI per variable between the stored training snapshot of ``model`` and ``source`` (see :mod:`dbfit.lifecycle.drift`)."""
+    from dbfit.lifecycle.drift import psi_table
+
+    return psi_table(con, deploy.resolve_model(con, model, version), source)
+
+
+def decisions(con: duckdb.DuckDBPyConnection, name: str | None = None) -> list[dict[str, Any]]:
+    """The promotion audit trail (time, model, candidate and current versions, decision, reason, figures)."""
+    return store.decision_rows(con, None if name is None else model_name(name))

@@ -1,0 +1,1 @@
+"""Lifecycle: refit, promotion gates, drift snapshots and source fingerprints."""

@@ -1,0 +1,1 @@
+"""Plain values of a fitted model: Model, inference, the model document."""

@@ -1,0 +1,206 @@
+"""The fitted model: estimates on the original scale, their covariance, fit statistics and warnings."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+import pyarrow as pa
+
+from dbfit.design.layout import Design
+
+if TYPE_CHECKING:
+    import duckdb
+
+    from dbfit.fitting.splits import Holdout
+
+ROW_CHOICES = ("held_out", "training", "all")
+
+
+@dataclass
+class Model:
+    """A fitted logistic regression.
+
+    ``coefficients`` is a pyarrow table (one row per term, NULL estimates for aliased terms),
+    ``covariance`` the p x p covariance of the estimates on the original scale (NaN rows for aliased
+    terms), ``stats`` a dict of fit statistics and ``warnings`` plain-language problems found in the fit.
+    """
+
+    formula: str
+    source: str  # the whole source the user gave; with a holdout split the fit used its training rows
+    design: Design
+    labels: list[str]
+    estimates: np.ndarray
+    covariance: np.ndarray
+    coefficients: pa.Table
+    stats: dict[str, Any]
+    warnings: list[str] = field(default_factory=list)
+    options: dict[str, Any] = field(default_factory=dict)
+    fitted_at: datetime = field(default_factory=lambda: datetime.now(timezone.utc))
+    name: str | None = None  # set once saved to (or loaded from) a model store
+    version: int | None = None
+    source_is_data: bool = False  # read from a model document: its source is text to show, never run unasked
+
+    def source_or_own(self, source: str | None) -> str:
+        """``source`` when given, else the training source (refused for a model read from a document)."""
+        if source is not None:
+            return source
+        if self.source_is_data:
+            from dbfit.errors import DbfitError
+
+            raise DbfitError(
+                "this model was read from a JSON document, whose source is data, not a query dbfit runs: "
+                "give the source to score or assess explicitly (source=...)"
+            )
+        return self.source
+
+    @property
+    def rows_total(self) -> int:
+        """Rows of the source, used or not."""
+        return int(self.design.rows_total)
+
+    @property
+    def split(self) -> "Holdout | None":
+        """The holdout split the model was fitted with (recorded in ``options["split"]``), or None."""
+        from dbfit.fitting.splits import Holdout
+
+        recorded = self.options.get("split")
+        return Holdout(recorded["key"], recorded["share"]) if recorded else None
+
+    @property
+    def default_rows(self) -> str:
+        """The rows assessed and reported by default: the held-out rows of a holdout fit, else all rows."""
+        return "held_out" if self.split is not None else "all"
+
+    def rows_source(self, rows: str, source: str | None = None) -> str:
+        """``rows`` ("held_out", "training", "all") of ``source`` (default: the model's) as source text."""
+        from dbfit.errors import UsageError
+        from dbfit.fitting.splits import part_source
+
+        if rows not in ROW_CHOICES:
+            raise UsageError(f"rows={rows!r} is not a choice; choose one of {', '.join(ROW_CHOICES)}")
+        whole = self.source_or_own(source)
+        if rows == "all":
+            return whole
+        split = self.split
+        if split is None:
+            if rows == "training" and source is None:
+                return whole
+            raise UsageError(f"rows={rows!r} needs a model fitted with split=dbfit.Holdout(...); "
+                             "this one has none")
+        return part_source(whole, split, "holdout" if rows == "held_out" else "train")
+
+    def rows_note(self, rows: str | None, source: str | None = None) -> str:
+        """Which rows a command used, in words (``rows=None``: all rows of a given ``source``)."""
+        whole = source if source is not None else self.source
+        split = self.split
+        if rows is None:
+            return f"all rows of the given source {whole}"
+        if split is None:
+            fitted = ": the rows the model was fitted on (in-sample)" if source is None else ""
+            return f"all rows of {whole}{fitted}"
+        how = f"split on the hash of {split.key}, held-out share {split.share:g}"
+        return {
+            "held_out": f"held-out rows of {whole} ({how}): out-of-sample",
+            "training": f"training rows of {whole} ({how}): the rows the model was fitted on (in-sample)",
+            "all": f"all rows of {whole}, training and held-out together ({how})",
+        }[rows]
+
+    def assessed_rows(self, source: str | None, rows: str | None) -> tuple[str, str]:
+        """The source text and the rows note of an assessment or report on ``source`` / ``rows``.
+
+        Neither given: the model's :attr:`default_rows`. ``source`` alone: all its rows. ``rows`` alone: that
+        part of the model's source. Both: that part of ``source`` by the model's split rule.
+        """
+        if rows is None and source is None:
+            rows = self.default_rows
+        text = source if rows is None else self.rows_source(rows, source)
+        return text, self.rows_note(rows, source)
+
+    def save(self, con: "duckdb.DuckDBPyConnection", name: str, *, promote: bool = True) -> int:
+        """Store this model as a new version of ``name`` in ``con``'s database; return the version number.
+        ``promote=False`` stores a candidate that becomes current only through ``dbfit.promote``."""
+        from dbfit.store.model_store import save_model
+
+        return save_model(con, self, name, promote=promote)
+
+    def to_json(self) -> str:
+        """The model as a JSON document (format ``dbfit-model`` 1, see README.md); read back with ``dbfit.from_json``."""
+        from dbfit.model.document import to_json
+
+        return to_json(self)
+
+    def scoring_sql(self, dialect: str = "duckdb", *, source: str | None = None, unseen: str = "null",
+                    standard_error: bool = False, level: float = 0.95) -> str:
+        """A SELECT over ``source`` (default: the training source) adding ``linear_predictor`` and ``probability``.
+
+        ``unseen`` says what a categorical level never seen in training gives: ``"null"`` (NULL scores),
+        ``"reference"`` (scored as the reference level) or ``"error"`` (the query fails; DuckDB, Spark, BigQuery).
+        """
+        from dbfit.deployment.scoring import scoring_sql
+
+        return scoring_sql(self, dialect, source=source, unseen=unseen, standard_error=standard_error, level=level)
+
+    def estimate(self, label: str) -> float:
+        """The estimate of one term by its label (NaN when aliased)."""
+        return float(self.estimates[self.labels.index(label)])
+
+    def summary(self) -> str:
+        """A plain-text report of the fit, in dbfit's own layout."""
+        s = self.stats
+        lines = [
+            f"dbfit | logistic model of  {self.formula}",
+            f"  data      {self.source}",
+            *([f"  split     fitted on the training rows; share {self.split.share:g} held out by the hash of "
+               f"{self.split.key} (figures in stats['holdout'])"] if self.split is not None else []),
+            f"  rows      {s['n_used']:,} used, {s['n_excluded']:,} set aside for NULLs" + (
+                f"; {s['rows_zero_trials']:,} used rows have 0 trials (no information)"
+                if s.get("rows_zero_trials") else ""),
+            f"  fit       {'converged' if s['converged'] else 'NOT converged'} after {s['iterations']} Newton passes"
+            f" ({s['scans']} scans of the data)",
+            f"  deviance  {s['deviance']:,.4f} on {s['df_residual']:,} df; intercept-only {s['null_deviance']:,.4f}",
+            f"  log-lik   {s['log_likelihood']:,.4f}   AIC {s['aic']:,.4f}   BIC {s['bic']:,.4f}",
+            *[f"  {note}" for note in s.get("notes", [])],
+            "",
+            "  effects on the log-odds, with the odds multiplier per unit and its 95% Wald interval",
+        ]
+        width = max([len(label) for label in self.labels] + [4])
+        lines.append(
+            f"  {'term':<{width}}  {'log-odds':>11} {'std.err':>10} {'z':>8} {'p':>9}   {'odds x':>9}  [95% interval]"
+        )
+        for row in self.coefficients.to_pylist():
+            if row["estimate"] is None:
+                lines.append(f"  {row['term']:<{width}}  {'aliased: no estimate':>40}")
+                continue
+            if row["std_error"] is None:
+                note = "exactly 0: removed by the penalty" if row["estimate"] == 0 else "penalised: no std.err"
+                lines.append(f"  {row['term']:<{width}}  {row['estimate']:>11.5g}   {note:<38}   {row['odds_ratio']:>9.4g}")
+                continue
+            lines.append(
+                f"  {row['term']:<{width}}  {row['estimate']:>11.5g} {row['std_error']:>10.4g} {row['wald_z']:>8.3g}"
+                f" {_p_text(row['p_value']):>9}   {row['odds_ratio']:>9.4g}  [{row['odds_ratio_low']:.4g}, {row['odds_ratio_high']:.4g}]"
+            )
+        if self.warnings:
+            lines.append("")
+            lines.append("  warnings")
+            lines += [f"  ! {w}" for w in self.warnings]
+        return "\n".join(lines)
+
+    def report(self, path: str | Path, assessment: dict[str, pa.Table] | None = None) -> Path:
+        """Write a standalone HTML report of the fit (and of ``assessment``, see ``dbfit.assessment.report``) to ``path``."""
+        from dbfit.assessment.report import write_report
+
+        return write_report(self, path, assessment)
+
+    def __repr__(self) -> str:
+        return f"<dbfit.Model {self.formula!r}: {self.stats['n_used']} rows, deviance {self.stats['deviance']:.6g}>"
+
+
+def _p_text(p: float | None) -> str:
+    if p is None or math.isnan(p):
+        return "-"
+    return "<1e-300" if p < 1e-300 else f"{p:.3g}"

@@ -1,0 +1,84 @@
+"""Inference on the original scale: map internal estimates back, Wald tests and intervals, fit statistics.
+
+Wald tests and intervals: Agresti (2013), Categorical Data Analysis, 3rd ed., section 4.3 (Wiley).
+AIC: Akaike (1974), doi:10.1109/TAC.1974.1100705; BIC: Schwarz (1978), doi:10.1214/aos/1176344136.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pyarrow as pa
+from scipy import special
+from scipy import stats as distributions
+
+from dbfit.design.layout import Design
+
+WALD_Z_95 = float(distributions.norm.ppf(0.975))
+
+
+def original_scale_map(design: Design, parameters: list[int]) -> np.ndarray:
+    """Matrix A with original = A @ internal over ``parameters`` (indices into intercept + columns).
+
+    An internal column is z = (x - c) / s, so b z = (b / s) x - b c / s: the slope divides by s and the
+    intercept absorbs -b c / s.
+    """
+    offset = 1 if design.intercept else 0
+    size = len(parameters)
+    transform = np.eye(size)
+    intercept_row = parameters.index(0) if design.intercept and 0 in parameters else None
+    for k, parameter in enumerate(parameters):
+        if design.intercept and parameter == 0:
+            continue
+        column = design.columns[parameter - offset]
+        transform[k, k] = 1.0 / column.scale
+        if intercept_row is not None and column.centre != 0.0:
+            transform[intercept_row, k] = -column.centre / column.scale
+    return transform
+
+
+def internal_start(design: Design, original: np.ndarray) -> np.ndarray:
+    """Inverse of :func:`original_scale_map` over all parameters, for warm starts."""
+    parameters = list(range(len(design.labels)))
+    return np.linalg.solve(original_scale_map(design, parameters), original)
+
+
+def coefficient_table(labels: list[str], estimates: np.ndarray, covariance: np.ndarray) -> pa.Table:
+    """One row per term: estimate, standard error, Wald z and p, 95 % interval, odds ratio and its interval."""
+    std_error = np.sqrt(np.where(np.diag(covariance) >= 0, np.diag(covariance), np.nan))
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        wald_z = estimates / std_error
+        p_value = special.erfc(np.abs(wald_z) / math.sqrt(2.0))  # 2 * (1 - Phi(|z|))
+        low, high = estimates - WALD_Z_95 * std_error, estimates + WALD_Z_95 * std_error
+        odds, odds_low, odds_high = np.exp(estimates), np.exp(low), np.exp(high)
+
+    def column(values: np.ndarray) -> pa.Array:
+        values = np.asarray(values, dtype=float)
+        return pa.array(values, mask=np.isnan(values), type=pa.float64())
+
+    return pa.table(
+        {
+            "term": pa.array(labels, type=pa.string()),
+            "estimate": column(estimates),
+            "std_error": column(std_error),
+            "wald_z": column(wald_z),
+            "p_value": column(p_value),
+            "ci_low": column(low),
+            "ci_high": column(high),
+            "odds_ratio": column(odds),
+            "odds_ratio_low": column(odds_low),
+            "odds_ratio_high": column(odds_high),
+        }
+    )
+
+
+def null_loglik_closed_form(design: Design) -> float:
+    """Intercept-only log-likelihood without an offset: the fitted probability is the weighted mean."""
+    rate = design.success_sum / design.trial_sum
+    failures = design.trial_sum - design.success_sum
+    return design.loglik_constant + design.success_sum * math.log(rate) + failures * math.log1p(-rate)
+
+
+def information_criteria(loglik: float, parameters: int, rows: int) -> tuple[float, float]:
+    return -2.0 * loglik + 2.0 * parameters, -2.0 * loglik + math.log(rows) * parameters

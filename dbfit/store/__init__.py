@@ -1,0 +1,1 @@
+"""The versioned model store inside the database."""
