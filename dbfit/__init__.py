@@ -2,20 +2,24 @@
 
 from dbfit.interfaces.connection import connect, install
 from dbfit.interfaces.python_api import (assess, assessment_tables, cross_validate, decisions, drop_model, fit, from_json, load, models,
-                       population_stability, score)
+                       population_stability, save, score, scoring_sql, write_report)
 from dbfit.lifecycle.gates import Gates, gates_of, set_gates
 from dbfit.lifecycle.refit import promote, refit
 from dbfit.assessment.comparison import comparison_table, likelihood_ratio_test
-from dbfit.fitting.splits import Holdout, KFold
+from dbfit.expressions.splits import Holdout, KFold
 from dbfit.deployment.views import publish
 from dbfit.errors import (DbfitError, FitError, FormulaError, GateRefusedError, SourceError, StoreConflictError,
                           StoreError)
 from dbfit.solver.newton import IterationReport
 from dbfit.model.fitted import Model
-from dbfit.fitting.segments import SegmentedFit
+from dbfit.model.segmented import SegmentedFit
 from dbfit.deployment.segment_views import publish_segments
 from dbfit.fitting.prior_correction import prior_corrected
 from dbfit.fitting.robust import with_robust_errors
+
+from dbfit.interfaces.deprecated import attach as _attach_deprecated_methods
+
+_attach_deprecated_methods()
 
 __all__ = [
     "DbfitError",
@@ -51,8 +55,11 @@ __all__ = [
     "publish",
     "publish_segments",
     "refit",
+    "save",
     "score",
+    "scoring_sql",
     "set_gates",
     "with_robust_errors",
+    "write_report",
 ]
 __version__ = "0.1.0"

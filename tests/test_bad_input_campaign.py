@@ -97,7 +97,7 @@ SCORING_CASES = {
     "score standard_error as text": (lambda con: dbfit.score(con, "m", "t", standard_error="yes"),
                                      ["standard_error", "yes"]),
     "publish live as text": (lambda con: dbfit.publish(con, "m", "scored", "t", live="yes"), ["live", "yes"]),
-    "report to a missing folder": (lambda con: dbfit.load(con, "m").report("/no/such/dir/r.html"),
+    "report to a missing folder": (lambda con: dbfit.write_report(dbfit.load(con, "m"), "/no/such/dir/r.html"),
                                    ["/no/such/dir/r.html"]),
     "k folds as text": (lambda con: dbfit.cross_validate(con, "y ~ x", "t", dbfit.KFold("x", "3")), ["folds", "'3'"]),
 }

@@ -133,7 +133,7 @@ def test_postgres_segments_equal_duckdb(postgres, duckdb_fit):
     _assert_segments_equal(on_postgres, on_duckdb, "PostgreSQL")
     assert on_postgres.models["white"].source == 'SELECT * FROM "birthwt" WHERE ("race_name") = \'white\''
     store = dbfit.connect()  # a DuckDB store that cannot read the PostgreSQL source: stored without fingerprints
-    on_postgres.save(store, "pg_low")
+    dbfit.save(store, on_postgres, "pg_low")
     assert_close(dbfit.load(store, "pg_low.black").estimates, on_duckdb.models["black"].estimates, 1e-9, "stored")
     assert store.execute("SELECT count(*) FROM dbfit_store.fingerprints").fetchone() == (0,)
 

@@ -351,7 +351,7 @@ def test_document_source_is_data_not_a_query(spector_db):
     with pytest.raises(dbfit.DbfitError, match="read from a JSON document.*source"):
         dbfit.score(spector_db, moved)
     with pytest.raises(dbfit.DbfitError, match="read from a JSON document"):
-        moved.scoring_sql()
+        dbfit.scoring_sql(moved)
     with pytest.raises(dbfit.DbfitError, match="read from a JSON document"):
         dbfit.assess(spector_db, moved)
     scored = dbfit.score(spector_db, moved, "spector")

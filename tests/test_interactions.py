@@ -76,7 +76,7 @@ def test_marginal_coding_survives_json_and_scores_the_same(con, birthwt):
     before = dbfit.score(con, model)["probability"].to_numpy()
     after = dbfit.score(con, loaded, "birthwt")["probability"].to_numpy()
     np.testing.assert_array_equal(after, before)
-    model.save(con, "slopes_by_race")
+    dbfit.save(con, model, "slopes_by_race")
     stored = dbfit.load(con, "slopes_by_race")
     assert stored.design.coding == "marginal"
     restored = dbfit.score(con, "slopes_by_race", "birthwt")["probability"].to_numpy()

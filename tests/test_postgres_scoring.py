@@ -62,9 +62,9 @@ def test_postgres_scores_match_duckdb(con, postgres):
     for unseen in ("null", "reference"):
         wanted = ["linear_predictor", "probability", "linear_predictor_se", "probability_low", "probability_high"]
         order = " ORDER BY " + ", ".join(COLUMNS)
-        duck = con.execute(f"SELECT {', '.join(wanted)} FROM ({model.scoring_sql(source='births', unseen=unseen, standard_error=True)}) s{order}").fetchall()
+        duck = con.execute(f"SELECT {', '.join(wanted)} FROM ({dbfit.scoring_sql(model, source='births', unseen=unseen, standard_error=True)}) s{order}").fetchall()
         with postgres.cursor() as cursor:
-            cursor.execute(f"SELECT {', '.join(wanted)} FROM ({model.scoring_sql('postgres', source='births', unseen=unseen, standard_error=True)}) s{order}")
+            cursor.execute(f"SELECT {', '.join(wanted)} FROM ({dbfit.scoring_sql(model, 'postgres', source='births', unseen=unseen, standard_error=True)}) s{order}")
             pg = cursor.fetchall()
         duck_values = np.array(duck, dtype=float)
         pg_values = np.array(pg, dtype=float)
@@ -90,10 +90,10 @@ def test_levels_made_by_casting_a_double_score_alike_on_postgresql(con, postgres
     rows += [(25, 3.0)]  # an unseen level: NULL on both engines
     same_table(con, postgres, "visits_new", [("age", "INTEGER"), ("visits", "DOUBLE")], rows)
     with postgres.cursor() as cursor:
-        cursor.execute(f"SELECT probability FROM ({loaded.scoring_sql('postgres', source='visits_new')}) s "
+        cursor.execute(f"SELECT probability FROM ({dbfit.scoring_sql(loaded, 'postgres', source='visits_new')}) s "
                        "ORDER BY age, visits")
         pg = np.array(cursor.fetchall(), dtype=float)[:, 0]
-    duck = np.array(con.execute(f"SELECT probability FROM ({model.scoring_sql(source='visits_new')}) s "
+    duck = np.array(con.execute(f"SELECT probability FROM ({dbfit.scoring_sql(model, source='visits_new')}) s "
                                 "ORDER BY age, visits").fetchall(), dtype=float)[:, 0]
     assert np.isnan(duck).sum() == 1
     assert np.array_equal(np.isnan(pg), np.isnan(duck))
@@ -121,9 +121,9 @@ def test_a_formula_written_for_duckdb_fits_and_scores_on_postgresql_columns_as_s
     loaded = dbfit.from_json(on_duckdb.to_json())
     order = ' ORDER BY "Balance", income'
     query = "SELECT probability FROM ({}) s" + order
-    duck = con.execute(query.format(on_duckdb.scoring_sql(source="credit"))).fetchall()
+    duck = con.execute(query.format(dbfit.scoring_sql(on_duckdb, source="credit"))).fetchall()
     with postgres.cursor() as cursor:
-        cursor.execute(query.format(loaded.scoring_sql("postgres", source="credit")))
+        cursor.execute(query.format(dbfit.scoring_sql(loaded, "postgres", source="credit")))
         pg = cursor.fetchall()
     np.testing.assert_allclose(np.array(pg, dtype=float), np.array(duck, dtype=float), rtol=1e-12, atol=0)
 

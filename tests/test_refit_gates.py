@@ -87,7 +87,7 @@ def test_gates_are_stored_per_model_and_checked(database):
     dbfit.set_gates(con, "late", log_loss_margin=0.0, auc_margin=0.0)
     small = dbfit.fit(con, FORMULA, "SELECT * FROM deliveries WHERE delivery_id < 600", reference=REFERENCE,
                       split=HOLDOUT, progress=False)  # 11 estimates from about 450 rows: worse on unseen rows
-    assert small.save(con, "late", promote=False) == 2 and dbfit.load(con, "late").version == 1
+    assert dbfit.save(con, small, "late", promote=False) == 2 and dbfit.load(con, "late").version == 1
     with pytest.raises(dbfit.GateRefusedError) as refused:
         dbfit.promote(con, "late", 2)
     reasons = refused.value.result["reasons"]
@@ -136,7 +136,7 @@ def test_a_promotion_checked_against_a_stale_current_version_is_refused_whole(da
     con = database
     _append(con)
     dbfit.refit(con, "late")  # version 2 is current now
-    dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, progress=False).save(con, "late", promote=False)
+    dbfit.save(con, dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, progress=False), "late", promote=False)
     audited = len(dbfit.decisions(con, "late"))
     with pytest.raises(dbfit.StoreConflictError, match="version 2 became current"):
         store.record_decision(con, "late", 3, 1, "promoted", "passed every gate", {}, promote=True)

@@ -177,7 +177,7 @@ def test_without_assessment_and_with_an_incomplete_one(fitted):
 
 def test_model_report_writes_the_rendered_page(fitted, tmp_path):
     model, assessment = fitted
-    path = model.report(tmp_path / "report.html", assessment)
+    path = dbfit.write_report(model, tmp_path / "report.html", assessment)
     assert path.read_text(encoding="utf-8") == render_report(model, assessment)
 
 

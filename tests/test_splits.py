@@ -9,7 +9,7 @@ import pytest
 
 import dbfit
 from dbfit.expressions.source import source_relation
-from dbfit.fitting.splits import Holdout, KFold, labelled_rows
+from dbfit.expressions.splits import Holdout, KFold, labelled_rows
 
 
 def parts(con, split) -> dict[int, str]:

@@ -43,7 +43,7 @@ def test_save_and_load_round_trip_bit_for_bit(spector_file):
     # reference: statsmodels Logit on spector for the stored estimates.
     con, path = spector_file
     model = spector_model(con)
-    assert model.save(con, "grades") == 1
+    assert dbfit.save(con, model, "grades") == 1
     assert dbfit.fit(con, "GRADE ~ GPA", "spector", name="grades", progress=False).version == 2
     con.close()
     reopened = dbfit.connect(str(path))
@@ -51,7 +51,7 @@ def test_save_and_load_round_trip_bit_for_bit(spector_file):
     assert (loaded.name, loaded.version, loaded.labels) == ("grades", 1, model.labels)
     assert np.array_equal(loaded.estimates, model.estimates) and np.array_equal(loaded.covariance, model.covariance)
     assert loaded.coefficients.equals(model.coefficients)
-    assert loaded.scoring_sql() == model.scoring_sql()
+    assert dbfit.scoring_sql(loaded) == dbfit.scoring_sql(model)
     frame = sm.datasets.spector.load_pandas().data
     reference = sm.Logit(frame.GRADE, sm.add_constant(frame[["GPA", "TUCE", "PSI"]])).fit(disp=0, tol=1e-12)
     np.testing.assert_allclose(loaded.estimates, reference.params.values, rtol=1e-6)
@@ -87,10 +87,10 @@ def test_json_document_moves_a_model_between_databases(spector_file, tmp_path):
     other = dbfit.connect(str(tmp_path / "elsewhere.duckdb"))
     load_frame(other, "spector", sm.datasets.spector.load_pandas().data)
     moved = dbfit.from_json(text)
-    moved.save(other, "grades")
+    dbfit.save(other, moved, "grades")
     assert np.array_equal(dbfit.load(other, "grades").estimates, model.estimates)
-    here = con.execute(model.scoring_sql()).fetchall()
-    there = other.execute(moved.scoring_sql(source="spector")).fetchall()
+    here = con.execute(dbfit.scoring_sql(model)).fetchall()
+    there = other.execute(dbfit.scoring_sql(moved, source="spector")).fetchall()
     assert here == there
     other.close()
     with pytest.raises(dbfit.StoreError, match="not a dbfit model document"):
@@ -105,7 +105,7 @@ def test_failed_write_leaves_no_partial_version(spector_file):
     # A stray coefficient row for version 2 makes the second insert of the next save violate the primary key.
     con.execute("INSERT INTO dbfit_store.coefficients (model, version, position, term) VALUES ('grades', 2, 0, 'stray')")
     with pytest.raises(dbfit.StoreError, match="already holds a row with this key"):
-        model.save(con, "grades")
+        dbfit.save(con, model, "grades")
     assert con.execute("SELECT version FROM dbfit_store.versions").fetchall() == [(1,)]
     assert con.execute("SELECT count(*) FROM dbfit_store.covariance WHERE version = 2").fetchall() == [(0,)]
 
@@ -118,13 +118,13 @@ def test_refused_names_leave_the_database_intact(spector_file):
     attacks = ["x'; DROP TABLE t; --", "v AS SELECT 1; --"]
     for attack in attacks:
         with pytest.raises(dbfit.StoreError, match="model name"):
-            model.save(con, attack)
+            dbfit.save(con, model, attack)
         with pytest.raises(dbfit.StoreError, match="view name"):
             dbfit.publish(con, "grades", attack, "spector")
         with pytest.raises(dbfit.DbfitError):
             dbfit.publish(con, "grades", "ok_view", attack)
         with pytest.raises(dbfit.DbfitError):
-            model.scoring_sql(source=attack)
+            dbfit.scoring_sql(model, source=attack)
         with pytest.raises(dbfit.DbfitError):
             dbfit.load(con, attack)
     with pytest.raises(dbfit.StoreError, match='view "t" cannot be created or replaced: .*Table'):
@@ -144,7 +144,7 @@ KILL_SCRIPT = textwrap.dedent("""
                       progress=False)
     while True:  # back-to-back version writes, so that many kills land inside a transaction
         print("write", flush=True)
-        model.save(con, "late")
+        dbfit.save(con, model, "late")
         print("saved", flush=True)
 """)
 
@@ -224,7 +224,7 @@ def test_read_only_database_cannot_take_a_version(spector_file):
     con.close()
     reader = dbfit.connect(str(path), read_only=True)
     with pytest.raises(dbfit.StoreError, match="read-only"):
-        model.save(reader, "grades")
+        dbfit.save(reader, model, "grades")
     assert reader.execute("SELECT count(*) FROM dbfit.models()").fetchall() == [(0,)]
     reader.close()
 
@@ -241,7 +241,7 @@ def test_concurrent_writers_in_one_process_all_get_whole_versions(spector_file):
         connection = con.cursor()
         for _ in range(8):
             try:
-                model.save(connection, "grades")
+                dbfit.save(connection, model, "grades")
             except dbfit.StoreError as err:
                 failures.append(str(err))
         connection.close()

@@ -131,8 +131,8 @@ def test_a_holdout_model_has_one_source_and_each_command_says_which_rows_it_used
     page = render_report(model, dbfit.assessment_tables(con, model))
     assert "Rows assessed: held-out rows of birthwt" in page
     for dialect in ("postgres", "spark", "duckdb"):
-        assert "EXCLUDE" not in model.scoring_sql(dialect).upper()
-    model.save(con, "low_weight")
+        assert "EXCLUDE" not in dbfit.scoring_sql(model, dialect).upper()
+    dbfit.save(con, model, "low_weight")
     loaded = dbfit.load(con, "low_weight")
     assert loaded.source == "birthwt" and loaded.split == model.split
     assert dbfit.assess(con, "low_weight").to_pydict() == default
@@ -145,7 +145,7 @@ def test_holdout_documents_of_earlier_versions_load_with_the_whole_source(con, b
     document = json.loads(model.to_json())
     # Earlier versions recorded the training part, written with EXCLUDE, as the model's source.
     from dbfit.expressions.source import source_relation
-    from dbfit.fitting.splits import labelled_rows
+    from dbfit.expressions.splits import labelled_rows
 
     training = labelled_rows(source_relation("birthwt"), dbfit.Holdout("id", 0.3)).subquery("dbfit_labelled")
     document["source"] = document["fingerprint"]["source"] = (
@@ -154,7 +154,7 @@ def test_holdout_documents_of_earlier_versions_load_with_the_whole_source(con, b
     old = dbfit.from_json(json.dumps(document))
     assert old.source == "birthwt" and old.split == dbfit.Holdout("id", 0.3)
     # A document's source is data: the rows to assess are named explicitly, split by the recorded rule.
-    assert "EXCLUDE" not in old.scoring_sql("postgres", source="birthwt").upper()
+    assert "EXCLUDE" not in dbfit.scoring_sql(old, "postgres", source="birthwt").upper()
     assert dbfit.assess(con, old, "birthwt", rows="held_out").to_pydict() == dbfit.assess(con, model).to_pydict()
 
 

@@ -20,7 +20,8 @@ from dbfit.expressions.formula import parse_expression
 from dbfit.model.fitted import Model
 from dbfit.expressions.names import model_name, relation_name
 from dbfit.deployment.scoring import Coefficient, scoring_query
-from dbfit.fitting.segments import SegmentedFit, segment_literal
+from dbfit.fitting.segments import segment_literal
+from dbfit.model.segmented import SegmentedFit
 from dbfit.expressions.source import source_relation
 from dbfit.store.model_store import load_model, names_starting_with
 

@@ -52,7 +52,7 @@ def build_scoring(
     coefficient, joined = None, None
     if live:
         if model.name is None:
-            raise StoreError("a live view reads the store: save the model first (model.save(con, name)) or pass its name")
+            raise StoreError("a live view reads the store: save the model first (dbfit.save(con, model, name)) or pass its name")
         coefficient, joined = _live_coefficients(model)
     return scoring_query(model, relation, coefficient=coefficient, joined=joined, unseen=unseen,
                          with_standard_error=standard_error, level=level)

@@ -14,7 +14,8 @@ from typing import Any, Callable
 import duckdb
 from sqlglot import exp
 
-from dbfit.expressions.dialects import adapt
+from dbfit.engines.base import Engine
+from dbfit.engines.transactions import in_transaction, transaction_aborted
 from dbfit.errors import AbortedTransactionError, DbfitError, FormulaError, SourceError
 from dbfit.engines.progress import watch_scan
 
@@ -34,44 +35,6 @@ def connection_lock(connection: Any) -> threading.RLock:
         if lock is None:
             lock = _LOCKS[connection] = threading.RLock()
         return lock
-
-
-class Engine:
-    """What every engine shares: scan counting around ``_run``, which a subclass supplies with ``sql``."""
-
-    dialect = ""
-    parameters = False
-    live_progress = False
-
-    def __init__(self, connection: Any) -> None:
-        self.connection = connection
-        self.scans = 0
-
-    def sql(self, query: exp.Expression) -> str:
-        return adapt(query, self.dialect).sql(dialect=self.dialect)
-
-    def fetch(self, query: exp.Expression, *, scan: bool = True) -> list[tuple[Any, ...]]:
-        """Run ``query`` and return all its rows; ``scan`` says whether it reads the whole source."""
-        if scan:
-            self.scans += 1
-        return self._run(self.sql(query))
-
-    def fetch_sql(self, sql: str, parameters: list[Any], *, scan: bool = True) -> list[tuple[Any, ...]]:
-        """Run SQL that dbfit generated from a tree, with ``?`` parameters where the engine takes them."""
-        if parameters and not self.parameters:
-            raise DbfitError(f"{self.dialect} queries from dbfit carry their numbers as literals, not parameters")
-        if scan:
-            self.scans += 1
-        return self._run(sql, parameters) if parameters else self._run(sql)
-
-    def execute(self, *, sql: str, scan: bool) -> None:
-        """Run a statement dbfit wrote itself from trees and its own names: temporary tables of samples."""
-        if scan:
-            self.scans += 1
-        self._run(sql)
-
-    def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
-        raise NotImplementedError
 
 
 class DuckDBEngine(Engine):
@@ -170,27 +133,6 @@ class DuckDBEngine(Engine):
             raise translated from None
 
 
-def in_transaction(connection: duckdb.DuckDBPyConnection) -> bool:
-    """Whether ``connection`` is inside a transaction it opened with BEGIN: two reads of the transaction id
-    agree only there (outside, each statement is a transaction of its own). Reads nothing else, changes nothing."""
-    try:
-        first = connection.execute("SELECT txid_current()").fetchall()
-        return first == connection.execute("SELECT txid_current()").fetchall()
-    except duckdb.TransactionException:
-        return True  # an aborted transaction is still open until the caller's ROLLBACK
-
-
-def transaction_aborted(connection: duckdb.DuckDBPyConnection) -> bool:
-    """Whether ``connection``'s open transaction has been aborted by an earlier failure (it then refuses all)."""
-    try:
-        connection.execute("SELECT 1").fetchall()
-    except duckdb.TransactionException:
-        return True
-    except duckdb.Error:
-        return False
-    return False
-
-
 _CREATE_AS = re.compile(r'\s*CREATE\s+TEMP(?:ORARY)?\s+TABLE\s+"[^"]+"\s+AS\s+', re.IGNORECASE)
 
 
@@ -210,26 +152,6 @@ def unknown_column_message(name: str, columns: list[str]) -> str:
 
 
 _MISSING_COLUMN = re.compile(r'Referenced column "?([^"\s]+)"? not found', re.IGNORECASE)
-
-
-def engine_for(connection: Any) -> Any:
-    """The engine for a DuckDB connection, a psycopg connection or a SparkSession (or an engine, as given)."""
-    if hasattr(connection, "fetch") and hasattr(connection, "dialect"):
-        return connection
-    if isinstance(connection, duckdb.DuckDBPyConnection):
-        return DuckDBEngine(connection)
-    module = type(connection).__module__
-    if module.startswith("psycopg"):
-        from dbfit.engines.postgres_engine import PostgresEngine
-
-        return PostgresEngine(connection)
-    if module.startswith("pyspark"):
-        from dbfit.engines.spark_engine import SparkEngine
-
-        return SparkEngine(connection)
-    raise DbfitError(
-        f"cannot fit on a {type(connection).__name__}: give a DuckDB connection, a psycopg connection or a SparkSession"
-    )
 
 
 def translate_error(err: duckdb.Error) -> DbfitError:

@@ -6,7 +6,7 @@ from typing import Any, Callable
 
 from sqlglot import exp
 
-from dbfit.engines.duckdb_engine import Engine
+from dbfit.engines.base import Engine
 from dbfit.errors import DbfitError, FormulaError, SourceError
 
 # PostgreSQL type OIDs (pg_type.dat) to the type names the design understands.

@@ -50,7 +50,7 @@ def progress_settings(connection: duckdb.DuckDBPyConnection, *, track: bool = Tr
     Inside the caller's open transaction nothing is changed: a query failing there would leave DuckDB's
     transaction aborted, and a setting could not be restored until the caller's ROLLBACK.
     """
-    from dbfit.engines.duckdb_engine import in_transaction
+    from dbfit.engines.transactions import in_transaction
 
     if in_transaction(connection):
         yield

@@ -7,7 +7,7 @@ from typing import Any
 
 from sqlglot import exp
 
-from dbfit.engines.duckdb_engine import Engine
+from dbfit.engines.base import Engine
 from dbfit.errors import DbfitError, FormulaError, SourceError
 
 TYPE_NAMES = {"boolean": "BOOLEAN", "tinyint": "TINYINT", "smallint": "SMALLINT", "int": "INTEGER", "bigint": "BIGINT",

@@ -10,7 +10,6 @@ covariance use the Schur complement S = A - B' D^-1 B (Golub and Van Loan 2013, 
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -19,51 +18,10 @@ from sqlglot import exp
 from dbfit.expressions import builders as sb
 from dbfit.design.layout import Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
-from dbfit.fitting.statistics import PassResult, statistics_query, unpack_many
+from dbfit.fitting.statistics import statistics_query, unpack_many
+from dbfit.solver.information import BlockInformation, PassResult
 
 HIGH_CARDINALITY_LEVELS = 50  # a main-effect categorical with more levels than this is fitted by blocks
-
-
-@dataclass
-class BlockInformation:
-    """The information matrix [[dense, cross'], [cross, diag(diagonal)]] without forming it."""
-
-    dense: np.ndarray  # k x k
-    cross: np.ndarray  # m x k
-    diagonal: np.ndarray  # m
-
-    @property
-    def shape(self) -> tuple[int, int]:
-        size = self.dense.shape[0] + self.diagonal.size
-        return size, size
-
-    @property
-    def size(self) -> int:
-        return self.shape[0] * self.shape[1]
-
-    def schur(self) -> np.ndarray:
-        return self.dense - self.cross.T @ (self.cross / self.diagonal[:, None])
-
-    def solve(self, rhs: np.ndarray) -> np.ndarray:
-        k = self.dense.shape[0]
-        top, bottom = rhs[:k], rhs[k:]
-        scaled = bottom / self.diagonal
-        upper = np.linalg.solve(self.schur(), top - self.cross.T @ scaled) if k else np.zeros(0)
-        return np.concatenate([upper, scaled - (self.cross @ upper) / self.diagonal])
-
-    def inverse(self) -> np.ndarray:
-        k = self.dense.shape[0]
-        schur_inverse = np.linalg.inv(self.schur()) if k else np.zeros((0, 0))
-        scaled_cross = self.cross / self.diagonal[:, None]  # D^-1 B
-        corner = -schur_inverse @ scaled_cross.T
-        block = np.diag(1.0 / self.diagonal) + scaled_cross @ schur_inverse @ scaled_cross.T
-        return np.block([[schur_inverse, corner], [corner.T, block]])
-
-    def diag(self) -> np.ndarray:
-        return np.concatenate([np.diag(self.dense), self.diagonal])
-
-    def keep_dense(self, keep: list[int]) -> "BlockInformation":
-        return BlockInformation(self.dense[np.ix_(keep, keep)], self.cross[:, keep], self.diagonal)
 
 
 def blocked_factor(design: Design) -> int | None:

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import logging
-from dataclasses import dataclass
 import math
 import dataclasses
 import sys
@@ -21,17 +20,20 @@ from dbfit.fitting import penalised as penalized
 from dbfit.fitting import prior_correction as priorcorrection
 from dbfit.expressions import builders as sb
 from dbfit.fitting import robust as robust_errors
-from dbfit.fitting.blocks import BlockedStatisticsPass, BlockInformation, blocked_factor, dense_first
+from dbfit.fitting.blocks import BlockedStatisticsPass, blocked_factor, dense_first
+from dbfit.solver.information import BlockInformation
 from dbfit.design.layout import Design, build_design
-from dbfit.engines.duckdb_engine import DuckDBEngine, engine_for
+from dbfit.engines import engine_for
+from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError
 from dbfit.expressions.formula import parse_formula
 from dbfit.solver.newton import IterationReport, NewtonResult, fit_newton, refine_with_fixed_information
 from dbfit.model.fitted import Model
-from dbfit.fitting.options import FitOptions
+from dbfit.fitting.options import FitVariants, FitOptions
 from dbfit.engines.progress import progress_settings
 from dbfit.expressions.source import source_relation
-from dbfit.fitting.segments import SegmentedFit, fit_segments
+from dbfit.fitting.segments import fit_segments
+from dbfit.model.segmented import SegmentedFit
 from dbfit.fitting.statistics import StatisticsPass
 
 log = logging.getLogger("dbfit")
@@ -135,27 +137,6 @@ def fit_with(con: duckdb.DuckDBPyConnection, formula: str, source: str, options:
 def check_progress(progress: Any) -> None:
     if progress is not None and not isinstance(progress, bool) and not callable(progress):
         raise FitError(f"progress must be True, False, None or a function of one report (got {progress!r})")
-
-
-@dataclass(frozen=True)
-class FitVariants:
-    """The options that change how the estimates or their errors are computed."""
-
-    robust_kind: str | None = None
-    cluster: str | None = None
-    firth: bool = False
-    population_rate: float | None = None
-    penalty_request: Any = None
-
-    @property
-    def plain(self) -> bool:
-        """The estimates are the maximum-likelihood ones (no Firth adjustment, no penalty)."""
-        return not self.firth and self.penalty_request is None
-
-    @property
-    def ordinary(self) -> bool:
-        """Plain estimates with model-based errors on the sampled scale: nothing beyond the core fit."""
-        return self.plain and self.robust_kind is None and self.population_rate is None
 
 
 def _fit(

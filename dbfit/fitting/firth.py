@@ -26,7 +26,7 @@ from dbfit.errors import FitError
 from dbfit.solver.newton import NewtonResult, aliased_columns, newton_step
 from dbfit.model.fitted import Model
 from dbfit.fitting.rowterms import row_terms, upper_products
-from dbfit.fitting.statistics import PassResult
+from dbfit.solver.information import PassResult
 
 Evaluate = Callable[[list[int], np.ndarray], PassResult]
 FINAL_STEP = 1e-10  # largest step on the internal scale accepted at convergence

@@ -18,7 +18,7 @@ from dbfit.design.layout import TARGET, Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.fitting.rowterms import symmetric, upper_products
 from dbfit.fitting.splits import FOLD
-from dbfit.fitting.statistics import PassResult
+from dbfit.solver.information import PassResult
 
 
 @dataclass(frozen=True)

@@ -25,6 +25,27 @@ DEFAULTS: dict[str, Any] = {"max_iter": 50, "tol": 1e-10, "firth": False, "l1_sh
 
 
 @dataclasses.dataclass(frozen=True)
+class FitVariants:
+    """The options that change how the estimates or their errors are computed."""
+
+    robust_kind: str | None = None
+    cluster: str | None = None
+    firth: bool = False
+    population_rate: float | None = None
+    penalty_request: Any = None
+
+    @property
+    def plain(self) -> bool:
+        """The estimates are the maximum-likelihood ones (no Firth adjustment, no penalty)."""
+        return not self.firth and self.penalty_request is None
+
+    @property
+    def ordinary(self) -> bool:
+        """Plain estimates with model-based errors on the sampled scale: nothing beyond the core fit."""
+        return self.plain and self.robust_kind is None and self.population_rate is None
+
+
+@dataclasses.dataclass(frozen=True)
 class FitOptions:
     """Every option of a fit, validated; build it with :meth:`of` (keywords) or :meth:`from_text` (SQL)."""
 
@@ -105,8 +126,6 @@ class FitOptions:
 
     def variants(self) -> Any:
         """The options that change how the estimates or their errors are computed (a ``FitVariants``)."""
-        from dbfit.fitting.driver import FitVariants
-
         return FitVariants(self.robust_kind, self.cluster, self.firth, self.population_rate, self.penalty_request)
 
     def _check_combinations(self) -> None:

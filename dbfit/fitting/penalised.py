@@ -32,7 +32,7 @@ from dbfit.solver.newton import IterationReport, NewtonResult, aliased_columns
 from dbfit.model.fitted import Model
 from dbfit.fitting.folds import FoldFit, FoldPass, fold_scan
 from dbfit.solver.coordinate_descent import Penalty, PenalisedResult, PenalisedSolver, penalised_newton
-from dbfit.fitting.statistics import PassResult
+from dbfit.solver.information import PassResult
 
 GRID_POINTS = 12
 RIDGE_TOP_SHARE = 1e-3  # the top of a ridge grid is placed as for an L1 share of 1e-3 (common practice)

@@ -9,113 +9,26 @@ from __future__ import annotations
 
 import dataclasses
 import math
-import re
 import time
-from dataclasses import dataclass, field
 from decimal import Decimal
 from typing import Any, Callable, Generator
 
 import numpy as np
-import pyarrow as pa
 from sqlglot import exp
 
 from dbfit.model import inference
 from dbfit.expressions import builders as sb
 from dbfit.design.layout import SEGMENT, Design, segment_profiles
-from dbfit.engines.duckdb_engine import Engine
-from dbfit.errors import DbfitError, FitError, StoreError
+from dbfit.engines.base import Engine
+from dbfit.errors import FitError
 from dbfit.solver.newton import IterationReport, NewtonResult, newton_iterations
 from dbfit.model.fitted import Model
-from dbfit.expressions.names import model_name
+from dbfit.model.segmented import SegmentedFit, plain_value
 from dbfit.expressions.source import source_relation
-from dbfit.fitting.statistics import PassResult, statistics_query, unpack_many
+from dbfit.fitting.statistics import statistics_query, unpack_many
+from dbfit.solver.information import PassResult
 
-_UNNAMEABLE = re.compile(r"[^A-Za-z0-9_.-]")
 Steps = Generator[tuple[np.ndarray, list[int]], PassResult, NewtonResult]
-
-
-@dataclass
-class SegmentedFit:
-    """Models fitted one per value of the ``by`` expression, and the segments that could not be fitted."""
-
-    by: str
-    models: dict[Any, Model]
-    failures: dict[Any, str]
-    passes: int
-    scans: int
-    warnings: list[str] = field(default_factory=list)
-    source: str = ""
-    by_expression: exp.Expression | None = None
-    rows_total: int = 0  # rows of the whole source, segment NULL or not
-
-    @property
-    def coefficients(self) -> pa.Table:
-        """Every segment's coefficient table stacked, with the segment value first."""
-        tables = []
-        for value, model in self.models.items():
-            table = model.coefficients
-            tables.append(table.add_column(0, "segment", pa.array([str(value)] * table.num_rows, type=pa.string())))
-        return pa.concat_tables(tables) if tables else pa.table({"segment": pa.array([], type=pa.string())})
-
-    @property
-    def stats(self) -> pa.Table:
-        """One row per fitted segment with its fit statistics."""
-        keys = ["n_used", "n_excluded", "log_likelihood", "deviance", "null_deviance", "aic", "bic", "iterations",
-                "converged", "separation"]
-        rows = [{"segment": str(v), **{k: m.stats[k] for k in keys}, "warnings": len(m.warnings)}
-                for v, m in self.models.items()]
-        return pa.Table.from_pylist(rows) if rows else pa.table({"segment": pa.array([], type=pa.string())})
-
-    def model_names(self, name: str) -> dict[Any, str]:
-        """The store name of each segment's model: ``name.segment`` (characters a name cannot hold become '_')."""
-        model_name(name)
-        names = {value: model_name(f"{name}.{_UNNAMEABLE.sub('_', str(_plain(value)))}"[:128]) for value in self.models}
-        seen: dict[str, Any] = {}
-        for value, stored in names.items():
-            if stored in seen:
-                raise StoreError(f"segments {seen[stored]!r} and {value!r} would both be stored as model '{stored}': "
-                                 "recode the by expression so that its values differ in letters, digits, '_', '.' or '-'")
-            seen[stored] = value
-        return names
-
-    def save(self, con: Any, name: str, *, promote: bool = True) -> dict[Any, tuple[str, int]]:
-        """Store every segment's model as the next version of ``name.segment``, all in one transaction;
-        returns ``{segment: (model name, version)}``. Each model's source is its segment's rows."""
-        from dbfit.lifecycle.fingerprint import segment_fingerprints
-        from dbfit.store.model_store import save_models
-
-        names = self.model_names(name)
-        if self.by_expression is None:
-            raise StoreError("this segmented fit does not know its by expression and cannot be stored")
-        try:
-            prints = segment_fingerprints(con, self.source, self.by_expression,
-                                          {value: model.source for value, model in self.models.items()})
-        except DbfitError:
-            prints = {}  # the source cannot be read here (fitted on another engine): no fingerprints, as for one model
-        # No drift snapshot per segment: one per segment would scan the source once per segment.
-        entries = [(model, names[value], {"fingerprints": {k: [v] for k, v in prints[value].items()}} if prints else {})
-                   for value, model in self.models.items()]
-        versions = save_models(con, entries, promote=promote)
-        return {value: (names[value], version) for value, version in zip(self.models, versions)}
-
-    def scoring_sql(self, source: str | None = None, *, unseen: str = "null") -> str:
-        """A DuckDB SELECT over ``source`` (default: the fitted source) scoring each row with its segment's model."""
-        from dbfit.deployment.segment_views import segment_scoring_query
-
-        if self.by_expression is None:
-            raise StoreError("this segmented fit does not know its by expression")
-        return segment_scoring_query(self.models, self.by_expression, source or self.source, unseen=unseen).sql("duckdb")
-
-    def summary(self) -> str:
-        lines = [f"dbfit | one model per value of  {self.by}: {len(self.models)} fitted, {len(self.failures)} not"
-                 f" ({self.passes} grouped passes, {self.scans} scans of the data)"]
-        for value, model in self.models.items():
-            state = "converged" if model.stats["converged"] else "NOT converged"
-            lines.append(f"  {str(value):<20} {model.stats['n_used']:>10,} rows  deviance {model.stats['deviance']:,.4f}"
-                         f"  {state}  {len(model.warnings)} warnings")
-        for value, reason in self.failures.items():
-            lines.append(f"  {str(value):<20} not fitted: {reason}")
-        return "\n".join(lines)
 
 
 def fit_segments(
@@ -168,7 +81,7 @@ def fit_segments(
         aliased = sorted(constant + [fitted[k] for k in newton.aliased])
         models[value] = assemble(part, newton, active, aliased, null[value], engine.scans, formula,
                                  sources[value],
-                                 {**own_options, "segment": {"by": design.segment_text, "value": _plain(value)}})
+                                 {**own_options, "segment": {"by": design.segment_text, "value": plain_value(value)}})
     return SegmentedFit(by=design.segment_text or "", models=models, failures=failures, passes=passes,
                         scans=engine.scans, source=source, by_expression=design.segment,
                         rows_total=design.rows_total)
@@ -324,7 +237,3 @@ def _null_logliks(engine, design, segments, results, max_iter, tol) -> dict[Any,
     null_results, _ = _run_together(engine, design, [0], steps, failures, None, columns=[], intercept=True)
     return {value: (null_results[value].last.loglik + segments[value].loglik_constant if value in null_results
                     else float("nan")) for value in results}
-
-
-def _plain(value: Any) -> Any:
-    return str(value) if isinstance(value, Decimal) else value

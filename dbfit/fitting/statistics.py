@@ -8,7 +8,6 @@ e = exp(-|eta|), so no intermediate overflows for any eta.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 
 import numpy as np
 from sqlglot import exp
@@ -17,23 +16,13 @@ from dbfit.expressions import builders as sb
 from dbfit.design.layout import SEGMENT, TARGET, Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError
+from dbfit.solver.information import PassResult
 
 # The statistics query carries p(p + 1) / 2 sums for p dense columns (the intercept's besides): 45,150 at 300,
 # 500,500 at 1,000, where building and planning the one aggregate costs minutes and gigabytes. Wider designs
 # (numeric terms and indicator columns, not counting the levels of a factor fitted by blocks) are refused.
 MAX_DENSE_COLUMNS = 300
 EXTREME_ETA = 17.0  # |eta| beyond this puts the fitted probability within 4e-8 of 0 or 1
-
-
-@dataclass
-class PassResult:
-    """What one scan returns: all p x p, p and scalar quantities, on the internal scale."""
-
-    gram: np.ndarray
-    score: np.ndarray
-    loglik: float
-    extreme: float  # weighted count of rows fitted (numerically) at 0 or 1
-    misfit_extreme: float  # of those, rows fitted at the wrong extreme
 
 
 def check_width(columns: int) -> None:

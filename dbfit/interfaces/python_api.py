@@ -15,12 +15,18 @@ from dbfit.deployment import views as deploy
 
 from dbfit.fitting import driver as fitting
 
-from dbfit.model import document as serialize
+from dbfit.model import reading as serialize
 
 from dbfit.store import model_store as store
+from dbfit.lifecycle import saving, training
+from dbfit.deployment import scoring
+from dbfit.deployment.segment_views import segment_scoring_query
+from dbfit.assessment import report
+from dbfit.model.segmented import SegmentedFit
+from pathlib import Path
 from dbfit.engines.duckdb_engine import DuckDBEngine, translate_error
-from dbfit.errors import FitError
-from dbfit.fitting.splits import Holdout, KFold, part_source
+from dbfit.errors import FitError, StoreError
+from dbfit.expressions.splits import Holdout, KFold, part_source
 from dbfit.model.fitted import Model
 from dbfit.expressions.names import model_name
 from dbfit.fitting.options import FitOptions
@@ -42,26 +48,10 @@ def fit(con: duckdb.DuckDBPyConnection, formula: str, source: str, *, name: str 
 
 def fit_options(con: duckdb.DuckDBPyConnection, formula: str, source: str, options: FitOptions, *,
                 name: str | None = None, split: Holdout | None = None, threshold: float = 0.5,
-                progress: fitting.Progress = None) -> Model:
+                progress: fitting.Progress = None) -> Model | SegmentedFit:
     """:func:`fit` with the fit's options already checked (the command line, spec files and refit build them)."""
-    if name is not None:
-        model_name(name)
-    if split is not None and not isinstance(split, Holdout):
-        raise FitError("split= takes dbfit.Holdout(key, share); for k folds use dbfit.cross_validate")
-    if split is not None and options.by is not None:
-        raise FitError("split= cannot be combined with by=")
-    if split is not None:
-        assessment.check_threshold(threshold)
-    training = source if split is None else _part_source(source, split, "train")
-    model = fitting.fit_with(con, formula, training, options, progress)
-    if split is not None:
-        model.source = source
-        model.options["split"] = {"key": split.key, "share": split.share, "source": source, "threshold": threshold}
-        held_out = assess(con, model, rows="held_out", threshold=threshold)
-        model.stats["holdout"] = dict(zip(held_out["metric"].to_pylist(), held_out["value"].to_pylist()))
-    if name is not None:
-        model.save(con, name)
-    return model
+    return training.fit_and_store(con, formula, source, options, name=name, split=split, threshold=threshold,
+                                  progress=progress)
 
 
 def _part_source(source: str, split: Holdout | KFold, part: str | int, keep: bool = True) -> str:
@@ -76,10 +66,7 @@ def assess(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | Non
     Default: the held-out rows of a holdout fit, else all rows of the model's source (in-sample). ``source``
     assesses all rows of another source; ``rows`` ("held_out", "training", "all") picks a part of the split.
     """
-    resolved = deploy.resolve_model(con, model, version)
-    text, note = resolved.assessed_rows(source, rows)
-    return assessment.metrics(DuckDBEngine(con), assessment.scored_relation(resolved, text), threshold,
-                              rows_note=note).table()
+    return training.assess(con, model, source, rows=rows, threshold=threshold, version=version)
 
 
 def assessment_tables(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *,
@@ -175,3 +162,33 @@ def population_stability(con: duckdb.DuckDBPyConnection, model: str | Model, sou
 def decisions(con: duckdb.DuckDBPyConnection, name: str | None = None) -> list[dict[str, Any]]:
     """The promotion audit trail (time, model, candidate and current versions, decision, reason, figures)."""
     return store.decision_rows(con, None if name is None else model_name(name))
+
+
+def save(con: duckdb.DuckDBPyConnection, fitted: Model | SegmentedFit, name: str, *,
+         promote: bool = True) -> int | dict[Any, tuple[str, int]]:
+    """Store ``fitted`` as the next version of ``name`` (its version number back); a ``by=`` fit stores every
+    segment's model as ``name.segment`` in one transaction (``{segment: (name, version)}`` back).
+    ``promote=False`` stores a candidate that becomes current only through ``dbfit.promote``."""
+    return saving.save(con, fitted, name, promote=promote)
+
+
+def scoring_sql(fitted: Model | SegmentedFit, dialect: str = "duckdb", *, source: str | None = None,
+                unseen: str = "null", standard_error: bool = False, level: float = 0.95) -> str:
+    """A SELECT over ``source`` (default: the model's source) adding ``linear_predictor`` and ``probability``.
+
+    ``unseen`` says what a categorical level never seen in training gives: ``"null"`` (NULL scores),
+    ``"reference"`` (scored as the reference level) or ``"error"`` (the query fails; DuckDB, Spark, BigQuery).
+    A ``by=`` fit scores each row with its own segment's model (DuckDB SQL).
+    """
+    if isinstance(fitted, SegmentedFit):
+        if fitted.by_expression is None:
+            raise StoreError("this segmented fit does not know its by expression")
+        query = segment_scoring_query(fitted.models, fitted.by_expression, source or fitted.source, unseen=unseen)
+        return query.sql("duckdb")
+    return scoring.scoring_sql(fitted, dialect, source=source, unseen=unseen, standard_error=standard_error,
+                               level=level)
+
+
+def write_report(model: Model, path: str | Path, assessment: dict[str, pa.Table] | None = None) -> Path:
+    """Write a standalone HTML report of the fit (and of ``assessment``, see :func:`assessment_tables`)."""
+    return report.write_report(model, path, assessment)

@@ -27,7 +27,8 @@ from dbfit.errors import FitError, SourceError, StoreError
 from dbfit.model.fitted import Model
 from dbfit.fitting.options import FitOptions
 from dbfit.expressions.names import model_name
-from dbfit.fitting.segments import SegmentedFit
+from dbfit.model.segmented import SegmentedFit
+from dbfit.lifecycle import saving
 from dbfit.deployment.segment_views import publish_segments
 from dbfit.expressions.source import source_relation
 
@@ -131,8 +132,8 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
         with second() as reader:
             fitted = _fit_on_second_connection(reader, source, formula, visible_rows, options)
             if isinstance(fitted, SegmentedFit):
-                return _segment_rows(fitted, fitted.save(reader, model))
-            version = fitted.save(reader, model)
+                return _segment_rows(fitted, saving.save_segments(reader, fitted, model))
+            version = saving.save_model(reader, fitted, model)
         return [{"model": model, "version": version, "segment": None, **row, "note": _warnings_note(fitted)}
                 for row in fitted.coefficients.to_pylist()]
 

@@ -14,16 +14,17 @@ from typing import Any
 
 import duckdb
 
-from dbfit.interfaces import python_api as api
+from dbfit.lifecycle import training
 
 from dbfit.store import model_store as store
+from dbfit.lifecycle import saving
 from dbfit.errors import GateRefusedError, StoreError
 from dbfit.lifecycle.fingerprint import fingerprint, origin_source
 from dbfit.lifecycle.gates import evaluate, gates_of
 from dbfit.model.fitted import Model
 from dbfit.expressions.names import model_name
 from dbfit.fitting.options import FitOptions
-from dbfit.fitting.splits import Holdout
+from dbfit.expressions.splits import Holdout, part_source
 
 REUSED_OPTIONS = ("weights", "offset", "trials", "reference", "positive", "max_iter", "tol", "firth", "robust", "cluster",
                   "population_rate", "shrinkage", "l1_share", "folds", "split_key")
@@ -50,12 +51,12 @@ def refit(con: duckdb.DuckDBPyConnection, name: str, *, source: str | None = Non
     holdout = Holdout(split["key"], split["share"]) if split else None
     start = None if cold else {label: float(v) for label, v in zip(current.labels, current.estimates) if math.isfinite(v)}
     chosen = FitOptions.of(start=start, **options)
-    candidate = api.fit_options(con, current.formula, source, chosen, split=holdout, progress=progress,
+    candidate = training.fit_and_store(con, current.formula, source, chosen, split=holdout, progress=progress,
                                 threshold=split["threshold"] if split else 0.5)
     if current.options.get("segment"):
         candidate.options["segment"] = current.options["segment"]  # still one segment of its by= fit
-    version = store.save_model(con, candidate, name, promote=False)
-    figures_source = api._part_source(source, holdout, "holdout") if holdout else source
+    version = saving.save_model(con, candidate, name, promote=False)
+    figures_source = part_source(source, holdout, "holdout") if holdout else source
     candidate_metrics = candidate.stats.get("holdout") or _metrics(con, candidate, figures_source)
     passed, reasons, figures = evaluate(gates_of(con, name), candidate, current, candidate_metrics,
                                         _metrics(con, current, figures_source))
@@ -81,7 +82,7 @@ def promote(con: duckdb.DuckDBPyConnection, name: str, version: int, *, force: b
         return result | {"decision": "promoted", "reasons": ["forced: gates not applied"]}
     source = origin_source(candidate.options, candidate.source)
     split = candidate.options.get("split")
-    figures_source = api._part_source(source, Holdout(split["key"], split["share"]), "holdout") if split else source
+    figures_source = part_source(source, Holdout(split["key"], split["share"]), "holdout") if split else source
     passed, reasons, figures = evaluate(gates_of(con, name), candidate, current, _metrics(con, candidate, figures_source),
                                         _metrics(con, current, figures_source))
     decision, reason = ("promoted", "passed every gate") if passed else ("refused", "; ".join(reasons))
@@ -93,7 +94,7 @@ def promote(con: duckdb.DuckDBPyConnection, name: str, version: int, *, force: b
 
 
 def _metrics(con: duckdb.DuckDBPyConnection, model: Model, source: str) -> dict[str, Any]:
-    table = api.assess(con, model, source)
+    table = training.assess(con, model, source)
     return dict(zip(table["metric"].to_pylist(), table["value"].to_pylist()))
 
 

@@ -5,18 +5,15 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
-from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
 
 from dbfit.design.layout import Design
-
-if TYPE_CHECKING:
-    import duckdb
-
-    from dbfit.fitting.splits import Holdout
+from dbfit.errors import DbfitError, UsageError
+from dbfit.expressions.splits import Holdout, part_source
+from dbfit.model import document
 
 ROW_CHOICES = ("held_out", "training", "all")
 
@@ -50,8 +47,6 @@ class Model:
         if source is not None:
             return source
         if self.source_is_data:
-            from dbfit.errors import DbfitError
-
             raise DbfitError(
                 "this model was read from a JSON document, whose source is data, not a query dbfit runs: "
                 "give the source to score or assess explicitly (source=...)"
@@ -66,8 +61,6 @@ class Model:
     @property
     def split(self) -> "Holdout | None":
         """The holdout split the model was fitted with (recorded in ``options["split"]``), or None."""
-        from dbfit.fitting.splits import Holdout
-
         recorded = self.options.get("split")
         return Holdout(recorded["key"], recorded["share"]) if recorded else None
 
@@ -78,9 +71,6 @@ class Model:
 
     def rows_source(self, rows: str, source: str | None = None) -> str:
         """``rows`` ("held_out", "training", "all") of ``source`` (default: the model's) as source text."""
-        from dbfit.errors import UsageError
-        from dbfit.fitting.splits import part_source
-
         if rows not in ROW_CHOICES:
             raise UsageError(f"rows={rows!r} is not a choice; choose one of {', '.join(ROW_CHOICES)}")
         whole = self.source_or_own(source)
@@ -121,29 +111,9 @@ class Model:
         text = source if rows is None else self.rows_source(rows, source)
         return text, self.rows_note(rows, source)
 
-    def save(self, con: "duckdb.DuckDBPyConnection", name: str, *, promote: bool = True) -> int:
-        """Store this model as a new version of ``name`` in ``con``'s database; return the version number.
-        ``promote=False`` stores a candidate that becomes current only through ``dbfit.promote``."""
-        from dbfit.store.model_store import save_model
-
-        return save_model(con, self, name, promote=promote)
-
     def to_json(self) -> str:
         """The model as a JSON document (format ``dbfit-model`` 1, see README.md); read back with ``dbfit.from_json``."""
-        from dbfit.model.document import to_json
-
-        return to_json(self)
-
-    def scoring_sql(self, dialect: str = "duckdb", *, source: str | None = None, unseen: str = "null",
-                    standard_error: bool = False, level: float = 0.95) -> str:
-        """A SELECT over ``source`` (default: the training source) adding ``linear_predictor`` and ``probability``.
-
-        ``unseen`` says what a categorical level never seen in training gives: ``"null"`` (NULL scores),
-        ``"reference"`` (scored as the reference level) or ``"error"`` (the query fails; DuckDB, Spark, BigQuery).
-        """
-        from dbfit.deployment.scoring import scoring_sql
-
-        return scoring_sql(self, dialect, source=source, unseen=unseen, standard_error=standard_error, level=level)
+        return document.to_json(self)
 
     def estimate(self, label: str) -> float:
         """The estimate of one term by its label (NaN when aliased)."""
@@ -189,12 +159,6 @@ class Model:
             lines.append("  warnings")
             lines += [f"  ! {w}" for w in self.warnings]
         return "\n".join(lines)
-
-    def report(self, path: str | Path, assessment: dict[str, pa.Table] | None = None) -> Path:
-        """Write a standalone HTML report of the fit (and of ``assessment``, see ``dbfit.assessment.report``) to ``path``."""
-        from dbfit.assessment.report import write_report
-
-        return write_report(self, path, assessment)
 
     def __repr__(self) -> str:
         return f"<dbfit.Model {self.formula!r}: {self.stats['n_used']} rows, deviance {self.stats['deviance']:.6g}>"

@@ -18,7 +18,7 @@ from typing import Callable
 
 import numpy as np
 
-from dbfit.fitting.statistics import PassResult
+from dbfit.solver.information import PassResult
 
 STEP_TOLERANCE = 1e-10  # largest change of a coefficient (internal scale) accepted at convergence
 SWEEP_TOLERANCE = 1e-15

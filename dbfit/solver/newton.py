@@ -19,8 +19,7 @@ from typing import Callable, Generator
 
 import numpy as np
 
-from dbfit.fitting.blocks import BlockInformation
-from dbfit.fitting.statistics import PassResult
+from dbfit.solver.information import BlockInformation, PassResult
 
 ALIAS_TOLERANCE = 1e-10  # share of a column's variance left after projecting on earlier columns
 MAX_HALVINGS = 30

@@ -35,7 +35,8 @@ from dbfit.engines.duckdb_engine import connection_lock
 from dbfit.errors import StoreConflictError, StoreError
 from dbfit.model.fitted import Model
 from dbfit.expressions.names import model_name, model_version
-from dbfit.model.document import from_document, to_document
+from dbfit.model.document import to_document
+from dbfit.model.reading import from_document
 
 SCHEMA = "dbfit_store"
 WRITE_ATTEMPTS = 40
@@ -93,7 +94,7 @@ def save_models(con: duckdb.DuckDBPyConnection, entries: list[tuple[Model, str, 
     repeated = sorted({n for n in names if names.count(n) > 1})
     if repeated:
         raise StoreError(f"model names given more than once in one save: {', '.join(repeated[:5])}")
-    extras = [save_time_rows(con, model) if extra is None else extra for model, _, extra in entries]
+    extras = [extra or {} for _, _, extra in entries]
     preamble = ensure_schema_statements(con)
     for attempt in range(WRITE_ATTEMPTS):
         versions: list[int] = []
@@ -111,22 +112,6 @@ def save_models(con: duckdb.DuckDBPyConnection, entries: list[tuple[Model, str, 
     for (model, _, _), name, version in zip(entries, names, versions):
         model.name, model.version = name, version
     return versions
-
-
-def save_time_rows(con: duckdb.DuckDBPyConnection, model: Model) -> Extra:
-    """The fingerprint of the source the user gave and the drift snapshot of the training rows, computed before the
-    version's transaction; none when the source cannot be read here (a model moved in as JSON)."""
-    from dbfit.lifecycle.drift import training_snapshot
-    from dbfit.errors import AbortedTransactionError, DbfitError
-    from dbfit.lifecycle.fingerprint import fingerprint, origin_source
-
-    try:
-        return {"fingerprints": {k: [v] for k, v in fingerprint(con, origin_source(model.options, model.source_or_own(None))).items()},
-                "drift_bins": training_snapshot(con, model)}
-    except AbortedTransactionError:
-        raise
-    except DbfitError:
-        return {}
 
 
 def load_model(con: duckdb.DuckDBPyConnection, name: str, version: int | None = None) -> Model:
