@@ -73,7 +73,7 @@ def test_postgres_weights_offset_and_huge_linear_predictors(postgres, duckdb_fit
     on_postgres = dbfit.fit(postgres, "low ~ age + smoke", "birthwt", progress=False, **options)
     assert_close(on_postgres.estimates, on_duckdb.estimates, 1e-9, "estimates with weights and offset")
     assert on_postgres.stats["null_deviance"] == pytest.approx(on_duckdb.stats["null_deviance"], rel=1e-10)
-    # eta of +/-1000 would make exp() raise in PostgreSQL without the clamp in dbfit.expressions.dialects.
+    # eta of +/-1000 would make exp() raise in PostgreSQL without the clamp in dbfit.expressions.dialects.rewrite.
     reports = []
     dbfit.fit(postgres, "low ~ age - 1", "birthwt", start=[40.0], max_iter=1, progress=reports.append)
     assert np.isfinite(reports[0].deviance)

@@ -20,7 +20,7 @@ from scipy.special import expit
 
 import dbfit
 from conftest import load_frame
-from dbfit.deployment.scoring import DIALECTS
+from dbfit.expressions.dialects import supported
 
 FORMULA = "low ~ age + lwt + race_name + smoker + lwt:smoker"
 
@@ -168,7 +168,7 @@ def test_extreme_linear_predictors_stay_finite_and_exact(con, fitted):
 def test_every_dialect_parses_back(fitted):
     # common practice: sqlglot reading its own output is the portability check for engines not run here.
     model, _, _ = fitted
-    for dialect in DIALECTS:
+    for dialect in supported():
         text = dbfit.scoring_sql(model, dialect, standard_error=True)
         tree = sqlglot.parse_one(text, read=dialect)
         assert tree.find(sqlglot.exp.Case) is not None, dialect

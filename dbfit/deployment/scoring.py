@@ -4,11 +4,13 @@ The linear predictor on the original scale is intercept + sum_j b_j * (product o
 factors) * (its level indicators); aliased terms (no estimate) contribute nothing. Categorical levels are
 written with CASE. A NULL in any factor (or the offset) gives NULL scores; a level never seen in training
 follows the ``unseen`` policy. The probability is the logistic function written with e = exp(-|eta|), which
-cannot overflow; exp() is not called for |eta| >= 708, where e is written as 0 (PostgreSQL raises on underflow;
-exp(-708) ~ 3.3e-308 is still a normal double, exp(-709) is not). Standard errors of the linear predictor are
-sqrt(x' V x) from the stored covariance V (delta method), and the probability interval maps the Wald interval
-of the linear predictor through the logistic function (common practice; see Agresti 2013, Categorical Data
-Analysis, 3rd ed., Wiley, on inference for logistic regression, cited from memory).
+cannot overflow; exp() is not called for |eta| at or beyond the dialect's exp limit, where e is written as 0
+(see :data:`dbfit.expressions.dialects.DOUBLE_EXP_LIMIT`); a dialect's other differences (the function that
+raises, T-SQL's BIT levels) come from its :class:`~dbfit.expressions.dialects.Dialect` value. Standard
+errors of the linear predictor are sqrt(x' V x) from the stored covariance V (delta method), and the
+probability interval maps the Wald interval of the linear predictor through the logistic function (common
+practice; see Agresti 2013, Categorical Data Analysis, 3rd ed., Wiley, on inference for logistic regression,
+cited from memory).
 """
 
 from __future__ import annotations
@@ -24,12 +26,12 @@ from sqlglot import exp
 from dbfit.expressions import builders as sb
 from dbfit.design.layout import Design, DesignColumn, Factor
 from dbfit.errors import DbfitError
+from dbfit.expressions import dialects
+from dbfit.expressions.dialects import Dialect
+from dbfit.expressions.dialects.duckdb import DUCKDB
 from dbfit.expressions.source import source_relation
 
-DIALECTS = ("duckdb", "postgres", "spark", "snowflake", "bigquery", "tsql", "sqlite")
 UNSEEN_POLICIES = ("null", "reference", "error")
-RAISE_FUNCTIONS = {"duckdb": "error", "spark": "raise_error", "bigquery": "ERROR"}
-EXP_GUARD = 708.0
 SOURCE_ALIAS, SCORED_ALIAS = "dbfit_source", "dbfit_scored"
 SCORE_COLUMNS = ("linear_predictor", "probability")
 INTERVAL_COLUMNS = ("linear_predictor_se", "probability_low", "probability_high")
@@ -53,19 +55,19 @@ def double(value: float) -> exp.Expression:
     return sb.as_double(sb.number(value))
 
 
-def check_options(dialect: str, unseen: str) -> None:
-    if dialect not in DIALECTS:
-        raise DbfitError(f"dialect {dialect!r} is not supported; choose one of {', '.join(DIALECTS)}")
+def check_options(dialect: Dialect, unseen: str) -> None:
     if unseen not in UNSEEN_POLICIES:
         raise DbfitError(f"unseen={unseen!r} is not a policy; choose one of {', '.join(UNSEEN_POLICIES)}")
-    if unseen == "error" and dialect not in RAISE_FUNCTIONS:
+    if unseen == "error" and dialect.raise_function is None:
+        raising = [name for name in dialects.supported() if dialects.dialect(name).raise_function is not None]
         raise DbfitError(
-            f"unseen='error' needs an SQL function that raises, which {dialect} lacks; "
-            f"use 'null' or 'reference' (or one of {', '.join(RAISE_FUNCTIONS)})"
+            f"unseen='error' needs an SQL function that raises, which {dialect.name} lacks; "
+            f"use 'null' or 'reference' (or one of {', '.join(raising)})"
         )
 
 
-def linear_predictor(design: Design, coefficient: Coefficient, unseen: str, dialect: str) -> exp.Expression:
+def linear_predictor(design: Design, coefficient: Coefficient, unseen: str,
+                     dialect: Dialect) -> exp.Expression:
     """The guarded linear predictor: NULL for NULL inputs, the unseen policy, else the CAST sum."""
     has_intercept = 1 if design.intercept else 0
     pieces: list[exp.Expression] = []
@@ -81,7 +83,7 @@ def linear_predictor(design: Design, coefficient: Coefficient, unseen: str, dial
     return _guarded(design, total, unseen, dialect)
 
 
-def standard_error(design: Design, covariance: Any, unseen: str, dialect: str) -> exp.Expression:
+def standard_error(design: Design, covariance: Any, unseen: str, dialect: Dialect) -> exp.Expression:
     """sqrt(x' V x) over the terms with an estimate (delta method for the linear predictor)."""
     has_intercept = 1 if design.intercept else 0
     rows: list[tuple[int, exp.Expression]] = []
@@ -100,13 +102,14 @@ def standard_error(design: Design, covariance: Any, unseen: str, dialect: str) -
     return _guarded(design, exp.Sqrt(this=exp.Abs(this=variance)), "null" if unseen == "error" else unseen, dialect)
 
 
-def probability(eta: exp.Expression) -> exp.Expression:
-    """1 / (1 + exp(-eta)) via e = exp(-|eta|), with exp() skipped where it would underflow; NULL stays NULL."""
-    magnitude = exp.Abs(this=eta.copy())
+def probability(eta: exp.Expression, exp_limit: float) -> exp.Expression:
+    """1 / (1 + exp(-eta)) via e = exp(-|eta|), not called from ``exp_limit`` on (e = 0); NULL stays NULL."""
+    magnitude, limit = exp.Abs(this=eta.copy()), sb.number(exp_limit)
     e = exp.Case(
         ifs=[
-            exp.If(this=exp.LT(this=magnitude, expression=sb.number(EXP_GUARD)), true=exp.Exp(this=exp.Neg(this=magnitude.copy()))),
-            exp.If(this=exp.GTE(this=magnitude.copy(), expression=sb.number(EXP_GUARD)), true=double(0.0)),
+            exp.If(this=exp.LT(this=magnitude, expression=limit),
+                   true=exp.Exp(this=exp.Neg(this=magnitude.copy()))),
+            exp.If(this=exp.GTE(this=magnitude.copy(), expression=limit.copy()), true=double(0.0)),
         ]
     )
     one = double(1.0)
@@ -128,7 +131,7 @@ def scoring_query(
     unseen: str = "null",
     with_standard_error: bool = False,
     level: float = 0.95,
-    dialect: str = "duckdb",
+    dialect: Dialect = DUCKDB,
 ) -> exp.Select:
     """SELECT every column of ``relation`` plus the score columns (and on request the interval columns).
 
@@ -151,27 +154,28 @@ def scoring_query(
     lp = sb.column("linear_predictor")
     outer = exp.select(
         exp.Column(this=exp.Star(), table=exp.to_identifier(SCORED_ALIAS)),
-        exp.alias_(probability(lp), "probability", quoted=True),
+        exp.alias_(probability(lp, dialect.exp_limit), "probability", quoted=True),
     )
     if with_standard_error:
         if not 0.0 < level < 1.0:
             raise DbfitError(f"level must be between 0 and 1 (got {level})")
         z = double(float(distributions.norm.ppf(0.5 + level / 2.0)))
         spread = sb.mul(z, sb.column("linear_predictor_se"))
-        outer = outer.select(
-            exp.alias_(probability(sb.paren(sb.sub(lp.copy(), spread))), "probability_low", quoted=True),
-            exp.alias_(probability(sb.paren(sb.add(lp.copy(), spread.copy()))), "probability_high", quoted=True),
-        )
+        low = probability(sb.paren(sb.sub(lp.copy(), spread)), dialect.exp_limit)
+        high = probability(sb.paren(sb.add(lp.copy(), spread.copy())), dialect.exp_limit)
+        outer = outer.select(exp.alias_(low, "probability_low", quoted=True),
+                             exp.alias_(high, "probability_high", quoted=True))
     return outer.from_(inner.subquery(SCORED_ALIAS))
 
 
 def scoring_sql(model: Any, dialect: str = "duckdb", *, source: str | None = None, unseen: str = "null",
                 standard_error: bool = False, level: float = 0.95) -> str:
-    """The scoring SELECT as text in ``dialect`` (see :meth:`dbfit.Model.scoring_sql`)."""
-    check_options(dialect, unseen)
+    """The scoring SELECT as text in the dialect named ``dialect`` (see :func:`dbfit.scoring_sql`)."""
+    target = dialects.dialect(dialect)
+    check_options(target, unseen)
     query = scoring_query(model, source_relation(model.source_or_own(source)), unseen=unseen,
-                          with_standard_error=standard_error, level=level, dialect=dialect)
-    return query.sql(dialect=dialect)
+                          with_standard_error=standard_error, level=level, dialect=target)
+    return query.sql(dialect=target.name)
 
 
 def _aliased(relation: exp.Expression) -> exp.Expression:
@@ -224,18 +228,18 @@ def _compared(factor: Factor) -> exp.Expression:
     return inner if INTEGER_TYPE.match(factor.cast_from or "") else sb.as_double(inner)
 
 
-def _level(factor: Factor, value: Any, dialect: str) -> exp.Expression:
-    """A level as a literal (a number for numeric levels); T-SQL has no booleans: its BIT levels are 1, 0."""
+def _level(factor: Factor, value: Any, dialect: Dialect) -> exp.Expression:
+    """A level as a literal (a number for numeric levels); without booleans (T-SQL) BIT levels are 1, 0."""
     numbers = _numeric_levels(factor)
     if numbers is not None:
         number = numbers[factor.levels.index(value)]
         return exp.Literal.number(number) if isinstance(number, int) else double(number)
-    if isinstance(value, bool) and dialect == "tsql":
+    if isinstance(value, bool) and not dialect.has_booleans:
         return exp.Literal.number(1 if value else 0)
     return factor.level_literal(value)
 
 
-def _indicator_condition(design: Design, column: DesignColumn, dialect: str) -> exp.Expression:
+def _indicator_condition(design: Design, column: DesignColumn, dialect: Dialect) -> exp.Expression:
     checks = [
         exp.EQ(this=_compared(design.factors[i]), expression=_level(design.factors[i], level, dialect))
         for i, level in column.indicators
@@ -243,7 +247,8 @@ def _indicator_condition(design: Design, column: DesignColumn, dialect: str) -> 
     return exp.and_(*checks) if len(checks) > 1 else checks[0]
 
 
-def _term_contribution(design: Design, weighted: list[tuple[exp.Expression, DesignColumn]], dialect: str) -> exp.Expression:
+def _term_contribution(design: Design, weighted: list[tuple[exp.Expression, DesignColumn]],
+                       dialect: Dialect) -> exp.Expression:
     """b * product for a numeric term; product * CASE over the level combinations otherwise."""
     first = weighted[0][1]
     product = _numeric_product(design, first)
@@ -263,7 +268,7 @@ def _term_contribution(design: Design, weighted: list[tuple[exp.Expression, Desi
     return sb.mul(product, case) if product is not None else case
 
 
-def _column_value(design: Design, column: DesignColumn, dialect: str) -> exp.Expression:
+def _column_value(design: Design, column: DesignColumn, dialect: Dialect) -> exp.Expression:
     """The original-scale value of one column: product of numeric factors times its 0/1 indicators."""
     product = _numeric_product(design, column)
     if not column.indicators:
@@ -280,7 +285,7 @@ def _unseen_message(factor: Factor) -> exp.Expression:
                                    exp.Literal.string(f"' of {factor.text} was not seen in training")])
 
 
-def _guarded(design: Design, body: exp.Expression, unseen: str, dialect: str) -> exp.Expression:
+def _guarded(design: Design, body: exp.Expression, unseen: str, dialect: Dialect) -> exp.Expression:
     inputs = [f.expression for f in design.factors] + ([design.offset] if design.offset is not None else [])
     ifs: list[exp.Expression] = []
     if inputs:
@@ -293,6 +298,6 @@ def _guarded(design: Design, body: exp.Expression, unseen: str, dialect: str) ->
             levels = [_level(factor, v, dialect) for v in factor.levels]
             unknown = exp.Not(this=exp.In(this=_compared(factor), expressions=levels))
             outcome = exp.Null() if unseen == "null" else exp.Anonymous(
-                this=RAISE_FUNCTIONS[dialect], expressions=[_unseen_message(factor)])
+                this=dialect.raise_function, expressions=[_unseen_message(factor)])
             ifs.append(exp.If(this=unknown, true=outcome))
     return exp.Case(ifs=ifs, default=body) if ifs else body

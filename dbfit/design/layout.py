@@ -19,7 +19,7 @@ from typing import Any
 from sqlglot import exp
 
 from dbfit.expressions import builders as sb
-from dbfit.expressions.dialects import resolve_columns
+from dbfit.expressions.columns import resolve_columns
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError, FormulaError
 from dbfit.expressions.formula import Formula, parse_expression

@@ -10,7 +10,8 @@ from typing import Any
 from sqlglot import exp
 
 from dbfit.errors import DbfitError
-from dbfit.expressions.dialects import adapt
+from dbfit.expressions.dialects import dialect
+from dbfit.expressions.dialects.rewrite import adapt
 
 
 class Engine:
@@ -25,7 +26,7 @@ class Engine:
         self.scans = 0
 
     def sql(self, query: exp.Expression) -> str:
-        return adapt(query, self.dialect).sql(dialect=self.dialect)
+        return adapt(query, dialect(self.dialect)).sql(dialect=self.dialect)
 
     def fetch(self, query: exp.Expression, *, scan: bool = True) -> list[tuple[Any, ...]]:
         """Run ``query`` and return all its rows; ``scan`` says whether it reads the whole source."""

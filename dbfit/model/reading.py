@@ -12,7 +12,7 @@ import numpy as np
 
 from dbfit.design.layout import Design, DesignColumn, Factor
 from dbfit.errors import DbfitError, StoreError
-from dbfit.expressions.dialects import resolve_columns
+from dbfit.expressions.columns import resolve_columns
 from dbfit.expressions.formula import parse_expression, parse_formula
 from dbfit.expressions.source import source_relation
 from dbfit.model import inference

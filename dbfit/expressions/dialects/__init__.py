@@ -1,0 +1,61 @@
+"""SQL dialects as data: what each engine or scoring target writes differently from DuckDB.
+
+dbfit builds every query tree once, in DuckDB's terms. A :class:`Dialect` holds one dialect's differences
+as values; :func:`dbfit.expressions.dialects.rewrite.adapt` turns a fitting query into that dialect's form
+and the scoring SQL reads the scoring differences from it. One module per engine (``duckdb``, ``postgres``,
+``spark``) and one for the targets dbfit only writes scoring SQL for (``scoring_targets``).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import cache
+from typing import Literal
+
+from dbfit.errors import DbfitError
+
+# exp(x) of an IEEE 754 double overflows beyond x = 709.78, and exp(-x) falls below the smallest normal double
+# (2.2e-308) beyond x = 708.40 (common practice). 708 is the largest whole number inside both bounds: exp(708)
+# is about 3.0e307 and exp(-708) about 3.3e-308.
+DOUBLE_EXP_LIMIT = 708.0
+
+
+@dataclass(frozen=True)
+class FittingForms:
+    """How the fitting queries (aggregates over the source) are written on an engine dbfit fits on."""
+
+    clamps_exp: bool  # exp() raises out of range, so every exp argument is clamped to +/- exp_limit
+    finite_test: Literal["isfinite", "not_in", "isnan"]  # isfinite(x); "not_in": x NOT IN (+-Infinity, NaN)
+    sorted_levels: Literal["array_agg", "collect_set"]  # the sorted list of a column's distinct values
+    fences_subqueries: bool  # each subquery gets OFFSET 0, so the planner computes it once
+
+
+@dataclass(frozen=True)
+class Dialect:
+    """One SQL dialect's differences from DuckDB's; ``name`` is sqlglot's name for it, as users write it."""
+
+    name: str
+    exp_limit: float  # exp(x) is evaluated for |x| below this only (clamped when fitting, 0 when scoring)
+    raise_function: str | None  # fails the query with a message (scoring with unseen='error'); None: none
+    has_booleans: bool  # TRUE / FALSE exist; otherwise boolean levels are written as the BIT values 1 / 0
+    fitting: FittingForms | None  # None: a scoring target only, dbfit does not fit models on it
+
+
+def dialect(name: str) -> Dialect:
+    """The dialect called ``name``; :class:`DbfitError` naming the supported ones for any other name."""
+    known = _known()
+    if name not in known:
+        raise DbfitError(f"dialect {name!r} is not supported; choose one of {', '.join(known)}")
+    return known[name]
+
+
+def supported() -> tuple[str, ...]:
+    """The names of every dialect dbfit writes SQL for: the engines first, then the scoring targets."""
+    return tuple(_known())
+
+
+@cache
+def _known() -> dict[str, Dialect]:
+    from dbfit.expressions.dialects import duckdb, postgres, scoring_targets, spark
+
+    return {d.name: d for d in (duckdb.DUCKDB, postgres.POSTGRES, spark.SPARK, *scoring_targets.TARGETS)}

@@ -1,0 +1,14 @@
+"""PostgreSQL: exp raises out of range, no isfinite for numbers, and subqueries fenced with OFFSET 0."""
+
+from __future__ import annotations
+
+from dbfit.expressions.dialects import DOUBLE_EXP_LIMIT, Dialect, FittingForms
+
+# exp raises "value out of range" on overflow (exp(709.8)) and on a result that underflows to zero
+# (exp(-745.2)), measured on PostgreSQL 15; DOUBLE_EXP_LIMIT keeps every argument inside both bounds.
+# isfinite exists for dates and timestamps only; PostgreSQL orders NaN equal to itself, so NOT IN finds it.
+# The planner inlines a subquery's expressions into every aggregate above it; OFFSET 0 fences each one.
+# No SQL function raises an error with a message, so unseen='error' is refused.
+POSTGRES = Dialect(name="postgres", exp_limit=DOUBLE_EXP_LIMIT, raise_function=None, has_booleans=True,
+                   fitting=FittingForms(clamps_exp=True, finite_test="not_in", sorted_levels="array_agg",
+                                        fences_subqueries=True))

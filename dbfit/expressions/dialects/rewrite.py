@@ -1,0 +1,65 @@
+"""A fitting query tree, built in DuckDB's terms, rewritten in the forms an engine's :class:`Dialect` names.
+
+sqlglot then writes the rewritten tree in that engine's dialect; DuckDB's own trees pass unchanged.
+"""
+
+from __future__ import annotations
+
+from sqlglot import exp
+
+from dbfit.errors import DbfitError
+from dbfit.expressions.dialects import Dialect, FittingForms
+
+# The forms the trees are built in (DuckDB's): queries in these forms run as built.
+AS_BUILT = FittingForms(clamps_exp=False, finite_test="isfinite", sorted_levels="array_agg",
+                        fences_subqueries=False)
+
+
+def adapt(query: exp.Expression, dialect: Dialect) -> exp.Expression:
+    """A copy of ``query`` in the forms of ``dialect`` (``query`` itself when nothing differs)."""
+    forms = dialect.fitting
+    if forms is None:
+        raise DbfitError(f"dbfit does not fit models on {dialect.name}; it writes scoring SQL for it only")
+    if forms == AS_BUILT:
+        return query
+    tree = query.copy().transform(lambda node: _rewrite(node, forms, dialect.exp_limit))
+    if forms.fences_subqueries:
+        for subquery in list(tree.find_all(exp.Subquery)):
+            inner = subquery.this
+            if isinstance(inner, exp.Select) and not inner.args.get("offset") and not inner.args.get("limit"):
+                inner.set("offset", exp.Offset(expression=exp.Literal.number(0)))
+    return tree
+
+
+def _rewrite(node: exp.Expression, forms: FittingForms, limit: float) -> exp.Expression:
+    if forms.clamps_exp and isinstance(node, exp.Exp):
+        return exp.Exp(this=_clamped(node.this, limit))
+    is_isfinite = isinstance(node, exp.Anonymous) and node.name.lower() == "isfinite"
+    if is_isfinite and forms.finite_test != "isfinite":
+        return _finite(node.expressions[0], forms.finite_test)
+    levels = isinstance(node, exp.ArrayAgg) and isinstance(node.this, exp.Order)
+    if levels and forms.sorted_levels == "collect_set":
+        distinct = node.this.this
+        return exp.Anonymous(this="array_sort", expressions=[
+            exp.Anonymous(this="collect_set", expressions=[distinct.expressions[0].copy()])])
+    return node
+
+
+def _clamped(argument: exp.Expression, limit: float) -> exp.Expression:
+    low, high = exp.Neg(this=exp.Literal.number(limit)), exp.Literal.number(limit)
+    return exp.Case(ifs=[
+        exp.If(this=exp.LT(this=argument.copy(), expression=low.copy()), true=low),
+        exp.If(this=exp.GT(this=argument.copy(), expression=high.copy()), true=high),
+    ], default=argument.copy())
+
+
+def _finite(value: exp.Expression, test: str) -> exp.Expression:
+    """isfinite(value) without isfinite: not +/-Infinity, and not NaN (listed, or through isnan)."""
+    def double(text: str) -> exp.Expression:
+        return exp.Cast(this=exp.Literal.string(text), to=exp.DataType.build("DOUBLE"))
+
+    infinite = [double("Infinity"), double("-Infinity")]
+    if test == "not_in":
+        return exp.Not(this=exp.In(this=value.copy(), expressions=[*infinite, double("NaN")]))
+    return exp.and_(exp.Not(this=exp.In(this=value.copy(), expressions=infinite)),
+                    exp.Not(this=exp.Anonymous(this="isnan", expressions=[value.copy()])))

@@ -1,0 +1,11 @@
+"""Apache Spark SQL: no isfinite, and a sorted set in place of ARRAY_AGG(DISTINCT ... ORDER BY ...)."""
+
+from __future__ import annotations
+
+from dbfit.expressions.dialects import DOUBLE_EXP_LIMIT, Dialect, FittingForms
+
+# Spark's exp returns 0 or Infinity out of range; its arguments are clamped all the same, so an exp() in a
+# formula gives the same finite numbers as on PostgreSQL.
+SPARK = Dialect(name="spark", exp_limit=DOUBLE_EXP_LIMIT, raise_function="raise_error", has_booleans=True,
+                fitting=FittingForms(clamps_exp=True, finite_test="isnan", sorted_levels="collect_set",
+                                     fences_subqueries=False))
