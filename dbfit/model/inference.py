@@ -73,9 +73,28 @@ def coefficient_table(labels: list[str], estimates: np.ndarray, covariance: np.n
     )
 
 
+def logit(probability: float) -> float:
+    """log(p / (1 - p)), the log-odds of a probability strictly between 0 and 1."""
+    return math.log(probability / (1.0 - probability))
+
+
+def success_rate(design: Design) -> float:
+    """The weighted share of successes among the trials of the rows used."""
+    return design.success_sum / design.trial_sum
+
+
+def intercept_only_estimate(design: Design) -> float:
+    """The intercept-only fit's estimate without an offset, the logit of :func:`success_rate`.
+
+    It solves that model's score equation sum w (y - n mu) = 0 in closed form; every fit starts its
+    intercept there.
+    """
+    return logit(success_rate(design))
+
+
 def null_loglik_closed_form(design: Design) -> float:
     """Intercept-only log-likelihood without an offset: the fitted probability is the weighted mean."""
-    rate = design.success_sum / design.trial_sum
+    rate = success_rate(design)
     failures = design.trial_sum - design.success_sum
     return design.loglik_constant + design.success_sum * math.log(rate) + failures * math.log1p(-rate)
 
