@@ -16,6 +16,9 @@ from scipy import stats as distributions
 from dbfit.design.layout import Design
 
 WALD_Z_95 = float(distributions.norm.ppf(0.975))
+# The columns of the coefficient table, in order (the model store keeps them under the same names).
+COEFFICIENT_COLUMNS = ("term", "estimate", "std_error", "wald_z", "p_value", "ci_low", "ci_high",
+                       "odds_ratio", "odds_ratio_low", "odds_ratio_high")
 
 
 def original_scale_map(design: Design, parameters: list[int]) -> np.ndarray:
@@ -57,20 +60,9 @@ def coefficient_table(labels: list[str], estimates: np.ndarray, covariance: np.n
         values = np.asarray(values, dtype=float)
         return pa.array(values, mask=np.isnan(values), type=pa.float64())
 
-    return pa.table(
-        {
-            "term": pa.array(labels, type=pa.string()),
-            "estimate": column(estimates),
-            "std_error": column(std_error),
-            "wald_z": column(wald_z),
-            "p_value": column(p_value),
-            "ci_low": column(low),
-            "ci_high": column(high),
-            "odds_ratio": column(odds),
-            "odds_ratio_low": column(odds_low),
-            "odds_ratio_high": column(odds_high),
-        }
-    )
+    values = (estimates, std_error, wald_z, p_value, low, high, odds, odds_low, odds_high)
+    return pa.table({"term": pa.array(labels, type=pa.string()),
+                     **{name: column(v) for name, v in zip(COEFFICIENT_COLUMNS[1:], values)}})
 
 
 def logit(probability: float) -> float:
