@@ -41,7 +41,8 @@ def fold_scan_query(design: Design, parameters: list[int], fold: exp.Expression,
     z = [exp.Literal.number(1) if name is ONE else sb.column(name) for name in names]
     columns = exp.select(*projections, *carried_columns(design), sb.column(FOLD)).from_(
         design.base_query({FOLD: fold}).subquery("dbfit_base"))
-    kept = [sb.column(name) for name in names if name is not ONE] + [sb.column(c) for c in ("y", "pw", "n", FOLD)]
+    kept = [sb.column(name) for name in names if name is not ONE]
+    kept += [sb.column(c) for c in ("y", "pw", "n", FOLD)]
     z_or_one = [None if name is ONE else sb.column(name) for name in names]
     etas = [linear_predictor([sb.number(b) for b in fit.beta], z_or_one) for fit in fits]
     linear = exp.select(*kept, *[exp.alias_(eta, f"eta{f}", quoted=True) for f, eta in enumerate(etas)]).from_(

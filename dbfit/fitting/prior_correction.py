@@ -27,7 +27,7 @@ def check_population_rate(population_rate: float | None) -> None:
 
 
 def intercept_shift(sample_rate: float, population_rate: float) -> float:
-    """ln[((1 - tau) / tau) * (ybar / (1 - ybar))] = logit(ybar) - logit(tau), subtracted from the intercept."""
+    """ln[((1 - tau) / tau) * (ybar / (1 - ybar))] = logit(ybar) - logit(tau), taken off the intercept."""
     return inference.logit(sample_rate) - inference.logit(population_rate)
 
 

@@ -41,7 +41,7 @@ def linear_predictor(coefficients: list[exp.Expression], z: list[exp.Expression 
 
 
 def with_e(query: exp.Select, alias: str, etas: dict[str, str] | None = None) -> exp.Select:
-    """``SELECT *, exp(-|eta|) AS e FROM (query)``; ``etas`` maps each linear predictor's column to its e's."""
+    """``SELECT *, exp(-|eta|) AS e FROM (query)``; ``etas``: each eta column's e column."""
     etas = etas or {"eta": "e"}
     return exp.select("*", *[exp.alias_(sb.exp_neg_abs(sb.column(eta)), e, quoted=True)
                              for eta, e in etas.items()]).from_(query.subquery(alias))
@@ -67,7 +67,8 @@ class RowQuantities:
         squared = sb.mul(sb.paren(sb.add(one, e)), sb.paren(sb.add(one.copy(), e.copy())))
         return sb.div(sb.mul(_weight(weight), sb.column("n"), e.copy()), sb.paren(squared))
 
-    def residual(self, weight: exp.Expression | None = None, mu: exp.Expression | None = None) -> exp.Expression:
+    def residual(self, weight: exp.Expression | None = None,
+                 mu: exp.Expression | None = None) -> exp.Expression:
         """w (y - n mu); ``mu`` may name a column already holding :meth:`mu`."""
         fitted = self.mu() if mu is None else mu
         return sb.mul(_weight(weight), sb.paren(sb.sub(sb.column("y"), sb.mul(sb.column("n"), fitted))))
@@ -76,7 +77,8 @@ class RowQuantities:
         """w [y eta - n log(1 + e^eta)] (without the binomial coefficient's constant)."""
         eta = sb.column(self.eta)
         log1pexp = sb.paren(sb.stable_log1pexp(eta.copy(), sb.column(self.e)))
-        return sb.mul(_weight(weight), sb.paren(sb.sub(sb.mul(sb.column("y"), eta), sb.mul(sb.column("n"), log1pexp))))
+        difference = sb.sub(sb.mul(sb.column("y"), eta), sb.mul(sb.column("n"), log1pexp))
+        return sb.mul(_weight(weight), sb.paren(difference))
 
 
 def _weight(weight: exp.Expression | None) -> exp.Expression:

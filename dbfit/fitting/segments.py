@@ -228,7 +228,8 @@ def _null_logliks(engine, design, segments, results, max_iter, tol) -> dict[Any,
     steps = {}
     for value in results:
         part = segments[value]
-        steps[value] = newton_iterations(np.array([inference.intercept_only_estimate(part)]), saturated_loglik=part.saturated_loglik,
+        steps[value] = newton_iterations(np.array([inference.intercept_only_estimate(part)]),
+                                         saturated_loglik=part.saturated_loglik,
                                          max_iter=max_iter, tol=tol, protected=1, check_aliasing=False)
     failures: dict[Any, str] = {}
     null_results, _ = _run_together(engine, design, [0], steps, failures, None, columns=[], intercept=True)
