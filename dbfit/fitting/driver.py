@@ -311,8 +311,7 @@ def start_values(design: Design, start: Mapping[str, float] | Sequence[float] | 
     if start is None:
         internal = np.zeros(len(labels))
         if design.intercept and design.offset is None:
-            rate = design.success_sum / design.trial_sum
-            internal[0] = math.log(rate / (1.0 - rate))
+            internal[0] = inference.intercept_only_estimate(design)
         return internal[fitted]
     if isinstance(start, Mapping):
         unknown = [name for name in start if name not in labels]
@@ -331,11 +330,10 @@ def _null_loglik(engine: DuckDBEngine, design: Design, max_iter: int, tol: float
     """Log-likelihood of the intercept-only model with the same weights and offset."""
     if design.offset is None:
         return inference.null_loglik_closed_form(design)
-    rate = design.success_sum / design.trial_sum
     intercept_only = StatisticsPass(engine, design)
     result = fit_newton(
         lambda beta, active: intercept_only.run((), True, beta),
-        np.array([math.log(rate / (1.0 - rate))]),
+        np.array([inference.intercept_only_estimate(design)]),
         saturated_loglik=design.saturated_loglik,
         max_iter=max_iter,
         tol=tol,

@@ -3,7 +3,7 @@
 Fit f has its own coefficients and a fold it holds out (or none). Each row gets one linear predictor per fit;
 a row enters fit f's information, score and log-likelihood when its fold is not the one f holds out, and its
 held-out log-likelihood otherwise. So k folds plus the fit on all rows cost one scan per pass, not k + 1.
-The per-row terms are those of :mod:`dbfit.fitting.statistics` (McCullagh and Nelder 1989, section 4.4).
+The per-row terms are those of :mod:`dbfit.fitting.rowterms` (McCullagh and Nelder 1989, section 4.4).
 """
 
 from __future__ import annotations
@@ -14,9 +14,12 @@ import numpy as np
 from sqlglot import exp
 
 from dbfit.expressions import builders as sb
-from dbfit.design.layout import TARGET, Design
+from dbfit.design.layout import Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
-from dbfit.fitting.rowterms import symmetric, upper_products
+from dbfit.fitting.rowterms import (
+    ONE, RowQuantities, carried_columns, linear_predictor, symmetric, triangle_size, upper_products, with_e,
+    z_columns,
+)
 from dbfit.fitting.splits import FOLD
 from dbfit.solver.information import PassResult
 
@@ -34,45 +37,34 @@ class FoldPass:
 
 
 def fold_scan_query(design: Design, parameters: list[int], fold: exp.Expression, fits: list[FoldFit]) -> exp.Select:
-    has_intercept = 1 if design.intercept else 0
-    names = [None if design.intercept and k == 0 else f"dbfit_z{k}" for k in parameters]
-    z = [exp.Literal.number(1) if name is None else sb.column(name) for name in names]
-    offset = design.offset_expression()
-    columns = exp.select(
-        *[exp.alias_(design.column_expression(design.columns[k - has_intercept]), name, quoted=True)
-          for k, name in zip(parameters, names) if name is not None],
-        exp.alias_(sb.column(TARGET), "y", quoted=True), exp.alias_(design.weight_expression(), "pw", quoted=True),
-        exp.alias_(design.trials_expression(), "n", quoted=True), sb.column(FOLD),
-        exp.alias_(offset if offset is not None else exp.Literal.number(0), "off", quoted=True),
-    ).from_(design.base_query({FOLD: fold}).subquery("dbfit_base"))
-    kept = [sb.column(name) for name in names if name is not None] + [sb.column(c) for c in ("y", "pw", "n", FOLD)]
-    etas = [sb.add(sb.column("off"), *[sb.mul(sb.number(b), zk.copy()) for b, zk in zip(fit.beta, z)]) for fit in fits]
+    names, projections = z_columns(design, parameters)
+    z = [exp.Literal.number(1) if name is ONE else sb.column(name) for name in names]
+    columns = exp.select(*projections, *carried_columns(design), sb.column(FOLD)).from_(
+        design.base_query({FOLD: fold}).subquery("dbfit_base"))
+    kept = [sb.column(name) for name in names if name is not ONE]
+    kept += [sb.column(c) for c in ("y", "pw", "n", FOLD)]
+    z_or_one = [None if name is ONE else sb.column(name) for name in names]
+    etas = [linear_predictor([sb.number(b) for b in fit.beta], z_or_one) for fit in fits]
     linear = exp.select(*kept, *[exp.alias_(eta, f"eta{f}", quoted=True) for f, eta in enumerate(etas)]).from_(
         columns.subquery("dbfit_cols"))
-    with_e = exp.select("*", *[exp.alias_(sb.exp_neg_abs(sb.column(f"eta{f}")), f"e{f}", quoted=True)
-                               for f in range(len(fits))]).from_(linear.subquery("dbfit_lin"))
 
-    one = exp.Literal.number(1)
     row_terms: list[exp.Expression] = []
     for f, fit in enumerate(fits):
-        eta, e = sb.column(f"eta{f}"), sb.column(f"e{f}")
+        quantities = RowQuantities(eta=f"eta{f}", e=f"e{f}")
         training = exp.Literal.number(1) if fit.held_out is None else exp.If(
-            this=exp.NEQ(this=sb.column(FOLD), expression=exp.Literal.number(fit.held_out)), true=one.copy(),
-            false=exp.Literal.number(0))
+            this=exp.NEQ(this=sb.column(FOLD), expression=exp.Literal.number(fit.held_out)),
+            true=exp.Literal.number(1), false=exp.Literal.number(0))
         weight = sb.mul(training, sb.column("pw"))
         row_terms += [
-            exp.alias_(sb.div(sb.mul(weight.copy(), sb.column("n"), e.copy()),
-                              sb.paren(sb.mul(sb.paren(sb.add(one.copy(), e.copy())), sb.paren(sb.add(one.copy(), e.copy()))))),
-                       f"wt{f}", quoted=True),
-            exp.alias_(sb.mul(weight.copy(), sb.paren(sb.sub(sb.column("y"), sb.mul(sb.column("n"), sb.stable_sigmoid(eta.copy(), e.copy()))))),
-                       f"r{f}", quoted=True),
-            exp.alias_(sb.mul(sb.column("pw"), sb.paren(sb.sub(sb.mul(sb.column("y"), eta.copy()),
-                                                                sb.mul(sb.column("n"), sb.paren(sb.stable_log1pexp(eta.copy(), e.copy())))))),
-                       f"ll{f}", quoted=True),
+            exp.alias_(quantities.working_weight(weight), f"wt{f}", quoted=True),
+            exp.alias_(quantities.residual(weight), f"r{f}", quoted=True),
+            exp.alias_(quantities.loglik(), f"ll{f}", quoted=True),
             exp.alias_(training.copy(), f"t{f}", quoted=True),
         ]
-    terms = exp.select(*kept, *row_terms).from_(with_e.subquery("dbfit_e"))
+    e_columns = {f"eta{f}": f"e{f}" for f in range(len(fits))}
+    terms = exp.select(*kept, *row_terms).from_(with_e(linear, "dbfit_lin", e_columns).subquery("dbfit_e"))
 
+    one = exp.Literal.number(1)
     sums: list[exp.Expression] = []
     for f in range(len(fits)):
         sums += [sb.agg_sum(sb.mul(sb.column(f"wt{f}"), product)) for product in upper_products(z)]
@@ -88,7 +80,7 @@ def fold_scan(engine: DuckDBEngine, design: Design, parameters: list[int], fold:
     """Run the scan and split its one row into a pass result per fit."""
     values = [0.0 if v is None else float(v) for v in engine.fetch(fold_scan_query(design, parameters, fold, fits))[0]]
     size = len(parameters)
-    triangle = size * (size + 1) // 2
+    triangle = triangle_size(size)
     width = triangle + size + 2
     passes = []
     for f in range(len(fits)):

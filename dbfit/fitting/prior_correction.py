@@ -11,7 +11,6 @@ from memory)); its standard error is unchanged.
 from __future__ import annotations
 
 import dataclasses
-import math
 
 import numpy as np
 
@@ -28,8 +27,8 @@ def check_population_rate(population_rate: float | None) -> None:
 
 
 def intercept_shift(sample_rate: float, population_rate: float) -> float:
-    """ln[((1 - tau) / tau) * (ybar / (1 - ybar))], subtracted from the intercept."""
-    return math.log((1.0 - population_rate) / population_rate) + math.log(sample_rate / (1.0 - sample_rate))
+    """ln[((1 - tau) / tau) * (ybar / (1 - ybar))] = logit(ybar) - logit(tau), taken off the intercept."""
+    return inference.logit(sample_rate) - inference.logit(population_rate)
 
 
 def prior_corrected(model: Model, population_rate: float) -> Model:
@@ -40,7 +39,7 @@ def prior_corrected(model: Model, population_rate: float) -> Model:
     if model.options.get("population_rate") is not None:
         raise FitError(f"the intercept is already prior-corrected (population_rate={model.options['population_rate']})")
     design = model.design
-    sample_rate = design.success_sum / design.trial_sum
+    sample_rate = inference.success_rate(design)
     shift = intercept_shift(sample_rate, population_rate)
     estimates = model.estimates.copy()
     estimates[0] -= shift

@@ -25,7 +25,7 @@ from dbfit.errors import FitError
 from dbfit.expressions.formula import parse_expression
 from dbfit.model.fitted import Model
 from dbfit.fitting.prior_correction import fitted_estimates
-from dbfit.fitting.rowterms import row_terms, symmetric, upper_products
+from dbfit.fitting.rowterms import row_terms, symmetric, triangle_size, upper_products
 
 KINDS = ("HC0", "HC1", "cluster")
 CLUSTER = "dbfit_cluster"
@@ -85,7 +85,7 @@ def sandwich_parts(engine: DuckDBEngine, design: Design, parameters: list[int], 
     cluster = parse_expression(cluster_text, "cluster") if cluster_text is not None else None
     row = engine.fetch(sandwich_query(design, parameters, beta, cluster))[0]
     size = len(parameters)
-    triangle = size * (size + 1) // 2
+    triangle = triangle_size(size)
     values = [np.nan if v is None else float(v) for v in row]
     units, missing = int(values[2 * triangle]), int(values[2 * triangle + 1])
     if missing:

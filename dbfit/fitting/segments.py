@@ -8,7 +8,6 @@ log-likelihood. A segment that converges drops out of the join, so later passes 
 from __future__ import annotations
 
 import dataclasses
-import math
 import time
 from decimal import Decimal
 from typing import Any, Callable, Generator
@@ -116,8 +115,7 @@ def _segment_design(design: Design, profile: dict[str, Any]) -> Design:
 def _segment_start(part: Design, fitted: list[int]) -> np.ndarray:
     start = np.zeros(len(fitted))
     if part.intercept and part.offset is None:
-        rate = part.success_sum / part.trial_sum
-        start[0] = math.log(rate / (1.0 - rate))
+        start[0] = inference.intercept_only_estimate(part)
     return start
 
 
@@ -230,8 +228,8 @@ def _null_logliks(engine, design, segments, results, max_iter, tol) -> dict[Any,
     steps = {}
     for value in results:
         part = segments[value]
-        rate = part.success_sum / part.trial_sum
-        steps[value] = newton_iterations(np.array([math.log(rate / (1 - rate))]), saturated_loglik=part.saturated_loglik,
+        steps[value] = newton_iterations(np.array([inference.intercept_only_estimate(part)]),
+                                         saturated_loglik=part.saturated_loglik,
                                          max_iter=max_iter, tol=tol, protected=1, check_aliasing=False)
     failures: dict[Any, str] = {}
     null_results, _ = _run_together(engine, design, [0], steps, failures, None, columns=[], intercept=True)

@@ -2,8 +2,8 @@
 
 For the logistic log-likelihood l(b) = sum w_i [y_i eta_i - n_i log(1 + exp(eta_i))] with eta = offset + X b,
 the score is X' w (y - n mu) and the Fisher information X' diag(w n mu (1 - mu)) X
-(McCullagh and Nelder 1989, Generalized Linear Models, 2nd ed., section 4.4). Everything is written with
-e = exp(-|eta|), so no intermediate overflows for any eta.
+(McCullagh and Nelder 1989, Generalized Linear Models, 2nd ed., section 4.4). The per-row terms are those
+of :mod:`dbfit.fitting.rowterms`, written with e = exp(-|eta|), so no intermediate overflows for any eta.
 """
 
 from __future__ import annotations
@@ -13,9 +13,12 @@ import numpy as np
 from sqlglot import exp
 
 from dbfit.expressions import builders as sb
-from dbfit.design.layout import SEGMENT, TARGET, Design
+from dbfit.design.layout import SEGMENT, Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError
+from dbfit.fitting.rowterms import (
+    RowQuantities, carried_columns, linear_predictor, symmetric, triangle_size, upper_pairs, with_e,
+)
 from dbfit.solver.information import PassResult
 
 # The statistics query carries p(p + 1) / 2 sums for p dense columns (the intercept's besides): 45,150 at 300,
@@ -65,15 +68,8 @@ def statistics_query(
     key_name = SEGMENT if segmented else (level_join[0] if level_join else None)
     keys = [sb.column(key_name)] if key_name else []
     base = (rows.copy() if rows is not None else design.base_query()).subquery("dbfit_base")
-    carried = [
-        exp.alias_(sb.column(TARGET), "y", quoted=True),
-        exp.alias_(design.weight_expression().copy(), "pw", quoted=True),
-        exp.alias_(design.trials_expression().copy(), "n", quoted=True),
-    ]
     zs = [exp.alias_(design.column_expression(design.columns[j]), name, quoted=True) for j, name in zip(active, z_names)]
-    offset = design.offset_expression()
-    zs.append(exp.alias_(offset if offset is not None else exp.Literal.number(0), "off", quoted=True))
-    columns = exp.select(*[k.copy() for k in keys], *zs, *carried).from_(base)
+    columns = exp.select(*[k.copy() for k in keys], *zs, *carried_columns(design)).from_(base)
 
     size = len(active) + (1 if intercept else 0)
     if segmented:
@@ -82,16 +78,13 @@ def statistics_query(
         values = [exp.Placeholder() for _ in range(size)]
     else:
         values = [sb.number(b) for b in beta]
-    pieces: list[exp.Expression] = [sb.column("off")]
-    if intercept:
-        pieces.append(values.pop(0))
-    pieces += [sb.mul(b, sb.column(name)) for b, name in zip(values, z_names)]
+    eta = linear_predictor(values, [None] * int(intercept) + [sb.column(name) for name in z_names])
     if level_join:
-        pieces.append(exp.column("g", table="dbfit_coef", quoted=True))
+        eta = sb.add(eta, exp.column("g", table="dbfit_coef", quoted=True))
     kept = [*[k.copy() for k in keys], *[sb.column(n) for n in z_names], sb.column("y"), sb.column("pw"), sb.column("n")]
     if keys:
         kept = [exp.column(c.name, table="dbfit_cols", quoted=True) for c in kept]
-    linear = exp.select(*kept, exp.alias_(sb.add(*pieces), "eta", quoted=True)).from_(columns.subquery("dbfit_cols"))
+    linear = exp.select(*kept, exp.alias_(eta, "eta", quoted=True)).from_(columns.subquery("dbfit_cols"))
     joined = coefficients if segmented else (level_join[1] if level_join else None)
     if joined is not None:
         linear = linear.join(
@@ -100,13 +93,8 @@ def statistics_query(
                       expression=exp.column(key_name, table="dbfit_coef", quoted=True)),
         )
 
-    eta, e = sb.column("eta"), sb.column("e")
-    with_e = exp.select("*", exp.alias_(sb.exp_neg_abs(eta), "e", quoted=True)).from_(linear.subquery("dbfit_lin"))
-
-    one = exp.Literal.number(1)
-    working_weight = sb.div(sb.mul(sb.column("pw"), sb.column("n"), e.copy()), sb.paren(sb.mul(sb.paren(sb.add(one, e.copy())), sb.paren(sb.add(one.copy(), e.copy())))))
-    residual = sb.mul(sb.column("pw"), sb.paren(sb.sub(sb.column("y"), sb.mul(sb.column("n"), sb.stable_sigmoid(eta.copy(), e.copy())))))
-    loglik = sb.mul(sb.column("pw"), sb.paren(sb.sub(sb.mul(sb.column("y"), eta.copy()), sb.mul(sb.column("n"), sb.paren(sb.stable_log1pexp(eta.copy(), e.copy()))))))
+    eta = sb.column("eta")
+    quantities = RowQuantities()
     is_extreme = exp.GT(this=exp.Abs(this=eta.copy()), expression=sb.number(EXTREME_ETA))
     # Wrong extreme: eta far positive but the row has failures, or far negative but it has successes.
     wrong = exp.or_(
@@ -116,12 +104,12 @@ def statistics_query(
     row_terms = exp.select(
         *[k.copy() for k in keys],
         *[sb.column(n) for n in z_names],
-        exp.alias_(working_weight, "wt", quoted=True),
-        exp.alias_(residual, "r", quoted=True),
-        exp.alias_(loglik, "ll", quoted=True),
+        exp.alias_(quantities.working_weight(), "wt", quoted=True),
+        exp.alias_(quantities.residual(), "r", quoted=True),
+        exp.alias_(quantities.loglik(), "ll", quoted=True),
         exp.alias_(exp.If(this=is_extreme, true=sb.column("pw"), false=exp.Literal.number(0)), "ext", quoted=True),
         exp.alias_(exp.If(this=wrong, true=sb.column("pw"), false=exp.Literal.number(0)), "bad", quoted=True),
-    ).from_(with_e.subquery("dbfit_e"))
+    ).from_(with_e(linear, "dbfit_lin").subquery("dbfit_e"))
     weighted = exp.select(
         *[k.copy() for k in keys],
         *[sb.column(n) for n in z_names],
@@ -131,9 +119,8 @@ def statistics_query(
 
     sums: list[exp.Expression] = []
     names = ([None] if intercept or level_join else []) + z_names
-    for a in range(0 if not score_only else len(names), len(names)):
-        for b in range(a, len(names)):
-            sums.append(sb.agg_sum(_product(names[a], names[b])))
+    if not score_only:
+        sums += [sb.agg_sum(_product(names[a], names[b])) for a, b in upper_pairs(len(names))]
     for name in names:
         sums.append(sb.agg_sum(sb.column("r") if name is None else sb.mul(sb.column("r"), sb.column(name))))
     sums += [sb.agg_sum(sb.column("ll")), sb.agg_sum(sb.column("ext")), sb.agg_sum(sb.column("bad"))]
@@ -198,11 +185,8 @@ def unpack_many(rows: list[tuple], size: int, score_only: bool = False) -> list[
     if score_only:
         grams, count = np.zeros((len(rows), 0, 0)), 0
     else:
-        upper = np.triu_indices(size)
-        count = len(upper[0])
-        grams = np.zeros((len(rows), size, size))
-        grams[:, upper[0], upper[1]] = values[:, :count]
-        grams[:, upper[1], upper[0]] = values[:, :count]
+        count = triangle_size(size)
+        grams = symmetric(values[:, :count], size)
     scores = values[:, count : count + size]
     tails = values[:, count + size : count + size + 3].tolist()
     return [PassResult(gram=grams[k], score=scores[k], loglik=tail[0], extreme=tail[1], misfit_extreme=tail[2])

@@ -30,7 +30,6 @@ FLOOR = 1e-4  # common practice
 QUANTILES = [k / 10 for k in range(1, 10)]  # deciles
 STABLE, LARGE = 0.1, 0.25  # reading bands: common practice
 SCORE = "score"
-OTHER = "(other levels)"
 SCORED = "dbfit_scored"
 
 

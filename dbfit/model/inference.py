@@ -16,6 +16,9 @@ from scipy import stats as distributions
 from dbfit.design.layout import Design
 
 WALD_Z_95 = float(distributions.norm.ppf(0.975))
+# The columns of the coefficient table, in order (the model store keeps them under the same names).
+COEFFICIENT_COLUMNS = ("term", "estimate", "std_error", "wald_z", "p_value", "ci_low", "ci_high",
+                       "odds_ratio", "odds_ratio_low", "odds_ratio_high")
 
 
 def original_scale_map(design: Design, parameters: list[int]) -> np.ndarray:
@@ -57,25 +60,33 @@ def coefficient_table(labels: list[str], estimates: np.ndarray, covariance: np.n
         values = np.asarray(values, dtype=float)
         return pa.array(values, mask=np.isnan(values), type=pa.float64())
 
-    return pa.table(
-        {
-            "term": pa.array(labels, type=pa.string()),
-            "estimate": column(estimates),
-            "std_error": column(std_error),
-            "wald_z": column(wald_z),
-            "p_value": column(p_value),
-            "ci_low": column(low),
-            "ci_high": column(high),
-            "odds_ratio": column(odds),
-            "odds_ratio_low": column(odds_low),
-            "odds_ratio_high": column(odds_high),
-        }
-    )
+    values = (estimates, std_error, wald_z, p_value, low, high, odds, odds_low, odds_high)
+    return pa.table({"term": pa.array(labels, type=pa.string()),
+                     **{name: column(v) for name, v in zip(COEFFICIENT_COLUMNS[1:], values)}})
+
+
+def logit(probability: float) -> float:
+    """log(p / (1 - p)), the log-odds of a probability strictly between 0 and 1."""
+    return math.log(probability / (1.0 - probability))
+
+
+def success_rate(design: Design) -> float:
+    """The weighted share of successes among the trials of the rows used."""
+    return design.success_sum / design.trial_sum
+
+
+def intercept_only_estimate(design: Design) -> float:
+    """The intercept-only fit's estimate without an offset, the logit of :func:`success_rate`.
+
+    It solves that model's score equation sum w (y - n mu) = 0 in closed form; every fit starts its
+    intercept there.
+    """
+    return logit(success_rate(design))
 
 
 def null_loglik_closed_form(design: Design) -> float:
     """Intercept-only log-likelihood without an offset: the fitted probability is the weighted mean."""
-    rate = design.success_sum / design.trial_sum
+    rate = success_rate(design)
     failures = design.trial_sum - design.success_sum
     return design.loglik_constant + design.success_sum * math.log(rate) + failures * math.log1p(-rate)
 

@@ -34,6 +34,7 @@ from sqlglot import exp
 from dbfit.engines.duckdb_engine import connection_lock
 from dbfit.errors import StoreConflictError, StoreError
 from dbfit.model.fitted import Model
+from dbfit.model.inference import COEFFICIENT_COLUMNS
 from dbfit.expressions.names import model_name, model_version
 from dbfit.model.document import to_document
 from dbfit.model.reading import from_document
@@ -41,8 +42,6 @@ from dbfit.model.reading import from_document
 SCHEMA = "dbfit_store"
 WRITE_ATTEMPTS = 40
 MAX_BACKOFF_SECONDS = 0.25
-COEFFICIENT_COLUMNS = ("term", "estimate", "std_error", "wald_z", "p_value", "ci_low", "ci_high",
-                       "odds_ratio", "odds_ratio_low", "odds_ratio_high")
 _KEY = "model VARCHAR NOT NULL, version INTEGER NOT NULL"
 _TABLES = {
     "models": "model VARCHAR PRIMARY KEY, created_at TIMESTAMP NOT NULL",
