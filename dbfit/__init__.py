@@ -1,10 +1,11 @@
 """dbfit: logistic regression fitted, checked and deployed inside the database."""
 
 from dbfit.interfaces.connection import connect, install
-from dbfit.interfaces.python_api import (assess, assessment_tables, cross_validate, decisions, drop_model, fit, from_json, load, models,
-                       population_stability, save, score, scoring_sql, write_report)
+from dbfit.interfaces.python_api import (assess, assessment_tables, cross_validate, decisions, drift,
+                                         drop_model, fit, from_json, load, models, population_stability,
+                                         promote, save, score, scoring_sql, write_report)
 from dbfit.lifecycle.gates import Gates, gates_of, set_gates
-from dbfit.lifecycle.refit import promote, refit
+from dbfit.lifecycle.refit import refit
 from dbfit.assessment.comparison import comparison_table, likelihood_ratio_test
 from dbfit.expressions.splits import Holdout, KFold
 from dbfit.deployment.views import publish
@@ -41,6 +42,7 @@ __all__ = [
     "connect",
     "cross_validate",
     "decisions",
+    "drift",
     "drop_model",
     "fit",
     "from_json",

@@ -3,7 +3,7 @@
 SELECT model, version, term, estimate, std_error, p_value, odds_ratio
 FROM dbfit.fit(
     'late_deliveries',
-    'deliveries',
     'late ~ distance_km + parcel_kg + depot + tier + dispatch_hour + rain',
+    'deliveries',
     reference := MAP {'depot': 'North', 'tier': 'standard'}
 );

@@ -2,8 +2,8 @@
 SELECT model, version, term, estimate
 FROM dbfit.fit(
     'late_deliveries',
-    'SELECT * FROM deliveries WHERE dispatch_hour < 12',
     'late ~ distance_km + parcel_kg + depot + tier + dispatch_hour + rain',
+    'SELECT * FROM deliveries WHERE dispatch_hour < 12',
     reference := MAP {'depot': 'North', 'tier': 'standard'}
 );
 

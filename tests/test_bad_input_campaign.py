@@ -78,10 +78,10 @@ def test_holdout_share_as_text_is_refused(deliveries):
 
 
 VERSION_CALLS = {
-    "load": lambda con, v: dbfit.load(con, "m", v),
+    "load": lambda con, v: dbfit.load(con, "m", version=v),
     "score": lambda con, v: dbfit.score(con, "m", "t", version=v),
     "assess": lambda con, v: dbfit.assess(con, "m", "t", version=v),
-    "drift": lambda con, v: dbfit.population_stability(con, "m", "t", version=v),
+    "drift": lambda con, v: dbfit.drift(con, "m", "t", version=v),
     "assessment_tables": lambda con, v: dbfit.assessment_tables(con, "m", "t", version=v),
 }
 
@@ -96,7 +96,7 @@ SCORING_CASES = {
     "score level as text": (lambda con: dbfit.score(con, "m", "t", standard_error=True, level="x"), ["level", "'x'"]),
     "score standard_error as text": (lambda con: dbfit.score(con, "m", "t", standard_error="yes"),
                                      ["standard_error", "yes"]),
-    "publish live as text": (lambda con: dbfit.publish(con, "m", "scored", "t", live="yes"), ["live", "yes"]),
+    "publish live as text": (lambda con: dbfit.publish(con, "m", "t", "scored", live="yes"), ["live", "yes"]),
     "report to a missing folder": (lambda con: dbfit.write_report(dbfit.load(con, "m"), "/no/such/dir/r.html"),
                                    ["/no/such/dir/r.html"]),
     "k folds as text": (lambda con: dbfit.cross_validate(con, "y ~ x", "t", dbfit.KFold("x", "3")), ["folds", "'3'"]),
@@ -110,17 +110,17 @@ def test_scoring_and_report_bad_input_is_refused(stored, case):
 
 
 SQL_CASES = [
-    ("SELECT * FROM dbfit.fit('m2', 't', 'y ~ x', max_iter := 'abc')", ["max_iter", "abc"]),
-    ("SELECT * FROM dbfit.fit('m2', 't', 'y ~ x', max_iter := 'ten')", ["max_iter", "ten"]),
-    ("SELECT * FROM dbfit.fit('m2', 't', 'y ~ x', max_iter := 2.5)", ["max_iter", "2.5"]),
-    ("SELECT * FROM dbfit.fit('m2', 't', 'y ~ x', tol := 'x')", ["tol", "'x'"]),
-    ("SELECT * FROM dbfit.fit('m2', 't', 'y ~ x', firth := 'yes')", ["firth", "yes"]),
-    ("SELECT * FROM dbfit.fit('m2', 't', 'y ~ x', shrinkage := 1, l1_share := 'half')", ["l1_share", "half"]),
-    ("SELECT * FROM dbfit.fit('m2', 't', 'y ~ x', population_rate := 'rare')", ["population_rate", "rare"]),
-    ("SELECT * FROM dbfit.fit('m2', 't', 'y ~ x', shrinkage := 'lots')", ["shrinkage", "lots"]),
-    ("SELECT * FROM dbfit.fit('m2', '/no/such/rows.csv', 'y ~ x')", ["/no/such/rows.csv"]),
-    ("SELECT * FROM dbfit.fit('m2', '/no/such/rows.parquet', 'y ~ x')", ["/no/such/rows.parquet"]),
-    ("SELECT * FROM dbfit.fit('m2', 't', 'y ~ x', positive := '5')", ["positive", "5"]),
+    ("SELECT * FROM dbfit.fit('m2', 'y ~ x', 't', max_iter := 'abc')", ["max_iter", "abc"]),
+    ("SELECT * FROM dbfit.fit('m2', 'y ~ x', 't', max_iter := 'ten')", ["max_iter", "ten"]),
+    ("SELECT * FROM dbfit.fit('m2', 'y ~ x', 't', max_iter := 2.5)", ["max_iter", "2.5"]),
+    ("SELECT * FROM dbfit.fit('m2', 'y ~ x', 't', tol := 'x')", ["tol", "'x'"]),
+    ("SELECT * FROM dbfit.fit('m2', 'y ~ x', 't', firth := 'yes')", ["firth", "yes"]),
+    ("SELECT * FROM dbfit.fit('m2', 'y ~ x', 't', shrinkage := 1, l1_share := 'half')", ["l1_share", "half"]),
+    ("SELECT * FROM dbfit.fit('m2', 'y ~ x', 't', population_rate := 'rare')", ["population_rate", "rare"]),
+    ("SELECT * FROM dbfit.fit('m2', 'y ~ x', 't', shrinkage := 'lots')", ["shrinkage", "lots"]),
+    ("SELECT * FROM dbfit.fit('m2', 'y ~ x', '/no/such/rows.csv')", ["/no/such/rows.csv"]),
+    ("SELECT * FROM dbfit.fit('m2', 'y ~ x', '/no/such/rows.parquet')", ["/no/such/rows.parquet"]),
+    ("SELECT * FROM dbfit.fit('m2', 'y ~ x', 't', positive := '5')", ["positive", "5"]),
     ("SELECT * FROM dbfit.assess('m', 't', threshold := 'abc')", ["threshold", "abc"]),
     ("SELECT * FROM dbfit.confusion('m', 't', threshold := 'x')", ["threshold", "'x'"]),
     ("SELECT * FROM dbfit.score('m', 't', level := 'x')", ["level", "'x'"]),
@@ -225,14 +225,14 @@ def test_threads_sharing_a_connection_get_correct_results_or_dbfit_errors(stored
 
     model = dbfit.load(stored, "m")
     expected_print = fingerprint(stored, "t")
-    expected_psi = dbfit.population_stability(stored, model, "t").to_pylist()
+    expected_psi = dbfit.drift(stored, model, "t").to_pylist()
     failures: list[BaseException] = []
 
     def work() -> None:
         for _ in range(25):
             try:
                 assert fingerprint(stored, "t") == expected_print
-                assert dbfit.population_stability(stored, model, "t").to_pylist() == expected_psi
+                assert dbfit.drift(stored, model, "t").to_pylist() == expected_psi
             except dbfit.DbfitError:
                 pass
             except BaseException as err:  # IndexError, KeyError, a wrong answer: one thread read the other's rows

@@ -50,7 +50,7 @@ def _numeric_shares(values: np.ndarray, edges: list[float]) -> np.ndarray:
 
 
 def test_psi_equals_an_independent_computation_from_the_definition(con):
-    table = {row["variable"]: row for row in dbfit.population_stability(con, "late", SHIFTED).to_pylist()}
+    table = {row["variable"]: row for row in dbfit.drift(con, "late", SHIFTED).to_pylist()}
     assert set(table) == {"score", "distance_km", "parcel_kg", "depot", "tier", "dispatch_hour", "rain"}
     training = con.execute("SELECT distance_km, parcel_kg FROM training").fetchnumpy()
     new = con.execute(f"SELECT distance_km, parcel_kg, rain FROM ({SHIFTED})").fetchnumpy()
@@ -74,29 +74,29 @@ def test_psi_equals_an_independent_computation_from_the_definition(con):
 
 
 def test_psi_is_near_zero_for_two_samples_of_one_distribution(con):
-    table = dbfit.population_stability(con, "late", "fresh").to_pylist()
+    table = dbfit.drift(con, "late", "fresh").to_pylist()
     assert max(row["psi"] for row in table) < 0.01
     assert {row["reading"] for row in table} == {"stable"}
     assert all(row["new_rows"] > 29000 for row in table)
 
 
 def test_sql_drift_gives_the_python_figures(con):
-    python = dbfit.population_stability(con, "late", SHIFTED).to_pylist()
+    python = dbfit.drift(con, "late", SHIFTED).to_pylist()
     sql = con.execute("SELECT * FROM dbfit.drift('late', ?)", [SHIFTED]).fetchall()
     assert [tuple(row.values()) for row in python] == sql
 
 
 def test_unseen_levels_pool_into_one_bin_and_bad_input_is_named(con):
-    table = {row["variable"]: row for row in dbfit.population_stability(
+    table = {row["variable"]: row for row in dbfit.drift(
         con, "late", "SELECT * REPLACE (CASE WHEN depot = 'East' THEN 'Airport' ELSE depot END AS depot) FROM fresh"
     ).to_pylist()}
     east = 0.2  # the East share is about a fifth; all of it moves to a level of training share 0 (floored)
     assert table["depot"]["psi"] == pytest.approx(east * math.log(east / FLOOR) + (FLOOR - east) * math.log(FLOOR / east),
                                                   rel=0.1)
     with pytest.raises(dbfit.SourceError):
-        dbfit.population_stability(con, "late", "no_such_table")
+        dbfit.drift(con, "late", "no_such_table")
     with pytest.raises(dbfit.FormulaError):
-        dbfit.population_stability(con, "late", "SELECT 1 AS late")
+        dbfit.drift(con, "late", "SELECT 1 AS late")
 
 
 def test_reading_bands_are_the_common_practice_ones():
@@ -108,4 +108,4 @@ def test_drift_on_an_empty_source_is_refused_with_the_count(con):
     # common practice: a stability index needs rows on both sides; an empty source is no evidence of a shift.
     con.execute("CREATE TABLE nothing_yet AS SELECT * FROM fresh LIMIT 0").fetchall()
     with pytest.raises(dbfit.DbfitError, match="nothing_yet has 0 rows"):
-        dbfit.population_stability(con, "late", "nothing_yet")
+        dbfit.drift(con, "late", "nothing_yet")

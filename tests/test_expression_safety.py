@@ -332,11 +332,11 @@ def test_tampered_stored_model_is_refused_by_load(spector_db):
     ).fetchall()
     before = duckdb_state(spector_db)
     with pytest.raises(dbfit.FormulaError, match="function dbfit_sql_drop in factor 1 of the model document"):
-        dbfit.load(spector_db, "other_model", 2)
+        dbfit.load(spector_db, "other_model", version=2)
     with pytest.raises(dbfit.FormulaError, match="dbfit_sql_drop"):
         dbfit.score(spector_db, "other_model", "spector", version=2)
     assert duckdb_state(spector_db) == before
-    assert dbfit.load(spector_db, "other_model", 1).labels[-1] == "GPA"
+    assert dbfit.load(spector_db, "other_model", version=1).labels[-1] == "GPA"
 
 
 def test_document_source_is_data_not_a_query(spector_db):
@@ -366,10 +366,10 @@ def test_document_source_is_data_not_a_query(spector_db):
 
 def test_sql_fit_macro_refuses_injections(spector_db):
     calls = [
-        "SELECT * FROM dbfit.fit('m', 'spector', 'GRADE ~ GPA + len(dbfit_sql_drop(''other_model'', NULL))')",
-        "SELECT * FROM dbfit.fit('m', 'spector', 'GRADE ~ GPA', weights := '1 + 0 * nextval(''seq'')')",
-        "SELECT * FROM dbfit.fit('m', 'spector', 'GRADE ~ GPA', by := 'getvariable(''secret'')')",
-        "SELECT * FROM dbfit.fit('m', 'SELECT *, nextval(''seq'') AS n FROM spector', 'GRADE ~ GPA')",
+        "SELECT * FROM dbfit.fit('m', 'GRADE ~ GPA + len(dbfit_sql_drop(''other_model'', NULL))', 'spector')",
+        "SELECT * FROM dbfit.fit('m', 'GRADE ~ GPA', 'spector', weights := '1 + 0 * nextval(''seq'')')",
+        "SELECT * FROM dbfit.fit('m', 'GRADE ~ GPA', 'spector', by := 'getvariable(''secret'')')",
+        "SELECT * FROM dbfit.fit('m', 'GRADE ~ GPA', 'SELECT *, nextval(''seq'') AS n FROM spector')",
     ]
     for call in calls:
         before = duckdb_state(spector_db)

@@ -23,7 +23,7 @@ def database(tmp_path):
     build_deliveries(con, 40_000, "all_deliveries")
     con.execute("CREATE TABLE deliveries AS SELECT * FROM all_deliveries WHERE delivery_id < 20000").fetchall()
     dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, name="late", split=HOLDOUT, progress=False)
-    dbfit.publish(con, "late", "late_live", "deliveries", live=True)
+    dbfit.publish(con, "late", "deliveries", "late_live", live=True)
     yield con
     con.close()
 
@@ -46,7 +46,7 @@ def test_refit_on_appended_rows_is_warm_started_and_promoted(database):
     assert result["figures"]["iterations"] < cold.stats["iterations"]
     assert result["figures"]["scans"] < cold.stats["scans"]
     assert dbfit.load(con, "late").version == 2
-    warm = dbfit.load(con, "late", 2)
+    warm = dbfit.load(con, "late", version=2)
     for label in warm.labels:  # the warm start reaches the same answer
         assert warm.estimate(label) == pytest.approx(cold.estimate(label), abs=1e-7)
     assert dbfit.decisions(con, "late")[-1]["decision"] == "promoted"
@@ -67,9 +67,9 @@ def test_gate_failure_leaves_current_version_and_live_view_untouched(database):
     assert (audit["candidate_version"], audit["current_version"], audit["decision"]) == (2, 1, "refused")
     assert audit["figures"]["largest_shift"] > 5 and audit["reason"] == "; ".join(result["reasons"])
     with pytest.raises(dbfit.GateRefusedError, match="not promoted"):
-        dbfit.promote(con, "late", 2)
+        dbfit.promote(con, "late", version=2)
     assert dbfit.load(con, "late").version == 1
-    dbfit.promote(con, "late", 2, force=True)
+    dbfit.promote(con, "late", version=2, force=True)
     assert dbfit.load(con, "late").version == 2 and dbfit.decisions(con, "late")[-1]["reason"].startswith("forced")
 
 
@@ -89,7 +89,7 @@ def test_gates_are_stored_per_model_and_checked(database):
                       split=HOLDOUT, progress=False)  # 11 estimates from about 450 rows: worse on unseen rows
     assert dbfit.save(con, small, "late", promote=False) == 2 and dbfit.load(con, "late").version == 1
     with pytest.raises(dbfit.GateRefusedError) as refused:
-        dbfit.promote(con, "late", 2)
+        dbfit.promote(con, "late", version=2)
     reasons = refused.value.result["reasons"]
     assert reasons and all("AUC" in r or "log loss" in r for r in reasons)
     figures = refused.value.result["figures"]
@@ -111,7 +111,7 @@ def test_dropping_the_current_version_falls_back_to_the_latest(database):
     con = database
     _append(con, flip=True)
     dbfit.refit(con, "late")
-    dbfit.drop_model(con, "late", 1)
+    dbfit.drop_model(con, "late", version=1)
     assert dbfit.load(con, "late").version == 2
     assert len(_live_scores(con)) == 40000
 

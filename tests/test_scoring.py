@@ -96,8 +96,8 @@ def test_published_view_needs_only_duckdb_in_a_fresh_process(tmp_path, fitted):
     with dbfit.connect(str(path)) as con:
         load_frame(con, "birthwt", birthwt_frame())
         dbfit.save(con, model, "low_weight")
-        dbfit.publish(con, "low_weight", "low_weight_scores", "birthwt")
-        dbfit.publish(con, "low_weight", "low_weight_live", "birthwt", live=True)
+        dbfit.publish(con, "low_weight", "birthwt", "low_weight_scores")
+        dbfit.publish(con, "low_weight", "birthwt", "low_weight_live", live=True)
     script = (
         "import json, sys, duckdb\n"
         f"con = duckdb.connect({str(path)!r}, read_only=True)\n"
@@ -118,8 +118,8 @@ def test_live_view_follows_a_refit_and_pinned_view_does_not(con, fitted):
     # reference: statsmodels GLM Binomial predict() for the refit on the first 150 rows.
     model, reference, X = fitted
     dbfit.save(con, model, "low_weight")
-    dbfit.publish(con, "low_weight", "pinned", "birthwt", version=1)
-    dbfit.publish(con, "low_weight", "live", "birthwt", live=True)
+    dbfit.publish(con, "low_weight", "birthwt", "pinned", version=1)
+    dbfit.publish(con, "low_weight", "birthwt", "live", live=True)
     con.execute("CREATE TABLE birthwt_part AS SELECT * FROM birthwt LIMIT 150")
     part = con.execute("SELECT * FROM birthwt_part").fetchdf()
     dbfit.fit(con, FORMULA, "birthwt_part", name="low_weight", reference={"race_name": "white"}, tol=1e-14, progress=False)
@@ -193,7 +193,7 @@ def test_scoring_refuses_sources_with_score_columns(con, fitted):
     model, _, _ = fitted
     con.execute("CREATE TABLE scored_before AS SELECT *, 0.5 AS probability FROM birthwt")
     with pytest.raises(dbfit.DbfitError, match="already has column"):
-        dbfit.publish(con, model, "again", "scored_before")
+        dbfit.publish(con, model, "scored_before", "again")
 
 
 def design_matrix(model, frame: pd.DataFrame) -> pd.DataFrame:

@@ -115,7 +115,7 @@ def test_sql_by_fits_each_segment_stores_it_and_reports_failures(tmp_path, birth
     load_frame(con, "birthwt", birthwt)
     con.execute("CREATE TABLE births AS SELECT * FROM birthwt UNION ALL (SELECT * REPLACE ('none' AS race_name, 1 AS low)"
                 " FROM birthwt LIMIT 5)")
-    result = con.execute("SELECT * FROM dbfit.fit('low_weight', 'births', 'low ~ age + lwt + smoker', by := 'race_name')")
+    result = con.execute("SELECT * FROM dbfit.fit('low_weight', 'low ~ age + lwt + smoker', 'births', by := 'race_name')")
     columns = [d[0] for d in result.description]
     rows = [dict(zip(columns, r)) for r in result.fetchall()]
     assert columns[:4] == ["model", "version", "segment", "term"] and columns[-1] == "note"
@@ -154,12 +154,12 @@ def test_segment_models_are_ordinary_models_of_their_own_rows(con, birthwt):
     refitted = dbfit.refit(con, "by_race.2", skip_unchanged=True)
     assert refitted["decision"] in ("promoted", "refused") and refitted["candidate_version"] == 2
     assert dbfit.refit(con, "by_race.1", skip_unchanged=True)["decision"] == "skipped"
-    dbfit.promote(con, "by_race.2", 2, force=True)
+    dbfit.promote(con, "by_race.2", version=2, force=True)
     assert dbfit.load(con, "by_race.2").options["segment"] == {"by": "race", "value": 2}
-    made = dbfit.publish_segments(con, "by_race", "race_scores", "birthwt")
+    made = dbfit.publish_segments(con, "by_race", "birthwt", "race_scores")
     assert made["segments"] == 3
     with pytest.raises(dbfit.StoreError, match="one segment of a by= fit, which records no training snapshot"):
-        dbfit.population_stability(con, "by_race.1", "birthwt")
+        dbfit.drift(con, "by_race.1", "birthwt")
 
 
 def test_segment_names_that_collide_are_refused_before_anything_is_written(con):
@@ -201,4 +201,4 @@ def test_one_view_scores_each_row_with_its_own_segment_model(tmp_path, birthwt):
 
 def test_publishing_segments_that_were_never_stored_is_refused(con):
     with pytest.raises(dbfit.StoreError, match="no stored segment models named 'nothing.<segment>'"):
-        dbfit.publish_segments(con, "nothing", "v", "SELECT 1 AS x")
+        dbfit.publish_segments(con, "nothing", "SELECT 1 AS x", "v")

@@ -66,7 +66,7 @@ def test_duckdb_failing_named_fit_and_publish_keep_the_transaction_and_a_fit_the
     with pytest.raises(dbfit.FormulaError):
         dbfit.fit(births, "low ~ age + no_such_column", "birthwt", name="low_weight", progress=False)
     with pytest.raises(dbfit.SourceError):
-        dbfit.publish(births, "low_weight", "low_weight_scores", "no_such_table")
+        dbfit.publish(births, "low_weight", "no_such_table", "low_weight_scores")
     model = dbfit.fit(births, FORMULA, "birthwt", name="low_weight", progress=False)
     assert model.rows_total == 189 + 10  # birthwt has 189 rows (MASS documentation)
     assert _notes(births) == ["mine"]
@@ -178,16 +178,16 @@ def test_publish_refuses_to_replace_the_users_own_view(stored):
     stored.execute("CREATE VIEW low_weight_scores AS SELECT 42 AS answer")
     mine = _view_text(stored, "low_weight_scores")
     with pytest.raises(dbfit.StoreError, match="low_weight_scores.*replace=True"):
-        dbfit.publish(stored, "low_weight", "low_weight_scores", "birthwt")
+        dbfit.publish(stored, "low_weight", "birthwt", "low_weight_scores")
     with pytest.raises(duckdb.Error, match="low_weight_scores"):
         stored.execute("SELECT * FROM dbfit.publish('low_weight', 'birthwt', 'low_weight_scores')").fetchall()
     assert _view_text(stored, "low_weight_scores") == mine
 
 
 def test_publish_replaces_a_view_dbfit_published_but_not_once_the_user_changed_it(stored):
-    dbfit.publish(stored, "low_weight", "low_weight_scores", "birthwt")
+    dbfit.publish(stored, "low_weight", "birthwt", "low_weight_scores")
     dbfit.fit(stored, FORMULA + " + race", "birthwt", name="low_weight", progress=False)
-    made = dbfit.publish(stored, "low_weight", "low_weight_scores", "birthwt")
+    made = dbfit.publish(stored, "low_weight", "birthwt", "low_weight_scores")
     assert made["version"] == 2
     made = stored.execute("SELECT * FROM dbfit.publish('low_weight', 'birthwt', 'low_weight_scores', "
                           "live := true)").fetchall()
@@ -195,12 +195,12 @@ def test_publish_replaces_a_view_dbfit_published_but_not_once_the_user_changed_i
     assert stored.execute("SELECT count(probability) FROM low_weight_scores").fetchall() == [(189,)]
     stored.execute("CREATE OR REPLACE VIEW low_weight_scores AS SELECT 42 AS answer")
     with pytest.raises(dbfit.StoreError, match="low_weight_scores"):
-        dbfit.publish(stored, "low_weight", "low_weight_scores", "birthwt")
+        dbfit.publish(stored, "low_weight", "birthwt", "low_weight_scores")
 
 
 def test_publish_replaces_the_users_view_when_asked(stored):
     stored.execute("CREATE VIEW low_weight_scores AS SELECT 42 AS answer")
-    dbfit.publish(stored, "low_weight", "low_weight_scores", "birthwt", replace=True)
+    dbfit.publish(stored, "low_weight", "birthwt", "low_weight_scores", replace=True)
     assert stored.execute("SELECT count(probability) FROM low_weight_scores").fetchall() == [(189,)]
     stored.execute("CREATE OR REPLACE VIEW low_weight_scores AS SELECT 42 AS answer")
     stored.execute("SELECT * FROM dbfit.publish('low_weight', 'birthwt', 'low_weight_scores', replace := true)")
@@ -211,17 +211,17 @@ def test_publish_segments_refuses_the_users_view_unless_asked(births):
     dbfit.fit(births, "low ~ age + lwt", "birthwt", by="smoke", name="by_smoke", progress=False)
     births.execute("CREATE VIEW by_smoke_scores AS SELECT 42 AS answer")
     with pytest.raises(dbfit.StoreError, match="by_smoke_scores"):
-        dbfit.publish_segments(births, "by_smoke", "by_smoke_scores", "birthwt")
-    dbfit.publish_segments(births, "by_smoke", "by_smoke_scores", "birthwt", replace=True)
-    dbfit.publish_segments(births, "by_smoke", "by_smoke_scores", "birthwt")  # now dbfit's own: replaced
+        dbfit.publish_segments(births, "by_smoke", "birthwt", "by_smoke_scores")
+    dbfit.publish_segments(births, "by_smoke", "birthwt", "by_smoke_scores", replace=True)
+    dbfit.publish_segments(births, "by_smoke", "birthwt", "by_smoke_scores")  # now dbfit's own: replaced
     assert births.execute("SELECT count(probability) FROM by_smoke_scores").fetchall() == [(189,)]
 
 
 def test_a_store_without_the_published_views_table_still_loads_and_publishes(stored):
     stored.execute("DROP TABLE dbfit_store.published_views")  # as a store written before the table existed
     assert dbfit.load(stored, "low_weight").version == 1
-    dbfit.publish(stored, "low_weight", "low_weight_scores", "birthwt")
-    dbfit.publish(stored, "low_weight", "low_weight_scores", "birthwt")
+    dbfit.publish(stored, "low_weight", "birthwt", "low_weight_scores")
+    dbfit.publish(stored, "low_weight", "birthwt", "low_weight_scores")
 
 
 # --- the command line: a mistyped database path -------------------------------------------------------------

@@ -30,7 +30,7 @@ def test_examples_run_in_order_and_leave_what_they_promise(tmp_path, capsys):
     assert main(["sql", str(EXAMPLES[0]), "--database", path]) == 0
     assert "late_deliveries" in capsys.readouterr().out
     con = dbfit.connect(path)
-    fitted = dbfit.load(con, "late_deliveries", 1)
+    fitted = dbfit.load(con, "late_deliveries", version=1)
     np.testing.assert_allclose(fitted.estimates, python.estimates, rtol=1e-12)
     outcomes = {p.name: run_script(con, p.read_text()) for p in EXAMPLES[1:]}
 

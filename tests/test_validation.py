@@ -95,10 +95,10 @@ def test_sql_assessment_functions_equal_the_python_ones(con, birthwt):
 
 def test_sql_fit_takes_the_robust_firth_and_penalty_options(con, birthwt):
     python = dbfit.fit(con, FORMULA, "birthwt", robust="HC1", progress=False)
-    rows = con.execute(f"SELECT std_error FROM dbfit.fit('robust_low', 'birthwt', '{FORMULA}', robust := 'HC1')").fetchall()
+    rows = con.execute(f"SELECT std_error FROM dbfit.fit('robust_low', '{FORMULA}', 'birthwt', robust := 'HC1')").fetchall()
     assert [r[0] for r in rows] == pytest.approx(python.coefficients["std_error"].to_pylist(), rel=1e-12)
     firth = dbfit.fit(con, FORMULA, "birthwt", firth=True, progress=False)
-    rows = con.execute(f"SELECT estimate FROM dbfit.fit('firth_low', 'birthwt', '{FORMULA}', firth := true)").fetchall()
+    rows = con.execute(f"SELECT estimate FROM dbfit.fit('firth_low', '{FORMULA}', 'birthwt', firth := true)").fetchall()
     assert [r[0] for r in rows] == pytest.approx(firth.estimates.tolist(), rel=1e-10)
 
 
@@ -114,7 +114,7 @@ def test_a_holdout_model_has_one_source_and_each_command_says_which_rows_it_used
     assert "held out by the hash of id" in model.summary()
     scored = dbfit.score(con, model)
     assert scored.num_rows == len(birthwt) and b"all rows of birthwt" in scored.schema.metadata[b"dbfit_rows"]
-    published = dbfit.publish(con, model, "low_scores")
+    published = dbfit.publish(con, model, view="low_scores")
     assert published["rows"].startswith("all rows of birthwt, training and held-out")
     default = dbfit.assess(con, model).to_pydict()
     rows = default["metric"].index("rows")

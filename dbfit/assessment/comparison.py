@@ -9,8 +9,8 @@ import math
 from typing import Sequence
 
 import pyarrow as pa
-from scipy import stats as distributions
 
+from dbfit.assessment.metrics import chi_square_tail
 from dbfit.errors import FitError
 from dbfit.model.fitted import Model
 
@@ -42,7 +42,7 @@ def likelihood_ratio_test(smaller: Model, larger: Model) -> dict[str, float]:
         raise FitError("the larger model must estimate more coefficients than the smaller one")
     statistic = smaller.stats["deviance"] - larger.stats["deviance"]
     return {"deviance_difference": statistic, "df": float(df),
-            "p_value": float(distributions.chi2.sf(max(statistic, 0.0), df))}
+            "p_value": chi_square_tail(max(statistic, 0.0), df)}
 
 
 def comparison_table(models: Sequence[Model], names: Sequence[str] | None = None) -> pa.Table:

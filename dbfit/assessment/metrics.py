@@ -12,9 +12,9 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from statistics import NormalDist
 
 import pyarrow as pa
-from scipy import stats as distributions
 from sqlglot import exp, parse_one
 
 from dbfit.engines.duckdb_engine import DuckDBEngine
@@ -22,7 +22,17 @@ from dbfit.errors import FitError
 
 GROUPS = 10
 MAX_CURVE_POINTS = 1000
-Z_95 = float(distributions.norm.ppf(0.975))
+Z_95 = NormalDist().inv_cdf(0.975)
+
+
+def chi_square_tail(statistic: float, df: float) -> float:
+    """P(X > statistic) for X chi-square with ``df`` degrees of freedom.
+
+    scipy is loaded here, at the first tail probability, not when dbfit is imported.
+    """
+    from scipy.stats import chi2
+
+    return float(chi2.sf(statistic, df))
 
 
 def check_threshold(threshold: float) -> float:
@@ -118,7 +128,7 @@ def metrics(engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5
     values["ks_statistic"] = float(ks)
     statistic, df = hosmer_lemeshow(engine, scored)
     values["hosmer_lemeshow"], values["hosmer_lemeshow_df"] = statistic, float(df)
-    values["hosmer_lemeshow_p"] = float(distributions.chi2.sf(statistic, df)) if df > 0 else None
+    values["hosmer_lemeshow_p"] = chi_square_tail(statistic, df) if df > 0 else None
     if df <= 0:
         notes["hosmer_lemeshow_p"] = "undefined: fewer than three probability groups"
     return Metrics(values, notes)

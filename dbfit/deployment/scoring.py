@@ -18,9 +18,9 @@ from __future__ import annotations
 import math
 import re
 from collections.abc import Callable
+from statistics import NormalDist
 from typing import Any
 
-from scipy import stats as distributions
 from sqlglot import exp
 
 from dbfit.expressions import builders as sb
@@ -159,7 +159,7 @@ def scoring_query(
     if with_standard_error:
         if not 0.0 < level < 1.0:
             raise DbfitError(f"level must be between 0 and 1 (got {level})")
-        z = double(float(distributions.norm.ppf(0.5 + level / 2.0)))
+        z = double(NormalDist().inv_cdf(0.5 + level / 2.0))
         spread = sb.mul(z, sb.column("linear_predictor_se"))
         low = probability(sb.paren(sb.sub(lp.copy(), spread)), dialect.exp_limit)
         high = probability(sb.paren(sb.add(lp.copy(), spread.copy())), dialect.exp_limit)

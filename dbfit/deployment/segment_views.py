@@ -14,7 +14,7 @@ import duckdb
 from sqlglot import exp
 
 from dbfit.expressions import builders as sb
-from dbfit.deployment.views import check_score_columns, create_view
+from dbfit.deployment.views import NOT_GIVEN, check_score_columns, create_view, source_and_view
 from dbfit.errors import StoreError
 from dbfit.expressions.formula import parse_expression
 from dbfit.model.fitted import Model
@@ -63,14 +63,19 @@ def stored_segments(con: duckdb.DuckDBPyConnection, name: str) -> tuple[dict[Any
     return models, parse_expression(by_texts.pop(), "by expression")
 
 
-def publish_segments(con: duckdb.DuckDBPyConnection, fitted: str | SegmentedFit, view: str, source: str | None = None,
-                     *, unseen: str = "null", replace: bool = False) -> dict[str, Any]:
-    """Create ``view`` (or replace the one dbfit published under that name) scoring each row of ``source`` with
-    its segment's model, estimates pinned. Another view of that name is refused unless ``replace=True``.
+def publish_segments(con: duckdb.DuckDBPyConnection, fitted: str | SegmentedFit, *given: str | None,
+                     source: str | None = NOT_GIVEN, view: str = NOT_GIVEN, unseen: str = "null",
+                     replace: bool = False) -> dict[str, Any]:
+    """``publish_segments(con, fitted, source, view)``: create ``view`` (or replace the one dbfit published
+    under that name) scoring each row of ``source`` with its segment's model, estimates pinned. Another view
+    of that name is refused unless ``replace=True``.
 
-    ``fitted`` is a :class:`SegmentedFit` (``source`` defaults to the source it was fitted on) or the name the
-    segment models were stored under (then ``source`` is required).
+    ``fitted`` is a :class:`SegmentedFit` (``source`` None: the source it was fitted on) or the name the
+    segment models were stored under (then ``source`` is required). The earlier order
+    ``publish_segments(con, fitted, view, source=None)`` works for one more release with a DeprecationWarning,
+    told apart as in :func:`dbfit.deployment.views.source_and_view`.
     """
+    source, view = source_and_view(con, "publish_segments", given, source, view)
     target = relation_name(view, "view name")
     if isinstance(fitted, SegmentedFit):
         models, by, source = fitted.models, fitted.by_expression, source or fitted.source

@@ -7,6 +7,7 @@ none promoted), so a promoted refit of the same formula flows through and a refu
 
 from __future__ import annotations
 
+import warnings
 from typing import Any
 
 import duckdb
@@ -19,7 +20,7 @@ from dbfit.model.fitted import Model
 from dbfit.expressions.names import model_name, model_version, relation_name
 from dbfit.deployment.scoring import INTERVAL_COLUMNS, SCORE_COLUMNS, Coefficient, scoring_query
 from dbfit.expressions.source import source_relation
-from dbfit.store.model_store import SCHEMA, load_model, publish_view
+from dbfit.store.model_store import SCHEMA, is_published_view, load_model, publish_view
 
 LIVE_ALIAS = "dbfit_coefficients"
 
@@ -76,30 +77,87 @@ def check_score_columns(con: duckdb.DuckDBPyConnection, relation: exp.Expression
         raise DbfitError(f"the source already has column(s) {', '.join(clashes)}, which scoring adds; rename them in a SELECT")
 
 
+class _NotGiven:
+    def __repr__(self) -> str:
+        return "<not given>"
+
+
+NOT_GIVEN: Any = _NotGiven()
+
+
 def publish(
     con: duckdb.DuckDBPyConnection,
     model: str | Model,
-    view: str,
-    source: str | None = None,
-    *,
+    *given: str | None,
+    source: str | None = NOT_GIVEN,
+    view: str = NOT_GIVEN,
     version: int | None = None,
     live: bool = False,
     unseen: str = "null",
     replace: bool = False,
 ) -> dict[str, Any]:
-    """Create ``view``, or replace the one dbfit published under that name: every column of ``source`` plus
-    ``linear_predictor`` and ``probability``.
+    """``publish(con, model, source, view)``: create ``view``, or replace the one dbfit published under that
+    name: every column of ``source`` (None: the source the model was fitted on) plus ``linear_predictor``
+    and ``probability``.
 
     ``model`` is a stored model's name (``version`` picks one; default the current one) or a Model object.
-    ``live=True`` reads the current version's stored estimates at query time instead of writing them in as constants.
-    A view of that name that dbfit did not publish (or that was changed since) is refused unless ``replace=True``.
+    ``live=True`` reads the current version's stored estimates at query time instead of writing them in as
+    constants. A view of that name that dbfit did not publish (or that was changed since) is refused unless
+    ``replace=True``.
+
+    The order of earlier releases, ``publish(con, model, view, source=None)``, works for one more release
+    with a DeprecationWarning; see :func:`source_and_view` for how the two orders are told apart.
     """
+    source, view = source_and_view(con, "publish", given, source, view)
     target = relation_name(view, "view name")
     resolved = resolve_model(con, model, version)
     query = build_scoring(con, resolved, source, live=live, unseen=unseen)
-    record = {"model": resolved.name, "version": None if live else resolved.version, "mode": "live" if live else "pinned"}
+    record = {"model": resolved.name, "version": None if live else resolved.version,
+              "mode": "live" if live else "pinned"}
     statement = create_view(con, target, query, record, replace=replace)
-    return {"view": target.sql("duckdb"), **record, "rows": resolved.rows_note("all", source), "sql": statement.sql("duckdb")}
+    return {"view": target.sql("duckdb"), **record, "rows": resolved.rows_note("all", source),
+            "sql": statement.sql("duckdb")}
+
+
+def source_and_view(con: duckdb.DuckDBPyConnection, call: str, given: tuple[Any, ...], source: Any,
+                    view: Any) -> tuple[str | None, str]:
+    """The source and view of a publishing call, in today's order (source, view) or in the earlier one.
+
+    ``source=`` and ``view=`` by keyword always mean what they say. One positional without ``view=`` is the
+    earlier order's view. With two positionals, the second is the view (today's order) when it names a view
+    dbfit published or no relation yet; failing that, the first is the view (earlier order) when it does;
+    failing both, today's order holds and the usual checks explain what is wrong. The earlier order warns.
+    """
+    keywords = {name for name, value in (("source", source), ("view", view)) if value is not NOT_GIVEN}
+    twice = (len(given) == 2 and keywords) or (len(given) == 1 and keywords == {"source", "view"})
+    if len(given) > 2 or twice:
+        raise DbfitError(f"{call} takes the source and the view once each: {call}(con, model, source, view)")
+    earlier = False
+    if len(given) == 2:
+        earlier = not _may_become_view(con, given[1]) and _may_become_view(con, given[0])
+        source, view = (given[1], given[0]) if earlier else given
+    elif len(given) == 1:
+        earlier = "view" not in keywords
+        source, view = (source, given[0]) if earlier else (given[0], view)
+    if view is NOT_GIVEN:
+        raise DbfitError(f"{call} needs the name of the view to create: {call}(con, model, source, view)")
+    if earlier:
+        warnings.warn(f"{call}(con, model, view, source) is deprecated and goes in the next release; "
+                      f"write {call}(con, model, source, view)", DeprecationWarning, stacklevel=3)
+    return (None if source is NOT_GIVEN else source), view
+
+
+def _may_become_view(con: duckdb.DuckDBPyConnection, text: Any) -> bool:
+    """Whether ``text`` is a plain relation name that is free or a view dbfit published."""
+    try:
+        target = relation_name(text, "view name")
+    except StoreError:
+        return False
+    try:
+        DuckDBEngine(con).describe(exp.select("*").from_(target))
+    except DbfitError:
+        return True
+    return is_published_view(con, target)
 
 
 def create_view(con: duckdb.DuckDBPyConnection, target: exp.Table, query: exp.Select, record: dict[str, Any], *,

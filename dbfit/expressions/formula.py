@@ -115,6 +115,23 @@ def parse_formula(text: str) -> Formula:
     return Formula(text=text, target=target, target_text=target_text, terms=tuple(terms), intercept=intercept)
 
 
+def holds_top_level_tilde(text: object) -> bool:
+    """Whether ``text`` has a ``~`` outside parentheses and CASE, as a formula has (text that cannot be read
+    as tokens has none)."""
+    if not isinstance(text, str):
+        return False
+    try:
+        tokens = sqlglot.tokenize(text, read=DIALECT)
+    except SqlglotError:
+        return False
+    depth = 0
+    for token in tokens:
+        depth += _depth_change(token.token_type)
+        if depth == 0 and token.token_type == TokenType.TILDE:
+            return True
+    return False
+
+
 def _depth_change(token_type: TokenType) -> int:
     if token_type in _OPENERS:
         return 1

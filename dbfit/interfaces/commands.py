@@ -130,19 +130,20 @@ def _run(args: argparse.Namespace) -> tuple[dict[str, Any], int]:
         if args.command == "gates":
             return _gates(con, args), OK
         if args.command == "promote":
-            return dbfit.promote(con, args.name, args.version, force=args.force), OK
+            return dbfit.promote(con, args.name, version=args.version, force=args.force), OK
         if args.command == "decisions":
             return {"model": args.name, "decisions": dbfit.decisions(con, args.name)}, OK
         if args.command == "publish":
-            made = dbfit.publish(con, args.name, args.view, args.source or _fitted_source(con, args.name, args.version),
-                                 version=args.version, live=args.live, replace=args.replace)
+            source = args.source or _fitted_source(con, args.name, args.version)
+            made = dbfit.publish(con, args.name, source, args.view, version=args.version, live=args.live,
+                                 replace=args.replace)
             return made, OK
         if args.command == "assess":
             table = dbfit.assess(con, args.name, args.source, rows=args.rows, threshold=args.threshold,
                                  version=args.version)
             return {"model": args.name, "rows": _rows_note(table), "metrics": table.to_pylist()}, OK
         if args.command == "drift":
-            table = dbfit.population_stability(con, args.name, args.source, version=args.version)
+            table = dbfit.drift(con, args.name, args.source, version=args.version)
             return {"model": args.name, "source": args.source, "variables": table.to_pylist(),
                     "bands": "common practice: PSI below 0.1 stable, 0.1-0.25 some shift, above 0.25 large shift"}, OK
         if args.command == "report":
@@ -211,7 +212,7 @@ def _fitted_source(con: duckdb.DuckDBPyConnection, name: str, version: int | Non
     import dbfit
     from dbfit.lifecycle.fingerprint import origin_source
 
-    model = dbfit.load(con, name, version)
+    model = dbfit.load(con, name, version=version)
     return origin_source(model.options, model.source)
 
 
@@ -233,7 +234,7 @@ def _report(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[st
     import dbfit
     from dbfit.assessment.report import write_report
 
-    model = dbfit.load(con, args.name, args.version)
+    model = dbfit.load(con, args.name, version=args.version)
     # Assessed on --source, else on the held-out rows of a holdout fit, else on the rows it was fitted on.
     tables = None
     if model.design.trials is None:

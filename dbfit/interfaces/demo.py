@@ -83,7 +83,7 @@ def run_demo(database: str = "dbfit_demo.duckdb", rows: int = 1_000_000, quiet: 
         model = dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, progress=False if quiet else True,
                           name="demo_late")
         fitted = time.perf_counter() - began - built
-        dbfit.publish(con, "demo_late", "demo_late_risk", "deliveries")
+        dbfit.publish(con, "demo_late", "deliveries", "demo_late_risk")
     finally:
         con.close()
     print(f"Invented scenario: {rows:,} courier deliveries built in DuckDB in {built:.1f}s; fitted in {fitted:.1f}s.")

@@ -8,23 +8,19 @@ attached here, at the top layer, so that the value classes import nothing above 
 from __future__ import annotations
 
 import functools
-import warnings
 from collections.abc import Callable
 from typing import Any
 
 from dbfit.interfaces import python_api
+from dbfit.interfaces.old_spellings import warn_renamed
 from dbfit.model.fitted import Model
 from dbfit.model.segmented import SegmentedFit
-
-
-def _warn(old: str, new: str) -> None:
-    warnings.warn(f"{old} is deprecated and goes in the next release; use {new}", DeprecationWarning, stacklevel=3)
 
 
 def _method(old: str, new: str, call: Callable[..., Any]) -> Callable[..., Any]:
     @functools.wraps(call)
     def method(self: Any, *args: Any, **kwargs: Any) -> Any:
-        _warn(old, new)
+        warn_renamed(old, new)
         return call(self, *args, **kwargs)
 
     method.__doc__ = f"Deprecated: use {new}."

@@ -18,7 +18,9 @@ from dbfit.fitting import driver as fitting
 from dbfit.model import reading as serialize
 
 from dbfit.store import model_store as store
-from dbfit.lifecycle import saving, training
+from dbfit.interfaces.old_spellings import version_by_keyword, warn_renamed
+from dbfit.lifecycle import refit as refitting, saving, training
+from dbfit.lifecycle.drift import psi_table
 from dbfit.deployment import scoring
 from dbfit.deployment.segment_views import segment_scoring_query
 from dbfit.assessment import report
@@ -33,7 +35,7 @@ from dbfit.fitting.options import FitOptions
 
 
 def fit(con: duckdb.DuckDBPyConnection, formula: str, source: str, *, name: str | None = None,
-        split: Holdout | None = None, threshold: float = 0.5, **options: Any) -> Model:
+        split: Holdout | None = None, threshold: float = 0.5, **options: Any) -> Model | SegmentedFit:
     """Fit as :func:`dbfit.fitting.driver.fit`; with ``name=...`` also store the model as that name's next version.
 
     With ``split=dbfit.Holdout(key, share)`` the model is fitted on the training part only and its held-out
@@ -111,7 +113,8 @@ def cross_validate(con: duckdb.DuckDBPyConnection, formula: str, source: str, sp
 fit.__doc__ = (fitting.fit.__doc__ or "") + "\n    name : store the fitted model as the next version of this name.\n"
 
 
-def load(con: duckdb.DuckDBPyConnection, name: str, version: int | None = None) -> Model:
+@version_by_keyword(2)
+def load(con: duckdb.DuckDBPyConnection, name: str, *, version: int | None = None) -> Model:
     """The stored model ``name`` at ``version`` (default: the current, promoted one)."""
     return store.load_model(con, name, version)
 
@@ -146,17 +149,32 @@ def models(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:
     return store.version_rows(con)
 
 
-def drop_model(con: duckdb.DuckDBPyConnection, name: str, version: int | None = None) -> list[tuple[str, int]]:
+@version_by_keyword(2)
+def drop_model(con: duckdb.DuckDBPyConnection, name: str, *,
+               version: int | None = None) -> list[tuple[str, int]]:
     """Delete one version, or every version, of a stored model; returns what was deleted."""
     return store.drop_model(con, name, version)
 
 
+def drift(con: duckdb.DuckDBPyConnection, model: str | Model, source: str, *,
+          version: int | None = None) -> pa.Table:
+    """Population stability index per variable between the stored training snapshot of ``model`` and
+    ``source`` (see :mod:`dbfit.lifecycle.drift`); the SQL ``dbfit.drift`` and ``dbfit drift`` alike."""
+    return psi_table(con, deploy.resolve_model(con, model, version), source)
+
+
 def population_stability(con: duckdb.DuckDBPyConnection, model: str | Model, source: str, *,
                          version: int | None = None) -> pa.Table:
-    """PSI per variable between the stored training snapshot of ``model`` and ``source`` (see :mod:`dbfit.lifecycle.drift`)."""
-    from dbfit.lifecycle.drift import psi_table
+    """Deprecated name of :func:`drift`."""
+    warn_renamed("dbfit.population_stability(con, model, source)", "dbfit.drift(con, model, source)")
+    return drift(con, model, source, version=version)
 
-    return psi_table(con, deploy.resolve_model(con, model, version), source)
+
+@version_by_keyword(2)
+def promote(con: duckdb.DuckDBPyConnection, name: str, *, version: int,
+            force: bool = False) -> dict[str, Any]:
+    """Make stored ``version`` of ``name`` current after its gates (:func:`dbfit.lifecycle.refit.promote`)."""
+    return refitting.promote(con, name, version=version, force=force)
 
 
 def decisions(con: duckdb.DuckDBPyConnection, name: str | None = None) -> list[dict[str, Any]]:

@@ -30,9 +30,12 @@ from dbfit.expressions.names import model_name
 from dbfit.model.segmented import SegmentedFit
 from dbfit.lifecycle import saving
 from dbfit.deployment.segment_views import publish_segments
+from dbfit.expressions.formula import holds_top_level_tilde
 from dbfit.expressions.source import source_relation
 
 CATALOG = "dbfit"
+EARLIER_FIT_ORDER = ("deprecated: dbfit.fit(model, source, formula) goes in the next release; "
+                     "write dbfit.fit(model, formula, source)")
 T = duckdb.sqltype
 COEFFICIENT_FIELDS = {"model": T("VARCHAR"), "version": T("INTEGER"), "term": T("VARCHAR")} | {
     c: T("DOUBLE") for c in store.COEFFICIENT_COLUMNS[1:]
@@ -62,11 +65,12 @@ _SCORE_OPTIONS = ", standard_error := false, level := 0.95, unseen := 'null'"
 _SCORE = "SELECT * FROM query(dbfit_sql_score(model, source, {version}, standard_error, level::VARCHAR, unseen))"
 MACROS = {
     "fit": [(
-        "model, source, formula, weights := NULL, \"offset\" := NULL, trials := NULL, reference := NULL, "
+        "model, formula, source, weights := NULL, \"offset\" := NULL, trials := NULL, reference := NULL, "
         "positive := NULL, max_iter := 50, tol := 1e-10, robust := NULL, \"cluster\" := NULL, firth := false, "
         "population_rate := NULL, shrinkage := NULL, l1_share := 0.0, \"by\" := NULL",
-        _ROWS.format(call="dbfit_sql_fit(model, source, formula, weights, \"offset\", trials, reference, positive, "
-                          "max_iter::VARCHAR, tol::VARCHAR, (SELECT dbfit_count.n FROM query(dbfit_sql_count(source)) "
+        _ROWS.format(call="dbfit_sql_fit(model, formula, source, weights, \"offset\", trials, reference, "
+                          "positive, max_iter::VARCHAR, tol::VARCHAR, "
+                          "(SELECT dbfit_count.n FROM query(dbfit_sql_count(formula, source)) "
                           "AS dbfit_count), robust, \"cluster\", firth::VARCHAR, "
                           "population_rate::VARCHAR, shrinkage::VARCHAR, l1_share::VARCHAR, \"by\")"),
     )],
@@ -122,9 +126,10 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
     def second() -> duckdb.DuckDBPyConnection:
         return con.cursor()
 
-    def fit_rows(model, source, formula, weights, offset, trials, reference, positive, max_iter, tol, visible_rows,
-                 robust, cluster, firth, population_rate, shrinkage, l1_share, by):
+    def fit_rows(model, formula, source, weights, offset, trials, reference, positive, max_iter, tol,
+                 visible_rows, robust, cluster, firth, population_rate, shrinkage, l1_share, by):
         model_name(model)
+        formula, source, earlier = formula_and_source(formula, source)
         options = FitOptions.from_text(weights=weights, offset=offset, trials=trials, reference=reference,
                                        positive=positive, max_iter=max_iter, tol=tol, robust=robust, cluster=cluster,
                                        firth=firth, population_rate=population_rate, shrinkage=shrinkage,
@@ -132,12 +137,18 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
         with second() as reader:
             fitted = _fit_on_second_connection(reader, source, formula, visible_rows, options)
             if isinstance(fitted, SegmentedFit):
-                return _segment_rows(fitted, saving.save_segments(reader, fitted, model))
-            version = saving.save_model(reader, fitted, model)
-        return [{"model": model, "version": version, "segment": None, **row, "note": _warnings_note(fitted)}
-                for row in fitted.coefficients.to_pylist()]
+                rows = _segment_rows(fitted, saving.save_segments(reader, fitted, model))
+            else:
+                version = saving.save_model(reader, fitted, model)
+                rows = [{"model": model, "version": version, "segment": None, **row,
+                         "note": _warnings_note(fitted)} for row in fitted.coefficients.to_pylist()]
+        if earlier:
+            for row in rows:
+                row["note"] = "; ".join(filter(None, [EARLIER_FIT_ORDER, row["note"]]))
+        return rows
 
-    def count_sql(source):
+    def count_sql(formula, source):
+        source = formula_and_source(formula, source)[1]
         with second() as reader:
             check_readable(reader, source)
         return exp.select(exp.alias_(exp.Count(this=exp.Star()), "n")).from_(source_relation(source)).sql("duckdb")
@@ -166,13 +177,14 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
 
     def publish_rows(model, source, view, version, live, unseen, replace):
         with second() as writer:
-            made = publish(writer, model, view, source, version=version, live=bool(live), unseen=unseen or "null",
-                           replace=bool(replace))
+            made = publish(writer, model, source=source, view=view, version=version, live=bool(live),
+                           unseen=unseen or "null", replace=bool(replace))
         return [{k: made[k] for k in PUBLISHED_FIELDS}]
 
     def publish_segment_rows(model, source, view, unseen, replace):
         with second() as writer:
-            made = publish_segments(writer, model, view, source, unseen=unseen or "null", replace=bool(replace))
+            made = publish_segments(writer, model, source=source, view=view, unseen=unseen or "null",
+                                    replace=bool(replace))
         return [{k: made[k] for k in SEGMENT_VIEW_FIELDS}]
 
     def drop_rows(model, version):
@@ -203,7 +215,7 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
     functions: list[tuple[str, Callable[..., Any], list[Any], Any]] = [
         ("dbfit_sql_fit", fit_rows, [V, V, V, V, V, V, reference_type, V, V, V, T("BIGINT"), V, V, V, V, V, V, V],
          _rows_of(FIT_FIELDS)),
-        ("dbfit_sql_count", count_sql, [V], V),
+        ("dbfit_sql_count", count_sql, [V, V], V),
         ("dbfit_sql_models", version_rows, [], _rows_of(VERSION_FIELDS)),
         ("dbfit_sql_coefficients", coefficient_rows, [V, I], _rows_of(COEFFICIENT_FIELDS)),
         ("dbfit_sql_score", score_sql, [V, V, I, B, V, V], V),
@@ -225,6 +237,18 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
             if "already created" not in str(err):
                 raise
             # installed on this connection before: the existing function serves the same connection
+
+
+def formula_and_source(second: str, third: str) -> tuple[str, str, bool]:
+    """The formula and source of ``dbfit.fit(model, formula, source)``, and whether they came in the order of
+    earlier releases, ``dbfit.fit(model, source, formula)``: the argument holding a top-level ``~`` is the
+    formula (today's order wins when both hold one and the second is not a query)."""
+    earlier = holds_top_level_tilde(third) and (not holds_top_level_tilde(second) or _is_query(second))
+    return (third, second, True) if earlier else (second, third, False)
+
+
+def _is_query(text: str) -> bool:
+    return text.lstrip().lstrip("(").lstrip()[:6].upper() in {"SELECT", "WITH ", "FROM ", "VALUES"}
 
 
 def _segment_rows(fitted: SegmentedFit, saved: dict[Any, tuple[str, int]]) -> list[dict[str, Any]]:

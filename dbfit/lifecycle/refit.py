@@ -69,7 +69,8 @@ def refit(con: duckdb.DuckDBPyConnection, name: str, *, source: str | None = Non
                      "figures": figures}
 
 
-def promote(con: duckdb.DuckDBPyConnection, name: str, version: int, *, force: bool = False) -> dict[str, Any]:
+def promote(con: duckdb.DuckDBPyConnection, name: str, *, version: int,
+            force: bool = False) -> dict[str, Any]:
     """Make stored ``version`` of ``name`` current after its gates (measured as in :func:`refit`; ``force``
     skips them, and the audit row says so); raises GateRefusedError on refusal."""
     name = model_name(name)

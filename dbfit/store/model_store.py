@@ -319,6 +319,18 @@ def publish_view(con: duckdb.DuckDBPyConnection, target: exp.Table, query: exp.S
     return statement
 
 
+def is_published_view(con: duckdb.DuckDBPyConnection, target: exp.Table) -> bool:
+    """Whether ``target`` is a view that dbfit published (recorded in ``published_views`` and still there)."""
+    if not has_table(con, "published_views"):
+        return False
+    here, schema = _fetch(con, "SELECT current_database(), current_schema()")[0]
+    database = target.catalog or here
+    key = [database if database.lower() != here.lower() else "", target.db or schema, target.name]
+    recorded = _fetch(con, f"SELECT count(*) FROM {SCHEMA}.published_views WHERE database_name = ? "
+                           "AND lower(schema_name) = lower(?) AND lower(view_name) = lower(?)", key)
+    return recorded[0][0] > 0 and _view_text(con, database, key[1], key[2]) is not None
+
+
 def _view_text(connection: duckdb.DuckDBPyConnection, database: str, schema: str, view: str) -> str | None:
     """DuckDB's text of a view (None when there is no such view); names compare as DuckDB compares them."""
     rows = _fetch(connection, "SELECT sql FROM duckdb_views() WHERE lower(database_name) = lower(?) AND "
