@@ -26,8 +26,9 @@ from dbfit.engines import engine_for
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError
 from dbfit.expressions.formula import parse_formula
-from dbfit.solver.newton import (ChordDeviance, Deviance, IterationReport, NewtonResult, NewtonRules, NewtonRun,
-                                 solve)
+from dbfit.solver.newton import (
+    ChordDeviance, Deviance, IterationReport, NewtonResult, NewtonRules, NewtonRun, solve,
+)
 from dbfit.model.fitted import Model
 from dbfit.fitting.options import FitVariants, FitOptions
 from dbfit.engines.progress import progress_settings
@@ -277,7 +278,8 @@ def _sample_start(
             reporter(item)
 
         sample_pass = StatisticsPass(engine, design, rows)
-        rules = NewtonRules(max_passes=max_iter, tol=max(tol, SAMPLE_TOL), protected=1 if design.intercept else 0,
+        protected = 1 if design.intercept else 0
+        rules = NewtonRules(max_passes=max_iter, tol=max(tol, SAMPLE_TOL), protected=protected,
                             report=sample_report if reporter else None)
         sample = solve(NewtonRun(Deviance(0.0), default_start, rules),
                        lambda beta, active: sample_pass([fitted[k] for k in active], beta))
@@ -291,13 +293,18 @@ def _sample_start(
     if sample.aliased:
         return start, np.inf
     full_pass = StatisticsPass(engine, design)
-    return refine_with_fixed_information(full_pass, fitted, start, sample.last.gram.scaled(design.rows_used / sampled_rows),
-                                         design.saturated_loglik, reporter)
+    scaled = sample.last.gram.scaled(design.rows_used / sampled_rows)
+    return refine_with_fixed_information(full_pass, fitted, start, scaled, design.saturated_loglik, reporter)
 
 
-def refine_with_fixed_information(full_pass: StatisticsPass, fitted: list[int], start: np.ndarray,
-                                  information: Information, saturated_loglik: float,
-                                  reporter: Callable[[IterationReport], None] | None) -> tuple[np.ndarray, float]:
+def refine_with_fixed_information(
+    full_pass: StatisticsPass,
+    fitted: list[int],
+    start: np.ndarray,
+    information: Information,
+    saturated_loglik: float,
+    reporter: Callable[[IterationReport], None] | None,
+) -> tuple[np.ndarray, float]:
     """Newton steps with a fixed approximation of the information (a chord method, :class:`ChordDeviance`) on
     score-only scans, several times cheaper than one for X'WX; stops at the first rise, after REFINE_PASSES
     scans, or at a step below REFINE_STEP. Returns the refined estimates and the last deviance measured."""
@@ -337,7 +344,8 @@ def _null_loglik(engine: DuckDBEngine, design: Design, max_iter: int, tol: float
     rate = design.success_sum / design.trial_sum
     intercept_only = StatisticsPass(engine, design)
     rules = NewtonRules(max_passes=max_iter, tol=tol, protected=1, check_aliasing=False)
-    result = solve(NewtonRun(Deviance(design.saturated_loglik), np.array([math.log(rate / (1.0 - rate))]), rules),
+    start = np.array([math.log(rate / (1.0 - rate))])
+    result = solve(NewtonRun(Deviance(design.saturated_loglik), start, rules),
                    lambda beta, active: intercept_only.run((), True, beta))
     return result.last.loglik + design.loglik_constant
 

@@ -244,7 +244,8 @@ def annotate(model: Model, last: PassResult) -> Model:
     active = [k for k in range(len(model.labels)) if np.isfinite(model.estimates[k])]
     transform = inference.original_scale_map(model.design, active)
     stats = dict(model.stats)
-    stats["penalized_log_likelihood"] = penalized_loglik(stats["log_likelihood"], last.gram.as_array(), transform)
+    information = last.gram.as_array()
+    stats["penalized_log_likelihood"] = penalized_loglik(stats["log_likelihood"], information, transform)
     stats["notes"] = [*stats.get("notes", []), "method    Firth bias-reduced (log-likelihood + 1/2 log|information|)"
                       f"; penalised log-lik {stats['penalized_log_likelihood']:,.4f}"]
     return dataclasses.replace(model, stats=stats)

@@ -185,7 +185,8 @@ class PathRunner:
             if self.solver is None:
                 last = self.solutions[-1]
                 penalty = Penalty(self.grid[len(self.solutions)], self.l1_share, self.mask)
-                self.solver = Stepper(penalised_run(last.scanned, penalty, self.trials, self.max_iter, last.last))
+                run = penalised_run(last.scanned, penalty, self.trials, self.max_iter, last.last)
+                self.solver = Stepper(run)
             point = self.solver.wanted()
             if point is not None:
                 return point
@@ -226,7 +227,8 @@ def _scan_reporter(report: Callable[[IterationReport], None] | None, saturated_l
     return on_scan
 
 
-def _grid(request: PenaltyRequest, null: NewtonResult, mask: np.ndarray, trials: float, size: int) -> list[float]:
+def _grid(request: PenaltyRequest, null: NewtonResult, mask: np.ndarray, trials: float,
+          size: int) -> list[float]:
     if request.shrinkage != "cv":
         return list(request.shrinkage)  # type: ignore[arg-type]
     top = float(np.max(np.abs(null.last.score[mask]))) / (trials * max(request.l1_share, RIDGE_TOP_SHARE))

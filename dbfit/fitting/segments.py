@@ -58,8 +58,8 @@ def fit_segments(
     protected = 1 if design.intercept else 0
     steps = {
         value: NewtonRun(Deviance(part.saturated_loglik), _segment_start(part, fitted),
-                         NewtonRules(max_passes=max_iter, tol=tol, protected=protected, weight_total=part.trial_sum),
-                         ).steps()
+                         NewtonRules(max_passes=max_iter, tol=tol, protected=protected,
+                                     weight_total=part.trial_sum)).steps()
         for value, part in segments.items()
     }
     saturated = {value: part.saturated_loglik for value, part in segments.items()}
@@ -228,7 +228,8 @@ def _null_logliks(engine, design, segments, results, max_iter, tol) -> dict[Any,
         part = segments[value]
         rate = part.success_sum / part.trial_sum
         rules = NewtonRules(max_passes=max_iter, tol=tol, protected=1, check_aliasing=False)
-        steps[value] = NewtonRun(Deviance(part.saturated_loglik), np.array([math.log(rate / (1 - rate))]), rules).steps()
+        start = np.array([math.log(rate / (1 - rate))])
+        steps[value] = NewtonRun(Deviance(part.saturated_loglik), start, rules).steps()
     failures: dict[Any, str] = {}
     null_results, _ = _run_together(engine, design, [0], steps, failures, None, columns=[], intercept=True)
     return {value: (null_results[value].last.loglik + segments[value].loglik_constant if value in null_results

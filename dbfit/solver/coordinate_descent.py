@@ -48,7 +48,8 @@ class PenalisedObjective:
 
     def inner_solve(self, beta: np.ndarray, scan: PassResult) -> np.ndarray:
         gram = scan.gram.as_array()
-        proposal = coordinate_descent(gram / self.trials, (scan.score + gram @ beta) / self.trials, beta, self.penalty)
+        linear = (scan.score + gram @ beta) / self.trials
+        proposal = coordinate_descent(gram / self.trials, linear, beta, self.penalty)
         return proposal - beta
 
 

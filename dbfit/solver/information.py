@@ -106,7 +106,7 @@ class BlockInformation:
         return np.concatenate([np.diag(self.dense), self.diagonal])
 
     def keep(self, keep: list[int]) -> "BlockInformation":
-        """Restricted to the parameters ``keep``; only dense parameters are ever dropped (levels carry weight)."""
+        """Restricted to the parameters ``keep``; only dense ones are dropped (the levels carry weight)."""
         dense = [k for k in keep if k < self.dense.shape[0]]
         return BlockInformation(self.dense[np.ix_(dense, dense)], self.cross[:, dense], self.diagonal)
 
@@ -115,7 +115,8 @@ class BlockInformation:
         return self.schur()
 
     def eigenvalues(self) -> np.ndarray:
-        return np.concatenate([np.linalg.eigvalsh(self.schur()), self.diagonal, np.linalg.eigvalsh(self.dense)])
+        schur, dense = np.linalg.eigvalsh(self.schur()), np.linalg.eigvalsh(self.dense)
+        return np.concatenate([schur, self.diagonal, dense])
 
     def scaled(self, factor: float) -> "BlockInformation":
         return BlockInformation(self.dense * factor, self.cross * factor, self.diagonal * factor)

@@ -104,10 +104,9 @@ class ChordDeviance(Deviance):
     Equations in Several Variables, section 7.1).
     """
 
-    information: Information | None = None
+    information: Information
 
     def inner_solve(self, beta: np.ndarray, scan: PassResult) -> np.ndarray:
-        assert self.information is not None
         return self.information.solve(scan.score)
 
 

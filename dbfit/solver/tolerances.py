@@ -5,7 +5,7 @@ All step sizes are the largest absolute change of a coefficient on the internal 
 
 from __future__ import annotations
 
-MAX_HALVINGS = 30  # most step-halvings in a row before a rising point is accepted (Nocedal and Wright 2006, 3.1)
+MAX_HALVINGS = 30  # most step-halvings in a row before a rising point is accepted (Nocedal and Wright 2006)
 RISE_TOLERANCE = 1e-12  # relative rise of the objective taken as rounding in the sums, not as a rise
 STEP_TOLERANCE = 1e-4  # largest step accepted at convergence together with a small relative deviance change
 STEP_FLOOR = 1e-7  # a step this small is convergence whatever the deviance change (STEP_TOLERANCE * 1e-3)
