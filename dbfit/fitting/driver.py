@@ -48,6 +48,7 @@ REFINE_PASSES = 6  # most score-only scans of the refinement from the sample's e
 REFINE_STEP = 1e-5  # a refinement step this small ends the score-only scans
 
 Progress = bool | Callable[[IterationReport], None] | None
+Reporter = Callable[[IterationReport], None]
 
 
 def fit(
@@ -297,14 +298,9 @@ def _sample_start(
     return refine_with_fixed_information(full_pass, fitted, start, scaled, design.saturated_loglik, reporter)
 
 
-def refine_with_fixed_information(
-    full_pass: StatisticsPass,
-    fitted: list[int],
-    start: np.ndarray,
-    information: Information,
-    saturated_loglik: float,
-    reporter: Callable[[IterationReport], None] | None,
-) -> tuple[np.ndarray, float]:
+def refine_with_fixed_information(full_pass: StatisticsPass, fitted: list[int], start: np.ndarray,
+                                  information: Information, saturated_loglik: float,
+                                  reporter: Reporter | None) -> tuple[np.ndarray, float]:
     """Newton steps with a fixed approximation of the information (a chord method, :class:`ChordDeviance`) on
     score-only scans, several times cheaper than one for X'WX; stops at the first rise, after REFINE_PASSES
     scans, or at a step below REFINE_STEP. Returns the refined estimates and the last deviance measured."""
