@@ -48,9 +48,6 @@ class Factor:
     reference: Any = None
     cast_from: str | None = None  # text cast from this numeric type: scoring compares levels as numbers
 
-    def level_label(self, value: Any) -> str:
-        return level_label(value)
-
     def level_literal(self, value: Any) -> exp.Expression:
         if isinstance(value, bool):
             return exp.Boolean(this=value)
@@ -283,7 +280,6 @@ def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
             f"the target '{design.formula.target_text}' has type {target_type}; give a 0/1 or boolean expression, "
             f"or name the positive class with positive=... (e.g. positive='late')"
         )
-    design.target_type = target_type  # type: ignore[attr-defined]
 
     for f in design.factors:
         f.sql_type = types[f.alias]

@@ -89,15 +89,15 @@ def _assemble_blocks(groups: dict[Any, PassResult], level_values: list[Any], int
     """Sum the per-level results into A and the dense score; the level rows give B, D and their score."""
     # Each group's Gram is over [1] + columns; the dense parameters are [1] + columns with an intercept, else columns.
     dense_slice = slice(0, columns + 1) if intercept else slice(1, columns + 1)
-    total_gram = sum(g.gram for g in groups.values())
+    total_gram = sum(g.gram.as_array() for g in groups.values())
     total_score = sum(g.score for g in groups.values())
     level_groups = [groups[v] for v in level_values]
-    cross = np.array([g.gram[0, dense_slice] for g in level_groups]).reshape(len(level_groups), -1)
-    diagonal = np.array([g.gram[0, 0] for g in level_groups])
+    cross = np.array([g.gram.as_array()[0, dense_slice] for g in level_groups]).reshape(len(level_groups), -1)
+    diagonal = np.array([g.gram.as_array()[0, 0] for g in level_groups])
     score = np.concatenate([total_score[dense_slice], [g.score[0] for g in level_groups]])
     information = BlockInformation(total_gram[dense_slice, dense_slice], cross, diagonal)
     return PassResult(
-        gram=information,  # type: ignore[arg-type]
+        gram=information,
         score=score,
         loglik=float(sum(g.loglik for g in groups.values())),
         extreme=float(sum(g.extreme for g in groups.values())),

@@ -7,8 +7,9 @@ U*_j = sum_i [r_i + h_i (1/2 - mu_i)] z_ij with the hat values h_i = wt_i z_i' I
 separation. Each Newton pass runs two scans: the core statistics query gives I(b), l(b) and the score; then a
 second query, with I(b)^-1 written in as constants, sums h_i (1/2 - mu_i) z_i and the second and third
 moments that give the negative Hessian of l* (:func:`penalised_information`), the matrix of the Newton step
-(for many parameters a secant estimate of it, :class:`SecantCurvature`); step-halving and the stopping rule
-follow l* itself.
+(for many parameters a secant estimate of it, :class:`SecantCurvature`). These are the evaluate and
+inner-solve variant of the one Newton run (:class:`dbfit.solver.newton.NewtonRun`): step-halving and the
+stopping rule follow l* itself, and the converged steps are polished until below FINAL_STEP (:func:`rules`).
 """
 
 from __future__ import annotations
@@ -24,13 +25,13 @@ from dbfit.expressions import builders as sb
 from dbfit.design.layout import Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError
-from dbfit.solver.newton import NewtonResult, aliased_columns, newton_step
+from dbfit.solver.newton import IterationReport, NewtonResult, NewtonRules, aliased_columns
 from dbfit.model.fitted import Model
 from dbfit.fitting.rowterms import row_terms, upper_products
 from dbfit.solver.information import PassResult
+from dbfit.solver.tolerances import FINAL_STEP
 
 Evaluate = Callable[[list[int], np.ndarray], PassResult]
-FINAL_STEP = 1e-10  # largest step on the internal scale accepted at convergence
 # Up to this many parameters the Newton matrix has the penalty's curvature, from p^3 / 6 third moments
 # (364 at 12): beyond, that many sums would outgrow the O(p^2) numbers a pass may bring out of the database,
 # and :class:`SecantCurvature` estimates the curvature from the modified scores of successive passes.
@@ -140,7 +141,7 @@ def firth_evaluator(engine: DuckDBEngine, design: Design, evaluate: Evaluate, pr
     def evaluate_firth(parameters: list[int], beta: np.ndarray) -> PassResult:
         core = evaluate(parameters, beta)
         keep = [k for k in range(len(parameters)) if k not in aliased_columns(core.gram, protected)]
-        gram = core.gram[np.ix_(keep, keep)]
+        gram = core.gram.keep(keep).as_array()
         sign, log_determinant = np.linalg.slogdet(gram)
         if sign <= 0:
             raise FitError("the information matrix is singular at the current estimates; the Firth penalty is undefined")
@@ -152,7 +153,7 @@ def firth_evaluator(engine: DuckDBEngine, design: Design, evaluate: Evaluate, pr
         values = np.array([0.0 if v is None else float(v) for v in row])
         score = core.score.copy()
         score[keep] += values[:size]
-        newton_matrix = core.gram
+        newton_matrix = core.gram.as_array()
         if curvature:
             pairs = len(_pairs(size))
             pair_sums, triple_sums = values[size: size + pairs], values[size + pairs:]
@@ -222,27 +223,20 @@ def penalized_loglik(loglik: float, internal_gram: np.ndarray, transform: np.nda
     return loglik + 0.5 * log_determinant - log_transform
 
 
-def finish(newton: NewtonResult, step_evaluate: Evaluate, core_evaluate: Evaluate, parameters: list[int],
-           max_iter: int) -> NewtonResult:
-    """Polish to a step below ``FINAL_STEP``, then re-run the core pass at the estimate.
+def rules(max_iter: int, tol: float, protected: int, report: Callable[[IterationReport], None] | None,
+          fallback_start: np.ndarray | None, weight_total: float) -> NewtonRules:
+    """The Newton rules of a Firth fit: no separation check (the maximum of l* exists under separation, and
+    slowly shrinking steps there are no sign of divergence), and after the stopping rule on the change of l*,
+    plain steps on the modified score until one is below FINAL_STEP (one or two with the penalised Hessian,
+    more where the step falls back to the information)."""
+    return NewtonRules(max_passes=max_iter, tol=tol, protected=protected, report=report,
+                       fallback_start=fallback_start, weight_total=weight_total, detect_separation=False,
+                       polish_below=FINAL_STEP)
 
-    The core's stopping rule looks at the change of the penalised log-likelihood; plain steps on the modified
-    score follow until they are negligible (one or two with the penalised Hessian, more where the step falls
-    back to the information); the last pass gives the unpenalised log-likelihood and the information at the
-    estimate.
-    """
-    beta, iterations, small = newton.beta, newton.iterations, False
-    result = newton.last  # the modified score at newton.beta, from the core's last pass: no scan repeated
-    while newton.converged and iterations < max_iter:
-        step = newton_step(result.gram, result.score)
-        beta = beta + step
-        small = float(np.max(np.abs(step))) < FINAL_STEP if step.size else True
-        if small:
-            break
-        result = step_evaluate(parameters, beta)
-        iterations += 1
-    return dataclasses.replace(newton, beta=beta, last=core_evaluate(parameters, beta), iterations=iterations,
-                               converged=newton.converged and small)
+
+def finish(newton: NewtonResult, core_evaluate: Evaluate, parameters: list[int]) -> NewtonResult:
+    """Re-run the core pass at the estimate: the unpenalised log-likelihood and the information there."""
+    return dataclasses.replace(newton, last=core_evaluate(parameters, newton.beta))
 
 
 def annotate(model: Model, last: PassResult) -> Model:
@@ -250,7 +244,8 @@ def annotate(model: Model, last: PassResult) -> Model:
     active = [k for k in range(len(model.labels)) if np.isfinite(model.estimates[k])]
     transform = inference.original_scale_map(model.design, active)
     stats = dict(model.stats)
-    stats["penalized_log_likelihood"] = penalized_loglik(stats["log_likelihood"], last.gram, transform)
+    information = last.gram.as_array()
+    stats["penalized_log_likelihood"] = penalized_loglik(stats["log_likelihood"], information, transform)
     stats["notes"] = [*stats.get("notes", []), "method    Firth bias-reduced (log-likelihood + 1/2 log|information|)"
                       f"; penalised log-lik {stats['penalized_log_likelihood']:,.4f}"]
     return dataclasses.replace(model, stats=stats)

@@ -28,10 +28,10 @@ from dbfit.fitting import splits
 from dbfit.design.layout import Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError
-from dbfit.solver.newton import IterationReport, NewtonResult, aliased_columns
+from dbfit.solver.newton import IterationReport, NewtonResult, Stepper, aliased_columns, solve
 from dbfit.model.fitted import Model
 from dbfit.fitting.folds import FoldFit, FoldPass, fold_scan
-from dbfit.solver.coordinate_descent import Penalty, PenalisedResult, PenalisedSolver, penalised_newton
+from dbfit.solver.coordinate_descent import Penalty, penalised_run
 from dbfit.solver.information import PassResult
 
 GRID_POINTS = 12
@@ -121,28 +121,28 @@ def fit_penalised(
     dropped = aliased_columns(first.gram, protected)
     keep = [k for k in range(len(fitted)) if k not in dropped]
     parameters = [fitted[k] for k in keep]
-    first = PassResult(first.gram[np.ix_(keep, keep)], first.score[keep], first.loglik, first.extreme, first.misfit_extreme)
+    first = first.restricted(keep)
     mask = np.array([not (design.intercept and k == 0) for k in parameters])
     if not mask.any():
         raise FitError("shrinkage needs at least one term besides the intercept to penalise")
 
-    def scan_once(beta: np.ndarray) -> PassResult:
+    def scan_once(beta: np.ndarray, _active: list[int]) -> PassResult:
         result = evaluate(parameters, beta)
         on_scan(result.loglik)
         return result
 
-    def run(beginning: np.ndarray, shrinkage: float, scan: PassResult | None) -> tuple[PenalisedResult, Penalty]:
+    def run(beginning: np.ndarray, shrinkage: float, scan: PassResult | None) -> tuple[NewtonResult, Penalty]:
         penalty = Penalty(shrinkage, request.l1_share, mask)
-        return penalised_newton(scan_once, beginning, penalty, design.trial_sum, max_iter, scan), penalty
+        return solve(penalised_run(beginning, penalty, design.trial_sum, max_iter, scan), scan_once), penalty
 
     start = start[keep]
     if not request.cross_validated:
         result, penalty = run(start, float(request.shrinkage), first)  # type: ignore[arg-type]
-        passes = result.passes + 1
+        passes = result.iterations + 1
         return PenalisedFit(_as_newton(result, keep, dropped, passes), penalty, [PathPoint(penalty.shrinkage)], passes)
 
     null, _ = run(start, math.inf, first)
-    passes = null.passes + 1
+    passes = null.iterations + 1
     grid = _grid(request, null, mask, design.trial_sum, len(parameters))
     fold = splits.fold_expression(design, request.split_key, request.folds)
     sizes = splits.fold_sizes(engine, design, fold, request.folds)
@@ -173,11 +173,11 @@ class PathRunner:
                  held_out: int | None, start: np.ndarray, first: PassResult | None = None) -> None:
         self.grid, self.l1_share, self.mask, self.max_iter, self.trials = grid, l1_share, mask, max_iter, trials
         self.held_out = held_out
-        self.solutions: list[PenalisedResult] = []
+        self.solutions: list[NewtonResult] = []
         self.held_out_logliks: list[float] = []
         self._held_out_now = 0.0  # held-out log-likelihood at the solver's last accepted point
-        self.solver: PenalisedSolver | None = PenalisedSolver(start, Penalty(grid[0], l1_share, mask), trials,
-                                                              max_iter, first)
+        self.solver: Stepper | None = Stepper(penalised_run(start, Penalty(grid[0], l1_share, mask), trials,
+                                                            max_iter, first))
 
     def wanted(self) -> np.ndarray | None:
         """The point to scan next, or None at the end of the grid (which may grow: see :func:`_weaker`)."""
@@ -185,7 +185,8 @@ class PathRunner:
             if self.solver is None:
                 last = self.solutions[-1]
                 penalty = Penalty(self.grid[len(self.solutions)], self.l1_share, self.mask)
-                self.solver = PenalisedSolver(last.scanned, penalty, self.trials, self.max_iter, last.last)
+                run = penalised_run(last.scanned, penalty, self.trials, self.max_iter, last.last)
+                self.solver = Stepper(run)
             point = self.solver.wanted()
             if point is not None:
                 return point
@@ -226,7 +227,8 @@ def _scan_reporter(report: Callable[[IterationReport], None] | None, saturated_l
     return on_scan
 
 
-def _grid(request: PenaltyRequest, null: PenalisedResult, mask: np.ndarray, trials: float, size: int) -> list[float]:
+def _grid(request: PenaltyRequest, null: NewtonResult, mask: np.ndarray, trials: float,
+          size: int) -> list[float]:
     if request.shrinkage != "cv":
         return list(request.shrinkage)  # type: ignore[arg-type]
     top = float(np.max(np.abs(null.last.score[mask]))) / (trials * max(request.l1_share, RIDGE_TOP_SHARE))
@@ -244,9 +246,8 @@ def _weaker(grid: list[float]) -> list[float]:
     return kept if len(kept) == len(values) else kept + [0.0]
 
 
-def _as_newton(result: PenalisedResult, keep: list[int], dropped: list[int], passes: int) -> NewtonResult:
-    return NewtonResult(beta=result.beta, active=keep, aliased=dropped, last=result.last, iterations=passes,
-                        converged=result.converged, separation=False)
+def _as_newton(result: NewtonResult, keep: list[int], dropped: list[int], passes: int) -> NewtonResult:
+    return dataclasses.replace(result, active=keep, aliased=dropped, iterations=passes)
 
 
 def effective_df(gram: np.ndarray, beta: np.ndarray, penalty: Penalty, trials: float) -> float:
@@ -267,7 +268,7 @@ def annotate(model: Model, fit: PenalisedFit, request: PenaltyRequest) -> Model:
     design = model.design
     zeros = [label for k, (label, value) in enumerate(zip(model.labels, model.estimates))
              if value == 0.0 and not (design.intercept and k == 0)]
-    df = effective_df(fit.newton.last.gram, fit.newton.beta, fit.penalty, design.trial_sum)
+    df = effective_df(fit.newton.last.gram.as_array(), fit.newton.beta, fit.penalty, design.trial_sum)
     stats = dict(model.stats)
     rows = design.rows_informative
     aic, bic = inference.information_criteria(stats["log_likelihood"], 0, rows)

@@ -1,6 +1,6 @@
 """One model per segment, all fitted in the same scans.
 
-Each segment keeps its own Newton state (:func:`dbfit.solver.newton.newton_iterations`); one grouped statistics
+Each segment keeps its own Newton state (:meth:`dbfit.solver.newton.NewtonRun.steps`); one grouped statistics
 query per pass joins every still-running segment's coefficients to its rows and returns its X'WX, score and
 log-likelihood. A segment that converges drops out of the join, so later passes skip its rows' arithmetic.
 """
@@ -10,7 +10,7 @@ from __future__ import annotations
 import dataclasses
 import time
 from decimal import Decimal
-from typing import Any, Callable, Generator
+from typing import Any, Callable
 
 import numpy as np
 from sqlglot import exp
@@ -20,15 +20,12 @@ from dbfit.expressions import builders as sb
 from dbfit.design.layout import SEGMENT, Design, segment_profiles
 from dbfit.engines.base import Engine
 from dbfit.errors import FitError
-from dbfit.solver.newton import IterationReport, NewtonResult, newton_iterations
+from dbfit.solver.newton import Deviance, IterationReport, NewtonResult, NewtonRules, NewtonRun, Steps
 from dbfit.model.fitted import Model
 from dbfit.model.segmented import SegmentedFit, plain_value
 from dbfit.expressions.source import source_relation
 from dbfit.fitting.statistics import statistics_query, unpack_many
 from dbfit.solver.information import PassResult
-
-Steps = Generator[tuple[np.ndarray, list[int]], PassResult, NewtonResult]
-
 
 def fit_segments(
     engine: Engine,
@@ -59,10 +56,9 @@ def fit_segments(
 
     protected = 1 if design.intercept else 0
     steps = {
-        value: newton_iterations(
-            _segment_start(part, fitted), saturated_loglik=part.saturated_loglik, max_iter=max_iter, tol=tol,
-            protected=protected, weight_total=part.trial_sum,
-        )
+        value: NewtonRun(Deviance(part.saturated_loglik), _segment_start(part, fitted),
+                         NewtonRules(max_passes=max_iter, tol=tol, protected=protected,
+                                     weight_total=part.trial_sum)).steps()
         for value, part in segments.items()
     }
     saturated = {value: part.saturated_loglik for value, part in segments.items()}
@@ -177,7 +173,7 @@ def _advance(value, generator, sent, requests, results, failures) -> None:
 def _subset(result: PassResult, active: list[int], size: int) -> PassResult:
     if len(active) == size:
         return result
-    return dataclasses.replace(result, gram=result.gram[np.ix_(active, active)], score=result.score[active])
+    return result.restricted(active)
 
 
 def _coefficient_rows(requests: dict[Any, tuple[np.ndarray, list[int]]], size: int) -> list[tuple[Any, exp.Expression, list[float]]]:
@@ -228,9 +224,9 @@ def _null_logliks(engine, design, segments, results, max_iter, tol) -> dict[Any,
     steps = {}
     for value in results:
         part = segments[value]
-        steps[value] = newton_iterations(np.array([inference.intercept_only_estimate(part)]),
-                                         saturated_loglik=part.saturated_loglik,
-                                         max_iter=max_iter, tol=tol, protected=1, check_aliasing=False)
+        rules = NewtonRules(max_passes=max_iter, tol=tol, protected=1, check_aliasing=False)
+        start = np.array([inference.intercept_only_estimate(part)])
+        steps[value] = NewtonRun(Deviance(part.saturated_loglik), start, rules).steps()
     failures: dict[Any, str] = {}
     null_results, _ = _run_together(engine, design, [0], steps, failures, None, columns=[], intercept=True)
     return {value: (null_results[value].last.loglik + segments[value].loglik_constant if value in null_results

@@ -24,7 +24,6 @@ FOLD = "dbfit_fold"
 
 @dataclasses.dataclass
 class FoldSizes:
-    rows: list[int]
     trials: list[float]  # weighted trials per fold
 
 
@@ -41,21 +40,21 @@ def fold_expression(design: Design, key_text: str | None, folds: int) -> exp.Exp
 
 
 def fold_sizes(engine: DuckDBEngine, design: Design, fold: exp.Expression, folds: int) -> FoldSizes:
-    """One scan: rows and weighted trials per fold; every fold must hold rows."""
+    """One scan: weighted trials per fold; every fold must hold rows."""
     base = design.base_query({FOLD: fold}).subquery("dbfit_base")
     weighted_trials = sb.mul(design.weight_expression(), design.trials_expression())
     query = (
-        exp.select(sb.column(FOLD), exp.Count(this=exp.Star()), sb.agg_sum(weighted_trials))
+        exp.select(sb.column(FOLD), sb.agg_sum(weighted_trials))
         .from_(base)
         .group_by(sb.column(FOLD))
     )
-    found = {int(number): (int(rows), float(total)) for number, rows, total in engine.fetch(query)}
+    found = {int(number): float(total) for number, total in engine.fetch(query)}
     empty = [k for k in range(folds) if k not in found]
     if empty:
         raise FitError(
             f"folds={folds} leaves fold(s) {empty} without rows ({design.rows_used} rows used); use fewer folds "
             "or a split_key with more distinct values"
         )
-    return FoldSizes([found[k][0] for k in range(folds)], [found[k][1] for k in range(folds)])
+    return FoldSizes([found[k] for k in range(folds)])
 
 

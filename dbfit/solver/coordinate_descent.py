@@ -6,25 +6,21 @@ the intercept never penalised. A scan at b gives the information G, the score g 
 approximation 1/2 b'Qb - c'b with Q = G / N, c = (g + G b) / N plus the penalty is minimised by cyclic
 coordinate descent with soft-thresholding (Friedman, Hastie and Tibshirani 2010, "Regularization paths for
 generalized linear models via coordinate descent", J. Statistical Software 33(1), doi:10.18637/jss.v033.i01),
-so a coefficient the L1 part removes is exactly zero. A proposal that raises F is halved towards the last
-accepted point, one scan per try.
+so a coefficient the L1 part removes is exactly zero. Coordinate descent is the inner solve of a penalised
+Newton pass (:class:`PenalisedObjective`); the passes themselves, with their step-halving, are those of
+:class:`dbfit.solver.newton.NewtonRun`.
 """
 
 from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Callable
 
 import numpy as np
 
 from dbfit.solver.information import PassResult
-
-STEP_TOLERANCE = 1e-10  # largest change of a coefficient (internal scale) accepted at convergence
-SWEEP_TOLERANCE = 1e-15
-MAX_SWEEPS = 100_000
-MAX_HALVINGS = 30
-RISE_TOLERANCE = 1e-12  # relative rise of the objective taken as rounding in the sums (as in dbfit.solver.newton)
+from dbfit.solver.newton import NewtonRules, NewtonRun
+from dbfit.solver.tolerances import FINAL_STEP, MAX_SWEEPS, SWEEP_TOLERANCE
 
 
 @dataclass(frozen=True)
@@ -40,13 +36,33 @@ class Penalty:
         return self.shrinkage * ((1.0 - self.l1_share) / 2.0 * float(b @ b) + self.l1_share * float(np.abs(b).sum()))
 
 
-@dataclass
-class PenalisedResult:
-    beta: np.ndarray
-    last: PassResult  # the scan at the last accepted point ``scanned``
-    scanned: np.ndarray
-    passes: int
-    converged: bool
+@dataclass(frozen=True)
+class PenalisedObjective:
+    """F(b) = -l(b) / N + penalty(b); its inner solve minimises the quadratic model plus the penalty."""
+
+    penalty: Penalty
+    trials: float  # N, the weighted number of trials
+
+    def value(self, beta: np.ndarray, scan: PassResult) -> float:
+        return -scan.loglik / self.trials + self.penalty.value(beta)
+
+    def inner_solve(self, beta: np.ndarray, scan: PassResult) -> np.ndarray:
+        gram = scan.gram.as_array()
+        linear = (scan.score + gram @ beta) / self.trials
+        proposal = coordinate_descent(gram / self.trials, linear, beta, self.penalty)
+        return proposal - beta
+
+
+def penalised_run(start: np.ndarray, penalty: Penalty, trials: float, max_iter: int,
+                  first: PassResult | None = None) -> NewtonRun:
+    """The Newton run minimising F from ``start``; ``first`` is a scan already run at ``start`` (saves one).
+
+    Converged when coordinate descent moves no coefficient by FINAL_STEP; the estimate is that last proposal
+    (no confirming scan: its change is below any rounding of the sums).
+    """
+    rules = NewtonRules(max_passes=max_iter, tol=0.0, step_floor=FINAL_STEP, confirm=False,
+                        check_aliasing=False, detect_separation=False)
+    return NewtonRun(PenalisedObjective(penalty, trials), start, rules, first)
 
 
 def coordinate_descent(q: np.ndarray, c: np.ndarray, start: np.ndarray, penalty: Penalty) -> np.ndarray:
@@ -73,79 +89,3 @@ def coordinate_descent(q: np.ndarray, c: np.ndarray, start: np.ndarray, penalty:
         if largest < SWEEP_TOLERANCE * (1.0 + np.max(np.abs(beta))):
             break
     return beta
-
-
-class PenalisedSolver:
-    """One penalised fit driven scan by scan: :meth:`wanted` names the point to scan next, :meth:`take` its scan.
-
-    Driving fits this way lets several of them (the folds of a cross-validation) share each scan.
-    """
-
-    def __init__(self, start: np.ndarray, penalty: Penalty, trials: float, max_iter: int,
-                 first: PassResult | None = None) -> None:
-        self.penalty, self.trials, self.max_iter = penalty, trials, max_iter
-        self.beta = start.copy()
-        self.current: PassResult | None = None
-        self.objective = math.inf
-        self.pending: np.ndarray | None = self.beta
-        self.final: np.ndarray | None = None
-        self.passes = self.halvings = 0
-        self.converged = False
-        if first is not None:
-            self.current, self.objective = first, self._objective(first, self.beta)
-            self._propose()
-
-    def _objective(self, scan: PassResult, beta: np.ndarray) -> float:
-        return -scan.loglik / self.trials + self.penalty.value(beta)
-
-    def _propose(self) -> None:
-        assert self.current is not None
-        self.pending, self.halvings = None, 0
-        if self.passes >= self.max_iter:
-            self.final = self.beta
-            return
-        gram, score = self.current.gram, self.current.score
-        proposal = coordinate_descent(gram / self.trials, (score + gram @ self.beta) / self.trials, self.beta, self.penalty)
-        if np.max(np.abs(proposal - self.beta), initial=0.0) < STEP_TOLERANCE:
-            self.final, self.converged = proposal, True
-        else:
-            self.pending = proposal
-
-    def wanted(self) -> np.ndarray | None:
-        return self.pending
-
-    def take(self, scan: PassResult) -> bool:
-        """Use the scan at :meth:`wanted`; True when the point is accepted (False: halved, scan again)."""
-        assert self.pending is not None
-        self.passes += 1
-        if self.current is None:
-            self.current, self.objective = scan, self._objective(scan, self.beta)
-            self._propose()
-            return True
-        objective = self._objective(scan, self.pending)
-        if objective <= self.objective + RISE_TOLERANCE * (abs(self.objective) + 1.0) or self.halvings >= MAX_HALVINGS \
-                or self.passes >= self.max_iter:
-            self.beta, self.current, self.objective = self.pending, scan, objective
-            self._propose()
-            return True
-        self.pending, self.halvings = 0.5 * (self.beta + self.pending), self.halvings + 1
-        return False
-
-    def result(self) -> PenalisedResult:
-        assert self.final is not None and self.current is not None
-        return PenalisedResult(self.final, self.current, self.beta, self.passes, self.converged)
-
-
-def penalised_newton(
-    evaluate: Callable[[np.ndarray], PassResult],
-    start: np.ndarray,
-    penalty: Penalty,
-    trials: float,
-    max_iter: int,
-    first: PassResult | None = None,
-) -> PenalisedResult:
-    """Minimise F from ``start``; ``first`` is a scan already run at ``start`` (saves one)."""
-    solver = PenalisedSolver(start, penalty, trials, max_iter, first)
-    while (point := solver.wanted()) is not None:
-        solver.take(evaluate(point))
-    return solver.result()
