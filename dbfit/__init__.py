@@ -1,24 +1,45 @@
 """dbfit: logistic regression fitted, checked and deployed inside the database."""
 
-from dbfit.interfaces.connection import connect, install
-from dbfit.interfaces.python_api import (assess, assessment_tables, cross_validate, decisions, drift,
-                                         drop_model, fit, from_json, load, models, population_stability,
-                                         promote, save, score, scoring_sql, write_report)
-from dbfit.lifecycle.gates import Gates, gates_of, set_gates
-from dbfit.lifecycle.refit import refit
 from dbfit.assessment.comparison import comparison_table, likelihood_ratio_test
-from dbfit.expressions.splits import Holdout, KFold
-from dbfit.deployment.views import publish
-from dbfit.errors import (DbfitError, FitError, FormulaError, GateRefusedError, SourceError, StoreConflictError,
-                          StoreError)
-from dbfit.solver.newton import IterationReport
-from dbfit.model.fitted import Model
-from dbfit.model.segmented import SegmentedFit
 from dbfit.deployment.segment_views import publish_segments
+from dbfit.deployment.views import publish
+from dbfit.errors import (
+    DbfitError,
+    FitError,
+    FormulaError,
+    GateRefusedError,
+    SourceError,
+    StoreConflictError,
+    StoreError,
+)
+from dbfit.expressions.splits import Holdout, KFold
 from dbfit.fitting.prior_correction import prior_corrected
 from dbfit.fitting.robust import with_robust_errors
-
+from dbfit.interfaces.connection import connect, install
 from dbfit.interfaces.deprecated import attach as _attach_deprecated_methods
+from dbfit.interfaces.python_api import (
+    assess,
+    assessment_tables,
+    cross_validate,
+    decisions,
+    drift,
+    drop_model,
+    fit,
+    from_json,
+    load,
+    models,
+    population_stability,
+    promote,
+    save,
+    score,
+    scoring_sql,
+    write_report,
+)
+from dbfit.lifecycle.gates import Gates, gates_of, set_gates
+from dbfit.lifecycle.refit import refit
+from dbfit.model.fitted import Model
+from dbfit.model.segmented import SegmentedFit
+from dbfit.solver.newton import IterationReport
 
 _attach_deprecated_methods()
 

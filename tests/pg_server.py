@@ -22,6 +22,7 @@ RUNUSER = "/usr/sbin/runuser"
 
 def find_binaries() -> Path | None:
     """The newest installed PostgreSQL bin directory holding initdb and pg_ctl, if any."""
+
     def major(path: str) -> int:
         name = Path(path).parent.name
         return int(name) if name.isdigit() else -1
@@ -54,14 +55,19 @@ def running_server(binaries: Path) -> Iterator[dict[str, object]]:
     def run(*command: str) -> None:
         subprocess.run(prefix + list(command), check=True, capture_output=True, timeout=120)
 
-    run(str(binaries / "initdb"), "-D", str(data), "-U", user, "-A", "trust", "--locale=C.UTF-8", "-E", "UTF8")
+    run(
+        str(binaries / "initdb"), "-D", str(data), "-U", user, "-A", "trust", "--locale=C.UTF-8", "-E", "UTF8"
+    )
     options = f"-p {port} -c listen_addresses=127.0.0.1 -k {root} -c fsync=off"
     run(str(binaries / "pg_ctl"), "-D", str(data), "-l", str(log), "-o", options, "-w", "start")
     try:
         yield {"host": "127.0.0.1", "port": port, "user": user, "dbname": "postgres"}
     finally:
-        subprocess.run(prefix + [str(binaries / "pg_ctl"), "-D", str(data), "-m", "fast", "-w", "stop"],
-                       capture_output=True, timeout=120)
+        subprocess.run(
+            prefix + [str(binaries / "pg_ctl"), "-D", str(data), "-m", "fast", "-w", "stop"],
+            capture_output=True,
+            timeout=120,
+        )
         shutil.rmtree(root, ignore_errors=True)
 
 

@@ -12,9 +12,9 @@ import warnings
 import numpy as np
 import pytest
 import statsmodels.api as sm
+from conftest import load_frame
 
 import dbfit
-from conftest import load_frame
 
 FORMULA = "GRADE ~ GPA + TUCE + PSI"
 
@@ -39,7 +39,9 @@ def _view_scores(con, view: str) -> list[float]:
 def test_publish_takes_the_source_then_the_view(spector) -> None:
     made = _no_warning(lambda: dbfit.publish(spector, "grades", "spector", "grade_scores"))
     assert made["view"] == '"grade_scores"'
-    again = _no_warning(lambda: dbfit.publish(spector, "grades", "spector", "grade_scores"))  # dbfit's own view
+    again = _no_warning(
+        lambda: dbfit.publish(spector, "grades", "spector", "grade_scores")
+    )  # dbfit's own view
     assert again["view"] == '"grade_scores"'
     _no_warning(lambda: dbfit.publish(spector, "grades", view="by_keyword", source="spector"))
     _no_warning(lambda: dbfit.publish(spector, "grades", None, "fitted_source"))
@@ -50,7 +52,9 @@ def test_publish_takes_the_source_then_the_view(spector) -> None:
 def test_publish_in_the_earlier_order_warns_and_still_works(spector) -> None:
     _no_warning(lambda: dbfit.publish(spector, "grades", "spector", "today"))
     with pytest.warns(DeprecationWarning, match=r"publish\(con, model, source, view\)"):
-        made = dbfit.publish(spector, "grades", "earlier", "spector")  # view first: 'earlier' is no relation yet
+        made = dbfit.publish(
+            spector, "grades", "earlier", "spector"
+        )  # view first: 'earlier' is no relation yet
     assert made["view"] == '"earlier"'
     with pytest.warns(DeprecationWarning):
         dbfit.publish(spector, "grades", "earlier", "spector")  # now a view dbfit published: still the view
@@ -83,11 +87,13 @@ def test_publish_segments_takes_the_source_then_the_view(con) -> None:
 
 
 def test_sql_fit_takes_the_formula_then_the_source(spector) -> None:
-    today = spector.execute(f"SELECT term, estimate, note FROM dbfit.fit('sql_grades', '{FORMULA}', 'spector')"
-                            ).fetchall()
+    today = spector.execute(
+        f"SELECT term, estimate, note FROM dbfit.fit('sql_grades', '{FORMULA}', 'spector')"
+    ).fetchall()
     assert [note for *_, note in today] == [None] * 4
-    earlier = spector.execute(f"SELECT term, estimate, note FROM dbfit.fit('sql_grades', 'spector', '{FORMULA}')"
-                              ).fetchall()
+    earlier = spector.execute(
+        f"SELECT term, estimate, note FROM dbfit.fit('sql_grades', 'spector', '{FORMULA}')"
+    ).fetchall()
     assert [row[:2] for row in earlier] == [row[:2] for row in today]
     assert all("deprecated" in note and "dbfit.fit(model, formula, source)" in note for *_, note in earlier)
     query = "SELECT * FROM spector WHERE PSI IN (0, 1)"
@@ -96,8 +102,9 @@ def test_sql_fit_takes_the_formula_then_the_source(spector) -> None:
 
 
 def test_sql_fit_in_the_earlier_order_with_segments_notes_every_row(spector) -> None:
-    rows = spector.execute("SELECT segment, note FROM dbfit.fit('seg', 'spector', 'GRADE ~ GPA', by := 'PSI')"
-                           ).fetchall()
+    rows = spector.execute(
+        "SELECT segment, note FROM dbfit.fit('seg', 'spector', 'GRADE ~ GPA', by := 'PSI')"
+    ).fetchall()
     assert {float(segment) for segment, _ in rows} == {0.0, 1.0}
     assert all(note.startswith("deprecated") for _, note in rows)
 
@@ -113,8 +120,16 @@ def test_drift_is_the_python_name_of_population_stability(spector) -> None:
 
 def test_version_is_keyword_only_and_the_positional_version_warns(spector) -> None:
     dbfit.fit(spector, "GRADE ~ GPA", "spector", name="grades", progress=False)
-    for function in (dbfit.load, dbfit.drop_model, dbfit.promote, dbfit.publish, dbfit.score, dbfit.assess,
-                     dbfit.assessment_tables, dbfit.drift):
+    for function in (
+        dbfit.load,
+        dbfit.drop_model,
+        dbfit.promote,
+        dbfit.publish,
+        dbfit.score,
+        dbfit.assess,
+        dbfit.assessment_tables,
+        dbfit.drift,
+    ):
         kind = inspect.signature(function).parameters["version"].kind
         assert kind is inspect.Parameter.KEYWORD_ONLY, function.__name__
     first = _no_warning(lambda: dbfit.load(spector, "grades", version=1))

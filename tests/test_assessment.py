@@ -9,13 +9,21 @@ from sklearn import metrics as sk
 from sqlglot import exp
 
 import dbfit
-from dbfit.assessment.metrics import (calibration_table, confusion_table, curve_points, gains_table, hosmer_lemeshow,
-                              metrics)
+from dbfit.assessment.metrics import (
+    calibration_table,
+    confusion_table,
+    curve_points,
+    gains_table,
+    hosmer_lemeshow,
+    metrics,
+)
 from dbfit.engines.duckdb_engine import DuckDBEngine
 
 
 def scored_table(con, y: np.ndarray, p: np.ndarray) -> exp.Expression:
-    con.execute("CREATE OR REPLACE TABLE scored AS SELECT unnest(?) AS y, unnest(?) AS p", [y.tolist(), p.tolist()])
+    con.execute(
+        "CREATE OR REPLACE TABLE scored AS SELECT unnest(?) AS y, unnest(?) AS p", [y.tolist(), p.tolist()]
+    )
     return exp.Table(this=exp.to_identifier("scored"))
 
 
@@ -36,9 +44,13 @@ def test_metrics_equal_scikit_learn(con, scores, threshold):
     values = metrics(DuckDBEngine(con), scored_table(con, y, p), threshold).values
     flagged = p >= threshold
     expected = {
-        "auc": sk.roc_auc_score(y, p), "log_loss": sk.log_loss(y, p), "brier_score": sk.brier_score_loss(y, p),
-        "accuracy": sk.accuracy_score(y, flagged), "precision": sk.precision_score(y, flagged),
-        "recall": sk.recall_score(y, flagged), "f1": sk.f1_score(y, flagged),
+        "auc": sk.roc_auc_score(y, p),
+        "log_loss": sk.log_loss(y, p),
+        "brier_score": sk.brier_score_loss(y, p),
+        "accuracy": sk.accuracy_score(y, flagged),
+        "precision": sk.precision_score(y, flagged),
+        "recall": sk.recall_score(y, flagged),
+        "f1": sk.f1_score(y, flagged),
         "matthews_correlation": sk.matthews_corrcoef(y, flagged),
         "specificity": sk.recall_score(1 - y, ~flagged),
     }
@@ -69,8 +81,12 @@ def test_roc_points_are_thinned_but_auc_stays_exact(con):
     assert curve["true_positive_rate"][-1] == 1.0 and curve["false_positive_rate"][-1] == 1.0
     fpr, tpr, thresholds = sk.roc_curve(y, p, drop_intermediate=False)
     where = {t: k for k, t in enumerate(thresholds)}
-    for t, ours_tpr, ours_fpr in zip(curve["threshold"][1:], curve["true_positive_rate"][1:], curve["false_positive_rate"][1:]):
-        assert ours_tpr == pytest.approx(tpr[where[t]], rel=1e-12) and ours_fpr == pytest.approx(fpr[where[t]], rel=1e-12)
+    for t, ours_tpr, ours_fpr in zip(
+        curve["threshold"][1:], curve["true_positive_rate"][1:], curve["false_positive_rate"][1:]
+    ):
+        assert ours_tpr == pytest.approx(tpr[where[t]], rel=1e-12) and ours_fpr == pytest.approx(
+            fpr[where[t]], rel=1e-12
+        )
     assert metrics(engine, relation).values["auc"] == pytest.approx(sk.roc_auc_score(y, p), rel=1e-12)
 
 
@@ -107,11 +123,15 @@ def test_calibration_and_gains_tables(con, scores):
     engine, relation = DuckDBEngine(con), scored_table(con, y, p)
     calibration = calibration_table(engine, relation).to_pydict()
     assert sum(calibration["rows"]) == len(y)
-    for low, rate, high in zip(calibration["wilson_low"], calibration["observed_rate"], calibration["wilson_high"]):
+    for low, rate, high in zip(
+        calibration["wilson_low"], calibration["observed_rate"], calibration["wilson_high"]
+    ):
         assert low <= rate <= high
     assert np.allclose(calibration["mean_predicted"], calibration["observed_rate"], atol=0.08)
     gains = gains_table(engine, relation).to_pydict()
-    assert gains["share_of_positives"][-1] == pytest.approx(1.0) and gains["cumulative_lift"][-1] == pytest.approx(1.0)
+    assert gains["share_of_positives"][-1] == pytest.approx(1.0) and gains["cumulative_lift"][
+        -1
+    ] == pytest.approx(1.0)
     assert gains["lift"][0] > 1.5
 
 

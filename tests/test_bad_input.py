@@ -16,7 +16,9 @@ def deliveries(con):
 
 
 def table_exists(con, name: str) -> bool:
-    return bool(con.execute("SELECT count(*) FROM duckdb_tables() WHERE table_name = ?", [name]).fetchall()[0][0])
+    return bool(
+        con.execute("SELECT count(*) FROM duckdb_tables() WHERE table_name = ?", [name]).fetchall()[0][0]
+    )
 
 
 def test_unknown_column_is_named(deliveries):
@@ -61,8 +63,15 @@ def test_source_that_is_not_a_select(deliveries):
 
 @pytest.mark.parametrize(
     "formula",
-    ["y ~ x); DROP TABLE t; --", "y ~ x + (SELECT 1)", "y ~ (DELETE FROM t)", "y ~ avg(x)", "y ~ sum(x) OVER ()",
-     "y ~ x FROM t; DROP TABLE t", "y ~ x -- comment\n; DROP TABLE t"],
+    [
+        "y ~ x); DROP TABLE t; --",
+        "y ~ x + (SELECT 1)",
+        "y ~ (DELETE FROM t)",
+        "y ~ avg(x)",
+        "y ~ sum(x) OVER ()",
+        "y ~ x FROM t; DROP TABLE t",
+        "y ~ x -- comment\n; DROP TABLE t",
+    ],
 )
 def test_formula_injection_is_refused_and_table_survives(deliveries, formula):
     with pytest.raises(dbfit.FormulaError):
@@ -100,7 +109,9 @@ def test_grouped_target_above_trials_is_refused(deliveries):
 
 
 def test_unknown_reference_level_lists_levels(deliveries):
-    with pytest.raises(dbfit.FormulaError, match=r"reference level 'c' of 'g' does not occur in the data \(levels: a, b\)"):
+    with pytest.raises(
+        dbfit.FormulaError, match=r"reference level 'c' of 'g' does not occur in the data \(levels: a, b\)"
+    ):
         dbfit.fit(deliveries, "y ~ g", "t", reference={"g": "c"}, progress=False)
 
 
@@ -116,11 +127,21 @@ def test_errors_share_one_family():
 
 
 def test_positive_on_a_target_of_more_than_two_values_is_refused(deliveries):
-    deliveries.execute("CREATE TABLE s AS SELECT x, CASE WHEN x > 2.5 THEN 'late' WHEN x > 1 THEN 'on_time' "
-                       "ELSE 'cancelled' END AS status FROM t")
-    with pytest.raises(dbfit.FitError, match=r"target 'status' has 3 values among the rows used \(cancelled, late, "
-                                             r"on_time\).*\"status = 'late' ~ \.\.\.\""):
+    deliveries.execute(
+        "CREATE TABLE s AS SELECT x, CASE WHEN x > 2.5 THEN 'late' WHEN x > 1 THEN 'on_time' "
+        "ELSE 'cancelled' END AS status FROM t"
+    )
+    with pytest.raises(
+        dbfit.FitError,
+        match=r"target 'status' has 3 values among the rows used \(cancelled, late, "
+        r"on_time\).*\"status = 'late' ~ \.\.\.\"",
+    ):
         dbfit.fit(deliveries, "status ~ x", "s", positive="late", progress=False)
-    two = dbfit.fit(deliveries, "status ~ x", "SELECT * FROM s WHERE status <> 'cancelled'", positive="late",
-                    progress=False)
+    two = dbfit.fit(
+        deliveries,
+        "status ~ x",
+        "SELECT * FROM s WHERE status <> 'cancelled'",
+        positive="late",
+        progress=False,
+    )
     assert two.stats["n_used"] == 5

@@ -17,29 +17,50 @@ from dbfit.interfaces.cli import main
 
 OPTION_CASES = [
     # (options of dbfit.fit, words the message must hold)
-    ({"max_iter": "10"}, ["max_iter", "'10'"]), ({"max_iter": None}, ["max_iter", "None"]),
-    ({"max_iter": 2.5}, ["max_iter", "2.5"]), ({"max_iter": True}, ["max_iter", "True"]),
-    ({"max_iter": [5]}, ["max_iter"]), ({"max_iter": "abc"}, ["max_iter", "abc"]),
-    ({"tol": "x"}, ["tol", "'x'"]), ({"tol": None}, ["tol", "None"]), ({"tol": float("inf")}, ["tol", "inf"]),
-    ({"tol": True}, ["tol", "True"]), ({"tol": "1e-8"}, ["tol", "1e-8"]),
-    ({"reference": ["a", "b"]}, ["reference", "list"]), ({"reference": "g"}, ["reference", "'g'"]),
-    ({"reference": ("g", "a")}, ["reference", "tuple"]), ({"tol": [1e-8]}, ["tol", "[1e-08]"]),
+    ({"max_iter": "10"}, ["max_iter", "'10'"]),
+    ({"max_iter": None}, ["max_iter", "None"]),
+    ({"max_iter": 2.5}, ["max_iter", "2.5"]),
+    ({"max_iter": True}, ["max_iter", "True"]),
+    ({"max_iter": [5]}, ["max_iter"]),
+    ({"max_iter": "abc"}, ["max_iter", "abc"]),
+    ({"tol": "x"}, ["tol", "'x'"]),
+    ({"tol": None}, ["tol", "None"]),
+    ({"tol": float("inf")}, ["tol", "inf"]),
+    ({"tol": True}, ["tol", "True"]),
+    ({"tol": "1e-8"}, ["tol", "1e-8"]),
+    ({"reference": ["a", "b"]}, ["reference", "list"]),
+    ({"reference": "g"}, ["reference", "'g'"]),
+    ({"reference": ("g", "a")}, ["reference", "tuple"]),
+    ({"tol": [1e-8]}, ["tol", "[1e-08]"]),
     ({"max_iter": float("nan")}, ["max_iter", "nan"]),
-    ({"start": "abc"}, ["start", "abc"]), ({"start": {"x": "abc"}}, ["start", "'x'", "abc"]),
-    ({"start": [1.0, "b", 3.0]}, ["start", "'b'"]), ({"start": 5}, ["start", "5"]),
-    ({"start": {"x": [1.0]}}, ["start", "'x'", "[1.0]"]), ({"positive": 1.5}, ["positive", "1.5"]),
-    ({"firth": "yes"}, ["firth", "yes"]), ({"firth": 1}, ["firth", "1"]),
-    ({"folds": 1}, ["folds", "1"]), ({"folds": "5"}, ["folds", "'5'"]), ({"folds": 2.5}, ["folds", "2.5"]),
+    ({"start": "abc"}, ["start", "abc"]),
+    ({"start": {"x": "abc"}}, ["start", "'x'", "abc"]),
+    ({"start": [1.0, "b", 3.0]}, ["start", "'b'"]),
+    ({"start": 5}, ["start", "5"]),
+    ({"start": {"x": [1.0]}}, ["start", "'x'", "[1.0]"]),
+    ({"positive": 1.5}, ["positive", "1.5"]),
+    ({"firth": "yes"}, ["firth", "yes"]),
+    ({"firth": 1}, ["firth", "1"]),
+    ({"folds": 1}, ["folds", "1"]),
+    ({"folds": "5"}, ["folds", "'5'"]),
+    ({"folds": 2.5}, ["folds", "2.5"]),
     ({"folds": None}, ["folds", "None"]),
-    ({"l1_share": 2}, ["l1_share", "2"]), ({"l1_share": -0.1}, ["l1_share", "-0.1"]),
-    ({"l1_share": "0.5"}, ["l1_share", "0.5"]), ({"l1_share": None}, ["l1_share", "None"]),
-    ({"weights": 3}, ["weights", "3"]), ({"weights": ["x"]}, ["weights", "list"]),
-    ({"offset": 1.5}, ["offset", "1.5"]), ({"trials": 2}, ["trials", "2"]), ({"by": 3}, ["by", "3"]),
+    ({"l1_share": 2}, ["l1_share", "2"]),
+    ({"l1_share": -0.1}, ["l1_share", "-0.1"]),
+    ({"l1_share": "0.5"}, ["l1_share", "0.5"]),
+    ({"l1_share": None}, ["l1_share", "None"]),
+    ({"weights": 3}, ["weights", "3"]),
+    ({"weights": ["x"]}, ["weights", "list"]),
+    ({"offset": 1.5}, ["offset", "1.5"]),
+    ({"trials": 2}, ["trials", "2"]),
+    ({"by": 3}, ["by", "3"]),
     ({"robust": "cluster", "cluster": 5}, ["cluster", "5"]),
     ({"shrinkage": "cv", "split_key": 7}, ["split_key", "7"]),
-    ({"positive": 5}, ["positive", "5"]), ({"positive": ["a"]}, ["positive", "['a']"]),
+    ({"positive": 5}, ["positive", "5"]),
+    ({"positive": ["a"]}, ["positive", "['a']"]),
     ({"positive": {"a": 1}}, ["positive"]),
-    ({"nosuch": 1}, ["nosuch"]), ({"max_iters": 10}, ["max_iters", "max_iter"]),
+    ({"nosuch": 1}, ["nosuch"]),
+    ({"max_iters": 10}, ["max_iters", "max_iter"]),
     ({"progress": "yes"}, ["progress", "yes"]),
 ]
 
@@ -73,8 +94,10 @@ def test_python_fit_option_is_refused_by_name(deliveries, options, words):
 
 
 def test_holdout_share_as_text_is_refused(deliveries):
-    refused(lambda: dbfit.fit(deliveries, "y ~ x", "t", split=dbfit.Holdout("x", "0.2"), progress=False),
-            ["share", "0.2"])
+    refused(
+        lambda: dbfit.fit(deliveries, "y ~ x", "t", split=dbfit.Holdout("x", "0.2"), progress=False),
+        ["share", "0.2"],
+    )
 
 
 VERSION_CALLS = {
@@ -93,13 +116,23 @@ def test_version_that_is_not_a_whole_number_is_refused(stored, call, version):
 
 
 SCORING_CASES = {
-    "score level as text": (lambda con: dbfit.score(con, "m", "t", standard_error=True, level="x"), ["level", "'x'"]),
-    "score standard_error as text": (lambda con: dbfit.score(con, "m", "t", standard_error="yes"),
-                                     ["standard_error", "yes"]),
+    "score level as text": (
+        lambda con: dbfit.score(con, "m", "t", standard_error=True, level="x"),
+        ["level", "'x'"],
+    ),
+    "score standard_error as text": (
+        lambda con: dbfit.score(con, "m", "t", standard_error="yes"),
+        ["standard_error", "yes"],
+    ),
     "publish live as text": (lambda con: dbfit.publish(con, "m", "t", "scored", live="yes"), ["live", "yes"]),
-    "report to a missing folder": (lambda con: dbfit.write_report(dbfit.load(con, "m"), "/no/such/dir/r.html"),
-                                   ["/no/such/dir/r.html"]),
-    "k folds as text": (lambda con: dbfit.cross_validate(con, "y ~ x", "t", dbfit.KFold("x", "3")), ["folds", "'3'"]),
+    "report to a missing folder": (
+        lambda con: dbfit.write_report(dbfit.load(con, "m"), "/no/such/dir/r.html"),
+        ["/no/such/dir/r.html"],
+    ),
+    "k folds as text": (
+        lambda con: dbfit.cross_validate(con, "y ~ x", "t", dbfit.KFold("x", "3")),
+        ["folds", "'3'"],
+    ),
 }
 
 
@@ -134,7 +167,9 @@ def test_sql_function_bad_input_reaches_dbfit(stored, call, words):
     with pytest.raises(duckdb.Error) as caught:
         stored.execute(call).fetchall()
     message = str(caught.value)
-    assert any(f"{kind}: " in message for kind in ("FitError", "SourceError", "StoreError", "FormulaError")), message
+    assert any(
+        f"{kind}: " in message for kind in ("FitError", "SourceError", "StoreError", "FormulaError")
+    ), message
     for word in words:
         assert word in message, (word, message)
     assert [n for (n,) in stored.execute("SELECT model FROM dbfit.models()").fetchall()] == ["m"]
@@ -144,8 +179,10 @@ def test_sql_function_bad_input_reaches_dbfit(stored, call, words):
 def database(tmp_path):
     path = tmp_path / "store.duckdb"
     con = dbfit.connect(str(path))
-    con.execute("CREATE TABLE t AS SELECT (i % 3 = 0)::INT AS y, (i % 7)::DOUBLE AS x, "
-                "CASE WHEN i % 2 = 0 THEN 'a' ELSE 'b' END AS g FROM range(60) r(i)")
+    con.execute(
+        "CREATE TABLE t AS SELECT (i % 3 = 0)::INT AS y, (i % 7)::DOUBLE AS x, "
+        "CASE WHEN i % 2 = 0 THEN 'a' ELSE 'b' END AS g FROM range(60) r(i)"
+    )
     dbfit.fit(con, "y ~ x + g", "t", name="m", progress=False)
     con.close()
     return str(path)
@@ -164,24 +201,56 @@ def cli_refused(capsys, argv: list[str], words: list[str]) -> None:
 
 def spec_file(tmp_path, database: str, **settings) -> str:
     path = tmp_path / "spec.json"
-    path.write_text(json.dumps({"database": database, "name": "m", "formula": "y ~ x + g", "source": "t", **settings}))
+    path.write_text(
+        json.dumps({"database": database, "name": "m", "formula": "y ~ x + g", "source": "t", **settings})
+    )
     return str(path)
 
 
 CLI_CASES = [
-    (lambda db, tmp: ["report", "m", "--database", db, "--output", "/no/such/dir/r.html"], ["/no/such/dir/r.html"]),
+    (
+        lambda db, tmp: ["report", "m", "--database", db, "--output", "/no/such/dir/r.html"],
+        ["/no/such/dir/r.html"],
+    ),
     (lambda db, tmp: ["sql", str(tmp / "nope.sql"), "--database", db], ["nope.sql"]),
     (lambda db, tmp: ["sql", str(tmp), "--database", db], ["cannot be read"]),
-    (lambda db, tmp: ["assess", "m", "--database", db, "--version", "0"], ["version must be a whole number", "0"]),
-    (lambda db, tmp: ["publish", "m", "--database", db, "--view", "v", "--version", "0"],
-     ["version must be a whole number", "0"]),
-    (lambda db, tmp: ["drift", "m", "--database", db, "--source", "t", "--version", "-1"],
-     ["version must be a whole number", "-1"]),
-    (lambda db, tmp: ["report", "m", "--database", db, "--output", str(tmp)], ["cannot be written", "directory"]),
+    (
+        lambda db, tmp: ["assess", "m", "--database", db, "--version", "0"],
+        ["version must be a whole number", "0"],
+    ),
+    (
+        lambda db, tmp: ["publish", "m", "--database", db, "--view", "v", "--version", "0"],
+        ["version must be a whole number", "0"],
+    ),
+    (
+        lambda db, tmp: ["drift", "m", "--database", db, "--source", "t", "--version", "-1"],
+        ["version must be a whole number", "-1"],
+    ),
+    (
+        lambda db, tmp: ["report", "m", "--database", db, "--output", str(tmp)],
+        ["cannot be written", "directory"],
+    ),
     (lambda db, tmp: ["fit", "--spec", spec_file(tmp, db, positive="late")], ["positive", "late"]),
-    (lambda db, tmp: ["fit", "--database", db, "--name", "m", "--formula", "y ~ x", "--source", "t", "--positive",
-                      "7"], ["positive", "7"]),
-    (lambda db, tmp: ["report", "m", "--database", db, "--output", spec_file(tmp, db) + "/r.html"], ["r.html"]),
+    (
+        lambda db, tmp: [
+            "fit",
+            "--database",
+            db,
+            "--name",
+            "m",
+            "--formula",
+            "y ~ x",
+            "--source",
+            "t",
+            "--positive",
+            "7",
+        ],
+        ["positive", "7"],
+    ),
+    (
+        lambda db, tmp: ["report", "m", "--database", db, "--output", spec_file(tmp, db) + "/r.html"],
+        ["r.html"],
+    ),
 ]
 
 
@@ -235,7 +304,9 @@ def test_threads_sharing_a_connection_get_correct_results_or_dbfit_errors(stored
                 assert dbfit.drift(stored, model, "t").to_pylist() == expected_psi
             except dbfit.DbfitError:
                 pass
-            except BaseException as err:  # IndexError, KeyError, a wrong answer: one thread read the other's rows
+            except (
+                BaseException
+            ) as err:  # IndexError, KeyError, a wrong answer: one thread read the other's rows
                 failures.append(err)
 
     threads = [threading.Thread(target=work) for _ in range(2)]
@@ -249,8 +320,10 @@ def test_threads_sharing_a_connection_get_correct_results_or_dbfit_errors(stored
 def test_unknown_column_hint_lists_all_columns_and_the_closest(con):
     columns = ", ".join(f"(range * {k})::DOUBLE AS reading_{k}" for k in range(55))
     con.execute(f"CREATE TABLE wide AS SELECT (range % 2)::INT AS y, {columns} FROM range(10)")
-    error = refused(lambda: dbfit.fit(con, "y ~ reading_1 + reading_54x", "wide", progress=False),
-                    ["unknown column 'reading_54x'", "closest: reading_54", "56 columns"])
+    error = refused(
+        lambda: dbfit.fit(con, "y ~ reading_1 + reading_54x", "wide", progress=False),
+        ["unknown column 'reading_54x'", "closest: reading_54", "56 columns"],
+    )
     assert all(f"reading_{k}" in str(error) for k in range(55))
 
 
@@ -274,7 +347,11 @@ def test_postgres_date_column_is_described_by_its_type_name():
     import psycopg
 
     with running_server(binaries) as keywords, psycopg.connect(**keywords, autocommit=True) as connection:
-        connection.execute("CREATE TABLE visits AS SELECT (i % 2) AS y, DATE '2024-01-01' + i AS day, i::float8 AS x "
-                           "FROM generate_series(1, 20) AS i")
-        error = refused(lambda: dbfit.fit(connection, "y ~ x + day", "visits", progress=False), ["SQL type DATE"])
+        connection.execute(
+            "CREATE TABLE visits AS SELECT (i % 2) AS y, DATE '2024-01-01' + i AS day, i::float8 AS x "
+            "FROM generate_series(1, 20) AS i"
+        )
+        error = refused(
+            lambda: dbfit.fit(connection, "y ~ x + day", "visits", progress=False), ["SQL type DATE"]
+        )
         assert "OID" not in str(error)

@@ -61,7 +61,9 @@ def test_bench_scenarios_run_at_small_size():
     assert done.returncode == 0, done.stderr
     assert re.search(r"\(a\) dbfit, one model per segment .* 20 models", done.stdout)
     assert "a/p: time" in done.stdout and "a/b: time" in done.stdout
-    done = run("bench", "--scenario", "outofcore", "--rows", "80000", "--predictors", "2", "--memory-limit", "100MB")
+    done = run(
+        "bench", "--scenario", "outofcore", "--rows", "80000", "--predictors", "2", "--memory-limit", "100MB"
+    )
     assert done.returncode == 0, done.stderr
     assert "seconds per million rows" in done.stdout
 

@@ -3,6 +3,8 @@ inside functions counted). The checker is tests/import_layers.py; DEVELOPERS.md 
 
 from __future__ import annotations
 
+import subprocess
+import sys
 from pathlib import Path
 
 from import_layers import LAYERS, cycles, graph, upward_imports
@@ -31,7 +33,27 @@ def test_the_checker_finds_a_cycle_made_inside_a_function_and_an_upward_import(t
     (package / "model" / "fitted.py").write_text("def save():\n    from dbfit.store.tables import write\n")
     (package / "store" / "tables.py").write_text("from dbfit.model.fitted import save\n")
     (package / "model" / "hints.py").write_text(
-        "from typing import TYPE_CHECKING\nif TYPE_CHECKING:\n    from dbfit.store.tables import write\n")
+        "from typing import TYPE_CHECKING\nif TYPE_CHECKING:\n    from dbfit.store.tables import write\n"
+    )
     edges = graph(tmp_path)
     assert cycles(edges) == [["dbfit.model.fitted", "dbfit.store.tables"]]
     assert upward_imports(edges) == [("dbfit.model.fitted", "dbfit.store.tables")]
+
+
+def _run(*command: str) -> subprocess.CompletedProcess[str]:
+    return subprocess.run(
+        [sys.executable, "-m", *command], cwd=ROOT, capture_output=True, text=True, timeout=600
+    )
+
+
+def test_lint_and_format_pass_with_the_project_settings():
+    # settings in pyproject.toml: line length 110, import sorting, pyflakes, bugbear, pyupgrade
+    checked = _run("ruff", "check", "dbfit", "tests")
+    assert checked.returncode == 0, checked.stdout[-3000:]
+    formatted = _run("ruff", "format", "--check", "dbfit", "tests")
+    assert formatted.returncode == 0, formatted.stdout[-3000:]
+
+
+def test_solver_and_model_packages_type_check_strictly():
+    typed = _run("mypy", "dbfit/solver", "dbfit/model")
+    assert typed.returncode == 0, typed.stdout[-3000:]

@@ -4,10 +4,10 @@ from __future__ import annotations
 
 import pytest
 import statsmodels.api as sm
+from conftest import load_frame
 from scipy import stats
 
 import dbfit
-from conftest import load_frame
 from dbfit.assessment.comparison import comparison_table, likelihood_ratio_test
 
 

@@ -43,8 +43,14 @@ def _assert_same_scores(scored: dict[str, float], recorded: dict[str, float], wh
 
 
 def test_the_fixture_holds_every_kind_of_model() -> None:
-    assert RECORDED["models"] == ["by_smoke.0@1", "by_smoke.1@1", "holdout@1", "interaction@1",
-                                  "plain@1", "plain@2"]
+    assert RECORDED["models"] == [
+        "by_smoke.0@1",
+        "by_smoke.1@1",
+        "holdout@1",
+        "interaction@1",
+        "plain@1",
+        "plain@2",
+    ]
     assert sorted(DOCUMENTS) == RECORDED["models"]
     assert json.loads(DOCUMENTS["holdout@1"])["options"]["split"]["key"] == "id"
     assert "race:smoke" in json.loads(DOCUMENTS["interaction@1"])["formula"]
@@ -59,8 +65,11 @@ def test_every_stored_model_loads_and_scores_as_recorded(old_database: Path) -> 
         name, version = key.split("@")
         model = dbfit.load(con, name, version=int(version))
         _assert_same_scores(_by_id(dbfit.score(con, model, "birthwt")), RECORDED["scores"][key], key)
-    _assert_same_scores(_by_id(dbfit.score(con, "plain", "birthwt")), RECORDED["scores"]["plain@2"],
-                        "plain by name (the current version)")
+    _assert_same_scores(
+        _by_id(dbfit.score(con, "plain", "birthwt")),
+        RECORDED["scores"]["plain@2"],
+        "plain by name (the current version)",
+    )
     con.close()
 
 
@@ -83,8 +92,13 @@ def test_old_segment_models_score_each_row_with_its_segment(old_database: Path) 
 
 
 def test_the_command_line_lists_the_old_models(old_database: Path) -> None:
-    run = subprocess.run([sys.executable, "-m", "dbfit", "models", "--database", str(old_database), "--json"],
-                         capture_output=True, text=True, timeout=300, env=os.environ.copy())
+    run = subprocess.run(
+        [sys.executable, "-m", "dbfit", "models", "--database", str(old_database), "--json"],
+        capture_output=True,
+        text=True,
+        timeout=300,
+        env=os.environ.copy(),
+    )
     assert run.returncode == 0, run.stderr
     listed = json.loads(run.stdout)["versions"]
     assert sorted(f"{row['model']}@{row['version']}" for row in listed) == RECORDED["models"]

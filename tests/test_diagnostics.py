@@ -3,12 +3,11 @@
 from __future__ import annotations
 
 import numpy as np
-import pandas as pd
 import pytest
 import statsmodels.api as sm
+from conftest import assert_close, load_frame
 
 import dbfit
-from conftest import assert_close, load_frame
 
 
 @pytest.fixture
@@ -35,7 +34,9 @@ def test_exactly_collinear_term_is_aliased_and_rest_is_valid(con, spector):
     assert table["(2 * GPA - TUCE)"]["estimate"] is None
     assert table["(2 * GPA - TUCE)"]["std_error"] is None
     assert any("aliased" in w and "(2 * GPA - TUCE)" in w for w in model.warnings)
-    reference = sm.Logit(spector.GRADE, sm.add_constant(spector[["GPA", "TUCE", "PSI"]])).fit(disp=0, tol=1e-12)
+    reference = sm.Logit(spector.GRADE, sm.add_constant(spector[["GPA", "TUCE", "PSI"]])).fit(
+        disp=0, tol=1e-12
+    )
     kept = [model.labels.index(t) for t in ["intercept", "GPA", "TUCE", "PSI"]]
     assert_close(model.estimates[kept], reference.params.values, 1e-6, "estimates without the aliased term")
     assert np.isnan(model.covariance[model.labels.index("(2 * GPA - TUCE)")]).all()
@@ -50,14 +51,18 @@ def test_constant_term_is_aliased_with_intercept(con, spector):
 
 
 def test_categorical_level_aliased_by_duplicate_factor(con):
-    con.execute("CREATE TABLE t AS SELECT i % 3 = 0 AS y, ['a','b','c'][1 + (i % 7) % 3] AS g, i / 100.0 AS x FROM range(300) r(i)")
+    con.execute(
+        "CREATE TABLE t AS SELECT i % 3 = 0 AS y, ['a','b','c'][1 + (i % 7) % 3] AS g, i / 100.0 AS x FROM range(300) r(i)"
+    )
     model = dbfit.fit(con, "y ~ g + x + g::VARCHAR", "t", progress=False)
     assert np.isnan(model.estimate("g::VARCHAR=b")) and np.isnan(model.estimate("g::VARCHAR=c"))
     assert np.isfinite(model.estimate("g=b"))
 
 
 def test_complete_separation_is_detected_and_named(con):
-    con.execute("CREATE TABLE sep AS SELECT (i >= 50)::INTEGER AS y, i / 10.0 AS x, (i * 37 % 11) / 11.0 AS noise FROM range(100) r(i)")
+    con.execute(
+        "CREATE TABLE sep AS SELECT (i >= 50)::INTEGER AS y, i / 10.0 AS x, (i * 37 % 11) / 11.0 AS noise FROM range(100) r(i)"
+    )
     model = dbfit.fit(con, "y ~ x + noise", "sep", progress=False)
     assert model.stats["separation"] and not model.stats["converged"]
     separation = [w for w in model.warnings if "separation" in w]
@@ -81,14 +86,18 @@ def test_well_separated_but_finite_data_is_not_flagged(con):
     from sklearn.datasets import load_breast_cancer
 
     load_frame(con, "cancer", load_breast_cancer(as_frame=True).frame)
-    model = dbfit.fit(con, 'target ~ "mean radius" + "mean texture" + "mean concave points"', "cancer", progress=False)
+    model = dbfit.fit(
+        con, 'target ~ "mean radius" + "mean texture" + "mean concave points"', "cancer", progress=False
+    )
     assert model.stats["converged"] and not model.stats["separation"] and not model.warnings
 
 
 @pytest.mark.parametrize("slope", [1000.0, -1000.0, 1e6])
 def test_log_likelihood_is_exact_for_huge_linear_predictors(con, slope):
     # Common practice: log(1 + exp(eta)) must not overflow; reference: numpy.logaddexp on the same eta.
-    con.execute("CREATE TABLE big AS SELECT (i % 3 = 0)::INTEGER AS y, (i % 5) - 2.0 AS x FROM range(40) r(i)")
+    con.execute(
+        "CREATE TABLE big AS SELECT (i % 3 = 0)::INTEGER AS y, (i % 5) - 2.0 AS x FROM range(40) r(i)"
+    )
     frame = con.execute("SELECT y, x FROM big").df()
     eta = slope * frame.x.to_numpy()
     expected = float(np.sum(frame.y * eta - np.logaddexp(0.0, eta)))
@@ -99,7 +108,9 @@ def test_log_likelihood_is_exact_for_huge_linear_predictors(con, slope):
 
 
 def test_start_that_saturates_every_row_restarts_from_default(con):
-    con.execute("CREATE TABLE big AS SELECT (i % 3 = 0)::INTEGER AS y, (i % 5) - 2.0 AS x FROM range(40) r(i)")
+    con.execute(
+        "CREATE TABLE big AS SELECT (i % 3 = 0)::INTEGER AS y, (i % 5) - 2.0 AS x FROM range(40) r(i)"
+    )
     model = dbfit.fit(con, "y ~ x", "big", start={"intercept": 5000.0, "x": 0.0}, progress=False)
     cold = dbfit.fit(con, "y ~ x", "big", progress=False)
     assert model.stats["converged"]
@@ -127,8 +138,13 @@ def test_progress_reports_iteration_deviance_and_time(con, spector):
 
 def test_warm_start_from_a_fit_needs_fewer_passes(con, spector):
     cold = dbfit.fit(con, "GRADE ~ GPA + TUCE + PSI", "spector", progress=False)
-    warm = dbfit.fit(con, "GRADE ~ GPA + TUCE + PSI", "spector", progress=False,
-                     start=dict(zip(cold.labels, cold.estimates)))
+    warm = dbfit.fit(
+        con,
+        "GRADE ~ GPA + TUCE + PSI",
+        "spector",
+        progress=False,
+        start=dict(zip(cold.labels, cold.estimates)),
+    )
     assert warm.stats["iterations"] < cold.stats["iterations"]
     assert_close(warm.estimates, cold.estimates, 1e-8, "same optimum")
 

@@ -32,8 +32,11 @@ def con(tmp_path):
 
 
 def _bins(con, variable: str) -> list[dict]:
-    cursor = con.execute("SELECT kind, lower, upper, level, share FROM dbfit_store.drift_bins WHERE model = 'late' "
-                         "AND version = 1 AND variable = ? ORDER BY position", [variable])
+    cursor = con.execute(
+        "SELECT kind, lower, upper, level, share FROM dbfit_store.drift_bins WHERE model = 'late' "
+        "AND version = 1 AND variable = ? ORDER BY position",
+        [variable],
+    )
     return [dict(zip(("kind", "lower", "upper", "level", "share"), row)) for row in cursor.fetchall()]
 
 
@@ -58,8 +61,9 @@ def test_psi_equals_an_independent_computation_from_the_definition(con):
         bins = _bins(con, variable)
         edges = [b["upper"] for b in bins[:-1]]
         assert len(edges) == 9 and edges == sorted(edges)
-        as_float = lambda column: np.asarray(column.astype(float) if not hasattr(column, "filled")  # noqa: E731
-                                             else column.astype(float).filled(np.nan))
+        as_float = lambda column: np.asarray(
+            column.astype(float) if not hasattr(column, "filled") else column.astype(float).filled(np.nan)
+        )
         expected = _numeric_shares(as_float(training[variable]), edges)
         np.testing.assert_allclose([b["share"] for b in bins], expected, rtol=0, atol=1e-15)
         actual = _numeric_shares(as_float(new[variable]), edges)
@@ -87,12 +91,18 @@ def test_sql_drift_gives_the_python_figures(con):
 
 
 def test_unseen_levels_pool_into_one_bin_and_bad_input_is_named(con):
-    table = {row["variable"]: row for row in dbfit.drift(
-        con, "late", "SELECT * REPLACE (CASE WHEN depot = 'East' THEN 'Airport' ELSE depot END AS depot) FROM fresh"
-    ).to_pylist()}
+    table = {
+        row["variable"]: row
+        for row in dbfit.drift(
+            con,
+            "late",
+            "SELECT * REPLACE (CASE WHEN depot = 'East' THEN 'Airport' ELSE depot END AS depot) FROM fresh",
+        ).to_pylist()
+    }
     east = 0.2  # the East share is about a fifth; all of it moves to a level of training share 0 (floored)
-    assert table["depot"]["psi"] == pytest.approx(east * math.log(east / FLOOR) + (FLOOR - east) * math.log(FLOOR / east),
-                                                  rel=0.1)
+    assert table["depot"]["psi"] == pytest.approx(
+        east * math.log(east / FLOOR) + (FLOOR - east) * math.log(FLOOR / east), rel=0.1
+    )
     with pytest.raises(dbfit.SourceError):
         dbfit.drift(con, "late", "no_such_table")
     with pytest.raises(dbfit.FormulaError):
@@ -100,8 +110,13 @@ def test_unseen_levels_pool_into_one_bin_and_bad_input_is_named(con):
 
 
 def test_reading_bands_are_the_common_practice_ones():
-    assert [reading(v) for v in (0.0, 0.099, 0.1, 0.25, 0.26)] == ["stable", "stable", "some shift", "some shift",
-                                                                    "large shift"]
+    assert [reading(v) for v in (0.0, 0.099, 0.1, 0.25, 0.26)] == [
+        "stable",
+        "stable",
+        "some shift",
+        "some shift",
+        "large shift",
+    ]
 
 
 def test_drift_on_an_empty_source_is_refused_with_the_count(con):

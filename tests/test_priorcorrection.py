@@ -13,9 +13,9 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
+from conftest import load_frame
 
 import dbfit
-from conftest import load_frame
 
 TRUE_INTERCEPT, TRUE_SLOPES = -5.0, (0.8, -0.5)
 
@@ -54,15 +54,20 @@ def test_shift_is_the_king_zeng_formula_and_robust_errors_still_use_the_fitted_r
     population_rate = case_control_sample(con)
     frame = con.execute("SELECT * FROM cases").df()
     sample_rate = frame.event.mean()
-    model = dbfit.fit(con, "event ~ x1 + x2", "cases", population_rate=population_rate, robust="HC0", progress=False)
+    model = dbfit.fit(
+        con, "event ~ x1 + x2", "cases", population_rate=population_rate, robust="HC0", progress=False
+    )
     reference = sm.GLM(frame.event, sm.add_constant(frame[["x1", "x2"]]), family=sm.families.Binomial()).fit(
         cov_type="HC0", tol=1e-13
     )
     by_hand = math.log((1 - population_rate) / population_rate * sample_rate / (1 - sample_rate))
     assert model.estimate("intercept") == pytest.approx(reference.params["const"] - by_hand, rel=1e-8)
     np.testing.assert_allclose(model.covariance, reference.cov_params().values, rtol=1e-7)
-    later = dbfit.with_robust_errors(con, dbfit.fit(con, "event ~ x1 + x2", "cases", population_rate=population_rate,
-                                                    progress=False), "HC0")
+    later = dbfit.with_robust_errors(
+        con,
+        dbfit.fit(con, "event ~ x1 + x2", "cases", population_rate=population_rate, progress=False),
+        "HC0",
+    )
     np.testing.assert_allclose(later.covariance, model.covariance, rtol=1e-10)
 
 

@@ -18,8 +18,9 @@ dbfit.fit(con, "y ~ x + z + x * z + ln(1 + x) + sqrt(z) + x * x + z * z + exp(x)
 
 def run_on_terminal(progress: str) -> str:
     leader, follower = pty.openpty()
-    process = subprocess.Popen([sys.executable, "-c", SCRIPT.format(progress=progress)], stderr=follower,
-                               stdout=subprocess.DEVNULL)
+    process = subprocess.Popen(
+        [sys.executable, "-c", SCRIPT.format(progress=progress)], stderr=follower, stdout=subprocess.DEVNULL
+    )
     os.close(follower)
     chunks = []
     while True:
@@ -47,6 +48,7 @@ def test_quiet_on_a_terminal_prints_nothing():
 
 
 def test_default_off_a_terminal_prints_nothing():
-    done = subprocess.run([sys.executable, "-c", SCRIPT.format(progress="None")], capture_output=True, text=True,
-                          timeout=300)
+    done = subprocess.run(
+        [sys.executable, "-c", SCRIPT.format(progress="None")], capture_output=True, text=True, timeout=300
+    )
     assert done.returncode == 0 and done.stderr == ""

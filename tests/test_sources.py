@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import numpy as np
 import statsmodels.api as sm
+from conftest import assert_close, load_frame
 
 import dbfit
-from conftest import assert_close, load_frame
 
 FORMULA = "GRADE ~ GPA + TUCE + PSI"
 
@@ -14,7 +14,11 @@ FORMULA = "GRADE ~ GPA + TUCE + PSI"
 def reference_estimates():
     # Reference: statsmodels Logit on statsmodels' spector data.
     frame = sm.datasets.spector.load_pandas().data
-    return sm.Logit(frame.GRADE, sm.add_constant(frame[["GPA", "TUCE", "PSI"]])).fit(disp=0, tol=1e-12).params.values
+    return (
+        sm.Logit(frame.GRADE, sm.add_constant(frame[["GPA", "TUCE", "PSI"]]))
+        .fit(disp=0, tol=1e-12)
+        .params.values
+    )
 
 
 def test_parquet_csv_view_and_select_sources_agree(con, tmp_path):
@@ -32,7 +36,9 @@ def test_parquet_csv_view_and_select_sources_agree(con, tmp_path):
 def test_folder_of_parquet_files(con, tmp_path):
     load_frame(con, "spector", sm.datasets.spector.load_pandas().data)
     for part in range(3):
-        con.execute(f"COPY (SELECT * FROM spector WHERE rowid % 3 = {part}) TO '{tmp_path}/part{part}.parquet' (FORMAT parquet)")
+        con.execute(
+            f"COPY (SELECT * FROM spector WHERE rowid % 3 = {part}) TO '{tmp_path}/part{part}.parquet' (FORMAT parquet)"
+        )
     model = dbfit.fit(con, FORMULA, f"{tmp_path}/*.parquet", progress=False)
     assert model.stats["n_used"] == 32
     assert_close(model.estimates, reference_estimates(), 1e-6, "estimates from a parquet glob")
@@ -82,5 +88,5 @@ def test_statistics_query_golden_sql(con):
         'AS "y", 1 AS "pw", 1 AS "n" FROM (SELECT * FROM (SELECT CASE WHEN "y" THEN CAST(1 AS DOUBLE) WHEN NOT ("y") THEN '
         'CAST(0 AS DOUBLE) END AS "dbfit_y", "x" AS "dbfit_f0" '
         'FROM "t") AS dbfit_rows WHERE NOT "dbfit_y" IS NULL AND NOT "dbfit_f0" IS NULL) AS dbfit_base) AS '
-        'dbfit_cols) AS dbfit_lin) AS dbfit_e) AS dbfit_terms) AS dbfit_w'
+        "dbfit_cols) AS dbfit_lin) AS dbfit_e) AS dbfit_terms) AS dbfit_w"
     )

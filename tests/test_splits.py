@@ -24,21 +24,27 @@ def test_parts_are_stable_across_files_and_row_orders(tmp_path):
     for split in (Holdout("id", 0.25), KFold("id", 5)):
         assert parts(first, split) == parts(second, split)
     # Reference: Python's hashlib MD5 of the key's text, the definition of the split.
-    expected = {i: ("holdout" if int(hashlib.md5(str(i).encode()).hexdigest()[:8], 16) / 2**32 < 0.25 else "train")
-                for i in range(5000)}
+    expected = {
+        i: ("holdout" if int(hashlib.md5(str(i).encode()).hexdigest()[:8], 16) / 2**32 < 0.25 else "train")
+        for i in range(5000)
+    }
     assert parts(first, Holdout("id", 0.25)) == expected
 
 
 def test_part_sizes_are_within_one_percent_of_the_shares(con):
     con.execute("CREATE TABLE rows AS SELECT i AS id FROM range(1000000) r(i)")
     for share in (0.1, 0.3):
-        counts = dict(con.execute(
-            f"SELECT dbfit_part, count(*) FROM ({labelled_rows(source_relation('rows'), Holdout('id', share)).sql('duckdb')}) GROUP BY 1"
-        ).fetchall())
+        counts = dict(
+            con.execute(
+                f"SELECT dbfit_part, count(*) FROM ({labelled_rows(source_relation('rows'), Holdout('id', share)).sql('duckdb')}) GROUP BY 1"
+            ).fetchall()
+        )
         assert abs(counts["holdout"] / 1_000_000 - share) < 0.01 * share
-    folds = dict(con.execute(
-        f"SELECT dbfit_part, count(*) FROM ({labelled_rows(source_relation('rows'), KFold('id', 4)).sql('duckdb')}) GROUP BY 1"
-    ).fetchall())
+    folds = dict(
+        con.execute(
+            f"SELECT dbfit_part, count(*) FROM ({labelled_rows(source_relation('rows'), KFold('id', 4)).sql('duckdb')}) GROUP BY 1"
+        ).fetchall()
+    )
     assert sorted(folds) == [0, 1, 2, 3] and all(abs(n / 250_000 - 1) < 0.01 for n in folds.values())
 
 

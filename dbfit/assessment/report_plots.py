@@ -46,17 +46,30 @@ def forest_plot(coefficients: pa.Table) -> str | None:
     labels = max(len(_short(r["term"])) for r in rows)
     left = min(40 + labels * CHAR_WIDTH, 230)
     height = MARGIN_TOP + MARGIN_BOTTOM + ROW_HEIGHT * len(rows)
-    chart = Chart.make(_odds_range(rows), (0, len(rows)), "Odds ratios with 95% intervals (log scale)",
-                       "odds ratio (log scale; 1 = no effect)", "", "forest", x_log=True, height=height, left=left,
-                       width=FOREST_WIDTH)
+    chart = Chart.make(
+        _odds_range(rows),
+        (0, len(rows)),
+        "Odds ratios with 95% intervals (log scale)",
+        "odds ratio (log scale; 1 = no effect)",
+        "",
+        "forest",
+        x_log=True,
+        height=height,
+        left=left,
+        width=FOREST_WIDTH,
+    )
     chart.segment((1.0, 0), (1.0, len(rows)), "no-effect")
     for index, row in enumerate(rows):
         middle = len(rows) - index - 0.5  # the first term at the top
         y = num(chart.y(middle) + 4)
-        chart.raw(f'<text class="term" x="{num(left - 8)}" y="{y}" text-anchor="end">{escape(_short(row["term"]))}'
-                  f'<title>{escape(row["term"])}</title></text>')
+        chart.raw(
+            f'<text class="term" x="{num(left - 8)}" y="{y}" text-anchor="end">{escape(_short(row["term"]))}'
+            f"<title>{escape(row['term'])}</title></text>"
+        )
         if row["estimate"] is None:
-            chart.raw(f'<text class="aliased-note" x="{num(chart.x(1.0) + 8)}" y="{y}">aliased: no estimate</text>')
+            chart.raw(
+                f'<text class="aliased-note" x="{num(chart.x(1.0) + 8)}" y="{y}">aliased: no estimate</text>'
+            )
             continue
         odds = row["odds_ratio"]
         low, high = row.get("odds_ratio_low"), row.get("odds_ratio_high")
@@ -65,11 +78,15 @@ def forest_plot(coefficients: pa.Table) -> str | None:
             chart.segment((low, middle), (high, middle), "interval")
         least = min(odds, low) if has_interval else odds
         most = max(odds, high) if has_interval else odds
-        for beyond, limit, mark in ((least < chart.x.low, chart.x.low, "\u25c0"),
-                                    (most > chart.x.high, chart.x.high, "\u25b6")):
+        for beyond, limit, mark in (
+            (least < chart.x.low, chart.x.low, "\u25c0"),
+            (most > chart.x.high, chart.x.high, "\u25b6"),
+        ):
             if beyond:
-                chart.raw(f'<text class="cut-off" x="{num(chart.x(limit))}" y="{y}" text-anchor="middle">'
-                          f"{mark}<title>cut off: the value lies beyond the axis</title></text>")
+                chart.raw(
+                    f'<text class="cut-off" x="{num(chart.x(limit))}" y="{y}" text-anchor="middle">'
+                    f"{mark}<title>cut off: the value lies beyond the axis</title></text>"
+                )
         tip = f"{row['term']}: odds ratio {odds:.4g}"
         tip += f" [{low:.4g}, {high:.4g}]" if has_interval else " (penalised: no interval)"
         chart.point(odds, middle, "estimate" if has_interval else "estimate penalised", tip, radius=4.5)
@@ -79,20 +96,28 @@ def forest_plot(coefficients: pa.Table) -> str | None:
 def roc_plot(curve: pa.Table, auc: float | None) -> str:
     """True against false positive rate over the thresholds, with the chance diagonal."""
     table = curve.to_pydict()
-    points = [(f, t) for f, t in zip(table["false_positive_rate"], table["true_positive_rate"])
-              if f is not None and t is not None]
+    points = [
+        (f, t)
+        for f, t in zip(table["false_positive_rate"], table["true_positive_rate"])
+        if f is not None and t is not None
+    ]
     title = "ROC curve" + (f" (AUC {auc:.3f})" if auc is not None else "")
-    chart = Chart.make((0, 1), (0, 1), title, "false positive rate (1 - specificity)",
-                       "true positive rate (recall)", "roc")
+    chart = Chart.make(
+        (0, 1), (0, 1), title, "false positive rate (1 - specificity)", "true positive rate (recall)", "roc"
+    )
     chart.segment((0, 0), (1, 1), "chance")
     if len(points) < 2:
-        chart.raw(f'<text class="aliased-note" x="{num(chart.x(0.5))}" y="{num(chart.y(0.5))}" '
-                  'text-anchor="middle">undefined: the rows hold only one class</text>')
+        chart.raw(
+            f'<text class="aliased-note" x="{num(chart.x(0.5))}" y="{num(chart.y(0.5))}" '
+            'text-anchor="middle">undefined: the rows hold only one class</text>'
+        )
     else:
         chart.polyline(points, "curve")
     if auc is not None:
-        chart.raw(f'<text class="badge" x="{num(chart.x(0.96))}" y="{num(chart.y(0.06))}" text-anchor="end">'
-                  f"AUC {auc:.3f}</text>")
+        chart.raw(
+            f'<text class="badge" x="{num(chart.x(0.96))}" y="{num(chart.y(0.06))}" text-anchor="end">'
+            f"AUC {auc:.3f}</text>"
+        )
     return chart.svg()
 
 
@@ -101,28 +126,54 @@ def calibration_plot(calibration: pa.Table) -> str:
     table = calibration.to_pylist()
     top = max([r["wilson_high"] for r in table] + [r["mean_predicted"] for r in table] + [0.1])
     top = min(1.0, math.ceil(top * 10 + 1e-9) / 10)
-    chart = Chart.make((0, top), (0, top), "Calibration by score group", "mean predicted probability",
-                       "observed event rate", "calibration")
+    chart = Chart.make(
+        (0, top),
+        (0, top),
+        "Calibration by score group",
+        "mean predicted probability",
+        "observed event rate",
+        "calibration",
+    )
     chart.segment((0, 0), (top, top), "chance")
     chart.polyline([(r["mean_predicted"], r["observed_rate"]) for r in table], "curve")
     for row in table:
-        chart.segment((row["mean_predicted"], row["wilson_low"]), (row["mean_predicted"], row["wilson_high"]),
-                      "interval")
-        chart.point(row["mean_predicted"], row["observed_rate"], "estimate",
-                    f"group {row['group']}: {row['rows']} rows, predicted {row['mean_predicted']:.3f}, "
-                    f"observed {row['observed_rate']:.3f} [{row['wilson_low']:.3f}, {row['wilson_high']:.3f}]")
+        chart.segment(
+            (row["mean_predicted"], row["wilson_low"]),
+            (row["mean_predicted"], row["wilson_high"]),
+            "interval",
+        )
+        chart.point(
+            row["mean_predicted"],
+            row["observed_rate"],
+            "estimate",
+            f"group {row['group']}: {row['rows']} rows, predicted {row['mean_predicted']:.3f}, "
+            f"observed {row['observed_rate']:.3f} [{row['wilson_low']:.3f}, {row['wilson_high']:.3f}]",
+        )
     return chart.svg()
 
 
 def gains_plot(gains: pa.Table) -> str:
     """Cumulative share of events found against share of rows taken, highest scores first."""
     table = gains.to_pylist()
-    chart = Chart.make((0, 1), (0, 1), "Cumulative gains", "share of rows, highest scores first",
-                       "share of all events found", "gains")
+    chart = Chart.make(
+        (0, 1),
+        (0, 1),
+        "Cumulative gains",
+        "share of rows, highest scores first",
+        "share of all events found",
+        "gains",
+    )
     for row, before in zip(table, [0.0] + [r["share_of_rows"] for r in table]):
         if row["lift"] is not None:
-            chart.bar(before, row["share_of_rows"], row["share_of_positives"] or 0.0, "step",
-                      f"group {row['group']}: lift {row['lift']:.2f}, cumulative lift {row['cumulative_lift']:.2f}")
+            chart.bar(
+                before,
+                row["share_of_rows"],
+                row["share_of_positives"] or 0.0,
+                "step",
+                f"group {row['group']}: lift {row['lift']:.2f}, cumulative lift {row['cumulative_lift']:.2f}",
+            )
     chart.segment((0, 0), (1, 1), "chance")
-    chart.polyline([(0.0, 0.0)] + [(r["share_of_rows"], r["share_of_positives"] or 0.0) for r in table], "curve")
+    chart.polyline(
+        [(0.0, 0.0)] + [(r["share_of_rows"], r["share_of_positives"] or 0.0) for r in table], "curve"
+    )
     return chart.svg()

@@ -53,8 +53,12 @@ class Axis:
                     values.append(factor * 10.0**power)
             inside = [v for v in values if self.low <= v <= self.high]
             if len(inside) > 9:
-                inside = [v for v in inside if math.isclose(math.log10(v) % 1, 0, abs_tol=1e-9)
-                          or math.isclose(math.log10(v) % 1, 1, abs_tol=1e-9)]
+                inside = [
+                    v
+                    for v in inside
+                    if math.isclose(math.log10(v) % 1, 0, abs_tol=1e-9)
+                    or math.isclose(math.log10(v) % 1, 1, abs_tol=1e-9)
+                ]
             return inside
         span = self.high - self.low
         raw = span / 5
@@ -88,9 +92,19 @@ class Chart:
     parts: list[str] = field(default_factory=list)
 
     @classmethod
-    def make(cls, x_range: tuple[float, float], y_range: tuple[float, float], title: str, x_label: str,
-             y_label: str, css_class: str, x_log: bool = False, height: float = HEIGHT,
-             left: float = MARGIN_LEFT, width: float = WIDTH) -> "Chart":
+    def make(
+        cls,
+        x_range: tuple[float, float],
+        y_range: tuple[float, float],
+        title: str,
+        x_label: str,
+        y_label: str,
+        css_class: str,
+        x_log: bool = False,
+        height: float = HEIGHT,
+        left: float = MARGIN_LEFT,
+        width: float = WIDTH,
+    ) -> Chart:
         x = Axis(x_range[0], x_range[1], left, width - MARGIN_RIGHT, log=x_log)
         y = Axis(y_range[0], y_range[1], height - MARGIN_BOTTOM, MARGIN_TOP)
         return cls(x, y, title, x_label, y_label, css_class, height, width)
@@ -127,21 +141,31 @@ class Chart:
         for value in self.x.ticks():
             px = num(self.x(value))
             out.append(f'<line class="grid" x1="{px}" y1="{num(top)}" x2="{px}" y2="{num(bottom)}"/>')
-            out.append(f'<text class="tick" x="{px}" y="{num(bottom + 15)}" text-anchor="middle">'
-                       f"{escape(tick_label(value))}</text>")
+            out.append(
+                f'<text class="tick" x="{px}" y="{num(bottom + 15)}" text-anchor="middle">'
+                f"{escape(tick_label(value))}</text>"
+            )
         if y_ticks:
             for value in self.y.ticks():
                 py = num(self.y(value))
                 out.append(f'<line class="grid" x1="{num(left)}" y1="{py}" x2="{num(right)}" y2="{py}"/>')
-                out.append(f'<text class="tick" x="{num(left - 6)}" y="{num(self.y(value) + 4)}" '
-                           f'text-anchor="end">{escape(tick_label(value))}</text>')
-        out.append(f'<rect class="frame" x="{num(left)}" y="{num(top)}" width="{num(right - left)}" '
-                   f'height="{num(bottom - top)}"/>')
-        out.append(f'<text class="axis-label" x="{num((left + right) / 2)}" y="{num(self.height - 8)}" '
-                   f'text-anchor="middle">{escape(self.x_label)}</text>')
+                out.append(
+                    f'<text class="tick" x="{num(left - 6)}" y="{num(self.y(value) + 4)}" '
+                    f'text-anchor="end">{escape(tick_label(value))}</text>'
+                )
+        out.append(
+            f'<rect class="frame" x="{num(left)}" y="{num(top)}" width="{num(right - left)}" '
+            f'height="{num(bottom - top)}"/>'
+        )
+        out.append(
+            f'<text class="axis-label" x="{num((left + right) / 2)}" y="{num(self.height - 8)}" '
+            f'text-anchor="middle">{escape(self.x_label)}</text>'
+        )
         if self.y_label:
-            out.append(f'<text class="axis-label" transform="translate(14 {num((top + bottom) / 2)}) rotate(-90)" '
-                       f'text-anchor="middle">{escape(self.y_label)}</text>')
+            out.append(
+                f'<text class="axis-label" transform="translate(14 {num((top + bottom) / 2)}) rotate(-90)" '
+                f'text-anchor="middle">{escape(self.y_label)}</text>'
+            )
         return out
 
     def svg(self, y_ticks: bool = True) -> str:

@@ -23,9 +23,9 @@ from typing import Any
 
 from sqlglot import exp
 
-from dbfit.expressions import builders as sb
 from dbfit.design.layout import Design, DesignColumn, Factor
 from dbfit.errors import DbfitError
+from dbfit.expressions import builders as sb
 from dbfit.expressions import dialects
 from dbfit.expressions.dialects import Dialect
 from dbfit.expressions.dialects.duckdb import DUCKDB
@@ -66,8 +66,9 @@ def check_options(dialect: Dialect, unseen: str) -> None:
         )
 
 
-def linear_predictor(design: Design, coefficient: Coefficient, unseen: str,
-                     dialect: Dialect) -> exp.Expression:
+def linear_predictor(
+    design: Design, coefficient: Coefficient, unseen: str, dialect: Dialect
+) -> exp.Expression:
     """The guarded linear predictor: NULL for NULL inputs, the unseen policy, else the CAST sum."""
     has_intercept = 1 if design.intercept else 0
     pieces: list[exp.Expression] = []
@@ -76,7 +77,9 @@ def linear_predictor(design: Design, coefficient: Coefficient, unseen: str,
     for term_columns in _columns_by_term(design):
         kept = [(j, c) for j, c in term_columns if coefficient(j + has_intercept) is not None]
         if kept:
-            pieces.append(_term_contribution(design, [(coefficient(j + has_intercept), c) for j, c in kept], dialect))
+            pieces.append(
+                _term_contribution(design, [(coefficient(j + has_intercept), c) for j, c in kept], dialect)
+            )
     if design.offset is not None:
         pieces.append(sb.as_double(design.offset.copy()))
     total = sb.as_double(sb.add(*pieces)) if pieces else double(0.0)
@@ -97,9 +100,13 @@ def standard_error(design: Design, covariance: Any, unseen: str, dialect: Dialec
     for a, (k, x_k) in enumerate(rows):
         pieces.append(sb.mul(double(float(covariance[k, k])), sb.paren(x_k.copy()), sb.paren(x_k.copy())))
         for l, x_l in rows[a + 1 :]:
-            pieces.append(sb.mul(double(2.0 * float(covariance[k, l])), sb.paren(x_k.copy()), sb.paren(x_l.copy())))
+            pieces.append(
+                sb.mul(double(2.0 * float(covariance[k, l])), sb.paren(x_k.copy()), sb.paren(x_l.copy()))
+            )
     variance = sb.add(*pieces) if pieces else double(0.0)
-    return _guarded(design, exp.Sqrt(this=exp.Abs(this=variance)), "null" if unseen == "error" else unseen, dialect)
+    return _guarded(
+        design, exp.Sqrt(this=exp.Abs(this=variance)), "null" if unseen == "error" else unseen, dialect
+    )
 
 
 def probability(eta: exp.Expression, exp_limit: float) -> exp.Expression:
@@ -107,16 +114,24 @@ def probability(eta: exp.Expression, exp_limit: float) -> exp.Expression:
     magnitude, limit = exp.Abs(this=eta.copy()), sb.number(exp_limit)
     e = exp.Case(
         ifs=[
-            exp.If(this=exp.LT(this=magnitude, expression=limit),
-                   true=exp.Exp(this=exp.Neg(this=magnitude.copy()))),
+            exp.If(
+                this=exp.LT(this=magnitude, expression=limit),
+                true=exp.Exp(this=exp.Neg(this=magnitude.copy())),
+            ),
             exp.If(this=exp.GTE(this=magnitude.copy(), expression=limit.copy()), true=double(0.0)),
         ]
     )
     one = double(1.0)
     return exp.Case(
         ifs=[
-            exp.If(this=exp.GTE(this=eta.copy(), expression=sb.number(0)), true=sb.div(one, sb.paren(sb.add(one.copy(), e)))),
-            exp.If(this=exp.LT(this=eta.copy(), expression=sb.number(0)), true=sb.div(e.copy(), sb.paren(sb.add(one.copy(), e.copy())))),
+            exp.If(
+                this=exp.GTE(this=eta.copy(), expression=sb.number(0)),
+                true=sb.div(one, sb.paren(sb.add(one.copy(), e))),
+            ),
+            exp.If(
+                this=exp.LT(this=eta.copy(), expression=sb.number(0)),
+                true=sb.div(e.copy(), sb.paren(sb.add(one.copy(), e.copy()))),
+            ),
         ]
     )
 
@@ -142,7 +157,10 @@ def scoring_query(
     design = model.design
     relation = _aliased(relation)
     eta = linear_predictor(design, coefficient or constant_coefficients(model), unseen, dialect)
-    inner = exp.select(exp.Column(this=exp.Star(), table=exp.to_identifier(SOURCE_ALIAS)), exp.alias_(eta, "linear_predictor", quoted=True))
+    inner = exp.select(
+        exp.Column(this=exp.Star(), table=exp.to_identifier(SOURCE_ALIAS)),
+        exp.alias_(eta, "linear_predictor", quoted=True),
+    )
     if with_standard_error:
         se = standard_error(design, model.covariance, unseen, dialect)
         inner = inner.select(exp.alias_(se, "linear_predictor_se", quoted=True))
@@ -163,18 +181,32 @@ def scoring_query(
         spread = sb.mul(z, sb.column("linear_predictor_se"))
         low = probability(sb.paren(sb.sub(lp.copy(), spread)), dialect.exp_limit)
         high = probability(sb.paren(sb.add(lp.copy(), spread.copy())), dialect.exp_limit)
-        outer = outer.select(exp.alias_(low, "probability_low", quoted=True),
-                             exp.alias_(high, "probability_high", quoted=True))
+        outer = outer.select(
+            exp.alias_(low, "probability_low", quoted=True), exp.alias_(high, "probability_high", quoted=True)
+        )
     return outer.from_(inner.subquery(SCORED_ALIAS))
 
 
-def scoring_sql(model: Any, dialect: str = "duckdb", *, source: str | None = None, unseen: str = "null",
-                standard_error: bool = False, level: float = 0.95) -> str:
+def scoring_sql(
+    model: Any,
+    dialect: str = "duckdb",
+    *,
+    source: str | None = None,
+    unseen: str = "null",
+    standard_error: bool = False,
+    level: float = 0.95,
+) -> str:
     """The scoring SELECT as text in the dialect named ``dialect`` (see :func:`dbfit.scoring_sql`)."""
     target = dialects.dialect(dialect)
     check_options(target, unseen)
-    query = scoring_query(model, source_relation(model.source_or_own(source)), unseen=unseen,
-                          with_standard_error=standard_error, level=level, dialect=target)
+    query = scoring_query(
+        model,
+        source_relation(model.source_or_own(source)),
+        unseen=unseen,
+        with_standard_error=standard_error,
+        level=level,
+        dialect=target,
+    )
     return query.sql(dialect=target.name)
 
 
@@ -247,8 +279,9 @@ def _indicator_condition(design: Design, column: DesignColumn, dialect: Dialect)
     return exp.and_(*checks) if len(checks) > 1 else checks[0]
 
 
-def _term_contribution(design: Design, weighted: list[tuple[exp.Expression, DesignColumn]],
-                       dialect: Dialect) -> exp.Expression:
+def _term_contribution(
+    design: Design, weighted: list[tuple[exp.Expression, DesignColumn]], dialect: Dialect
+) -> exp.Expression:
     """b * product for a numeric term; product * CASE over the level combinations otherwise."""
     first = weighted[0][1]
     product = _numeric_product(design, first)
@@ -263,8 +296,10 @@ def _term_contribution(design: Design, weighted: list[tuple[exp.Expression, Desi
             default=double(0.0),
         )
     else:
-        case = exp.Case(ifs=[exp.If(this=_indicator_condition(design, c, dialect), true=b) for b, c in weighted],
-                        default=double(0.0))
+        case = exp.Case(
+            ifs=[exp.If(this=_indicator_condition(design, c, dialect), true=b) for b, c in weighted],
+            default=double(0.0),
+        )
     return sb.mul(product, case) if product is not None else case
 
 
@@ -273,16 +308,23 @@ def _column_value(design: Design, column: DesignColumn, dialect: Dialect) -> exp
     product = _numeric_product(design, column)
     if not column.indicators:
         return product if product is not None else double(1.0)
-    indicator = exp.Case(ifs=[exp.If(this=_indicator_condition(design, column, dialect), true=double(1.0))],
-                         default=double(0.0))
+    indicator = exp.Case(
+        ifs=[exp.If(this=_indicator_condition(design, column, dialect), true=double(1.0))],
+        default=double(0.0),
+    )
     return sb.mul(product, indicator) if product is not None else indicator
 
 
 def _unseen_message(factor: Factor) -> exp.Expression:
     """The unseen-level error text naming the row's value and the factor: 'Airport' of depot was not ..."""
     value = exp.Cast(this=factor.expression.copy(), to=exp.DataType.build("VARCHAR"))
-    return exp.Concat(expressions=[exp.Literal.string("dbfit: '"), value,
-                                   exp.Literal.string(f"' of {factor.text} was not seen in training")])
+    return exp.Concat(
+        expressions=[
+            exp.Literal.string("dbfit: '"),
+            value,
+            exp.Literal.string(f"' of {factor.text} was not seen in training"),
+        ]
+    )
 
 
 def _guarded(design: Design, body: exp.Expression, unseen: str, dialect: Dialect) -> exp.Expression:
@@ -297,7 +339,10 @@ def _guarded(design: Design, body: exp.Expression, unseen: str, dialect: Dialect
                 continue
             levels = [_level(factor, v, dialect) for v in factor.levels]
             unknown = exp.Not(this=exp.In(this=_compared(factor), expressions=levels))
-            outcome = exp.Null() if unseen == "null" else exp.Anonymous(
-                this=dialect.raise_function, expressions=[_unseen_message(factor)])
+            outcome = (
+                exp.Null()
+                if unseen == "null"
+                else exp.Anonymous(this=dialect.raise_function, expressions=[_unseen_message(factor)])
+            )
             ifs.append(exp.If(this=unknown, true=outcome))
     return exp.Case(ifs=ifs, default=body) if ifs else body

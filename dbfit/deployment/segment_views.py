@@ -13,36 +13,45 @@ from typing import Any
 import duckdb
 from sqlglot import exp
 
-from dbfit.expressions import builders as sb
+from dbfit.deployment.scoring import Coefficient, scoring_query
 from dbfit.deployment.views import NOT_GIVEN, check_score_columns, create_view, source_and_view
 from dbfit.errors import StoreError
+from dbfit.expressions import builders as sb
 from dbfit.expressions.formula import parse_expression
-from dbfit.model.fitted import Model
 from dbfit.expressions.names import model_name, relation_name
-from dbfit.deployment.scoring import Coefficient, scoring_query
-from dbfit.fitting.segments import segment_literal
-from dbfit.model.segmented import SegmentedFit
 from dbfit.expressions.source import source_relation
+from dbfit.fitting.segments import segment_literal
+from dbfit.model.fitted import Model
+from dbfit.model.segmented import SegmentedFit
 from dbfit.store.model_store import load_model, names_starting_with
 
 SEGMENT_ALIAS = "dbfit_segment_estimates"
 KEY = "dbfit_segment"
 
 
-def segment_scoring_query(models: dict[Any, Model], by: exp.Expression, source: str, *,
-                          unseen: str = "null") -> exp.Select:
+def segment_scoring_query(
+    models: dict[Any, Model], by: exp.Expression, source: str, *, unseen: str = "null"
+) -> exp.Select:
     """Every column of ``source`` plus ``linear_predictor`` and ``probability`` from each row's segment model."""
     if not models:
         raise StoreError("there is no segment model to score with")
     first = next(iter(models.values()))
     for value, model in models.items():
         if model.labels != first.labels or model.formula != first.formula:
-            raise StoreError(f"segment {value!r} has terms {model.labels} ({model.formula}), not those of the other "
-                             f"segments {first.labels} ({first.formula}): they are not one by= fit")
+            raise StoreError(
+                f"segment {value!r} has terms {model.labels} ({model.formula}), not those of the other "
+                f"segments {first.labels} ({first.formula}): they are not one by= fit"
+            )
     estimates = _estimates_relation(models, len(first.labels))
     on = exp.EQ(this=exp.Paren(this=by.copy()), expression=exp.column(KEY, table=SEGMENT_ALIAS, quoted=True))
-    return scoring_query(first, source_relation(source), coefficient=_joined_coefficients(), joined=estimates,
-                         join_on=on, unseen=unseen)
+    return scoring_query(
+        first,
+        source_relation(source),
+        coefficient=_joined_coefficients(),
+        joined=estimates,
+        join_on=on,
+        unseen=unseen,
+    )
 
 
 def stored_segments(con: duckdb.DuckDBPyConnection, name: str) -> tuple[dict[Any, Model], exp.Expression]:
@@ -57,15 +66,25 @@ def stored_segments(con: duckdb.DuckDBPyConnection, name: str) -> tuple[dict[Any
             models[segment["value"]] = model
             by_texts.add(segment["by"])
     if not models:
-        raise StoreError(f"no stored segment models named '{name}.<segment>': fit them with by= and name='{name}'")
+        raise StoreError(
+            f"no stored segment models named '{name}.<segment>': fit them with by= and name='{name}'"
+        )
     if len(by_texts) > 1:
-        raise StoreError(f"the models '{name}.<segment>' come from fits by different expressions: {sorted(by_texts)}")
+        raise StoreError(
+            f"the models '{name}.<segment>' come from fits by different expressions: {sorted(by_texts)}"
+        )
     return models, parse_expression(by_texts.pop(), "by expression")
 
 
-def publish_segments(con: duckdb.DuckDBPyConnection, fitted: str | SegmentedFit, *given: str | None,
-                     source: str | None = NOT_GIVEN, view: str = NOT_GIVEN, unseen: str = "null",
-                     replace: bool = False) -> dict[str, Any]:
+def publish_segments(
+    con: duckdb.DuckDBPyConnection,
+    fitted: str | SegmentedFit,
+    *given: str | None,
+    source: str | None = NOT_GIVEN,
+    view: str = NOT_GIVEN,
+    unseen: str = "null",
+    replace: bool = False,
+) -> dict[str, Any]:
     """``publish_segments(con, fitted, source, view)``: create ``view`` (or replace the one dbfit published
     under that name) scoring each row of ``source`` with its segment's model, estimates pinned. Another view
     of that name is refused unless ``replace=True``.
@@ -86,10 +105,19 @@ def publish_segments(con: duckdb.DuckDBPyConnection, fitted: str | SegmentedFit,
             raise StoreError("publishing stored segment models needs the source to score")
         models, by = stored_segments(con, fitted)
     check_score_columns(con, source_relation(source), False)
-    statement = create_view(con, target, segment_scoring_query(models, by, source, unseen=unseen),
-                            {"model": fitted if isinstance(fitted, str) else None, "version": None, "mode": "pinned"},
-                            replace=replace)
-    return {"view": target.sql("duckdb"), "segments": len(models), "mode": "pinned", "sql": statement.sql("duckdb")}
+    statement = create_view(
+        con,
+        target,
+        segment_scoring_query(models, by, source, unseen=unseen),
+        {"model": fitted if isinstance(fitted, str) else None, "version": None, "mode": "pinned"},
+        replace=replace,
+    )
+    return {
+        "view": target.sql("duckdb"),
+        "segments": len(models),
+        "mode": "pinned",
+        "sql": statement.sql("duckdb"),
+    }
 
 
 def _estimates_relation(models: dict[Any, Model], size: int) -> exp.Expression:
@@ -100,17 +128,25 @@ def _estimates_relation(models: dict[Any, Model], size: int) -> exp.Expression:
         if index == 0:
             numbers = [sb.as_double(n) for n in numbers]
         rows.append(exp.Tuple(expressions=[segment_literal(value), *numbers]))
-    columns = [exp.to_identifier(KEY, quoted=True)] + [exp.to_identifier(f"dbfit_c{k}", quoted=True) for k in range(size)]
-    return exp.Values(expressions=rows, alias=exp.TableAlias(this=exp.to_identifier(SEGMENT_ALIAS), columns=columns))
+    columns = [exp.to_identifier(KEY, quoted=True)] + [
+        exp.to_identifier(f"dbfit_c{k}", quoted=True) for k in range(size)
+    ]
+    return exp.Values(
+        expressions=rows, alias=exp.TableAlias(this=exp.to_identifier(SEGMENT_ALIAS), columns=columns)
+    )
 
 
 def _joined_coefficients() -> Coefficient:
     """The joined estimate of a parameter: 0 where it is aliased in that segment, NULL where no segment matched."""
 
     def coefficient(parameter: int) -> exp.Expression:
-        matched = exp.Not(this=exp.Is(this=exp.column(KEY, table=SEGMENT_ALIAS, quoted=True), expression=exp.Null()))
-        value = exp.Coalesce(this=exp.column(f"dbfit_c{parameter}", table=SEGMENT_ALIAS, quoted=True),
-                             expressions=[sb.as_double(sb.number(0.0))])
+        matched = exp.Not(
+            this=exp.Is(this=exp.column(KEY, table=SEGMENT_ALIAS, quoted=True), expression=exp.Null())
+        )
+        value = exp.Coalesce(
+            this=exp.column(f"dbfit_c{parameter}", table=SEGMENT_ALIAS, quoted=True),
+            expressions=[sb.as_double(sb.number(0.0))],
+        )
         return exp.Case(ifs=[exp.If(this=matched, true=value)])
 
     return coefficient

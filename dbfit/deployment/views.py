@@ -13,13 +13,13 @@ from typing import Any
 import duckdb
 from sqlglot import exp
 
-from dbfit.expressions import builders as sb
+from dbfit.deployment.scoring import INTERVAL_COLUMNS, SCORE_COLUMNS, Coefficient, scoring_query
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import DbfitError, StoreError
-from dbfit.model.fitted import Model
+from dbfit.expressions import builders as sb
 from dbfit.expressions.names import model_name, model_version, relation_name
-from dbfit.deployment.scoring import INTERVAL_COLUMNS, SCORE_COLUMNS, Coefficient, scoring_query
 from dbfit.expressions.source import source_relation
+from dbfit.model.fitted import Model
 from dbfit.store.model_store import SCHEMA, is_published_view, load_model, publish_view
 
 LIVE_ALIAS = "dbfit_coefficients"
@@ -30,7 +30,9 @@ def resolve_model(con: duckdb.DuckDBPyConnection, model: str | Model, version: i
     version = model_version(version)
     if isinstance(model, Model):
         if version is not None and version != model.version:
-            raise StoreError(f"version={version} was given with a Model object (version {model.version}); pass the name")
+            raise StoreError(
+                f"version={version} was given with a Model object (version {model.version}); pass the name"
+            )
         return model
     return load_model(con, model, version)
 
@@ -53,10 +55,19 @@ def build_scoring(
     coefficient, joined = None, None
     if live:
         if model.name is None:
-            raise StoreError("a live view reads the store: save the model first (dbfit.save(con, model, name)) or pass its name")
+            raise StoreError(
+                "a live view reads the store: save the model first (dbfit.save(con, model, name)) or pass its name"
+            )
         coefficient, joined = _live_coefficients(model)
-    return scoring_query(model, relation, coefficient=coefficient, joined=joined, unseen=unseen,
-                         with_standard_error=standard_error, level=level)
+    return scoring_query(
+        model,
+        relation,
+        coefficient=coefficient,
+        joined=joined,
+        unseen=unseen,
+        with_standard_error=standard_error,
+        level=level,
+    )
 
 
 def check_scoring_options(*, live: Any = False, standard_error: Any = False, level: Any = 0.95) -> None:
@@ -68,13 +79,17 @@ def check_scoring_options(*, live: Any = False, standard_error: Any = False, lev
         raise DbfitError(f"level must be a number strictly between 0 and 1, e.g. 0.95 (got {level!r})")
 
 
-def check_score_columns(con: duckdb.DuckDBPyConnection, relation: exp.Expression, standard_error: bool) -> None:
+def check_score_columns(
+    con: duckdb.DuckDBPyConnection, relation: exp.Expression, standard_error: bool
+) -> None:
     """Refuse a source that already has a column the scoring query adds."""
     taken = SCORE_COLUMNS + (INTERVAL_COLUMNS if standard_error else ())
     names = [name for name, _ in DuckDBEngine(con).describe(exp.select("*").from_(relation.copy()))]
     clashes = [name for name in names if name.lower() in taken]
     if clashes:
-        raise DbfitError(f"the source already has column(s) {', '.join(clashes)}, which scoring adds; rename them in a SELECT")
+        raise DbfitError(
+            f"the source already has column(s) {', '.join(clashes)}, which scoring adds; rename them in a SELECT"
+        )
 
 
 class _NotGiven:
@@ -112,15 +127,23 @@ def publish(
     target = relation_name(view, "view name")
     resolved = resolve_model(con, model, version)
     query = build_scoring(con, resolved, source, live=live, unseen=unseen)
-    record = {"model": resolved.name, "version": None if live else resolved.version,
-              "mode": "live" if live else "pinned"}
+    record = {
+        "model": resolved.name,
+        "version": None if live else resolved.version,
+        "mode": "live" if live else "pinned",
+    }
     statement = create_view(con, target, query, record, replace=replace)
-    return {"view": target.sql("duckdb"), **record, "rows": resolved.rows_note("all", source),
-            "sql": statement.sql("duckdb")}
+    return {
+        "view": target.sql("duckdb"),
+        **record,
+        "rows": resolved.rows_note("all", source),
+        "sql": statement.sql("duckdb"),
+    }
 
 
-def source_and_view(con: duckdb.DuckDBPyConnection, call: str, given: tuple[Any, ...], source: Any,
-                    view: Any) -> tuple[str | None, str]:
+def source_and_view(
+    con: duckdb.DuckDBPyConnection, call: str, given: tuple[Any, ...], source: Any, view: Any
+) -> tuple[str | None, str]:
     """The source and view of a publishing call, in today's order (source, view) or in the earlier one.
 
     ``source=`` and ``view=`` by keyword always mean what they say. One positional without ``view=`` is the
@@ -142,8 +165,12 @@ def source_and_view(con: duckdb.DuckDBPyConnection, call: str, given: tuple[Any,
     if view is NOT_GIVEN:
         raise DbfitError(f"{call} needs the name of the view to create: {call}(con, model, source, view)")
     if earlier:
-        warnings.warn(f"{call}(con, model, view, source) is deprecated and goes in the next release; "
-                      f"write {call}(con, model, source, view)", DeprecationWarning, stacklevel=3)
+        warnings.warn(
+            f"{call}(con, model, view, source) is deprecated and goes in the next release; "
+            f"write {call}(con, model, source, view)",
+            DeprecationWarning,
+            stacklevel=3,
+        )
     return (None if source is NOT_GIVEN else source), view
 
 
@@ -160,8 +187,14 @@ def _may_become_view(con: duckdb.DuckDBPyConnection, text: Any) -> bool:
     return is_published_view(con, target)
 
 
-def create_view(con: duckdb.DuckDBPyConnection, target: exp.Table, query: exp.Select, record: dict[str, Any], *,
-                replace: bool = False) -> exp.Create:
+def create_view(
+    con: duckdb.DuckDBPyConnection,
+    target: exp.Table,
+    query: exp.Select,
+    record: dict[str, Any],
+    *,
+    replace: bool = False,
+) -> exp.Create:
     """CREATE OR REPLACE VIEW ``target`` AS ``query`` on the store's own connection, recorded as dbfit's
     (see :func:`dbfit.store.model_store.publish_view`); a failure or a view dbfit did not publish is a StoreError naming it."""
     return publish_view(con, target, query, record, replace=replace)
@@ -170,31 +203,55 @@ def create_view(con: duckdb.DuckDBPyConnection, target: exp.Table, query: exp.Se
 def _live_coefficients(model: Model) -> tuple[Coefficient, exp.Expression]:
     """A one-row subquery with the current version's stored estimate of each label, and references to it."""
     name = exp.Literal.string(model_name(model.name))
-    store = lambda table: exp.Table(this=exp.to_identifier(table, quoted=True), db=exp.to_identifier(SCHEMA, quoted=True))  # noqa: E731
-    newest = exp.select(exp.Max(this=sb.column("version"))).from_(store("versions")).where(
-        exp.EQ(this=sb.column("model"), expression=name.copy())
+    store = lambda table: exp.Table(
+        this=exp.to_identifier(table, quoted=True), db=exp.to_identifier(SCHEMA, quoted=True)
     )
-    promoted = exp.select(sb.column("version")).from_(store("current_versions")).where(
-        exp.EQ(this=sb.column("model"), expression=name.copy())
+    newest = (
+        exp.select(exp.Max(this=sb.column("version")))
+        .from_(store("versions"))
+        .where(exp.EQ(this=sb.column("model"), expression=name.copy()))
+    )
+    promoted = (
+        exp.select(sb.column("version"))
+        .from_(store("current_versions"))
+        .where(exp.EQ(this=sb.column("model"), expression=name.copy()))
     )
     latest = exp.select(exp.Coalesce(this=promoted.subquery(), expressions=[newest.subquery()]))
     picks = [
         exp.alias_(
-            exp.Max(this=exp.Case(ifs=[exp.If(this=exp.EQ(this=sb.column("term"), expression=exp.Literal.string(label)),
-                                              true=sb.column("estimate"))])),
-            f"c{k}", quoted=True,
+            exp.Max(
+                this=exp.Case(
+                    ifs=[
+                        exp.If(
+                            this=exp.EQ(this=sb.column("term"), expression=exp.Literal.string(label)),
+                            true=sb.column("estimate"),
+                        )
+                    ]
+                )
+            ),
+            f"c{k}",
+            quoted=True,
         )
         for k, label in enumerate(model.labels)
     ]
     rows = exp.alias_(exp.Count(this=exp.Star()), "terms_found", quoted=True)
-    subquery = exp.select(*picks, rows).from_(store("coefficients")).where(
-        exp.and_(exp.EQ(this=sb.column("model"), expression=name.copy()),
-                 exp.EQ(this=sb.column("version"), expression=latest.subquery()))
-    ).subquery(LIVE_ALIAS)
+    subquery = (
+        exp.select(*picks, rows)
+        .from_(store("coefficients"))
+        .where(
+            exp.and_(
+                exp.EQ(this=sb.column("model"), expression=name.copy()),
+                exp.EQ(this=sb.column("version"), expression=latest.subquery()),
+            )
+        )
+        .subquery(LIVE_ALIAS)
+    )
 
     def coefficient(parameter: int) -> exp.Expression:
         found = exp.column("terms_found", table=LIVE_ALIAS, quoted=True)
-        value = exp.Coalesce(this=exp.column(f"c{parameter}", table=LIVE_ALIAS, quoted=True), expressions=[sb.number(0.0)])
+        value = exp.Coalesce(
+            this=exp.column(f"c{parameter}", table=LIVE_ALIAS, quoted=True), expressions=[sb.number(0.0)]
+        )
         return exp.Case(ifs=[exp.If(this=exp.GT(this=found, expression=sb.number(0)), true=value)])
 
     return coefficient, subquery

@@ -18,10 +18,10 @@ from typing import Any
 
 from sqlglot import exp
 
-from dbfit.expressions import builders as sb
-from dbfit.expressions.columns import resolve_columns
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError, FormulaError
+from dbfit.expressions import builders as sb
+from dbfit.expressions.columns import resolve_columns
 from dbfit.expressions.formula import Formula, parse_expression
 
 NUMERIC_TYPE = re.compile(
@@ -86,7 +86,9 @@ class Design:
     positive: str | None
     segment: exp.Expression | None = None
     segment_text: str | None = None
-    named_target: exp.Expression | None = None  # with positive=: the target as given, which must be two-valued
+    named_target: exp.Expression | None = (
+        None  # with positive=: the target as given, which must be two-valued
+    )
     # "marginal": indicators follow the marginality rule (marginal_codings); "reference": every categorical
     # against its reference level (documents written before the rule, which carry no coding key)
     coding: str = "marginal"
@@ -112,7 +114,12 @@ class Design:
     def used_expressions(self) -> list[tuple[exp.Expression, str]]:
         """Every expression a row needs, with its alias: target, factors, then the options in use."""
         used = [(self.target, TARGET)] + [(f.expression, f.alias) for f in self.factors]
-        options = ((self.weights, WEIGHT), (self.offset, OFFSET), (self.trials, TRIALS), (self.segment, SEGMENT))
+        options = (
+            (self.weights, WEIGHT),
+            (self.offset, OFFSET),
+            (self.trials, TRIALS),
+            (self.segment, SEGMENT),
+        )
         return used + [(node, name) for node, name in options if node is not None]
 
     def rows_query(self, extra: dict[str, exp.Expression] | None = None) -> exp.Select:
@@ -121,7 +128,9 @@ class Design:
         ``extra`` carries further source expressions (a cluster or split key) by alias, without filtering on them.
         """
         used = self.used_expressions() + [(node, name) for name, node in (extra or {}).items()]
-        return exp.select(*[exp.alias_(node.copy(), name, quoted=True) for node, name in used]).from_(self.relation.copy())
+        return exp.select(*[exp.alias_(node.copy(), name, quoted=True) for node, name in used]).from_(
+            self.relation.copy()
+        )
 
     def complete(self) -> exp.Expression:
         """The condition that a row of :meth:`rows_query` has no NULL in a used expression."""
@@ -138,10 +147,16 @@ class Design:
             value = sb.mul(*[sb.as_double(sb.column(self.factors[i].alias)) for i in column.numeric])
             if column.centre != 0.0:
                 value = sb.sub(sb.paren(value), sb.number(column.centre))
-            parts.append(sb.div(sb.paren(value), sb.number(column.scale)) if column.scale != 1.0 else sb.paren(value))
+            parts.append(
+                sb.div(sb.paren(value), sb.number(column.scale)) if column.scale != 1.0 else sb.paren(value)
+            )
         for index, level in column.indicators:
             factor = self.factors[index]
-            parts.append(sb.truth_as_double(exp.EQ(this=sb.column(factor.alias), expression=factor.level_literal(level))))
+            parts.append(
+                sb.truth_as_double(
+                    exp.EQ(this=sb.column(factor.alias), expression=factor.level_literal(level))
+                )
+            )
         return sb.mul(*parts) if parts else exp.Literal.number(1)
 
     def weight_expression(self) -> exp.Expression:
@@ -236,17 +251,24 @@ def _refuse_categorical_products(engine: DuckDBEngine, design: Design) -> None:
     products = [(f, operands) for f, operands in products if len(operands) > 1]
     if not products:
         return
-    probe = exp.select(*[exp.alias_(operand.copy(), f"dbfit_p{i}_{k}", quoted=True)
-                         for i, (_, operands) in enumerate(products) for k, operand in enumerate(operands)])
+    probe = exp.select(
+        *[
+            exp.alias_(operand.copy(), f"dbfit_p{i}_{k}", quoted=True)
+            for i, (_, operands) in enumerate(products)
+            for k, operand in enumerate(operands)
+        ]
+    )
     types = [sql_type for _, sql_type in engine.describe(probe.from_(design.relation.copy()))]
     at = 0
     for factor, operands in products:
-        kinds = types[at: at + len(operands)]
+        kinds = types[at : at + len(operands)]
         at += len(operands)
         if any(CATEGORICAL_TYPE.match(kind) for kind in kinds):
             texts = [_as_written(operand) for operand in operands]
-            crossing = [":".join(texts[k] for k in range(len(texts)) if mask >> k & 1)
-                        for mask in sorted(range(1, 1 << len(texts)), key=lambda m: (bin(m).count("1"), m))]
+            crossing = [
+                ":".join(texts[k] for k in range(len(texts)) if mask >> k & 1)
+                for mask in sorted(range(1, 1 << len(texts)), key=lambda m: (bin(m).count("1"), m))
+            ]
             raise FormulaError(
                 f"'{factor.text}' multiplies a categorical: write '{' + '.join(crossing)}' for the crossing "
                 "('*' inside a term is SQL multiplication of numbers)"
@@ -255,19 +277,32 @@ def _refuse_categorical_products(engine: DuckDBEngine, design: Design) -> None:
 
 def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
     _refuse_categorical_products(engine, design)
-    probe = exp.select(*[exp.alias_(node.copy(), name, quoted=True) for node, name in design.used_expressions()])
-    casts = {f"{f.alias}_cast": f.expression.this for f in design.factors
-             if isinstance(f.expression, exp.Cast) and f.expression.to.is_type(*exp.DataType.TEXT_TYPES)}
+    probe = exp.select(
+        *[exp.alias_(node.copy(), name, quoted=True) for node, name in design.used_expressions()]
+    )
+    casts = {
+        f"{f.alias}_cast": f.expression.this
+        for f in design.factors
+        if isinstance(f.expression, exp.Cast) and f.expression.to.is_type(*exp.DataType.TEXT_TYPES)
+    }
     probe = probe.select(*[exp.alias_(node.copy(), name, quoted=True) for name, node in casts.items()])
     types = dict(engine.describe(probe.from_(design.relation.copy())))
 
     target_type = types[TARGET]
     if isinstance(positive, str) and (NUMERIC_TYPE.match(target_type) or target_type.upper() == "BOOLEAN"):
-        raise FitError(f"positive={positive!r} is text, but the target '{design.formula.target_text}' has type "
-                       f"{target_type}: name one of its values as a {target_type.lower()}")
+        raise FitError(
+            f"positive={positive!r} is text, but the target '{design.formula.target_text}' has type "
+            f"{target_type}: name one of its values as a {target_type.lower()}"
+        )
     if positive is not None:
-        literal = exp.Boolean(this=positive) if isinstance(positive, bool) else (
-            sb.number(positive) if isinstance(positive, (int, float)) else exp.Literal.string(str(positive))
+        literal = (
+            exp.Boolean(this=positive)
+            if isinstance(positive, bool)
+            else (
+                sb.number(positive)
+                if isinstance(positive, (int, float))
+                else exp.Literal.string(str(positive))
+            )
         )
         design.named_target = design.target.copy()
         design.target = sb.truth_as_double(exp.EQ(this=sb.paren(design.target), expression=literal))
@@ -294,11 +329,19 @@ def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
                 f"term '{f.text}' has SQL type {f.sql_type}, which is neither numeric nor categorical "
                 "(VARCHAR, ENUM, BOOLEAN); cast it in the formula, e.g. 'extract(hour FROM t)'"
             )
-    for node, name, what in ((design.weights, WEIGHT, "weights"), (design.offset, OFFSET, "offset"), (design.trials, TRIALS, "trials")):
+    for node, name, what in (
+        (design.weights, WEIGHT, "weights"),
+        (design.offset, OFFSET, "offset"),
+        (design.trials, TRIALS, "trials"),
+    ):
         if node is not None and not NUMERIC_TYPE.match(types[name]):
             raise FormulaError(f"{what} expression has SQL type {types[name]}; it must be numeric")
-    if design.segment is not None and not (NUMERIC_TYPE.match(types[SEGMENT]) or CATEGORICAL_TYPE.match(types[SEGMENT])):
-        raise FormulaError(f"by expression '{design.segment_text}' has SQL type {types[SEGMENT]}; use text, a number or a boolean")
+    if design.segment is not None and not (
+        NUMERIC_TYPE.match(types[SEGMENT]) or CATEGORICAL_TYPE.match(types[SEGMENT])
+    ):
+        raise FormulaError(
+            f"by expression '{design.segment_text}' has SQL type {types[SEGMENT]}; use text, a number or a boolean"
+        )
     if design.offset is not None:
         design.offset = sb.as_double(design.offset)
     if design.weights is not None:
@@ -312,9 +355,13 @@ def _check_references(design: Design, reference: dict[str, Any]) -> None:
     for name in reference:
         factor = known.get(name)
         if factor is None:
-            raise FormulaError(f"reference names '{name}', which is not a term of the formula (terms: {', '.join(known)})")
+            raise FormulaError(
+                f"reference names '{name}', which is not a term of the formula (terms: {', '.join(known)})"
+            )
         if factor.kind != "categorical":
-            raise FormulaError(f"reference names '{name}', which is numeric; only categorical terms have a reference level")
+            raise FormulaError(
+                f"reference names '{name}', which is numeric; only categorical terms have a reference level"
+            )
 
 
 def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) -> None:
@@ -327,7 +374,10 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
         aggregates["zero_trials"] = _count_where(no_trials)
     if design.weights is not None:
         aggregates["bad_weight"] = _count_where(
-            exp.Or(this=exp.LT(this=w.copy(), expression=exp.Literal.number(0)), expression=exp.Not(this=sb.func("isfinite", w.copy())))
+            exp.Or(
+                this=exp.LT(this=w.copy(), expression=exp.Literal.number(0)),
+                expression=exp.Not(this=sb.func("isfinite", w.copy())),
+            )
         )
     if design.offset is not None:
         aggregates["bad_offset"] = _count_where(exp.Not(this=sb.func("isfinite", sb.column(OFFSET))))
@@ -371,9 +421,13 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
     if design.named_target is not None and int(row["target_values"]) > 2:
         raise FitError(_many_valued_target_message(engine, design, int(row["target_values"])))
     if row.get("bad_weight"):
-        raise FitError(f"weights '{design.weights_text}' has {row['bad_weight']} negative or non-finite values")
+        raise FitError(
+            f"weights '{design.weights_text}' has {row['bad_weight']} negative or non-finite values"
+        )
     if row.get("bad_offset"):
-        raise FitError(f"offset '{design.offset_text}' has {row['bad_offset']} non-finite values (NaN or infinity)")
+        raise FitError(
+            f"offset '{design.offset_text}' has {row['bad_offset']} non-finite values (NaN or infinity)"
+        )
     if not all(math.isfinite(float(row[f"sumsq_{key}"])) for key in products):
         _raise_non_finite(engine, design)
     design.weight_sum = float(row["weight_sum"] or 0.0)
@@ -382,9 +436,11 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
     if design.weight_sum <= 0:
         raise FitError("the weights of the rows used add up to zero; nothing to fit")
     if design.positive is not None and design.success_sum <= 0:
-        raise FitError(f"positive={design.positive!r} is not among the values of the target "
-                       f"'{design.formula.target_text}' on the {design.rows_used} rows used: "
-                       "name one of its two values")
+        raise FitError(
+            f"positive={design.positive!r} is not among the values of the target "
+            f"'{design.formula.target_text}' on the {design.rows_used} rows used: "
+            "name one of its two values"
+        )
     if design.success_sum <= 0 or design.success_sum >= design.trial_sum:
         outcome = "0 (no successes)" if design.success_sum <= 0 else "1 (no failures)"
         raise FitError(
@@ -403,7 +459,9 @@ def _profile(engine: DuckDBEngine, design: Design, reference: dict[str, Any]) ->
                 match = [v for v in f.levels if level_label(v) == level_label(wanted)]
                 if not match:
                     shown = ", ".join(level_label(v) for v in f.levels[:20])
-                    raise FormulaError(f"reference level '{wanted}' of '{f.text}' does not occur in the data (levels: {shown})")
+                    raise FormulaError(
+                        f"reference level '{wanted}' of '{f.text}' does not occur in the data (levels: {shown})"
+                    )
                 f.reference = match[0]
             else:
                 f.reference = f.levels[0]
@@ -430,10 +488,14 @@ def segment_profiles(engine: DuckDBEngine, design: Design) -> list[dict[str, Any
     """One scan grouped by segment: rows in each segment, rows used, and the outcome sums."""
     sums = outcome_sums(design)
     complete = design.complete()
-    filtered = [exp.alias_(exp.Filter(this=node, expression=exp.Where(this=complete.copy())), name, quoted=True)
-                for name, node in sums.items()]
+    filtered = [
+        exp.alias_(exp.Filter(this=node, expression=exp.Where(this=complete.copy())), name, quoted=True)
+        for name, node in sums.items()
+    ]
     query = (
-        exp.select(sb.column(SEGMENT), exp.alias_(exp.Count(this=exp.Star()), "total", quoted=True), *filtered)
+        exp.select(
+            sb.column(SEGMENT), exp.alias_(exp.Count(this=exp.Star()), "total", quoted=True), *filtered
+        )
         .from_(design.rows_query().subquery("dbfit_rows"))
         .where(exp.Not(this=exp.Is(this=sb.column(SEGMENT), expression=exp.Null())))
         .group_by(sb.column(SEGMENT))
@@ -481,8 +543,9 @@ def marginal_codings(design: Design) -> list[list[Coding]]:
         categorical = [i for i in factors if design.factors[i].kind == "categorical"]
         used = spanned.setdefault(numeric, set())
         masks = range(1 << len(categorical))
-        subsets = sorted((tuple(i for k, i in enumerate(categorical) if mask >> k & 1) for mask in masks),
-                         key=len)
+        subsets = sorted(
+            (tuple(i for k, i in enumerate(categorical) if mask >> k & 1) for mask in masks), key=len
+        )
         needed = [frozenset((i, False) for i in subset) for subset in subsets]
         needed = [s for s in needed if s not in used]
         used.update(needed)
@@ -502,7 +565,7 @@ def _merge_subterms(subterms: list[frozenset[tuple[int, bool]]]) -> list[frozens
             for long_at in range(short_at + 1, len(subterms)):
                 extra = subterms[long_at] - short
                 if len(subterms[long_at]) == len(short) + 1 and short <= subterms[long_at]:
-                    (factor, _), = extra
+                    ((factor, _),) = extra
                     subterms[long_at] = short | {(factor, True)}
                     del subterms[short_at]
                     merged = True
@@ -512,7 +575,9 @@ def _merge_subterms(subterms: list[frozenset[tuple[int, bool]]]) -> list[frozens
     return subterms
 
 
-def _layout_columns(design: Design, row: dict[str, Any], products: dict[str, tuple[int, ...]]) -> list[DesignColumn]:
+def _layout_columns(
+    design: Design, row: dict[str, Any], products: dict[str, tuple[int, ...]]
+) -> list[DesignColumn]:
     index = {f.text: i for i, f in enumerate(design.factors)}
     columns: list[DesignColumn] = []
     for term, codings in zip(design.formula.terms, marginal_codings(design)):
@@ -521,8 +586,9 @@ def _layout_columns(design: Design, row: dict[str, Any], products: dict[str, tup
             centre, scale, constant = 0.0, 1.0, False
             if numeric:
                 key = "_".join(map(str, numeric))
-                centre, scale, constant = _centre_and_scale(row, key, design.rows_used,
-                                                            centred=not coding and design.intercept)
+                centre, scale, constant = _centre_and_scale(
+                    row, key, design.rows_used, centred=not coding and design.intercept
+                )
             level_sets = [
                 [(i, v) for v in design.factors[i].levels if full or v != design.factors[i].reference]
                 for i, full in coding
@@ -554,7 +620,10 @@ def _raise_non_finite(engine: DuckDBEngine, design: Design) -> None:
     """A sum of squares came back NaN or infinite: count the culprits (error path only, one more scan)."""
     numeric = [(i, f) for i, f in enumerate(design.factors) if f.kind == "numeric"]
     counts = exp.select(
-        *[_count_where(exp.Not(this=sb.func("isfinite", sb.as_double(sb.column(f.alias))))) for _, f in numeric]
+        *[
+            _count_where(exp.Not(this=sb.func("isfinite", sb.as_double(sb.column(f.alias)))))
+            for _, f in numeric
+        ]
     ).from_(design.base_query().subquery("dbfit_base"))
     for (_, factor), count in zip(numeric, engine.fetch(counts)[0]):
         if count:
@@ -565,7 +634,9 @@ def _raise_non_finite(engine: DuckDBEngine, design: Design) -> None:
     raise FitError("a numeric term is too large to square in double precision; rescale it in the formula")
 
 
-def _centre_and_scale(row: dict[str, Any], key: str, rows: int, *, centred: bool) -> tuple[float, float, bool]:
+def _centre_and_scale(
+    row: dict[str, Any], key: str, rows: int, *, centred: bool
+) -> tuple[float, float, bool]:
     """Centre and scale of a numeric column from its sum, sum of squares, minimum and maximum.
 
     Any positive scale gives the same fit; these only condition the Gram matrix. When the variance from
@@ -623,14 +694,20 @@ def _bad_target_message(engine: DuckDBEngine, design: Design, count: int) -> str
 
 
 def _many_valued_target_message(engine: DuckDBEngine, design: Design, count: int) -> str:
-    values_query = (exp.select(sb.column(NAMED_TARGET)).distinct()
-                    .from_(design.base_query({NAMED_TARGET: design.named_target}).subquery("dbfit_base"))
-                    .order_by(sb.column(NAMED_TARGET)).limit(MAX_OFFENDING_SHOWN))
+    values_query = (
+        exp.select(sb.column(NAMED_TARGET))
+        .distinct()
+        .from_(design.base_query({NAMED_TARGET: design.named_target}).subquery("dbfit_base"))
+        .order_by(sb.column(NAMED_TARGET))
+        .limit(MAX_OFFENDING_SHOWN)
+    )
     shown = ", ".join(_format_value(r[0]) for r in engine.fetch(values_query))
     target = design.formula.target_text
-    return (f"positive= names one of two outcome values, but the target '{target}' has {count} values among the rows "
-            f"used ({shown}{', ...' if count > MAX_OFFENDING_SHOWN else ''}); to fit one value against all the others, "
-            f"write it as the target, e.g. \"{target} = '{design.positive}' ~ ...\"")
+    return (
+        f"positive= names one of two outcome values, but the target '{target}' has {count} values among the rows "
+        f"used ({shown}{', ...' if count > MAX_OFFENDING_SHOWN else ''}); to fit one value against all the others, "
+        f"write it as the target, e.g. \"{target} = '{design.positive}' ~ ...\""
+    )
 
 
 def _format_value(value: Any) -> str:

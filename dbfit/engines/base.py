@@ -37,7 +37,9 @@ class Engine:
     def fetch_sql(self, sql: str, parameters: list[Any], *, scan: bool = True) -> list[tuple[Any, ...]]:
         """Run SQL that dbfit generated from a tree, with ``?`` parameters where the engine takes them."""
         if parameters and not self.parameters:
-            raise DbfitError(f"{self.dialect} queries from dbfit carry their numbers as literals, not parameters")
+            raise DbfitError(
+                f"{self.dialect} queries from dbfit carry their numbers as literals, not parameters"
+            )
         if scan:
             self.scans += 1
         return self._run(sql, parameters) if parameters else self._run(sql)

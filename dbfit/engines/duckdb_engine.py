@@ -9,16 +9,16 @@ import difflib
 import re
 import threading
 import weakref
-from typing import Any, Callable
+from collections.abc import Callable
+from typing import Any
 
 import duckdb
 from sqlglot import exp
 
 from dbfit.engines.base import Engine
+from dbfit.engines.progress import watch_scan
 from dbfit.engines.transactions import in_transaction, transaction_aborted
 from dbfit.errors import AbortedTransactionError, DbfitError, FormulaError, SourceError
-from dbfit.engines.progress import watch_scan
-
 
 _LOCKS: weakref.WeakKeyDictionary[Any, threading.RLock] = weakref.WeakKeyDictionary()
 _LOCKS_GUARD = threading.Lock()
@@ -79,7 +79,7 @@ class DuckDBEngine(Engine):
         created = _CREATE_AS.match(sql)
         if created and in_transaction(self.connection):
             self._parse(sql)
-            self._bind(sql[created.end():])
+            self._bind(sql[created.end() :])
         super().execute(sql=sql, scan=scan)
 
     def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
@@ -147,8 +147,10 @@ def unknown_column_message(name: str, columns: list[str]) -> str:
     nearest = f"; closest: {', '.join(close)}" if close else ""
     listed = ", ".join(columns[:SHOWN_COLUMNS])
     more = f" and {len(columns) - SHOWN_COLUMNS} more" if len(columns) > SHOWN_COLUMNS else ""
-    return (f"unknown column '{name}' in the formula or options{nearest} (the source's {len(columns)} columns: "
-            f"{listed}{more})")
+    return (
+        f"unknown column '{name}' in the formula or options{nearest} (the source's {len(columns)} columns: "
+        f"{listed}{more})"
+    )
 
 
 _MISSING_COLUMN = re.compile(r'Referenced column "?([^"\s]+)"? not found', re.IGNORECASE)

@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from typing import Any, Callable
+from collections.abc import Callable
+from typing import Any
 
 from sqlglot import exp
 
@@ -10,8 +11,19 @@ from dbfit.engines.base import Engine
 from dbfit.errors import DbfitError, FormulaError, SourceError
 
 # PostgreSQL type OIDs (pg_type.dat) to the type names the design understands.
-TYPE_NAMES = {16: "BOOLEAN", 20: "BIGINT", 21: "SMALLINT", 23: "INTEGER", 700: "FLOAT", 701: "DOUBLE", 1700: "DECIMAL",
-              25: "VARCHAR", 1043: "VARCHAR", 1042: "VARCHAR", 19: "VARCHAR"}
+TYPE_NAMES = {
+    16: "BOOLEAN",
+    20: "BIGINT",
+    21: "SMALLINT",
+    23: "INTEGER",
+    700: "FLOAT",
+    701: "DOUBLE",
+    1700: "DECIMAL",
+    25: "VARCHAR",
+    1043: "VARCHAR",
+    1042: "VARCHAR",
+    19: "VARCHAR",
+}
 
 
 class PostgresEngine(Engine):
@@ -37,8 +49,11 @@ class PostgresEngine(Engine):
     def _type_names(self, oids: list[int]) -> list[tuple[int, str]]:
         """PostgreSQL's own names (pg_type, upper case: DATE, TIMESTAMP, ...) of type OIDs outside TYPE_NAMES."""
         listed = exp.Tuple(expressions=[exp.Literal.number(int(oid)) for oid in oids])
-        query = exp.select("oid::INT", "upper(typname)").from_("pg_catalog.pg_type").where(
-            exp.In(this=exp.column("oid"), expressions=listed.expressions))
+        query = (
+            exp.select("oid::INT", "upper(typname)")
+            .from_("pg_catalog.pg_type")
+            .where(exp.In(this=exp.column("oid"), expressions=listed.expressions))
+        )
         return [(int(oid), str(name)) for oid, name in self._run(self.sql(query))]
 
     def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
@@ -50,7 +65,9 @@ class PostgresEngine(Engine):
         from psycopg.pq import TransactionStatus
 
         if self.connection.info.transaction_status == TransactionStatus.INERROR:
-            raise DbfitError("the connection's open transaction has already failed: roll it back before fitting")
+            raise DbfitError(
+                "the connection's open transaction has already failed: roll it back before fitting"
+            )
         try:
             with self.connection.transaction(), self.connection.cursor() as cursor:
                 cursor.execute("SELECT current_setting('jit'), set_config('jit', 'off', true)")

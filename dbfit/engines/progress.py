@@ -4,8 +4,9 @@ from __future__ import annotations
 
 import sys
 import threading
+from collections.abc import Iterator
 from contextlib import contextmanager
-from typing import Iterator, TextIO
+from typing import TextIO
 
 import duckdb
 
@@ -13,7 +14,9 @@ POLL_SECONDS = 0.1
 
 
 @contextmanager
-def watch_scan(connection: duckdb.DuckDBPyConnection, label: str, stream: TextIO | None = None) -> Iterator[None]:
+def watch_scan(
+    connection: duckdb.DuckDBPyConnection, label: str, stream: TextIO | None = None
+) -> Iterator[None]:
     """While the body runs a query on ``connection``, keep one line on ``stream`` showing its progress."""
     stream = stream or sys.stderr
     finished = threading.Event()
@@ -56,7 +59,9 @@ def progress_settings(connection: duckdb.DuckDBPyConnection, *, track: bool = Tr
         yield
         return
     names = ("enable_progress_bar", "enable_progress_bar_print")
-    before = {name: connection.execute(f"SELECT current_setting('{name}')").fetchall()[0][0] for name in names}
+    before = {
+        name: connection.execute(f"SELECT current_setting('{name}')").fetchall()[0][0] for name in names
+    }
     connection.execute(f"SET enable_progress_bar = {'true' if track else 'false'}")
     connection.execute("SET enable_progress_bar_print = false")
     try:

@@ -10,8 +10,16 @@ from sqlglot import exp
 from dbfit.engines.base import Engine
 from dbfit.errors import DbfitError, FormulaError, SourceError
 
-TYPE_NAMES = {"boolean": "BOOLEAN", "tinyint": "TINYINT", "smallint": "SMALLINT", "int": "INTEGER", "bigint": "BIGINT",
-              "float": "FLOAT", "double": "DOUBLE", "string": "VARCHAR"}
+TYPE_NAMES = {
+    "boolean": "BOOLEAN",
+    "tinyint": "TINYINT",
+    "smallint": "SMALLINT",
+    "int": "INTEGER",
+    "bigint": "BIGINT",
+    "float": "FLOAT",
+    "double": "DOUBLE",
+    "string": "VARCHAR",
+}
 
 
 class SparkEngine(Engine):

@@ -27,8 +27,12 @@ def as_double(node: exp.Expression) -> exp.Expression:
 
 def truth_as_double(condition: exp.Expression) -> exp.Expression:
     """1.0 where ``condition`` holds, 0.0 where it does not, NULL where it is NULL (portable: no boolean cast)."""
-    return exp.Case(ifs=[exp.If(this=condition.copy(), true=as_double(exp.Literal.number(1))),
-                         exp.If(this=exp.Not(this=paren(condition.copy())), true=as_double(exp.Literal.number(0)))])
+    return exp.Case(
+        ifs=[
+            exp.If(this=condition.copy(), true=as_double(exp.Literal.number(1))),
+            exp.If(this=exp.Not(this=paren(condition.copy())), true=as_double(exp.Literal.number(0))),
+        ]
+    )
 
 
 def paren(node: exp.Expression) -> exp.Expression:
@@ -81,7 +85,9 @@ def stable_sigmoid(eta: exp.Expression, e: exp.Expression) -> exp.Expression:
 
 def stable_log1pexp(eta: exp.Expression, e: exp.Expression) -> exp.Expression:
     """log(1 + exp(eta)) = max(eta, 0) + log(1 + exp(-|eta|)), finite for any eta."""
-    positive_part = exp.If(this=exp.GT(this=eta, expression=exp.Literal.number(0)), true=eta.copy(), false=exp.Literal.number(0))
+    positive_part = exp.If(
+        this=exp.GT(this=eta, expression=exp.Literal.number(0)), true=eta.copy(), false=exp.Literal.number(0)
+    )
     return add(positive_part, exp.Ln(this=add(exp.Literal.number(1), e)))
 
 
@@ -95,7 +101,9 @@ class ValuesTemplate:
 
     PLACEHOLDER = "dbfit_values_placeholder"
 
-    def __init__(self, query_sql: str, placeholder_sql: str, alias: str, columns: list[str], dialect: str) -> None:
+    def __init__(
+        self, query_sql: str, placeholder_sql: str, alias: str, columns: list[str], dialect: str
+    ) -> None:
         if query_sql.count(placeholder_sql) != 1:
             raise AssertionError("the placeholder must occur exactly once in the query")
         self.before, self.after = query_sql.split(placeholder_sql)
@@ -104,7 +112,10 @@ class ValuesTemplate:
 
     @classmethod
     def placeholder(cls, alias: str) -> exp.Expression:
-        return exp.Table(this=exp.to_identifier(cls.PLACEHOLDER, quoted=True), alias=exp.TableAlias(this=exp.to_identifier(alias)))
+        return exp.Table(
+            this=exp.to_identifier(cls.PLACEHOLDER, quoted=True),
+            alias=exp.TableAlias(this=exp.to_identifier(alias)),
+        )
 
     def render(self, rows: list[tuple[object, exp.Expression, list[float]]]) -> str:
         """SQL with VALUES (key, numbers...) rows; ``rows`` holds (cache key, key literal, numbers)."""

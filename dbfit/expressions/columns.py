@@ -34,12 +34,13 @@ def resolve_columns(trees: list[exp.Expression | None], columns: list[str]) -> l
             if len(matches) > 1 and quoted and written in matches:
                 matches = [written]
             if len(matches) > 1:
-                raise FormulaError(f"column '{written}' is ambiguous: the source has columns "
-                                   f"{' and '.join(repr(m) for m in matches)}, which differ only in case; "
-                                   "write the one you mean in double quotes, spelled exactly")
+                raise FormulaError(
+                    f"column '{written}' is ambiguous: the source has columns "
+                    f"{' and '.join(repr(m) for m in matches)}, which differ only in case; "
+                    "write the one you mean in double quotes, spelled exactly"
+                )
             if matches:
                 column.set("this", exp.to_identifier(matches[0], quoted=True))
                 if matches[0] not in used:
                     used.append(matches[0])
     return used
-

@@ -23,6 +23,7 @@ DIALECT = "duckdb"
 _OPENERS = {TokenType.L_PAREN, TokenType.L_BRACKET, TokenType.L_BRACE, TokenType.CASE}
 _CLOSERS = {TokenType.R_PAREN, TokenType.R_BRACKET, TokenType.R_BRACE, TokenType.END}
 
+
 @dataclass(frozen=True)
 class Term:
     """One model term: a single factor, or an interaction of several factors (joined by ``:``)."""
@@ -159,7 +160,9 @@ def _parse_terms(text: str, tokens: list) -> tuple[bool, list[Term]]:
     elif tokens:
         raise FormulaError(f"formula {text!r} ends with a dangling '+' or '-'")
     if not pieces:
-        raise FormulaError(f"formula {text!r} has no terms after '~' (write '~ 1' for an intercept-only model)")
+        raise FormulaError(
+            f"formula {text!r} has no terms after '~' (write '~ 1' for an intercept-only model)"
+        )
 
     intercept = True
     terms: list[Term] = []

@@ -34,7 +34,9 @@ def model_version(version: object) -> int | None:
     if version is None:
         return None
     if isinstance(version, bool) or not isinstance(version, numbers.Integral) or version < 1:
-        raise StoreError(f"version must be a whole number of at least 1, or None for the current one (got {version!r})")
+        raise StoreError(
+            f"version must be a whole number of at least 1, or None for the current one (got {version!r})"
+        )
     return int(version)
 
 
@@ -46,15 +48,23 @@ def relation_name(text: object, what: str = "view name") -> exp.Table:
         tokens = sqlglot.tokenize(text, read=DIALECT)
         statements = [s for s in sqlglot.parse(text, read=DIALECT) if s is not None]
     except SqlglotError:
-        raise StoreError(f"{what} {text!r} is not a name: write name, schema.name or catalog.schema.name") from None
+        raise StoreError(
+            f"{what} {text!r} is not a name: write name, schema.name or catalog.schema.name"
+        ) from None
     allowed = {"VAR", "IDENTIFIER", "DOT"}
     if len(statements) != 1 or any(token.token_type.name not in allowed for token in tokens):
-        raise StoreError(f"{what} {text!r} is not a plain name: write name, schema.name or catalog.schema.name")
+        raise StoreError(
+            f"{what} {text!r} is not a plain name: write name, schema.name or catalog.schema.name"
+        )
     node = statements[0]
     parts = [p for p in node.parts] if isinstance(node, (exp.Column, exp.Table)) else []
     if not parts or len(parts) > 3 or not all(isinstance(p, exp.Identifier) for p in parts):
-        raise StoreError(f"{what} {text!r} is not a plain name: write name, schema.name or catalog.schema.name")
+        raise StoreError(
+            f"{what} {text!r} is not a plain name: write name, schema.name or catalog.schema.name"
+        )
     names = [exp.to_identifier(p.name, quoted=True) for p in parts]
     return exp.Table(
-        this=names[-1], db=names[-2] if len(names) > 1 else None, catalog=names[-3] if len(names) > 2 else None
+        this=names[-1],
+        db=names[-2] if len(names) > 1 else None,
+        catalog=names[-3] if len(names) > 2 else None,
     )

@@ -15,8 +15,8 @@ from sqlglot import exp
 from sqlglot.errors import SqlglotError
 
 from dbfit.errors import SourceError
-from dbfit.expressions.rules import check_source_query
 from dbfit.expressions.formula import DIALECT
+from dbfit.expressions.rules import check_source_query
 
 _FILE_READERS = {
     "parquet": "read_parquet",
@@ -70,11 +70,17 @@ def _as_table(node: exp.Expression) -> exp.Table | None:
     if not parts or len(parts) > 3:
         return None
     names = [exp.to_identifier(p.name, quoted=True) for p in parts]
-    table, db, catalog = names[-1], (names[-2] if len(names) > 1 else None), (names[-3] if len(names) > 2 else None)
+    table, db, catalog = (
+        names[-1],
+        (names[-2] if len(names) > 1 else None),
+        (names[-3] if len(names) > 2 else None),
+    )
     return exp.Table(this=table, db=db, catalog=catalog)
 
 
 def _refuse_writes(node: exp.Expression, text: str) -> None:
     for sub in node.walk():
         if isinstance(sub, (exp.DML, exp.DDL, exp.Command)) or (isinstance(sub, exp.Into)):
-            raise SourceError(f"source {text[:80]!r} contains a {type(sub).__name__.upper()}: only a read-only SELECT")
+            raise SourceError(
+                f"source {text[:80]!r} contains a {type(sub).__name__.upper()}: only a read-only SELECT"
+            )

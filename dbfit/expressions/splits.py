@@ -20,9 +20,15 @@ def unit_hash(keys: list[exp.Expression]) -> exp.Expression:
     """A number in [0, 1) from the first 32 bits of MD5 of the keys' text joined by '|'."""
     texts = [exp.Cast(this=k.copy(), to=exp.DataType.build("VARCHAR")) for k in keys]
     joined = texts[0] if len(texts) == 1 else exp.ConcatWs(expressions=[exp.Literal.string("|"), *texts])
-    hexadecimal = exp.Concat(expressions=[exp.Literal.string("0x"),
-                                          exp.Left(this=exp.MD5(this=joined), expression=exp.Literal.number(8))])
-    return sb.div(exp.Cast(this=hexadecimal, to=exp.DataType.build("BIGINT")), exp.Literal.number(4294967296.0))
+    hexadecimal = exp.Concat(
+        expressions=[
+            exp.Literal.string("0x"),
+            exp.Left(this=exp.MD5(this=joined), expression=exp.Literal.number(8)),
+        ]
+    )
+    return sb.div(
+        exp.Cast(this=hexadecimal, to=exp.DataType.build("BIGINT")), exp.Literal.number(4294967296.0)
+    )
 
 
 def holdout_condition(keys: list[exp.Expression], share: float, *, held_out: bool) -> exp.Expression:
@@ -53,13 +59,18 @@ def labelled_rows(relation: exp.Expression, split: Holdout | KFold) -> exp.Selec
     """Every row of ``relation`` with a column ``dbfit_part``: 'train'/'holdout', or the fold number."""
     keys = [parse_expression(split.key, "split key", f"the {type(split).__name__} key")]
     if isinstance(split, Holdout):
-        part: exp.Expression = exp.If(this=holdout_condition(keys, split.share, held_out=True),
-                                      true=exp.Literal.string("holdout"), false=exp.Literal.string("train"))
+        part: exp.Expression = exp.If(
+            this=holdout_condition(keys, split.share, held_out=True),
+            true=exp.Literal.string("holdout"),
+            false=exp.Literal.string("train"),
+        )
     else:
         if not isinstance(split.folds, int) or split.folds < 2:
             raise FitError(f"folds must be a whole number of at least 2 (got {split.folds!r})")
-        part = exp.Cast(this=exp.Floor(this=sb.mul(unit_hash(keys), exp.Literal.number(split.folds))),
-                        to=exp.DataType.build("INTEGER"))
+        part = exp.Cast(
+            this=exp.Floor(this=sb.mul(unit_hash(keys), exp.Literal.number(split.folds))),
+            to=exp.DataType.build("INTEGER"),
+        )
     return exp.select("*", exp.alias_(part, "dbfit_part", quoted=True)).from_(relation.copy())
 
 
@@ -80,7 +91,9 @@ def part_condition(split: Holdout | KFold, part: str | int, *, keep: bool = True
     return (exp.EQ if keep else exp.NEQ)(this=fold, expression=exp.Literal.number(part))
 
 
-def part_relation(relation: exp.Expression, split: Holdout | KFold, part: str | int, *, keep: bool = True) -> exp.Expression:
+def part_relation(
+    relation: exp.Expression, split: Holdout | KFold, part: str | int, *, keep: bool = True
+) -> exp.Expression:
     """The rows of ``relation`` in ``part`` (or, with ``keep=False``, all the others), as an aliased subquery.
 
     The rows keep exactly the source's columns (no part column to drop), so the SELECT is portable SQL.

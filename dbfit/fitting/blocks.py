@@ -15,9 +15,9 @@ from typing import Any
 import numpy as np
 from sqlglot import exp
 
-from dbfit.expressions import builders as sb
 from dbfit.design.layout import Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.expressions import builders as sb
 from dbfit.fitting.statistics import statistics_query, unpack_many
 from dbfit.solver.information import BlockInformation, PassResult
 
@@ -44,7 +44,9 @@ def is_level_column(design: Design, column: int, factor: int) -> bool:
 class BlockedStatisticsPass:
     """One grouped scan per Newton step; parameters are ordered dense first, then the levels."""
 
-    def __init__(self, engine: DuckDBEngine, design: Design, factor: int, rows: exp.Expression | None = None) -> None:
+    def __init__(
+        self, engine: DuckDBEngine, design: Design, factor: int, rows: exp.Expression | None = None
+    ) -> None:
         self.engine, self.design, self.factor, self.rows = engine, design, factor, rows
         self.alias = design.factors[factor].alias
         self._templates: dict[tuple[tuple[int, ...], bool], sb.ValuesTemplate] = {}
@@ -52,40 +54,61 @@ class BlockedStatisticsPass:
     def __call__(self, parameters: list[int], beta: np.ndarray) -> PassResult:
         design, offset = self.design, 1 if self.design.intercept else 0
         intercept = bool(design.intercept and 0 in parameters)
-        dense = [k for k in parameters if not (k >= offset and is_level_column(design, k - offset, self.factor))]
+        dense = [
+            k for k in parameters if not (k >= offset and is_level_column(design, k - offset, self.factor))
+        ]
         columns = [k - offset for k in dense if not (design.intercept and k == 0)]
-        level_values = [design.columns[k - offset].indicators[0][1] for k in parameters[len(dense):]]
-        level_beta = dict(zip(level_values, beta[len(dense):]))
+        level_values = [design.columns[k - offset].indicators[0][1] for k in parameters[len(dense) :]]
+        level_beta = dict(zip(level_values, beta[len(dense) :]))
         template = self._template(tuple(columns), intercept)
         factor = design.factors[self.factor]
         rows = [(v, factor.level_literal(v), [float(level_beta.get(v, 0.0))]) for v in factor.levels]
         sql = template.render(rows)
         fetched = self.engine.fetch_sql(sql, [float(b) for b in beta[: len(dense)]], scan=self.rows is None)
-        groups = dict(zip([row[0] for row in fetched], unpack_many([row[1:] for row in fetched], len(columns) + 1)))
+        groups = dict(
+            zip([row[0] for row in fetched], unpack_many([row[1:] for row in fetched], len(columns) + 1))
+        )
         return _assemble_blocks(groups, level_values, intercept, len(columns))
 
     def query(self, parameters: list[int], beta: np.ndarray) -> exp.Select:
         """The grouped statistics query (level coefficients in a placeholder relation), for inspection."""
         offset = 1 if self.design.intercept else 0
         intercept = bool(self.design.intercept and 0 in parameters)
-        columns = [k - offset for k in parameters
-                   if not (k >= offset and is_level_column(self.design, k - offset, self.factor))
-                   and not (self.design.intercept and k == 0)]
-        return statistics_query(self.design, columns, intercept, None, self.rows,
-                                level_join=(self.alias, sb.ValuesTemplate.placeholder("dbfit_coef")))
+        columns = [
+            k - offset
+            for k in parameters
+            if not (k >= offset and is_level_column(self.design, k - offset, self.factor))
+            and not (self.design.intercept and k == 0)
+        ]
+        return statistics_query(
+            self.design,
+            columns,
+            intercept,
+            None,
+            self.rows,
+            level_join=(self.alias, sb.ValuesTemplate.placeholder("dbfit_coef")),
+        )
 
     def _template(self, columns: tuple[int, ...], intercept: bool) -> sb.ValuesTemplate:
         key = (columns, intercept)
         if key not in self._templates:
             placeholder = sb.ValuesTemplate.placeholder("dbfit_coef")
-            query = statistics_query(self.design, list(columns), intercept, None, self.rows,
-                                     level_join=(self.alias, placeholder))
-            self._templates[key] = sb.ValuesTemplate(self.engine.sql(query), self.engine.sql(placeholder), "dbfit_coef",
-                                                     [self.alias, "g"], self.engine.dialect)
+            query = statistics_query(
+                self.design, list(columns), intercept, None, self.rows, level_join=(self.alias, placeholder)
+            )
+            self._templates[key] = sb.ValuesTemplate(
+                self.engine.sql(query),
+                self.engine.sql(placeholder),
+                "dbfit_coef",
+                [self.alias, "g"],
+                self.engine.dialect,
+            )
         return self._templates[key]
 
 
-def _assemble_blocks(groups: dict[Any, PassResult], level_values: list[Any], intercept: bool, columns: int) -> PassResult:
+def _assemble_blocks(
+    groups: dict[Any, PassResult], level_values: list[Any], intercept: bool, columns: int
+) -> PassResult:
     """Sum the per-level results into A and the dense score; the level rows give B, D and their score."""
     # Each group's Gram is over [1] + columns; the dense parameters are [1] + columns with an intercept, else columns.
     dense_slice = slice(0, columns + 1) if intercept else slice(1, columns + 1)

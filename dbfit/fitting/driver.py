@@ -2,41 +2,47 @@
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import math
-import dataclasses
 import sys
 import uuid
-from collections.abc import Mapping, Sequence
-from typing import Any, Callable
+from collections.abc import Callable, Mapping, Sequence
+from typing import Any
 
 import duckdb
 import numpy as np
 from sqlglot import exp
 
-from dbfit.fitting import firth as bias_reduction
-from dbfit.model import inference
-from dbfit.fitting import penalised as penalized
-from dbfit.fitting import prior_correction as priorcorrection
-from dbfit.expressions import builders as sb
-from dbfit.fitting import robust as robust_errors
-from dbfit.fitting.blocks import BlockedStatisticsPass, blocked_factor, dense_first
 from dbfit.design.layout import Design, build_design
 from dbfit.engines import engine_for
 from dbfit.engines.duckdb_engine import DuckDBEngine
-from dbfit.errors import FitError
-from dbfit.expressions.formula import parse_formula
-from dbfit.solver.newton import (
-    ChordDeviance, Deviance, IterationReport, NewtonResult, NewtonRules, NewtonRun, solve,
-)
-from dbfit.model.fitted import Model
-from dbfit.fitting.options import FitVariants, FitOptions
 from dbfit.engines.progress import progress_settings
+from dbfit.errors import FitError
+from dbfit.expressions import builders as sb
+from dbfit.expressions.formula import parse_formula
 from dbfit.expressions.source import source_relation
+from dbfit.fitting import firth as bias_reduction
+from dbfit.fitting import penalised as penalized
+from dbfit.fitting import prior_correction as priorcorrection
+from dbfit.fitting import robust as robust_errors
+from dbfit.fitting.blocks import BlockedStatisticsPass, blocked_factor, dense_first
+from dbfit.fitting.options import FitOptions, FitVariants
 from dbfit.fitting.segments import fit_segments
-from dbfit.model.segmented import SegmentedFit
 from dbfit.fitting.statistics import StatisticsPass
+from dbfit.model import inference
+from dbfit.model.fitted import Model
+from dbfit.model.segmented import SegmentedFit
 from dbfit.solver.information import Information
+from dbfit.solver.newton import (
+    ChordDeviance,
+    Deviance,
+    IterationReport,
+    NewtonResult,
+    NewtonRules,
+    NewtonRun,
+    solve,
+)
 
 log = logging.getLogger("dbfit")
 
@@ -113,25 +119,55 @@ def fit(
     ----------
     McCullagh and Nelder (1989), Generalized Linear Models, 2nd ed., Chapman & Hall, chapter 4.
     """
-    chosen = FitOptions.of(weights=weights, offset=offset, trials=trials, reference=reference, positive=positive,
-                           max_iter=max_iter, tol=tol, start=start, by=by, robust=robust, cluster=cluster,
-                           firth=firth, population_rate=population_rate, shrinkage=shrinkage, l1_share=l1_share,
-                           folds=folds, split_key=split_key)
+    chosen = FitOptions.of(
+        weights=weights,
+        offset=offset,
+        trials=trials,
+        reference=reference,
+        positive=positive,
+        max_iter=max_iter,
+        tol=tol,
+        start=start,
+        by=by,
+        robust=robust,
+        cluster=cluster,
+        firth=firth,
+        population_rate=population_rate,
+        shrinkage=shrinkage,
+        l1_share=l1_share,
+        folds=folds,
+        split_key=split_key,
+    )
     return fit_with(con, formula, source, chosen, progress)
 
 
-def fit_with(con: duckdb.DuckDBPyConnection, formula: str, source: str, options: FitOptions,
-             progress: Progress = None) -> Model | SegmentedFit:
+def fit_with(
+    con: duckdb.DuckDBPyConnection, formula: str, source: str, options: FitOptions, progress: Progress = None
+) -> Model | SegmentedFit:
     """:func:`fit` with its options already checked (each entry point builds :class:`FitOptions` once)."""
     check_progress(progress)
     special = options.variants()
     engine = engine_for(con)
     options.check_engine(engine.dialect)
-    engine.live_progress = (engine.dialect == "duckdb" and progress is not False and not callable(progress)
-                            and sys.stderr.isatty())
-    arguments = dict(weights=options.weights, offset=options.offset, trials=options.trials,
-                     reference=options.reference, positive=options.positive, max_iter=options.max_iter,
-                     tol=options.tol, start=options.start, progress=progress, by=options.by, special=special)
+    engine.live_progress = (
+        engine.dialect == "duckdb"
+        and progress is not False
+        and not callable(progress)
+        and sys.stderr.isatty()
+    )
+    arguments = dict(
+        weights=options.weights,
+        offset=options.offset,
+        trials=options.trials,
+        reference=options.reference,
+        positive=options.positive,
+        max_iter=options.max_iter,
+        tol=options.tol,
+        start=options.start,
+        progress=progress,
+        by=options.by,
+        special=special,
+    )
     if engine.dialect == "duckdb":
         # dbfit reports progress itself (or is quiet): DuckDB's own printed bar stays off during the fit.
         with progress_settings(con, track=engine.live_progress):
@@ -178,13 +214,32 @@ def _fit(
     all_parameters = list(range(len(design.labels)))
     fitted = [k for k in all_parameters if k not in constant]
     reporter = progress_reporter(progress)
-    options = dict(weights=weights, offset=offset, trials=trials, reference=dict(reference or {}),
-                   positive=positive, max_iter=max_iter, tol=tol, by=by)
+    options = dict(
+        weights=weights,
+        offset=offset,
+        trials=trials,
+        reference=dict(reference or {}),
+        positive=positive,
+        max_iter=max_iter,
+        tol=tol,
+        by=by,
+    )
     if by is not None:
         if start is not None:
             raise FitError("start= cannot be combined with by=: every segment starts from its own intercept")
-        return fit_segments(engine, design, fitted, constant, max_iter=max_iter, tol=tol, reporter=reporter,
-                            assemble=assemble_model, formula=formula, source=source, options=options)
+        return fit_segments(
+            engine,
+            design,
+            fitted,
+            constant,
+            max_iter=max_iter,
+            tol=tol,
+            reporter=reporter,
+            assemble=assemble_model,
+            formula=formula,
+            source=source,
+            options=options,
+        )
 
     factor = blocked_factor(design) if engine.parameters else None
     if factor is not None and not (special.plain and special.robust_kind is None):  # prior correction is fine
@@ -201,40 +256,69 @@ def _fit(
         beta_start = start_values(design, start, fitted)
     else:
         full_pass = StatisticsPass(engine, design)
-        if start is None and design.rows_used >= SAMPLE_START_ROWS and special.plain and engine.dialect == "duckdb":
-            beta_start, start_deviance = _sample_start(engine, design, fitted, default_start, max_iter, tol, reporter)
+        if (
+            start is None
+            and design.rows_used >= SAMPLE_START_ROWS
+            and special.plain
+            and engine.dialect == "duckdb"
+        ):
+            beta_start, start_deviance = _sample_start(
+                engine, design, fitted, default_start, max_iter, tol, reporter
+            )
         else:
             beta_start = start_values(design, start, fitted)
 
     firth = special.firth
-    step_evaluate = bias_reduction.firth_evaluator(engine, design, full_pass, has_intercept) if firth else full_pass
+    step_evaluate = (
+        bias_reduction.firth_evaluator(engine, design, full_pass, has_intercept) if firth else full_pass
+    )
     if special.penalty_request is not None:
-        penalised = penalized.fit_penalised(engine, design, full_pass, beta_start, fitted, special.penalty_request,
-                                            max_iter, reporter)
+        penalised = penalized.fit_penalised(
+            engine, design, full_pass, beta_start, fitted, special.penalty_request, max_iter, reporter
+        )
         newton = penalised.newton
     else:
         fallback = None if start is None else default_start
         if firth:
             rules = bias_reduction.rules(max_iter, tol, has_intercept, reporter, fallback, design.trial_sum)
         else:
-            rules = NewtonRules(max_passes=max_iter, tol=tol, protected=has_intercept, report=reporter,
-                                fallback_start=fallback, weight_total=design.trial_sum,
-                                start_objective=start_deviance)
-        newton = solve(NewtonRun(Deviance(design.saturated_loglik), beta_start, rules),
-                       lambda beta, active: step_evaluate([fitted[k] for k in active], beta))
+            rules = NewtonRules(
+                max_passes=max_iter,
+                tol=tol,
+                protected=has_intercept,
+                report=reporter,
+                fallback_start=fallback,
+                weight_total=design.trial_sum,
+                start_objective=start_deviance,
+            )
+        newton = solve(
+            NewtonRun(Deviance(design.saturated_loglik), beta_start, rules),
+            lambda beta, active: step_evaluate([fitted[k] for k in active], beta),
+        )
     active = [fitted[k] for k in newton.active]
     aliased = sorted(constant + [fitted[k] for k in newton.aliased])
     if firth:
         newton = bias_reduction.finish(newton, full_pass, active)
     null_loglik = _null_loglik(engine, design, max_iter, tol)
-    model = assemble_model(design, newton, active, aliased, null_loglik, engine.scans, formula, source,
-                           {**options, "firth": firth})
+    model = assemble_model(
+        design,
+        newton,
+        active,
+        aliased,
+        null_loglik,
+        engine.scans,
+        formula,
+        source,
+        {**options, "firth": firth},
+    )
     if firth:
         model = bias_reduction.annotate(model, newton.last)
     if special.penalty_request is not None:
         model = penalized.annotate(model, penalised, special.penalty_request)
     if special.robust_kind is not None:
-        model = robust_errors.with_robust_errors(engine.connection, model, special.robust_kind, special.cluster)
+        model = robust_errors.with_robust_errors(
+            engine.connection, model, special.robust_kind, special.cluster
+        )
     if special.population_rate is not None:
         model = priorcorrection.prior_corrected(model, special.population_rate)
     return model
@@ -260,8 +344,14 @@ def _sample_start(
     if isinstance(design.relation, exp.Table) and not design.relation.args.get("sample"):
         share = min(100.0, 100.0 * SAMPLE_ROWS / max(design.rows_total, 1))
         sampled = design.relation.copy()
-        sampled.set("sample", exp.TableSample(method=exp.var("SYSTEM"), percent=sb.number(round(share, 6)),
-                                              seed=exp.Literal.number(SAMPLE_SEED)))
+        sampled.set(
+            "sample",
+            exp.TableSample(
+                method=exp.var("SYSTEM"),
+                percent=sb.number(round(share, 6)),
+                seed=exp.Literal.number(SAMPLE_SEED),
+            ),
+        )
         base_sql = engine.sql(dataclasses.replace(design, relation=sampled).base_query())
         engine.execute(scan=False, sql=f'CREATE TEMP TABLE "{table}" AS {base_sql}')
     else:
@@ -269,7 +359,7 @@ def _sample_start(
         engine.execute(
             scan=True,
             sql=f'CREATE TEMP TABLE "{table}" AS SELECT * FROM ({base_sql}) '
-            f"USING SAMPLE reservoir({SAMPLE_ROWS} ROWS) REPEATABLE ({SAMPLE_SEED})"
+            f"USING SAMPLE reservoir({SAMPLE_ROWS} ROWS) REPEATABLE ({SAMPLE_SEED})",
         )
     try:
         rows = exp.select("*").from_(exp.Table(this=exp.to_identifier(table, quoted=True)))
@@ -280,11 +370,19 @@ def _sample_start(
 
         sample_pass = StatisticsPass(engine, design, rows)
         protected = 1 if design.intercept else 0
-        rules = NewtonRules(max_passes=max_iter, tol=max(tol, SAMPLE_TOL), protected=protected,
-                            report=sample_report if reporter else None)
-        sample = solve(NewtonRun(Deviance(0.0), default_start, rules),
-                       lambda beta, active: sample_pass([fitted[k] for k in active], beta))
-        sampled_rows = engine.fetch(exp.select(exp.Count(this=exp.Star())).from_(rows.subquery("dbfit_s")), scan=False)[0][0]
+        rules = NewtonRules(
+            max_passes=max_iter,
+            tol=max(tol, SAMPLE_TOL),
+            protected=protected,
+            report=sample_report if reporter else None,
+        )
+        sample = solve(
+            NewtonRun(Deviance(0.0), default_start, rules),
+            lambda beta, active: sample_pass([fitted[k] for k in active], beta),
+        )
+        sampled_rows = engine.fetch(
+            exp.select(exp.Count(this=exp.Star())).from_(rows.subquery("dbfit_s")), scan=False
+        )[0][0]
     finally:
         engine.execute(sql=f'DROP TABLE IF EXISTS "{table}"', scan=False)
     if not sample.converged or sample.separation:
@@ -298,21 +396,37 @@ def _sample_start(
     return refine_with_fixed_information(full_pass, fitted, start, scaled, design.saturated_loglik, reporter)
 
 
-def refine_with_fixed_information(full_pass: StatisticsPass, fitted: list[int], start: np.ndarray,
-                                  information: Information, saturated_loglik: float,
-                                  reporter: Reporter | None) -> tuple[np.ndarray, float]:
+def refine_with_fixed_information(
+    full_pass: StatisticsPass,
+    fitted: list[int],
+    start: np.ndarray,
+    information: Information,
+    saturated_loglik: float,
+    reporter: Reporter | None,
+) -> tuple[np.ndarray, float]:
     """Newton steps with a fixed approximation of the information (a chord method, :class:`ChordDeviance`) on
     score-only scans, several times cheaper than one for X'WX; stops at the first rise, after REFINE_PASSES
     scans, or at a step below REFINE_STEP. Returns the refined estimates and the last deviance measured."""
-    rules = NewtonRules(max_passes=REFINE_PASSES, step_floor=REFINE_STEP, confirm=False, stop_on_rise=True,
-                        check_aliasing=False, detect_separation=False, report=reporter,
-                        phase="full data, score only")
-    refined = solve(NewtonRun(ChordDeviance(saturated_loglik, information), start, rules),
-                    lambda beta, active: full_pass.score_only(fitted, beta))
+    rules = NewtonRules(
+        max_passes=REFINE_PASSES,
+        step_floor=REFINE_STEP,
+        confirm=False,
+        stop_on_rise=True,
+        check_aliasing=False,
+        detect_separation=False,
+        report=reporter,
+        phase="full data, score only",
+    )
+    refined = solve(
+        NewtonRun(ChordDeviance(saturated_loglik, information), start, rules),
+        lambda beta, active: full_pass.score_only(fitted, beta),
+    )
     return refined.beta, refined.objective
 
 
-def start_values(design: Design, start: Mapping[str, float] | Sequence[float] | None, fitted: list[int]) -> np.ndarray:
+def start_values(
+    design: Design, start: Mapping[str, float] | Sequence[float] | None, fitted: list[int]
+) -> np.ndarray:
     labels = design.labels
     if start is None:
         internal = np.zeros(len(labels))
@@ -327,7 +441,9 @@ def start_values(design: Design, start: Mapping[str, float] | Sequence[float] | 
     else:
         original = np.asarray(list(start), dtype=float)
         if original.shape != (len(labels),):
-            raise FitError(f"start has {original.size} values but the model has {len(labels)} terms: {labels}")
+            raise FitError(
+                f"start has {original.size} values but the model has {len(labels)} terms: {labels}"
+            )
     original = np.nan_to_num(original, nan=0.0)
     return inference.internal_start(design, original)[fitted]
 
@@ -339,8 +455,10 @@ def _null_loglik(engine: DuckDBEngine, design: Design, max_iter: int, tol: float
     intercept_only = StatisticsPass(engine, design)
     rules = NewtonRules(max_passes=max_iter, tol=tol, protected=1, check_aliasing=False)
     start = np.array([inference.intercept_only_estimate(design)])
-    result = solve(NewtonRun(Deviance(design.saturated_loglik), start, rules),
-                   lambda beta, active: intercept_only.run((), True, beta))
+    result = solve(
+        NewtonRun(Deviance(design.saturated_loglik), start, rules),
+        lambda beta, active: intercept_only.run((), True, beta),
+    )
     return result.last.loglik + design.loglik_constant
 
 
@@ -378,8 +496,12 @@ def assemble_model(
             "separation: the outcome is (quasi-)completely separated, fitted probabilities reach 0 or 1 and the "
             f"maximum-likelihood estimates do not exist; suspected terms: {', '.join(suspects)}. The estimates "
             "and standard errors shown are not trustworthy: drop or merge those terms"
-            + ("" if options.get("firth") else ", or refit with dbfit.fit(..., firth=True) for Firth's "
-               "bias-reduced estimates, which stay finite")
+            + (
+                ""
+                if options.get("firth")
+                else ", or refit with dbfit.fit(..., firth=True) for Firth's "
+                "bias-reduced estimates, which stay finite"
+            )
         )
     elif not newton.converged:
         warnings.append(

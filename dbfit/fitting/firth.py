@@ -15,20 +15,20 @@ stopping rule follow l* itself, and the converged steps are polished until below
 from __future__ import annotations
 
 import dataclasses
-from typing import Callable
+from collections.abc import Callable
 
 import numpy as np
 from sqlglot import exp
 
-from dbfit.model import inference
-from dbfit.expressions import builders as sb
 from dbfit.design.layout import Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError
-from dbfit.solver.newton import IterationReport, NewtonResult, NewtonRules, aliased_columns
-from dbfit.model.fitted import Model
+from dbfit.expressions import builders as sb
 from dbfit.fitting.rowterms import row_terms, upper_products
+from dbfit.model import inference
+from dbfit.model.fitted import Model
 from dbfit.solver.information import PassResult
+from dbfit.solver.newton import IterationReport, NewtonResult, NewtonRules, aliased_columns
 from dbfit.solver.tolerances import FINAL_STEP
 
 Evaluate = Callable[[list[int], np.ndarray], PassResult]
@@ -42,14 +42,15 @@ def hat_value_expression(z: list[exp.Expression], inverse: np.ndarray) -> exp.Ex
     """wt * z' M z written out with the entries of M = I^-1 as literals (off-diagonals counted twice)."""
     size = len(z)
     quadratic: list[exp.Expression] = []
-    for a, product in zip([(a, b) for a in range(size) for b in range(a, size)], upper_products(z)):
-        coefficient = inverse[a[0], a[1]] * (1.0 if a[0] == a[1] else 2.0)
+    for pair, product in zip([(a, b) for a in range(size) for b in range(a, size)], upper_products(z)):
+        coefficient = inverse[pair[0], pair[1]] * (1.0 if pair[0] == pair[1] else 2.0)
         quadratic.append(sb.mul(sb.number(coefficient), product))
     return sb.mul(sb.column("wt"), sb.paren(sb.add(*quadratic)))
 
 
-def adjustment_query(design: Design, parameters: list[int], beta: np.ndarray, inverse: np.ndarray,
-                     curvature: bool = False) -> exp.Select:
+def adjustment_query(
+    design: Design, parameters: list[int], beta: np.ndarray, inverse: np.ndarray, curvature: bool = False
+) -> exp.Select:
     """The sums over the rows that Firth's score and its derivative need, as one row.
 
     ``s{k}``: sum_i h_i (1/2 - mu_i) z_ik, the penalty's part of the modified score. With ``curvature`` also
@@ -61,9 +62,12 @@ def adjustment_query(design: Design, parameters: list[int], beta: np.ndarray, in
     size = len(parameters)
     z = [terms.z(k) for k in range(size)]
     a = [sb.column(f"a{k}") for k in range(size)]
-    with_hat = exp.select(*[exp.alias_(zk, f"a{k}", quoted=True) for k, zk in enumerate(z)],
-                          exp.alias_(hat_value_expression(z, inverse), "hat", quoted=True),
-                          sb.column("mu"), sb.column("wt")).from_(terms.subquery())
+    with_hat = exp.select(
+        *[exp.alias_(zk, f"a{k}", quoted=True) for k, zk in enumerate(z)],
+        exp.alias_(hat_value_expression(z, inverse), "hat", quoted=True),
+        sb.column("mu"),
+        sb.column("wt"),
+    ).from_(terms.subquery())
     half_minus_mu = sb.paren(sb.sub(exp.Literal.number(0.5), sb.column("mu")))
     factors = {"h": sb.mul(sb.column("hat"), half_minus_mu)}
     if curvature:
@@ -71,15 +75,19 @@ def adjustment_query(design: Design, parameters: list[int], beta: np.ndarray, in
         three_variances = sb.mul(exp.Literal.number(3), mu_variance)
         factors["g"] = sb.mul(sb.column("hat"), sb.paren(sb.sub(exp.Literal.number(0.5), three_variances)))
         factors["q"] = sb.mul(sb.column("wt"), half_minus_mu.copy())
-    per_row = exp.select(*[node.copy() for node in a],
-                         *[exp.alias_(node, name, quoted=True) for name, node in factors.items()]
-                         ).from_(with_hat.subquery("dbfit_hat"))
+    per_row = exp.select(
+        *[node.copy() for node in a], *[exp.alias_(node, name, quoted=True) for name, node in factors.items()]
+    ).from_(with_hat.subquery("dbfit_hat"))
     sums = [(f"s{k}", sb.agg_sum(sb.mul(sb.column("h"), a[k].copy()))) for k in range(size)]
     if curvature:
-        sums += [(f"c{i}_{j}", sb.agg_sum(sb.mul(sb.column("g"), a[i].copy(), a[j].copy())))
-                 for i, j in _pairs(size)]
-        sums += [(f"t{i}_{j}_{k}", sb.agg_sum(sb.mul(sb.column("q"), a[i].copy(), a[j].copy(), a[k].copy())))
-                 for i, j, k in _triples(size)]
+        sums += [
+            (f"c{i}_{j}", sb.agg_sum(sb.mul(sb.column("g"), a[i].copy(), a[j].copy())))
+            for i, j in _pairs(size)
+        ]
+        sums += [
+            (f"t{i}_{j}_{k}", sb.agg_sum(sb.mul(sb.column("q"), a[i].copy(), a[j].copy(), a[k].copy())))
+            for i, j, k in _triples(size)
+        ]
     return exp.select(*[exp.alias_(node, name, quoted=True) for name, node in sums]).from_(
         per_row.subquery("dbfit_factors")
     )
@@ -93,8 +101,9 @@ def _triples(size: int) -> list[tuple[int, int, int]]:
     return [(i, j, k) for i in range(size) for j in range(i, size) for k in range(j, size)]
 
 
-def penalised_information(information: np.ndarray, inverse: np.ndarray, pair_sums: np.ndarray,
-                          triple_sums: np.ndarray) -> np.ndarray:
+def penalised_information(
+    information: np.ndarray, inverse: np.ndarray, pair_sums: np.ndarray, triple_sums: np.ndarray
+) -> np.ndarray:
     """The negative Hessian of l*(b) = l(b) + 1/2 log|I(b)|: I - C + 2 T.
 
     Differentiating Firth's modified score U*_j = sum_i [r_i + h_i (1/2 - mu_i)] z_ij (Firth 1993; Heinze and
@@ -144,7 +153,9 @@ def firth_evaluator(engine: DuckDBEngine, design: Design, evaluate: Evaluate, pr
         gram = core.gram.keep(keep).as_array()
         sign, log_determinant = np.linalg.slogdet(gram)
         if sign <= 0:
-            raise FitError("the information matrix is singular at the current estimates; the Firth penalty is undefined")
+            raise FitError(
+                "the information matrix is singular at the current estimates; the Firth penalty is undefined"
+            )
         inverse = np.linalg.inv(gram)
         size = len(keep)
         curvature = size == len(parameters) and size <= CURVATURE_MAX_PARAMETERS
@@ -156,7 +167,7 @@ def firth_evaluator(engine: DuckDBEngine, design: Design, evaluate: Evaluate, pr
         newton_matrix = core.gram.as_array()
         if curvature:
             pairs = len(_pairs(size))
-            pair_sums, triple_sums = values[size: size + pairs], values[size + pairs:]
+            pair_sums, triple_sums = values[size : size + pairs], values[size + pairs :]
             candidate = penalised_information(gram, inverse, pair_sums, triple_sums)
             if _positive_definite(candidate):
                 newton_matrix = candidate
@@ -189,8 +200,9 @@ class SecantCurvature:
         self.parameters: list[int] = []
         self.beta = self.score = self.correction = np.zeros(0)
 
-    def matrix(self, parameters: list[int], beta: np.ndarray, score: np.ndarray,
-               information: np.ndarray) -> np.ndarray:
+    def matrix(
+        self, parameters: list[int], beta: np.ndarray, score: np.ndarray, information: np.ndarray
+    ) -> np.ndarray:
         """I(b) + D after the update with this pass's estimate and modified score."""
         if parameters != self.parameters:
             self.parameters, self.correction = list(parameters), np.zeros_like(information)
@@ -223,15 +235,28 @@ def penalized_loglik(loglik: float, internal_gram: np.ndarray, transform: np.nda
     return loglik + 0.5 * log_determinant - log_transform
 
 
-def rules(max_iter: int, tol: float, protected: int, report: Callable[[IterationReport], None] | None,
-          fallback_start: np.ndarray | None, weight_total: float) -> NewtonRules:
+def rules(
+    max_iter: int,
+    tol: float,
+    protected: int,
+    report: Callable[[IterationReport], None] | None,
+    fallback_start: np.ndarray | None,
+    weight_total: float,
+) -> NewtonRules:
     """The Newton rules of a Firth fit: no separation check (the maximum of l* exists under separation, and
     slowly shrinking steps there are no sign of divergence), and after the stopping rule on the change of l*,
     plain steps on the modified score until one is below FINAL_STEP (one or two with the penalised Hessian,
     more where the step falls back to the information)."""
-    return NewtonRules(max_passes=max_iter, tol=tol, protected=protected, report=report,
-                       fallback_start=fallback_start, weight_total=weight_total, detect_separation=False,
-                       polish_below=FINAL_STEP)
+    return NewtonRules(
+        max_passes=max_iter,
+        tol=tol,
+        protected=protected,
+        report=report,
+        fallback_start=fallback_start,
+        weight_total=weight_total,
+        detect_separation=False,
+        polish_below=FINAL_STEP,
+    )
 
 
 def finish(newton: NewtonResult, core_evaluate: Evaluate, parameters: list[int]) -> NewtonResult:
@@ -246,6 +271,9 @@ def annotate(model: Model, last: PassResult) -> Model:
     stats = dict(model.stats)
     information = last.gram.as_array()
     stats["penalized_log_likelihood"] = penalized_loglik(stats["log_likelihood"], information, transform)
-    stats["notes"] = [*stats.get("notes", []), "method    Firth bias-reduced (log-likelihood + 1/2 log|information|)"
-                      f"; penalised log-lik {stats['penalized_log_likelihood']:,.4f}"]
+    stats["notes"] = [
+        *stats.get("notes", []),
+        "method    Firth bias-reduced (log-likelihood + 1/2 log|information|)"
+        f"; penalised log-lik {stats['penalized_log_likelihood']:,.4f}",
+    ]
     return dataclasses.replace(model, stats=stats)

@@ -14,11 +14,10 @@ import numbers
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+from dbfit.errors import FitError
 from dbfit.fitting import penalised as penalized
-
 from dbfit.fitting import prior_correction as priorcorrection
 from dbfit.fitting import robust as robust_errors
-from dbfit.errors import FitError
 
 EXPRESSION_OPTIONS = ("weights", "offset", "trials", "by", "cluster", "split_key")
 DEFAULTS: dict[str, Any] = {"max_iter": 50, "tol": 1e-10, "firth": False, "l1_share": 0.0, "folds": 5}
@@ -75,10 +74,14 @@ class FitOptions:
         known = {f.name for f in dataclasses.fields(cls)} - {"robust_kind", "penalty_request"}
         unknown = sorted(set(options) - known)
         if unknown:
-            raise FitError(f"unknown fit option(s) {', '.join(unknown)}; the options are {', '.join(sorted(known))}")
+            raise FitError(
+                f"unknown fit option(s) {', '.join(unknown)}; the options are {', '.join(sorted(known))}"
+            )
         for name, default in DEFAULTS.items():
             if name in options and options[name] is None:
-                raise FitError(f"{name} must be given a value (got None); leave it out for the default {default!r}")
+                raise FitError(
+                    f"{name} must be given a value (got None); leave it out for the default {default!r}"
+                )
         values = {**DEFAULTS, **options}
         for name in EXPRESSION_OPTIONS:
             values[name] = _expression_text(name, values.get(name))
@@ -95,15 +98,18 @@ class FitOptions:
         if not 0 <= values["l1_share"] <= 1:
             raise FitError(f"l1_share must be between 0 (ridge) and 1 (pure L1) (got {values['l1_share']!r})")
         if values.get("robust") is not None and not isinstance(values["robust"], str):
-            raise FitError(f"robust must be one of {', '.join(robust_errors.KINDS)} (got {values['robust']!r})")
+            raise FitError(
+                f"robust must be one of {', '.join(robust_errors.KINDS)} (got {values['robust']!r})"
+            )
         priorcorrection.check_population_rate(values.get("population_rate"))
         shrinkage = values.get("shrinkage")
         if isinstance(shrinkage, (list, tuple)):
             shrinkage = tuple(shrinkage)
         values["shrinkage"] = shrinkage
         values["robust_kind"] = robust_errors.choose_kind(values.get("robust"), values.get("cluster"))
-        values["penalty_request"] = penalized.check_request(shrinkage, values["l1_share"], values["folds"],
-                                                            values.get("split_key"))
+        values["penalty_request"] = penalized.check_request(
+            shrinkage, values["l1_share"], values["folds"], values.get("split_key")
+        )
         chosen = cls(**values)
         chosen._check_combinations()
         return chosen
@@ -111,8 +117,15 @@ class FitOptions:
     @classmethod
     def from_text(cls, **options: Any) -> FitOptions:
         """As :meth:`of`, with numbers and flags given as SQL text (NULL: the default)."""
-        readers = {"max_iter": int, "folds": int, "tol": float, "l1_share": float, "population_rate": float,
-                   "firth": _text_flag, "shrinkage": _text_shrinkage}
+        readers = {
+            "max_iter": int,
+            "folds": int,
+            "tol": float,
+            "l1_share": float,
+            "population_rate": float,
+            "firth": _text_flag,
+            "shrinkage": _text_shrinkage,
+        }
         converted = {}
         for name, value in options.items():
             if value is None or name not in readers:
@@ -126,7 +139,9 @@ class FitOptions:
 
     def variants(self) -> Any:
         """The options that change how the estimates or their errors are computed (a ``FitVariants``)."""
-        return FitVariants(self.robust_kind, self.cluster, self.firth, self.population_rate, self.penalty_request)
+        return FitVariants(
+            self.robust_kind, self.cluster, self.firth, self.population_rate, self.penalty_request
+        )
 
     def _check_combinations(self) -> None:
         if self.penalty_request is not None and (self.firth or self.robust_kind is not None):
@@ -139,15 +154,19 @@ class FitOptions:
     def check_engine(self, dialect: str) -> None:
         """Refuse what only DuckDB can fit."""
         if dialect != "duckdb" and (self.trials is not None or not self.variants().ordinary):
-            raise FitError(f"on {dialect}, dbfit fits plain models (weights, offset and by= allowed); trials, "
-                           "firth, shrinkage, robust and population_rate need DuckDB for now")
+            raise FitError(
+                f"on {dialect}, dbfit fits plain models (weights, offset and by= allowed); trials, "
+                "firth, shrinkage, robust and population_rate need DuckDB for now"
+            )
 
 
 def _expression_text(name: str, value: Any) -> str | None:
     if value is None:
         return None
     if not isinstance(value, str):
-        raise FitError(f"{name} must be SQL expression text such as \"amount\" (got {type(value).__name__} {value!r})")
+        raise FitError(
+            f'{name} must be SQL expression text such as "amount" (got {type(value).__name__} {value!r})'
+        )
     if not value.strip():
         raise FitError(f"{name} is empty: give an SQL expression or leave {name} out")
     return value
@@ -157,11 +176,15 @@ def _reference(value: Any) -> dict[str, Any] | None:
     if value is None:
         return None
     if not isinstance(value, Mapping):
-        raise FitError(f"reference must map each categorical term to its reference level, e.g. {{'region': 'north'}} "
-                       f"(got {type(value).__name__} {value!r})")
+        raise FitError(
+            f"reference must map each categorical term to its reference level, e.g. {{'region': 'north'}} "
+            f"(got {type(value).__name__} {value!r})"
+        )
     for term, level in value.items():
         if not isinstance(term, str):
-            raise FitError(f"reference names term {term!r}, which is not text: name the term as in the formula")
+            raise FitError(
+                f"reference names term {term!r}, which is not text: name the term as in the formula"
+            )
         if level is not None and not isinstance(level, (str, numbers.Real)):
             raise FitError(f"reference level {level!r} of '{term}' must be a single value (text or number)")
     return dict(value)
@@ -169,14 +192,18 @@ def _reference(value: Any) -> dict[str, Any] | None:
 
 def _positive(value: Any) -> Any:
     if value is not None and not isinstance(value, (str, numbers.Real)):
-        raise FitError("positive must be one target value (text, number or boolean), "
-                       f"got {type(value).__name__} {value!r}")
+        raise FitError(
+            "positive must be one target value (text, number or boolean), "
+            f"got {type(value).__name__} {value!r}"
+        )
     return value
 
 
 def _whole(value: Any, name: str, least: int) -> int:
     if isinstance(value, bool) or not isinstance(value, numbers.Integral):
-        raise FitError(f"{name} must be a whole number of at least {least} (got {type(value).__name__} {value!r})")
+        raise FitError(
+            f"{name} must be a whole number of at least {least} (got {type(value).__name__} {value!r})"
+        )
     if value < least:
         raise FitError(f"{name} must be a whole number of at least {least} (got {value!r})")
     return int(value)
@@ -202,15 +229,21 @@ def _start(value: Any) -> Mapping[str, float] | tuple[float, ...] | None:
             if not isinstance(label, str):
                 raise FitError(f"start names term {label!r}, which is not text: use the model's term labels")
             if number is not None and (isinstance(number, bool) or not isinstance(number, numbers.Real)):
-                raise FitError(f"start value of '{label}' must be a number (got {type(number).__name__} {number!r})")
+                raise FitError(
+                    f"start value of '{label}' must be a number (got {type(number).__name__} {number!r})"
+                )
         return dict(value)
     if isinstance(value, (str, bytes)) or not isinstance(value, Sequence) and not hasattr(value, "__array__"):
-        raise FitError(f"start must be a mapping of term label to estimate or a list of estimates in label order "
-                       f"(got {type(value).__name__} {value!r})")
+        raise FitError(
+            f"start must be a mapping of term label to estimate or a list of estimates in label order "
+            f"(got {type(value).__name__} {value!r})"
+        )
     numbers_given = list(value)
     for position, number in enumerate(numbers_given):
         if isinstance(number, bool) or not isinstance(number, numbers.Real):
-            raise FitError(f"start value {position} must be a number (got {type(number).__name__} {number!r})")
+            raise FitError(
+                f"start value {position} must be a number (got {type(number).__name__} {number!r})"
+            )
     return tuple(float(number) for number in numbers_given)
 
 
@@ -226,5 +259,9 @@ def _text_shrinkage(text: str) -> float | str:
 
 
 def _wanted(name: str) -> str:
-    return {"max_iter": "whole number", "folds": "whole number", "firth": "boolean (true or false)",
-            "shrinkage": "number or 'cv'"}.get(name, "number")
+    return {
+        "max_iter": "whole number",
+        "folds": "whole number",
+        "firth": "boolean (true or false)",
+        "shrinkage": "number or 'cv'",
+    }.get(name, "number")

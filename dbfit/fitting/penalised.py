@@ -16,23 +16,22 @@ from __future__ import annotations
 import dataclasses
 import math
 import time
-from collections.abc import Sequence
-from typing import Any, Callable
+from collections.abc import Callable, Sequence
+from typing import Any
 
 import numpy as np
 from sqlglot import exp
 
-from dbfit.model import inference
-
-from dbfit.fitting import splits
 from dbfit.design.layout import Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError
-from dbfit.solver.newton import IterationReport, NewtonResult, Stepper, aliased_columns, solve
-from dbfit.model.fitted import Model
+from dbfit.fitting import splits
 from dbfit.fitting.folds import FoldFit, FoldPass, fold_scan
+from dbfit.model import inference
+from dbfit.model.fitted import Model
 from dbfit.solver.coordinate_descent import Penalty, penalised_run
 from dbfit.solver.information import PassResult
+from dbfit.solver.newton import IterationReport, NewtonResult, Stepper, aliased_columns, solve
 
 GRID_POINTS = 12
 RIDGE_TOP_SHARE = 1e-3  # the top of a ridge grid is placed as for an L1 share of 1e-3 (common practice)
@@ -73,7 +72,9 @@ def check_request(shrinkage: Any, l1_share: Any, folds: Any, split_key: str | No
     """Validate the penalty options; None when no penalty is asked for."""
     if shrinkage is None:
         if split_key is not None:
-            raise FitError("split_key is only used to cross-validate a shrinkage grid; give shrinkage='cv' or a list")
+            raise FitError(
+                "split_key is only used to cross-validate a shrinkage grid; give shrinkage='cv' or a list"
+            )
         return None
     if isinstance(l1_share, bool) or not isinstance(l1_share, (int, float)) or not 0 <= l1_share <= 1:
         raise FitError(f"l1_share must be between 0 (ridge) and 1 (pure L1) (got {l1_share!r})")
@@ -82,20 +83,31 @@ def check_request(shrinkage: Any, l1_share: Any, folds: Any, split_key: str | No
     value: float | tuple[float, ...] | str
     if isinstance(shrinkage, str):
         if shrinkage != "cv":
-            raise FitError(f"shrinkage must be a number >= 0, a list of numbers > 0, or 'cv' (got {shrinkage!r})")
+            raise FitError(
+                f"shrinkage must be a number >= 0, a list of numbers > 0, or 'cv' (got {shrinkage!r})"
+            )
         value = "cv"
     elif isinstance(shrinkage, (int, float)) and not isinstance(shrinkage, bool):
         if not (math.isfinite(shrinkage) and shrinkage >= 0):
             raise FitError(f"shrinkage must be finite and >= 0 (got {shrinkage!r})")
         value = float(shrinkage)
-    elif isinstance(shrinkage, Sequence) and shrinkage and all(
-        isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) and v > 0 for v in shrinkage
+    elif (
+        isinstance(shrinkage, Sequence)
+        and shrinkage
+        and all(
+            isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) and v > 0
+            for v in shrinkage
+        )
     ):
         value = tuple(sorted({float(v) for v in shrinkage}, reverse=True))
     else:
-        raise FitError(f"shrinkage must be a number >= 0, a non-empty list of numbers > 0, or 'cv' (got {shrinkage!r})")
+        raise FitError(
+            f"shrinkage must be a number >= 0, a non-empty list of numbers > 0, or 'cv' (got {shrinkage!r})"
+        )
     if isinstance(value, float) and split_key is not None:
-        raise FitError("split_key is only used to cross-validate a shrinkage grid; give shrinkage='cv' or a list")
+        raise FitError(
+            "split_key is only used to cross-validate a shrinkage grid; give shrinkage='cv' or a list"
+        )
     return PenaltyRequest(value, float(l1_share), folds, split_key)
 
 
@@ -139,7 +151,9 @@ def fit_penalised(
     if not request.cross_validated:
         result, penalty = run(start, float(request.shrinkage), first)  # type: ignore[arg-type]
         passes = result.iterations + 1
-        return PenalisedFit(_as_newton(result, keep, dropped, passes), penalty, [PathPoint(penalty.shrinkage)], passes)
+        return PenalisedFit(
+            _as_newton(result, keep, dropped, passes), penalty, [PathPoint(penalty.shrinkage)], passes
+        )
 
     null, _ = run(start, math.inf, first)
     passes = null.iterations + 1
@@ -148,7 +162,8 @@ def fit_penalised(
     sizes = splits.fold_sizes(engine, design, fold, request.folds)
     settings = (grid, request.l1_share, mask, max_iter)
     runners = [PathRunner(*settings, design.trial_sum, None, null.scanned, null.last)] + [
-        PathRunner(*settings, design.trial_sum - sizes.trials[k], k, null.scanned) for k in range(request.folds)
+        PathRunner(*settings, design.trial_sum - sizes.trials[k], k, null.scanned)
+        for k in range(request.folds)
     ]
     passes += walk_together(engine, design, parameters, fold, runners, on_scan)
     deviance = -2.0 * np.sum([runner.held_out_logliks for runner in runners[1:]], axis=0)
@@ -162,22 +177,44 @@ def fit_penalised(
     result = runners[0].solutions[chosen]
     path = [PathPoint(s, float(d)) for s, d in zip(grid, deviance)]
     unconverged = sum(not point.converged for runner in runners[1:] for point in runner.solutions)
-    return PenalisedFit(_as_newton(result, keep, dropped, passes), Penalty(grid[chosen], request.l1_share, mask),
-                        path, passes, chosen, unconverged)
+    return PenalisedFit(
+        _as_newton(result, keep, dropped, passes),
+        Penalty(grid[chosen], request.l1_share, mask),
+        path,
+        passes,
+        chosen,
+        unconverged,
+    )
 
 
 class PathRunner:
     """Walks one fit down the grid; each point starts from the last scan of the one before (warm start)."""
 
-    def __init__(self, grid: list[float], l1_share: float, mask: np.ndarray, max_iter: int, trials: float,
-                 held_out: int | None, start: np.ndarray, first: PassResult | None = None) -> None:
-        self.grid, self.l1_share, self.mask, self.max_iter, self.trials = grid, l1_share, mask, max_iter, trials
+    def __init__(
+        self,
+        grid: list[float],
+        l1_share: float,
+        mask: np.ndarray,
+        max_iter: int,
+        trials: float,
+        held_out: int | None,
+        start: np.ndarray,
+        first: PassResult | None = None,
+    ) -> None:
+        self.grid, self.l1_share, self.mask, self.max_iter, self.trials = (
+            grid,
+            l1_share,
+            mask,
+            max_iter,
+            trials,
+        )
         self.held_out = held_out
         self.solutions: list[NewtonResult] = []
         self.held_out_logliks: list[float] = []
         self._held_out_now = 0.0  # held-out log-likelihood at the solver's last accepted point
-        self.solver: Stepper | None = Stepper(penalised_run(start, Penalty(grid[0], l1_share, mask), trials,
-                                                            max_iter, first))
+        self.solver: Stepper | None = Stepper(
+            penalised_run(start, Penalty(grid[0], l1_share, mask), trials, max_iter, first)
+        )
 
     def wanted(self) -> np.ndarray | None:
         """The point to scan next, or None at the end of the grid (which may grow: see :func:`_weaker`)."""
@@ -201,34 +238,49 @@ class PathRunner:
             self._held_out_now = scan.held_out_loglik
 
 
-def walk_together(engine: DuckDBEngine, design: Design, parameters: list[int], fold: exp.Expression,
-                  runners: list[PathRunner], on_scan: Callable[[float], None]) -> int:
+def walk_together(
+    engine: DuckDBEngine,
+    design: Design,
+    parameters: list[int],
+    fold: exp.Expression,
+    runners: list[PathRunner],
+    on_scan: Callable[[float], None],
+) -> int:
     """Drive all runners to the end of the grid, one shared scan per pass; returns the number of scans."""
     scans = 0
     while True:
         wanted = [(runner, point) for runner in runners if (point := runner.wanted()) is not None]
         if not wanted:
             return scans
-        results = fold_scan(engine, design, parameters, fold, [FoldFit(runner.held_out, point) for runner, point in wanted])
+        results = fold_scan(
+            engine, design, parameters, fold, [FoldFit(runner.held_out, point) for runner, point in wanted]
+        )
         scans += 1
         on_scan(results[0].result.loglik if wanted[0][0] is runners[0] else math.nan)
         for (runner, _), result in zip(wanted, results):
             runner.take(result)
 
 
-def _scan_reporter(report: Callable[[IterationReport], None] | None, saturated_loglik: float) -> Callable[[float], None]:
+def _scan_reporter(
+    report: Callable[[IterationReport], None] | None, saturated_loglik: float
+) -> Callable[[float], None]:
     began, count = time.perf_counter(), [0]
 
     def on_scan(loglik: float) -> None:
         count[0] += 1
         if report is not None:
-            report(IterationReport(count[0], 2.0 * (saturated_loglik - loglik), time.perf_counter() - began, math.nan))
+            report(
+                IterationReport(
+                    count[0], 2.0 * (saturated_loglik - loglik), time.perf_counter() - began, math.nan
+                )
+            )
 
     return on_scan
 
 
-def _grid(request: PenaltyRequest, null: NewtonResult, mask: np.ndarray, trials: float,
-          size: int) -> list[float]:
+def _grid(
+    request: PenaltyRequest, null: NewtonResult, mask: np.ndarray, trials: float, size: int
+) -> list[float]:
     if request.shrinkage != "cv":
         return list(request.shrinkage)  # type: ignore[arg-type]
     top = float(np.max(np.abs(null.last.score[mask]))) / (trials * max(request.l1_share, RIDGE_TOP_SHARE))
@@ -241,7 +293,7 @@ def _weaker(grid: list[float]) -> list[float]:
     ``FLOOR_SHARE`` of the top, the last value is 0 (no penalty)."""
     spacing = grid[1] / grid[0]
     count = math.ceil(math.log(0.1) / math.log(spacing))
-    values = [grid[-1] * spacing ** k for k in range(1, count + 1)]
+    values = [grid[-1] * spacing**k for k in range(1, count + 1)]
     kept = [v for v in values if v >= grid[0] * FLOOR_SHARE]
     return kept if len(kept) == len(values) else kept + [0.0]
 
@@ -258,7 +310,12 @@ def effective_df(gram: np.ndarray, beta: np.ndarray, penalty: Penalty, trials: f
     if nonzero.size == 0:
         return 0.0
     sub = gram[np.ix_(nonzero, nonzero)]
-    ridge = trials * penalty.shrinkage * (1.0 - penalty.l1_share) * np.diag(penalty.penalised[nonzero].astype(float))
+    ridge = (
+        trials
+        * penalty.shrinkage
+        * (1.0 - penalty.l1_share)
+        * np.diag(penalty.penalised[nonzero].astype(float))
+    )
     return float(np.trace(np.linalg.solve(sub + ridge, sub)))
 
 
@@ -266,21 +323,36 @@ def annotate(model: Model, fit: PenalisedFit, request: PenaltyRequest) -> Model:
     """Penalised estimates carry no Wald standard errors; record the penalty, the path and the exact zeros."""
     covariance = np.full_like(model.covariance, np.nan)
     design = model.design
-    zeros = [label for k, (label, value) in enumerate(zip(model.labels, model.estimates))
-             if value == 0.0 and not (design.intercept and k == 0)]
+    zeros = [
+        label
+        for k, (label, value) in enumerate(zip(model.labels, model.estimates))
+        if value == 0.0 and not (design.intercept and k == 0)
+    ]
     df = effective_df(fit.newton.last.gram.as_array(), fit.newton.beta, fit.penalty, design.trial_sum)
     stats = dict(model.stats)
     rows = design.rows_informative
     aic, bic = inference.information_criteria(stats["log_likelihood"], 0, rows)
     stats.update(
-        shrinkage=fit.penalty.shrinkage, l1_share=fit.penalty.l1_share, effective_df=df, exact_zeros=zeros,
-        aic=aic + 2.0 * df, bic=bic + math.log(rows) * df, df_residual=round(rows - df, 3),
+        shrinkage=fit.penalty.shrinkage,
+        l1_share=fit.penalty.l1_share,
+        effective_df=df,
+        exact_zeros=zeros,
+        aic=aic + 2.0 * df,
+        bic=bic + math.log(rows) * df,
+        df_residual=round(rows - df, 3),
         passes=fit.passes,
         path=[{"shrinkage": p.shrinkage, "cv_deviance": p.cv_deviance} for p in fit.path],
     )
-    kind = "ridge" if fit.penalty.l1_share == 0 else ("L1 (lasso)" if fit.penalty.l1_share == 1 else "elastic net")
-    how = (f", chosen by {request.folds}-fold cross-validated deviance over {len(fit.path)} values"
-           if fit.chosen is not None else "")
+    kind = (
+        "ridge"
+        if fit.penalty.l1_share == 0
+        else ("L1 (lasso)" if fit.penalty.l1_share == 1 else "elastic net")
+    )
+    how = (
+        f", chosen by {request.folds}-fold cross-validated deviance over {len(fit.path)} values"
+        if fit.chosen is not None
+        else ""
+    )
     stats["notes"] = [
         *stats.get("notes", []),
         f"penalty   {kind} on the standardised scale, shrinkage {fit.penalty.shrinkage:.6g}{how}; "
@@ -289,23 +361,33 @@ def annotate(model: Model, fit: PenalisedFit, request: PenaltyRequest) -> Model:
     ]
     warnings = list(model.warnings)
     if fit.chosen is not None and len(fit.path) > 1 and fit.chosen in (0, len(fit.path) - 1):
-        end = ("strongest" if fit.chosen == 0 else "weakest")
+        end = "strongest" if fit.chosen == 0 else "weakest"
         beyond = fit.penalty.shrinkage > 0 or fit.chosen == 0
         warnings.append(
             f"shrinkage at the end of the grid: the cross-validated deviance is least at the {end} value "
             f"tried, {fit.penalty.shrinkage:.6g}; "
-            + ("the best strength may lie beyond it: widen the grid" if beyond
-               else "the data need no penalty (the estimates are the maximum-likelihood ones)")
+            + (
+                "the best strength may lie beyond it: widen the grid"
+                if beyond
+                else "the data need no penalty (the estimates are the maximum-likelihood ones)"
+            )
         )
     if fit.unconverged:
-        warnings.append(f"not converged: {fit.unconverged} fold fit(s) along the path stopped after max_iter passes; "
-                        "their held-out deviance is approximate: raise max_iter")
+        warnings.append(
+            f"not converged: {fit.unconverged} fold fit(s) along the path stopped after max_iter passes; "
+            "their held-out deviance is approximate: raise max_iter"
+        )
     return dataclasses.replace(
         model,
         covariance=covariance,
         coefficients=inference.coefficient_table(model.labels, model.estimates, covariance),
         stats=stats,
         warnings=warnings,
-        options={**model.options, "shrinkage": request.shrinkage, "l1_share": request.l1_share,
-                 "folds": request.folds if request.cross_validated else None, "split_key": request.split_key},
+        options={
+            **model.options,
+            "shrinkage": request.shrinkage,
+            "l1_share": request.l1_share,
+            "folds": request.folds if request.cross_validated else None,
+            "split_key": request.split_key,
+        },
     )

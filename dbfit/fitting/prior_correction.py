@@ -14,16 +14,22 @@ import dataclasses
 
 import numpy as np
 
-from dbfit.model import inference
 from dbfit.errors import FitError
+from dbfit.model import inference
 from dbfit.model.fitted import Model
 
 
 def check_population_rate(population_rate: float | None) -> None:
     if population_rate is None:
         return
-    if isinstance(population_rate, bool) or not isinstance(population_rate, (int, float)) or not 0 < population_rate < 1:
-        raise FitError(f"population_rate must be the population event rate, strictly between 0 and 1 (got {population_rate!r})")
+    if (
+        isinstance(population_rate, bool)
+        or not isinstance(population_rate, (int, float))
+        or not 0 < population_rate < 1
+    ):
+        raise FitError(
+            f"population_rate must be the population event rate, strictly between 0 and 1 (got {population_rate!r})"
+        )
 
 
 def intercept_shift(sample_rate: float, population_rate: float) -> float:
@@ -35,16 +41,22 @@ def prior_corrected(model: Model, population_rate: float) -> Model:
     """A copy of ``model`` with its intercept corrected to the population event rate ``population_rate``."""
     check_population_rate(population_rate)
     if not model.design.intercept:
-        raise FitError("population_rate corrects the intercept, but the model has none (the formula drops it)")
+        raise FitError(
+            "population_rate corrects the intercept, but the model has none (the formula drops it)"
+        )
     if model.options.get("population_rate") is not None:
-        raise FitError(f"the intercept is already prior-corrected (population_rate={model.options['population_rate']})")
+        raise FitError(
+            f"the intercept is already prior-corrected (population_rate={model.options['population_rate']})"
+        )
     design = model.design
     sample_rate = inference.success_rate(design)
     shift = intercept_shift(sample_rate, population_rate)
     estimates = model.estimates.copy()
     estimates[0] -= shift
     stats = dict(model.stats)
-    stats.update(sample_event_rate=sample_rate, population_event_rate=float(population_rate), intercept_shift=-shift)
+    stats.update(
+        sample_event_rate=sample_rate, population_event_rate=float(population_rate), intercept_shift=-shift
+    )
     stats["notes"] = [
         *stats.get("notes", []),
         f"intercept prior-corrected for outcome sampling: event rate {sample_rate:.4g} in the rows, "
@@ -57,7 +69,6 @@ def prior_corrected(model: Model, population_rate: float) -> Model:
         stats=stats,
         options={**model.options, "population_rate": float(population_rate)},
     )
-
 
 
 def fitted_estimates(model: Model) -> np.ndarray:

@@ -17,15 +17,15 @@ import duckdb
 import numpy as np
 from sqlglot import exp
 
-from dbfit.model import inference
-from dbfit.expressions import builders as sb
 from dbfit.design.layout import Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError
+from dbfit.expressions import builders as sb
 from dbfit.expressions.formula import parse_expression
-from dbfit.model.fitted import Model
 from dbfit.fitting.prior_correction import fitted_estimates
 from dbfit.fitting.rowterms import row_terms, symmetric, triangle_size, upper_products
+from dbfit.model import inference
+from dbfit.model.fitted import Model
 
 KINDS = ("HC0", "HC1", "cluster")
 CLUSTER = "dbfit_cluster"
@@ -47,11 +47,15 @@ def choose_kind(robust: str | None, cluster: str | None) -> str | None:
     if robust == "cluster" and cluster is None:
         raise FitError("robust='cluster' needs cluster=<SQL expression naming each row's cluster>")
     if robust != "cluster" and cluster is not None:
-        raise FitError(f"cluster={cluster!r} was given with robust={robust!r}; use robust='cluster' (or leave it out)")
+        raise FitError(
+            f"cluster={cluster!r} was given with robust={robust!r}; use robust='cluster' (or leave it out)"
+        )
     return robust
 
 
-def sandwich_query(design: Design, parameters: list[int], beta: np.ndarray, cluster: exp.Expression | None) -> exp.Select:
+def sandwich_query(
+    design: Design, parameters: list[int], beta: np.ndarray, cluster: exp.Expression | None
+) -> exp.Select:
     """One scan: upper triangles of the bread and the meat, the count of units and of rows with a NULL cluster."""
     terms = row_terms(design, parameters, beta, {CLUSTER: cluster} if cluster is not None else None)
     size = len(parameters)
@@ -63,12 +67,19 @@ def sandwich_query(design: Design, parameters: list[int], beta: np.ndarray, clus
         sums = bread + meat + [exp.Count(this=exp.Star()), exp.Literal.number(0)]
         return _aliased_select(sums).from_(terms.subquery())
     # Two levels: score and information sums per cluster, then the outer products of the cluster scores.
-    per_cluster = exp.select(
-        exp.alias_(exp.Is(this=sb.column(CLUSTER), expression=exp.Null()), "missing", quoted=True),
-        exp.alias_(exp.Count(this=exp.Star()), "rows", quoted=True),
-        *[exp.alias_(s, f"b{i}", quoted=True) for i, s in enumerate(bread)],
-        *[exp.alias_(sb.agg_sum(sb.mul(sb.column("r"), zk)), f"g{k}", quoted=True) for k, zk in enumerate(z)],
-    ).from_(terms.subquery()).group_by(sb.column(CLUSTER))
+    per_cluster = (
+        exp.select(
+            exp.alias_(exp.Is(this=sb.column(CLUSTER), expression=exp.Null()), "missing", quoted=True),
+            exp.alias_(exp.Count(this=exp.Star()), "rows", quoted=True),
+            *[exp.alias_(s, f"b{i}", quoted=True) for i, s in enumerate(bread)],
+            *[
+                exp.alias_(sb.agg_sum(sb.mul(sb.column("r"), zk)), f"g{k}", quoted=True)
+                for k, zk in enumerate(z)
+            ],
+        )
+        .from_(terms.subquery())
+        .group_by(sb.column(CLUSTER))
+    )
     group_scores = [sb.column(f"g{k}") for k in range(size)]
     missing = exp.If(this=sb.column("missing"), true=sb.column("rows"), false=exp.Literal.number(0))
     sums = [sb.agg_sum(sb.column(f"b{i}")) for i in range(len(bread))]
@@ -81,7 +92,9 @@ def _aliased_select(values: list[exp.Expression]) -> exp.Select:
     return exp.select(*[exp.alias_(v, f"s{i}", quoted=True) for i, v in enumerate(values)])
 
 
-def sandwich_parts(engine: DuckDBEngine, design: Design, parameters: list[int], beta: np.ndarray, cluster_text: str | None) -> SandwichParts:
+def sandwich_parts(
+    engine: DuckDBEngine, design: Design, parameters: list[int], beta: np.ndarray, cluster_text: str | None
+) -> SandwichParts:
     cluster = parse_expression(cluster_text, "cluster") if cluster_text is not None else None
     row = engine.fetch(sandwich_query(design, parameters, beta, cluster))[0]
     size = len(parameters)
@@ -94,8 +107,12 @@ def sandwich_parts(engine: DuckDBEngine, design: Design, parameters: list[int], 
             "give every row a cluster (e.g. coalesce(...)) or filter those rows in the source"
         )
     if cluster is not None and units < 2:
-        raise FitError(f"cluster '{cluster_text}' puts all {design.rows_used} rows in {units} cluster; at least 2 are needed")
-    return SandwichParts(symmetric(values[:triangle], size), symmetric(values[triangle : 2 * triangle], size), units)
+        raise FitError(
+            f"cluster '{cluster_text}' puts all {design.rows_used} rows in {units} cluster; at least 2 are needed"
+        )
+    return SandwichParts(
+        symmetric(values[:triangle], size), symmetric(values[triangle : 2 * triangle], size), units
+    )
 
 
 def sandwich_covariance(parts: SandwichParts, kind: str, rows: int) -> np.ndarray:
@@ -117,7 +134,9 @@ def describe(kind: str, cluster: str | None, clusters: int) -> str:
     return f"std.err   {kind} sandwich (heteroscedasticity-robust{scaling})"
 
 
-def with_robust_errors(con: duckdb.DuckDBPyConnection, model: Model, robust: str | None = None, cluster: str | None = None) -> Model:
+def with_robust_errors(
+    con: duckdb.DuckDBPyConnection, model: Model, robust: str | None = None, cluster: str | None = None
+) -> Model:
     """A copy of ``model`` with sandwich standard errors (HC0, HC1 or cluster-robust by ``cluster``).
 
     Runs one aggregate scan at the model's estimates; the estimates themselves do not change.

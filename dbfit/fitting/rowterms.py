@@ -16,8 +16,8 @@ from dataclasses import dataclass
 import numpy as np
 from sqlglot import exp
 
-from dbfit.expressions import builders as sb
 from dbfit.design.layout import TARGET, Design
+from dbfit.expressions import builders as sb
 
 ONE = None  # stands for the intercept's constant column in ``RowTerms.z_names``
 
@@ -43,8 +43,9 @@ def linear_predictor(coefficients: list[exp.Expression], z: list[exp.Expression 
 def with_e(query: exp.Select, alias: str, etas: dict[str, str] | None = None) -> exp.Select:
     """``SELECT *, exp(-|eta|) AS e FROM (query)``; ``etas``: each eta column's e column."""
     etas = etas or {"eta": "e"}
-    return exp.select("*", *[exp.alias_(sb.exp_neg_abs(sb.column(eta)), e, quoted=True)
-                             for eta, e in etas.items()]).from_(query.subquery(alias))
+    return exp.select(
+        "*", *[exp.alias_(sb.exp_neg_abs(sb.column(eta)), e, quoted=True) for eta, e in etas.items()]
+    ).from_(query.subquery(alias))
 
 
 @dataclass(frozen=True)
@@ -67,8 +68,9 @@ class RowQuantities:
         squared = sb.mul(sb.paren(sb.add(one, e)), sb.paren(sb.add(one.copy(), e.copy())))
         return sb.div(sb.mul(_weight(weight), sb.column("n"), e.copy()), sb.paren(squared))
 
-    def residual(self, weight: exp.Expression | None = None,
-                 mu: exp.Expression | None = None) -> exp.Expression:
+    def residual(
+        self, weight: exp.Expression | None = None, mu: exp.Expression | None = None
+    ) -> exp.Expression:
         """w (y - n mu); ``mu`` may name a column already holding :meth:`mu`."""
         fitted = self.mu() if mu is None else mu
         return sb.mul(_weight(weight), sb.paren(sb.sub(sb.column("y"), sb.mul(sb.column("n"), fitted))))
@@ -111,8 +113,9 @@ def z_columns(design: Design, parameters: list[int]) -> tuple[list[str | None], 
             names.append(ONE)
             continue
         names.append(f"dbfit_z{k}")
-        projections.append(exp.alias_(design.column_expression(design.columns[k - has_intercept]), names[-1],
-                                      quoted=True))
+        projections.append(
+            exp.alias_(design.column_expression(design.columns[k - has_intercept]), names[-1], quoted=True)
+        )
     return names, projections
 
 
@@ -154,7 +157,9 @@ def upper_pairs(size: int) -> list[tuple[int, int]]:
     return [(a, b) for a in range(size) for b in range(a, size)]
 
 
-def upper_products(left: list[exp.Expression], right: list[exp.Expression] | None = None) -> list[exp.Expression]:
+def upper_products(
+    left: list[exp.Expression], right: list[exp.Expression] | None = None
+) -> list[exp.Expression]:
     """left_a * right_b for a <= b (right defaults to left): the upper triangle of an outer product."""
     right = left if right is None else right
     return [sb.mul(left[a].copy(), right[b].copy()) for a, b in upper_pairs(len(left))]

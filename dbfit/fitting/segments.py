@@ -9,23 +9,25 @@ from __future__ import annotations
 
 import dataclasses
 import time
+from collections.abc import Callable
 from decimal import Decimal
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 from sqlglot import exp
 
-from dbfit.model import inference
-from dbfit.expressions import builders as sb
 from dbfit.design.layout import SEGMENT, Design, segment_profiles
 from dbfit.engines.base import Engine
 from dbfit.errors import FitError
-from dbfit.solver.newton import Deviance, IterationReport, NewtonResult, NewtonRules, NewtonRun, Steps
-from dbfit.model.fitted import Model
-from dbfit.model.segmented import SegmentedFit, plain_value
+from dbfit.expressions import builders as sb
 from dbfit.expressions.source import source_relation
 from dbfit.fitting.statistics import statistics_query, unpack_many
+from dbfit.model import inference
+from dbfit.model.fitted import Model
+from dbfit.model.segmented import SegmentedFit, plain_value
 from dbfit.solver.information import PassResult
+from dbfit.solver.newton import Deviance, IterationReport, NewtonResult, NewtonRules, NewtonRun, Steps
+
 
 def fit_segments(
     engine: Engine,
@@ -51,14 +53,18 @@ def fit_segments(
         else:
             segments[value] = _segment_design(design, profile)
     if not segments:
-        raise FitError(f"no segment of '{design.segment_text}' can be fitted: " + "; ".join(
-            f"{v}: {r}" for v, r in list(failures.items())[:10]))
+        raise FitError(
+            f"no segment of '{design.segment_text}' can be fitted: "
+            + "; ".join(f"{v}: {r}" for v, r in list(failures.items())[:10])
+        )
 
     protected = 1 if design.intercept else 0
     steps = {
-        value: NewtonRun(Deviance(part.saturated_loglik), _segment_start(part, fitted),
-                         NewtonRules(max_passes=max_iter, tol=tol, protected=protected,
-                                     weight_total=part.trial_sum)).steps()
+        value: NewtonRun(
+            Deviance(part.saturated_loglik),
+            _segment_start(part, fitted),
+            NewtonRules(max_passes=max_iter, tol=tol, protected=protected, weight_total=part.trial_sum),
+        ).steps()
         for value, part in segments.items()
     }
     saturated = {value: part.saturated_loglik for value, part in segments.items()}
@@ -74,12 +80,27 @@ def fit_segments(
         newton, part = results[value], segments[value]
         active = [fitted[k] for k in newton.active]
         aliased = sorted(constant + [fitted[k] for k in newton.aliased])
-        models[value] = assemble(part, newton, active, aliased, null[value], engine.scans, formula,
-                                 sources[value],
-                                 {**own_options, "segment": {"by": design.segment_text, "value": plain_value(value)}})
-    return SegmentedFit(by=design.segment_text or "", models=models, failures=failures, passes=passes,
-                        scans=engine.scans, source=source, by_expression=design.segment,
-                        rows_total=design.rows_total)
+        models[value] = assemble(
+            part,
+            newton,
+            active,
+            aliased,
+            null[value],
+            engine.scans,
+            formula,
+            sources[value],
+            {**own_options, "segment": {"by": design.segment_text, "value": plain_value(value)}},
+        )
+    return SegmentedFit(
+        by=design.segment_text or "",
+        models=models,
+        failures=failures,
+        passes=passes,
+        scans=engine.scans,
+        source=source,
+        by_expression=design.segment,
+        rows_total=design.rows_total,
+    )
 
 
 def _unfit_reason(profile: dict[str, Any], parameters: int) -> str | None:
@@ -140,8 +161,13 @@ def _run_together(
     latest: dict[Any, float] = {}
     placeholder = sb.ValuesTemplate.placeholder("dbfit_coef")
     query = statistics_query(design, columns, bool(intercept), None, coefficients=placeholder)
-    template = sb.ValuesTemplate(engine.sql(query), engine.sql(placeholder), "dbfit_coef",
-                                 [SEGMENT] + [f"c{k}" for k in range(size)], engine.dialect)
+    template = sb.ValuesTemplate(
+        engine.sql(query),
+        engine.sql(placeholder),
+        "dbfit_coef",
+        [SEGMENT] + [f"c{k}" for k in range(size)],
+        engine.dialect,
+    )
     while requests:
         passes += 1
         found = engine.fetch_sql(template.render(_coefficient_rows(requests, size)), [])
@@ -156,8 +182,15 @@ def _run_together(
             latest[value] = 2.0 * ((saturated or {}).get(value, 0.0) - whole.loglik)
             _advance(value, steps[value], _subset(whole, active, size), requests, results, failures)
         if reporter:
-            reporter(IterationReport(passes, float(sum(latest.values())), time.perf_counter() - began, float("nan"),
-                                     phase=f"{len(pending)} segments ({len(requests)} still running)"))
+            reporter(
+                IterationReport(
+                    passes,
+                    float(sum(latest.values())),
+                    time.perf_counter() - began,
+                    float("nan"),
+                    phase=f"{len(pending)} segments ({len(requests)} still running)",
+                )
+            )
     return results, passes
 
 
@@ -176,7 +209,9 @@ def _subset(result: PassResult, active: list[int], size: int) -> PassResult:
     return result.restricted(active)
 
 
-def _coefficient_rows(requests: dict[Any, tuple[np.ndarray, list[int]]], size: int) -> list[tuple[Any, exp.Expression, list[float]]]:
+def _coefficient_rows(
+    requests: dict[Any, tuple[np.ndarray, list[int]]], size: int
+) -> list[tuple[Any, exp.Expression, list[float]]]:
     """(segment, its literal, c0, c1, ...) for the running segments; inactive (aliased) coefficients are 0."""
     rows = []
     for value, (beta, active) in requests.items():
@@ -186,7 +221,9 @@ def _coefficient_rows(requests: dict[Any, tuple[np.ndarray, list[int]]], size: i
     return rows
 
 
-def segment_sources(source: str, by: exp.Expression | None, values: list[Any], dialect: str = "duckdb") -> dict[Any, str]:
+def segment_sources(
+    source: str, by: exp.Expression | None, values: list[Any], dialect: str = "duckdb"
+) -> dict[Any, str]:
     """Each segment's rows as a SELECT over ``source`` (rebuilt by sqlglot): the source of that segment's model.
 
     The query is written once around a placeholder, into which each value's literal (written by sqlglot) goes.
@@ -229,5 +266,11 @@ def _null_logliks(engine, design, segments, results, max_iter, tol) -> dict[Any,
         steps[value] = NewtonRun(Deviance(part.saturated_loglik), start, rules).steps()
     failures: dict[Any, str] = {}
     null_results, _ = _run_together(engine, design, [0], steps, failures, None, columns=[], intercept=True)
-    return {value: (null_results[value].last.loglik + segments[value].loglik_constant if value in null_results
-                    else float("nan")) for value in results}
+    return {
+        value: (
+            null_results[value].last.loglik + segments[value].loglik_constant
+            if value in null_results
+            else float("nan")
+        )
+        for value in results
+    }

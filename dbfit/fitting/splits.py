@@ -12,10 +12,10 @@ import dataclasses
 
 from sqlglot import exp
 
-from dbfit.expressions import builders as sb
 from dbfit.design.layout import Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError
+from dbfit.expressions import builders as sb
 from dbfit.expressions.formula import parse_expression
 from dbfit.expressions.splits import unit_hash
 
@@ -36,18 +36,16 @@ def split_keys(design: Design, key_text: str | None) -> list[exp.Expression]:
 def fold_expression(design: Design, key_text: str | None, folds: int) -> exp.Expression:
     """SQL for the fold number 0 .. folds - 1 of a source row."""
     unit = unit_hash(split_keys(design, key_text))
-    return exp.Cast(this=exp.Floor(this=sb.mul(unit, exp.Literal.number(folds))), to=exp.DataType.build("INTEGER"))
+    return exp.Cast(
+        this=exp.Floor(this=sb.mul(unit, exp.Literal.number(folds))), to=exp.DataType.build("INTEGER")
+    )
 
 
 def fold_sizes(engine: DuckDBEngine, design: Design, fold: exp.Expression, folds: int) -> FoldSizes:
     """One scan: weighted trials per fold; every fold must hold rows."""
     base = design.base_query({FOLD: fold}).subquery("dbfit_base")
     weighted_trials = sb.mul(design.weight_expression(), design.trials_expression())
-    query = (
-        exp.select(sb.column(FOLD), sb.agg_sum(weighted_trials))
-        .from_(base)
-        .group_by(sb.column(FOLD))
-    )
+    query = exp.select(sb.column(FOLD), sb.agg_sum(weighted_trials)).from_(base).group_by(sb.column(FOLD))
     found = {int(number): float(total) for number, total in engine.fetch(query)}
     empty = [k for k in range(folds) if k not in found]
     if empty:
@@ -56,5 +54,3 @@ def fold_sizes(engine: DuckDBEngine, design: Design, fold: exp.Expression, folds
             "or a split_key with more distinct values"
         )
     return FoldSizes([found[k] for k in range(folds)])
-
-

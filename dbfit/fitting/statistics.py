@@ -8,16 +8,21 @@ of :mod:`dbfit.fitting.rowterms`, written with e = exp(-|eta|), so no intermedia
 
 from __future__ import annotations
 
-
 import numpy as np
 from sqlglot import exp
 
-from dbfit.expressions import builders as sb
 from dbfit.design.layout import SEGMENT, Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError
+from dbfit.expressions import builders as sb
 from dbfit.fitting.rowterms import (
-    RowQuantities, carried_columns, linear_predictor, symmetric, triangle_size, upper_pairs, with_e,
+    RowQuantities,
+    carried_columns,
+    linear_predictor,
+    symmetric,
+    triangle_size,
+    upper_pairs,
+    with_e,
 )
 from dbfit.solver.information import PassResult
 
@@ -68,12 +73,17 @@ def statistics_query(
     key_name = SEGMENT if segmented else (level_join[0] if level_join else None)
     keys = [sb.column(key_name)] if key_name else []
     base = (rows.copy() if rows is not None else design.base_query()).subquery("dbfit_base")
-    zs = [exp.alias_(design.column_expression(design.columns[j]), name, quoted=True) for j, name in zip(active, z_names)]
+    zs = [
+        exp.alias_(design.column_expression(design.columns[j]), name, quoted=True)
+        for j, name in zip(active, z_names)
+    ]
     columns = exp.select(*[k.copy() for k in keys], *zs, *carried_columns(design)).from_(base)
 
     size = len(active) + (1 if intercept else 0)
     if segmented:
-        values: list[exp.Expression] = [exp.column(f"c{k}", table="dbfit_coef", quoted=True) for k in range(size)]
+        values: list[exp.Expression] = [
+            exp.column(f"c{k}", table="dbfit_coef", quoted=True) for k in range(size)
+        ]
     elif beta is None:
         values = [exp.Placeholder() for _ in range(size)]
     else:
@@ -81,7 +91,13 @@ def statistics_query(
     eta = linear_predictor(values, [None] * int(intercept) + [sb.column(name) for name in z_names])
     if level_join:
         eta = sb.add(eta, exp.column("g", table="dbfit_coef", quoted=True))
-    kept = [*[k.copy() for k in keys], *[sb.column(n) for n in z_names], sb.column("y"), sb.column("pw"), sb.column("n")]
+    kept = [
+        *[k.copy() for k in keys],
+        *[sb.column(n) for n in z_names],
+        sb.column("y"),
+        sb.column("pw"),
+        sb.column("n"),
+    ]
     if keys:
         kept = [exp.column(c.name, table="dbfit_cols", quoted=True) for c in kept]
     linear = exp.select(*kept, exp.alias_(eta, "eta", quoted=True)).from_(columns.subquery("dbfit_cols"))
@@ -89,8 +105,10 @@ def statistics_query(
     if joined is not None:
         linear = linear.join(
             joined.copy(),
-            on=exp.EQ(this=exp.column(key_name, table="dbfit_cols", quoted=True),
-                      expression=exp.column(key_name, table="dbfit_coef", quoted=True)),
+            on=exp.EQ(
+                this=exp.column(key_name, table="dbfit_cols", quoted=True),
+                expression=exp.column(key_name, table="dbfit_coef", quoted=True),
+            ),
         )
 
     eta = sb.column("eta")
@@ -98,8 +116,14 @@ def statistics_query(
     is_extreme = exp.GT(this=exp.Abs(this=eta.copy()), expression=sb.number(EXTREME_ETA))
     # Wrong extreme: eta far positive but the row has failures, or far negative but it has successes.
     wrong = exp.or_(
-        exp.and_(exp.GT(this=eta.copy(), expression=sb.number(EXTREME_ETA)), exp.LT(this=sb.column("y"), expression=sb.column("n"))),
-        exp.and_(exp.LT(this=eta.copy(), expression=sb.number(-EXTREME_ETA)), exp.GT(this=sb.column("y"), expression=exp.Literal.number(0))),
+        exp.and_(
+            exp.GT(this=eta.copy(), expression=sb.number(EXTREME_ETA)),
+            exp.LT(this=sb.column("y"), expression=sb.column("n")),
+        ),
+        exp.and_(
+            exp.LT(this=eta.copy(), expression=sb.number(-EXTREME_ETA)),
+            exp.GT(this=sb.column("y"), expression=exp.Literal.number(0)),
+        ),
     )
     row_terms = exp.select(
         *[k.copy() for k in keys],
@@ -107,14 +131,20 @@ def statistics_query(
         exp.alias_(quantities.working_weight(), "wt", quoted=True),
         exp.alias_(quantities.residual(), "r", quoted=True),
         exp.alias_(quantities.loglik(), "ll", quoted=True),
-        exp.alias_(exp.If(this=is_extreme, true=sb.column("pw"), false=exp.Literal.number(0)), "ext", quoted=True),
+        exp.alias_(
+            exp.If(this=is_extreme, true=sb.column("pw"), false=exp.Literal.number(0)), "ext", quoted=True
+        ),
         exp.alias_(exp.If(this=wrong, true=sb.column("pw"), false=exp.Literal.number(0)), "bad", quoted=True),
     ).from_(with_e(linear, "dbfit_lin").subquery("dbfit_e"))
     weighted = exp.select(
         *[k.copy() for k in keys],
         *[sb.column(n) for n in z_names],
         *[exp.alias_(sb.mul(sb.column("wt"), sb.column(n)), f"w{n}", quoted=True) for n in z_names],
-        sb.column("wt"), sb.column("r"), sb.column("ll"), sb.column("ext"), sb.column("bad"),
+        sb.column("wt"),
+        sb.column("r"),
+        sb.column("ll"),
+        sb.column("ext"),
+        sb.column("bad"),
     ).from_(row_terms.subquery("dbfit_terms"))
 
     sums: list[exp.Expression] = []
@@ -124,7 +154,9 @@ def statistics_query(
     for name in names:
         sums.append(sb.agg_sum(sb.column("r") if name is None else sb.mul(sb.column("r"), sb.column(name))))
     sums += [sb.agg_sum(sb.column("ll")), sb.agg_sum(sb.column("ext")), sb.agg_sum(sb.column("bad"))]
-    query = exp.select(*[k.copy() for k in keys], *[exp.alias_(s, f"s{i}", quoted=True) for i, s in enumerate(sums)])
+    query = exp.select(
+        *[k.copy() for k in keys], *[exp.alias_(s, f"s{i}", quoted=True) for i, s in enumerate(sums)]
+    )
     query = query.from_(weighted.subquery("dbfit_w"))
     return query.group_by(*[k.copy() for k in keys]) if keys else query
 
@@ -140,10 +172,14 @@ class StatisticsPass:
         """One scan at ``beta`` over ``parameters`` (indices into intercept + columns)."""
         return self.run(*self._split(parameters), beta)
 
-    def run(self, columns: tuple[int, ...], intercept: bool, beta: np.ndarray, score_only: bool = False) -> PassResult:
+    def run(
+        self, columns: tuple[int, ...], intercept: bool, beta: np.ndarray, score_only: bool = False
+    ) -> PassResult:
         """One scan at ``beta`` over ``[intercept] + columns`` (indices into the design's columns)."""
         if not self.engine.parameters:
-            query = statistics_query(self.design, list(columns), intercept, np.asarray(beta), self.rows, score_only)
+            query = statistics_query(
+                self.design, list(columns), intercept, np.asarray(beta), self.rows, score_only
+            )
             row = self.engine.fetch(query, scan=self.rows is None)[0]
             return unpack(row, len(columns) + (1 if intercept else 0), score_only)
         key = (columns, intercept, score_only)
@@ -160,7 +196,9 @@ class StatisticsPass:
     def _split(self, parameters: list[int]) -> tuple[tuple[int, ...], bool]:
         has_intercept = 1 if self.design.intercept else 0
         intercept = bool(self.design.intercept and 0 in parameters)
-        return tuple(k - has_intercept for k in parameters if not (self.design.intercept and k == 0)), intercept
+        return tuple(
+            k - has_intercept for k in parameters if not (self.design.intercept and k == 0)
+        ), intercept
 
 
 def _product(a: str | None, b: str | None) -> exp.Expression:
@@ -189,5 +227,7 @@ def unpack_many(rows: list[tuple], size: int, score_only: bool = False) -> list[
         grams = symmetric(values[:, :count], size)
     scores = values[:, count : count + size]
     tails = values[:, count + size : count + size + 3].tolist()
-    return [PassResult(gram=grams[k], score=scores[k], loglik=tail[0], extreme=tail[1], misfit_extreme=tail[2])
-            for k, tail in enumerate(tails)]
+    return [
+        PassResult(gram=grams[k], score=scores[k], loglik=tail[0], extreme=tail[1], misfit_extreme=tail[2])
+        for k, tail in enumerate(tails)
+    ]

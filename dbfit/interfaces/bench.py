@@ -31,7 +31,9 @@ def _uniform(stream: int, scale: float = 1.0) -> str:
     return f"(((hash(id, {stream}) % 1000003) + 0.5) / 1000003.0 - 0.5) * {scale}"
 
 
-def numeric_select(rows: int, predictors: int, extra: str = "", extra_eta: str = "0", first_id: int = 0) -> str:
+def numeric_select(
+    rows: int, predictors: int, extra: str = "", extra_eta: str = "0", first_id: int = 0
+) -> str:
     """SELECT of synthetic numeric predictors and a 0/1 target from a known logistic model (ids from first_id)."""
     columns = ", ".join(f"{_uniform(j, 1 + j % 3)} AS x{j}" for j in range(predictors))
     eta = " + ".join(f"{0.15 * ((-1) ** j) * (1 + j % 4)} * x{j}" for j in range(predictors))
@@ -53,7 +55,9 @@ def formula(predictors: int, extra: str = "") -> str:
     return "y ~ " + " + ".join([f"x{j}" for j in range(predictors)] + ([extra] if extra else []))
 
 
-def numpy_irls(design: np.ndarray, target: np.ndarray, tol: float = 1e-10, max_iter: int = 50) -> tuple[np.ndarray, int]:
+def numpy_irls(
+    design: np.ndarray, target: np.ndarray, tol: float = 1e-10, max_iter: int = 50
+) -> tuple[np.ndarray, int]:
     """Plain Newton/IRLS in numpy on arrays in memory, same start and stopping rule as dbfit's."""
     beta = np.zeros(design.shape[1])
     rate = target.mean()
@@ -93,31 +97,55 @@ def _worker(task: dict[str, Any]) -> dict[str, Any]:
         con = dbfit.connect(path, read_only=path != ":memory:", **task.get("config", {}))
         phases: list[str] = []
         began = time.perf_counter()
-        fitted = dbfit.fit(con, task["formula"], task.get("source", "bench"), by=task.get("by"),
-                           progress=lambda r: phases.append(r.phase))
+        fitted = dbfit.fit(
+            con,
+            task["formula"],
+            task.get("source", "bench"),
+            by=task.get("by"),
+            progress=lambda r: phases.append(r.phase),
+        )
         result["seconds"] = time.perf_counter() - began
         if isinstance(fitted, dbfit.SegmentedFit):
-            result.update(scans=fitted.scans, models=len(fitted.models), failures=len(fitted.failures),
-                          passes=fitted.passes,
-                          estimates=np.concatenate([np.nan_to_num(m.estimates) for m in fitted.models.values()]).tolist())
+            result.update(
+                scans=fitted.scans,
+                models=len(fitted.models),
+                failures=len(fitted.failures),
+                passes=fitted.passes,
+                estimates=np.concatenate(
+                    [np.nan_to_num(m.estimates) for m in fitted.models.values()]
+                ).tolist(),
+            )
         else:
-            result.update(scans=fitted.stats["scans"], estimates=np.nan_to_num(fitted.estimates).tolist(),
-                          newton_passes=phases.count("full data"),
-                          score_passes=phases.count("full data, score only"))
+            result.update(
+                scans=fitted.stats["scans"],
+                estimates=np.nan_to_num(fitted.estimates).tolist(),
+                newton_passes=phases.count("full data"),
+                score_passes=phases.count("full data, score only"),
+            )
     elif kind == "spark":
         os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
         from pyspark.sql import SparkSession
 
-        session = (SparkSession.builder.master("local[2]").appName("dbfit-bench").config("spark.ui.enabled", "false")
-                   .config("spark.sql.shuffle.partitions", "2").getOrCreate())
+        session = (
+            SparkSession.builder.master("local[2]")
+            .appName("dbfit-bench")
+            .config("spark.ui.enabled", "false")
+            .config("spark.sql.shuffle.partitions", "2")
+            .getOrCreate()
+        )
         session.sparkContext.setLogLevel("ERROR")
         session.read.parquet(task["parquet"]).createOrReplaceTempView("bench")
         began = time.perf_counter()
         fitted = dbfit.fit(session, task["formula"], "bench", by=task.get("by"), progress=False)
         result["seconds"] = time.perf_counter() - began  # the session's start-up is not counted
         if isinstance(fitted, dbfit.SegmentedFit):
-            result.update(models=len(fitted.models), passes=fitted.passes,
-                          estimates=np.concatenate([np.nan_to_num(m.estimates) for m in fitted.models.values()]).tolist())
+            result.update(
+                models=len(fitted.models),
+                passes=fitted.passes,
+                estimates=np.concatenate(
+                    [np.nan_to_num(m.estimates) for m in fitted.models.values()]
+                ).tolist(),
+            )
         else:
             result.update(estimates=np.nan_to_num(fitted.estimates).tolist())
         session.stop()
@@ -127,7 +155,9 @@ def _worker(task: dict[str, Any]) -> dict[str, Any]:
         names = task["columns"]
         began = time.perf_counter()
         arrays = _export(path, names + ["y"])
-        design = np.column_stack([np.ones(len(arrays["y"]))] + [np.asarray(arrays[n], dtype=float) for n in names])
+        design = np.column_stack(
+            [np.ones(len(arrays["y"]))] + [np.asarray(arrays[n], dtype=float) for n in names]
+        )
         target = np.asarray(arrays["y"], dtype=float)
         del arrays
         exported = time.perf_counter()
@@ -146,7 +176,9 @@ def _worker(task: dict[str, Any]) -> dict[str, Any]:
         arrays = _export(path, names + ["y", "seg"])
         order = np.argsort(arrays["seg"], kind="stable")
         segments, starts = np.unique(arrays["seg"][order], return_index=True)
-        design = np.column_stack([np.ones(len(order))] + [np.asarray(arrays[n], dtype=float)[order] for n in names])
+        design = np.column_stack(
+            [np.ones(len(order))] + [np.asarray(arrays[n], dtype=float)[order] for n in names]
+        )
         target = np.asarray(arrays["y"], dtype=float)[order]
         bounds = list(starts) + [len(order)]
         for a, b in zip(bounds[:-1], bounds[1:]):
@@ -167,14 +199,18 @@ def _measure(task: dict[str, Any], repeat: int = 1) -> dict[str, Any] | None:
 
 
 def _measure_once(task: dict[str, Any]) -> dict[str, Any] | None:
-    done = subprocess.run([sys.executable, "-m", "dbfit.interfaces.bench", json.dumps(task)], capture_output=True, text=True,
-                          check=False)
-    marked = [line[line.index(RESULT_MARK):] for line in done.stdout.splitlines() if RESULT_MARK in line]
+    done = subprocess.run(
+        [sys.executable, "-m", "dbfit.interfaces.bench", json.dumps(task)],
+        capture_output=True,
+        text=True,
+        check=False,
+    )
+    marked = [line[line.index(RESULT_MARK) :] for line in done.stdout.splitlines() if RESULT_MARK in line]
     if done.returncode != 0 or not marked:
         tail = (done.stderr.strip().splitlines() or done.stdout.strip().splitlines() or ["no output"])[-1]
         print(f"    could not run {task['kind']} (exit status {done.returncode}): {tail}")
         return None
-    return json.loads(marked[-1][len(RESULT_MARK):])
+    return json.loads(marked[-1][len(RESULT_MARK) :])
 
 
 def _line(label: str, r: dict[str, Any] | None) -> None:
@@ -182,7 +218,9 @@ def _line(label: str, r: dict[str, Any] | None) -> None:
         return
     extra = ""
     if "newton_passes" in r:
-        extra = f", {r['scans']} scans ({r['score_passes']} score-only + {r['newton_passes']} full Newton passes)"
+        extra = (
+            f", {r['scans']} scans ({r['score_passes']} score-only + {r['newton_passes']} full Newton passes)"
+        )
     elif "models" in r:
         extra = f", {r['models']} models" + (f", {r['passes']} grouped passes" if "passes" in r else "")
     if len(r.get("runs", [])) > 1:
@@ -220,12 +258,16 @@ def bench_core(folder: str, rows: int, predictors: int, keep: str | None, repeat
 def bench_levels(folder: str, rows: int, predictors: int, levels: int, repeat: int = 1) -> dict[str, Any]:
     path = os.path.join(folder, "levels.duckdb")
     effect = f"((hash(id, 77) % {levels})::DOUBLE - {levels / 2}) / {levels / 2}"
-    build_table(path, numeric_select(rows, predictors, f", 'L' || (hash(id, 77) % {levels}) AS level", effect))
+    build_table(
+        path, numeric_select(rows, predictors, f", 'L' || (hash(id, 77) % {levels}) AS level", effect)
+    )
     print(f"levels: {rows:,} rows, one {levels:,}-level categorical and {predictors} numeric predictors")
     a = _measure({"kind": "dbfit", "path": path, "formula": formula(predictors, "level")}, repeat)
     _line("(a) dbfit, blocks by level", a)
     dense_bytes = rows * (levels + predictors) * 8
-    print(f"  export + statsmodels: not run; its dense design would take {dense_bytes / 2**30:,.1f} GiB of memory")
+    print(
+        f"  export + statsmodels: not run; its dense design would take {dense_bytes / 2**30:,.1f} GiB of memory"
+    )
     return {"a": a}
 
 
@@ -245,7 +287,9 @@ def bench_segments(folder: str, rows: int, predictors: int, segments: int, repea
     return {"a": by, "p": pooled, "b": b}
 
 
-def bench_outofcore(folder: str, rows: int, predictors: int, memory_limit: str, repeat: int = 1) -> dict[str, Any]:
+def bench_outofcore(
+    folder: str, rows: int, predictors: int, memory_limit: str, repeat: int = 1
+) -> dict[str, Any]:
     import duckdb
 
     lake = os.path.join(folder, "lake")
@@ -257,13 +301,23 @@ def bench_outofcore(folder: str, rows: int, predictors: int, memory_limit: str, 
         con.execute(f"COPY ({select}) TO '{lake}/part{part}.parquet' (FORMAT parquet)")
     con.close()
     size = sum(f.stat().st_size for f in Path(lake).glob("*.parquet"))
-    print(f"outofcore: {rows:,} rows x {predictors} predictors in {parts} Parquet files ({size / 2**30:.2f} GiB on disk,"
-          f" {rows * (predictors + 1) * 8 / 2**30:.2f} GiB as doubles), memory_limit {memory_limit}")
+    print(
+        f"outofcore: {rows:,} rows x {predictors} predictors in {parts} Parquet files ({size / 2**30:.2f} GiB on disk,"
+        f" {rows * (predictors + 1) * 8 / 2**30:.2f} GiB as doubles), memory_limit {memory_limit}"
+    )
     results = {}
     for used in (parts // 4, parts // 2, parts):
         files = f"{lake}/part[0-{used - 1}].parquet"
-        results[used] = _measure({"kind": "dbfit", "path": ":memory:", "formula": formula(predictors), "source": files,
-                                  "config": {"memory_limit": memory_limit, "threads": 2}}, repeat)
+        results[used] = _measure(
+            {
+                "kind": "dbfit",
+                "path": ":memory:",
+                "formula": formula(predictors),
+                "source": files,
+                "config": {"memory_limit": memory_limit, "threads": 2},
+            },
+            repeat,
+        )
         _line(f"(a) dbfit on {used * (rows // parts):,} rows", results[used])
     firsts = [r for r in results.values() if r]
     if len(firsts) == len(results):
@@ -282,7 +336,9 @@ def bench_spark(folder: str, rows: int, predictors: int, segments: int, repeat: 
     select = numeric_select(rows, predictors, f", hash(id, 55) % {segments} AS seg")
     con.execute(f"COPY ({select}) TO '{parquet}' (FORMAT parquet)")
     con.close()
-    print(f"spark: {rows:,} rows x {predictors} numeric predictors in one Parquet file, {segments:,} segments")
+    print(
+        f"spark: {rows:,} rows x {predictors} numeric predictors in one Parquet file, {segments:,} segments"
+    )
     try:
         import pyspark  # noqa: F401
     except ImportError:
@@ -293,20 +349,40 @@ def bench_spark(folder: str, rows: int, predictors: int, segments: int, repeat: 
         return {}
     results = {}
     for label, by in (("one pooled model", None), ("one model per segment", "seg")):
-        duck = _measure({"kind": "dbfit-by" if by else "dbfit", "path": ":memory:", "formula": formula(predictors),
-                         "source": parquet, "by": by}, repeat)
-        spark = _measure({"kind": "spark", "path": "", "parquet": parquet, "formula": formula(predictors), "by": by},
-                         repeat)
+        duck = _measure(
+            {
+                "kind": "dbfit-by" if by else "dbfit",
+                "path": ":memory:",
+                "formula": formula(predictors),
+                "source": parquet,
+                "by": by,
+            },
+            repeat,
+        )
+        spark = _measure(
+            {"kind": "spark", "path": "", "parquet": parquet, "formula": formula(predictors), "by": by},
+            repeat,
+        )
         _line(f"(a) DuckDB, {label}", duck)
         _line(f"(s) Spark local[2], {label}", spark)
         _ratio(f"s/a ({label})", spark, duck)
         results[label] = {"a": duck, "s": spark}
-    print("  Spark's peak RSS is its Python driver's only: the JVM runs in a child process and is not counted")
+    print(
+        "  Spark's peak RSS is its Python driver's only: the JVM runs in a child process and is not counted"
+    )
     return results
 
 
-def run_bench(scenario: str = "core", rows: int | None = None, predictors: int | None = None, keep: str | None = None,
-              levels: int = 5000, segments: int = 1000, memory_limit: str = "2GB", repeat: int = 1) -> dict[str, Any]:
+def run_bench(
+    scenario: str = "core",
+    rows: int | None = None,
+    predictors: int | None = None,
+    keep: str | None = None,
+    levels: int = 5000,
+    segments: int = 1000,
+    memory_limit: str = "2GB",
+    repeat: int = 1,
+) -> dict[str, Any]:
     """Run one scenario (or ``all``) and print its figures; each measurement ``repeat`` times (the median shown)."""
     folder = tempfile.mkdtemp(prefix="dbfit_bench_")
     chosen = SCENARIOS if scenario == "all" else (scenario,)
@@ -319,9 +395,13 @@ def run_bench(scenario: str = "core", rows: int | None = None, predictors: int |
         elif name == "segments":
             results[name] = bench_segments(folder, rows or 5_000_000, predictors or 5, segments, repeat)
         elif name == "spark":
-            results[name] = bench_spark(folder, rows or 2_000_000, predictors or 5, min(segments, 100), repeat)
+            results[name] = bench_spark(
+                folder, rows or 2_000_000, predictors or 5, min(segments, 100), repeat
+            )
         elif name == "outofcore":
-            results[name] = bench_outofcore(folder, rows or 100_000_000, predictors or 10, memory_limit, repeat)
+            results[name] = bench_outofcore(
+                folder, rows or 100_000_000, predictors or 10, memory_limit, repeat
+            )
         else:
             raise ValueError(f"unknown scenario {name!r}; choose from {', '.join(SCENARIOS)} or all")
     return results

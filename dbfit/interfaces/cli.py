@@ -18,29 +18,50 @@ OK, BAD_USAGE, REFUSED, DATA_ERROR = 0, 2, 3, 4
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(prog="dbfit", description="Logistic regression inside the database.",
-                                     epilog=EXIT_CODES, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser = argparse.ArgumentParser(
+        prog="dbfit",
+        description="Logistic regression inside the database.",
+        epilog=EXIT_CODES,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     commands = parser.add_subparsers(dest="command", required=True)
 
     def command(name: str, text: str) -> argparse.ArgumentParser:
-        return commands.add_parser(name, help=text, description=text, epilog=EXIT_CODES,
-                                   formatter_class=argparse.RawDescriptionHelpFormatter)
+        return commands.add_parser(
+            name,
+            help=text,
+            description=text,
+            epilog=EXIT_CODES,
+            formatter_class=argparse.RawDescriptionHelpFormatter,
+        )
 
     demo = command("demo", "build an invented courier scenario in DuckDB and fit it")
-    demo.add_argument("--database", default="dbfit_demo.duckdb", help="DuckDB file to create (default: %(default)s)")
-    demo.add_argument("--rows", type=int, default=1_000_000, help="deliveries to generate (default: %(default)s)")
+    demo.add_argument(
+        "--database", default="dbfit_demo.duckdb", help="DuckDB file to create (default: %(default)s)"
+    )
+    demo.add_argument(
+        "--rows", type=int, default=1_000_000, help="deliveries to generate (default: %(default)s)"
+    )
     demo.add_argument("--quiet", action="store_true", help="no per-pass progress lines")
 
     bench = command("bench", "measure dbfit against export+statsmodels and in-memory numpy")
-    bench.add_argument("--scenario", default="core", choices=["core", "levels", "segments", "outofcore", "spark", "all"],
-                       help="what to measure (default: %(default)s)")
+    bench.add_argument(
+        "--scenario",
+        default="core",
+        choices=["core", "levels", "segments", "outofcore", "spark", "all"],
+        help="what to measure (default: %(default)s)",
+    )
     bench.add_argument("--rows", type=int, default=None, help="rows (default: the scenario's own size)")
-    bench.add_argument("--predictors", type=int, default=None, help="numeric predictors (default: per scenario)")
+    bench.add_argument(
+        "--predictors", type=int, default=None, help="numeric predictors (default: per scenario)"
+    )
     bench.add_argument("--levels", type=int, default=5000, help="levels of the categorical in 'levels'")
     bench.add_argument("--segments", type=int, default=1000, help="segments in 'segments'")
     bench.add_argument("--memory-limit", default="2GB", help="DuckDB memory_limit in 'outofcore'")
     bench.add_argument("--keep", default=None, help="core: reuse or keep the data in this DuckDB file")
-    bench.add_argument("--repeat", type=int, default=1, help="run each measurement this many times; show the median")
+    bench.add_argument(
+        "--repeat", type=int, default=1, help="run each measurement this many times; show the median"
+    )
 
     script = command("sql", "run a .sql script with the dbfit. SQL functions installed")
     script.add_argument("file", help="the script, e.g. sql_examples/01_fit.sql")
@@ -62,8 +83,16 @@ def main(argv: list[str] | None = None) -> int:
         elif args.command == "bench":
             from dbfit.interfaces.bench import run_bench
 
-            run_bench(args.scenario, args.rows, args.predictors, args.keep, args.levels, args.segments, args.memory_limit,
-                      args.repeat)
+            run_bench(
+                args.scenario,
+                args.rows,
+                args.predictors,
+                args.keep,
+                args.levels,
+                args.segments,
+                args.memory_limit,
+                args.repeat,
+            )
         elif args.command == "sql":
             _run_sql_file(args.file, args.database)
         else:

@@ -29,38 +29,67 @@ def add_model_commands(command: Command) -> None:
         parser = command(name, text)
         if model:
             parser.add_argument("name", help="the stored model's name")
-        parser.add_argument("--database", required=name != "fit", help="DuckDB file holding the data and the store")
+        parser.add_argument(
+            "--database", required=name != "fit", help="DuckDB file holding the data and the store"
+        )
         parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")
         return parser
 
-    fit = base("fit", "fit a model from a spec file or arguments and store it as the current version", model=False)
+    fit = base(
+        "fit", "fit a model from a spec file or arguments and store it as the current version", model=False
+    )
     fit.add_argument("--spec", help="JSON or TOML (.toml) file of settings; arguments given here override it")
     fit.add_argument("--name", help="model name to store the fit under")
     fit.add_argument("--formula", help="target ~ term + ...")
     fit.add_argument("--source", help="table or view name, Parquet/CSV path, or a single SELECT")
     for option in ("weights", "offset", "trials", "positive"):
         fit.add_argument(f"--{option}", help=f"the fit's {option} (as dbfit.fit)")
-    fit.add_argument("--reference", action="append", metavar="TERM=LEVEL", help="reference level (repeatable)")
+    fit.add_argument(
+        "--reference", action="append", metavar="TERM=LEVEL", help="reference level (repeatable)"
+    )
     fit.add_argument("--max-iter", type=int, help="most Newton passes (default 50)")
     fit.add_argument("--tol", type=float, help="convergence tolerance (default 1e-10)")
     fit.add_argument("--firth", action="store_true", default=None, help="Firth's bias-reduced fit")
-    fit.add_argument("--by", help="SQL expression of a segment: one model per value, stored as NAME.<segment>")
-    fit.add_argument("--holdout-key", help="SQL expression to hash for a held-out part (enables held-out gates)")
-    fit.add_argument("--holdout-share", type=float, help="share of rows held out (default 0.2 with --holdout-key)")
-    fit.add_argument("--threshold", type=float, help="probability cut-off of the held-out metrics (default 0.5)")
+    fit.add_argument(
+        "--by", help="SQL expression of a segment: one model per value, stored as NAME.<segment>"
+    )
+    fit.add_argument(
+        "--holdout-key", help="SQL expression to hash for a held-out part (enables held-out gates)"
+    )
+    fit.add_argument(
+        "--holdout-share", type=float, help="share of rows held out (default 0.2 with --holdout-key)"
+    )
+    fit.add_argument(
+        "--threshold", type=float, help="probability cut-off of the held-out metrics (default 0.5)"
+    )
 
-    refit = base("refit", "refit the current version on current data, warm-started; promote only through the gates")
+    refit = base(
+        "refit", "refit the current version on current data, warm-started; promote only through the gates"
+    )
     refit.add_argument("--source", help="fit this source instead of the stored one")
-    refit.add_argument("--skip-unchanged", action="store_true",
-                       help="do nothing when the source's fingerprint (row count and row checksum) is unchanged")
-    refit.add_argument("--cold", action="store_true", help="start from the intercept-only fit, not the current estimates")
+    refit.add_argument(
+        "--skip-unchanged",
+        action="store_true",
+        help="do nothing when the source's fingerprint (row count and row checksum) is unchanged",
+    )
+    refit.add_argument(
+        "--cold", action="store_true", help="start from the intercept-only fit, not the current estimates"
+    )
 
     base("models", "list stored models and versions (the current one marked)", model=False)
     gates = base("gates", "show the promotion gates of a model, or set some with the options")
-    gates.add_argument("--auc-margin", type=_number_or_none, help="largest allowed drop in held-out AUC ('none': off)")
-    gates.add_argument("--log-loss-margin", type=_number_or_none, help="largest allowed rise in held-out log loss")
-    gates.add_argument("--max-shift", type=_number_or_none, help="largest coefficient move, in current standard errors")
-    gates.add_argument("--require-converged", choices=["yes", "no"], help="refuse non-converged or separated fits")
+    gates.add_argument(
+        "--auc-margin", type=_number_or_none, help="largest allowed drop in held-out AUC ('none': off)"
+    )
+    gates.add_argument(
+        "--log-loss-margin", type=_number_or_none, help="largest allowed rise in held-out log loss"
+    )
+    gates.add_argument(
+        "--max-shift", type=_number_or_none, help="largest coefficient move, in current standard errors"
+    )
+    gates.add_argument(
+        "--require-converged", choices=["yes", "no"], help="refuse non-converged or separated fits"
+    )
     promote = base("promote", "make a stored version current after its gates (or --force)")
     promote.add_argument("version", type=int, help="the version to promote")
     promote.add_argument("--force", action="store_true", help="skip the gates (the audit row says so)")
@@ -70,16 +99,26 @@ def add_model_commands(command: Command) -> None:
     publish.add_argument("--view", required=True, help="view name ([schema.]name)")
     publish.add_argument("--source", help="rows to score (default: the source it was fitted from, all rows)")
     publish.add_argument("--version", type=int, help="pin this version (default: the current one)")
-    publish.add_argument("--live", action="store_true", help="read the current version's estimates at query time")
-    publish.add_argument("--replace", action="store_true",
-                         help="replace a view of that name even when dbfit did not publish it")
+    publish.add_argument(
+        "--live", action="store_true", help="read the current version's estimates at query time"
+    )
+    publish.add_argument(
+        "--replace",
+        action="store_true",
+        help="replace a view of that name even when dbfit did not publish it",
+    )
 
     assess = base("assess", "metrics of a model on a source (AUC, log loss, Brier score, ...)")
-    assess.add_argument("--source", help="rows to assess on (default: the held-out rows of a holdout fit, "
-                        "else all rows of the model's source)")
+    assess.add_argument(
+        "--source",
+        help="rows to assess on (default: the held-out rows of a holdout fit, "
+        "else all rows of the model's source)",
+    )
     assess.add_argument("--rows", choices=ROW_CHOICES, help=ROWS_HELP)
     assess.add_argument("--version", type=int, help="stored version (default: the current one)")
-    assess.add_argument("--threshold", type=float, default=0.5, help="probability cut-off (default %(default)s)")
+    assess.add_argument(
+        "--threshold", type=float, default=0.5, help="probability cut-off (default %(default)s)"
+    )
 
     drift = base("drift", "population stability index per variable between the training rows and a source")
     drift.add_argument("--source", required=True, help="the new rows")
@@ -107,7 +146,10 @@ def run_model_command(args: argparse.Namespace) -> int:
             return DATA_ERROR
         result, code = {"ok": False, "error": str(err)}, DATA_ERROR
     if code == REFUSED and "error" not in result:
-        print(f"dbfit: the candidate of '{result['model']}' was refused: {'; '.join(result['reasons'])}", file=sys.stderr)
+        print(
+            f"dbfit: the candidate of '{result['model']}' was refused: {'; '.join(result['reasons'])}",
+            file=sys.stderr,
+        )
     result = {"ok": code == OK, "command": args.command, "exit_code": code, **result}
     print(json.dumps(_plain(result), sort_keys=False) if args.json else _text(result))
     return code
@@ -115,7 +157,6 @@ def run_model_command(args: argparse.Namespace) -> int:
 
 def _run(args: argparse.Namespace) -> tuple[dict[str, Any], int]:
     import dbfit
-
     from dbfit.interfaces.connection import connect_existing
 
     if args.command == "fit":
@@ -123,7 +164,9 @@ def _run(args: argparse.Namespace) -> tuple[dict[str, Any], int]:
     con = connect_existing(args.database)
     try:
         if args.command == "refit":
-            result = dbfit.refit(con, args.name, source=args.source, skip_unchanged=args.skip_unchanged, cold=args.cold)
+            result = dbfit.refit(
+                con, args.name, source=args.source, skip_unchanged=args.skip_unchanged, cold=args.cold
+            )
             return result, REFUSED if result["decision"] == "refused" else OK
         if args.command == "models":
             return {"versions": dbfit.models(con)}, OK
@@ -135,17 +178,23 @@ def _run(args: argparse.Namespace) -> tuple[dict[str, Any], int]:
             return {"model": args.name, "decisions": dbfit.decisions(con, args.name)}, OK
         if args.command == "publish":
             source = args.source or _fitted_source(con, args.name, args.version)
-            made = dbfit.publish(con, args.name, source, args.view, version=args.version, live=args.live,
-                                 replace=args.replace)
+            made = dbfit.publish(
+                con, args.name, source, args.view, version=args.version, live=args.live, replace=args.replace
+            )
             return made, OK
         if args.command == "assess":
-            table = dbfit.assess(con, args.name, args.source, rows=args.rows, threshold=args.threshold,
-                                 version=args.version)
+            table = dbfit.assess(
+                con, args.name, args.source, rows=args.rows, threshold=args.threshold, version=args.version
+            )
             return {"model": args.name, "rows": _rows_note(table), "metrics": table.to_pylist()}, OK
         if args.command == "drift":
             table = dbfit.drift(con, args.name, args.source, version=args.version)
-            return {"model": args.name, "source": args.source, "variables": table.to_pylist(),
-                    "bands": "common practice: PSI below 0.1 stable, 0.1-0.25 some shift, above 0.25 large shift"}, OK
+            return {
+                "model": args.name,
+                "source": args.source,
+                "variables": table.to_pylist(),
+                "bands": "common practice: PSI below 0.1 stable, 0.1-0.25 some shift, above 0.25 large shift",
+            }, OK
         if args.command == "report":
             return _report(con, args), OK
         raise UsageError(f"unknown command {args.command}")
@@ -155,9 +204,9 @@ def _run(args: argparse.Namespace) -> tuple[dict[str, Any], int]:
 
 def _fit(args: argparse.Namespace) -> dict[str, Any]:
     import dbfit
+    from dbfit.fitting.options import FitOptions
     from dbfit.interfaces.python_api import fit_options
     from dbfit.interfaces.spec_files import FIT_OPTIONS, merge, read_spec
-    from dbfit.fitting.options import FitOptions
 
     reference = None
     if args.reference:
@@ -165,9 +214,26 @@ def _fit(args: argparse.Namespace) -> dict[str, Any]:
         if any(len(p) != 2 for p in pairs):
             raise UsageError("--reference takes TERM=LEVEL")
         reference = dict(pairs)
-    given = {k: getattr(args, k) for k in ("database", "name", "formula", "source", "weights", "offset", "trials",
-                                           "positive", "max_iter", "tol", "firth", "by", "holdout_key",
-                                           "holdout_share", "threshold")}
+    given = {
+        k: getattr(args, k)
+        for k in (
+            "database",
+            "name",
+            "formula",
+            "source",
+            "weights",
+            "offset",
+            "trials",
+            "positive",
+            "max_iter",
+            "tol",
+            "firth",
+            "by",
+            "holdout_key",
+            "holdout_share",
+            "threshold",
+        )
+    }
     settings = merge(read_spec(args.spec) if args.spec else {}, given | {"reference": reference})
     options = {k: settings[k] for k in FIT_OPTIONS if settings.get(k) is not None}
     split = None
@@ -178,21 +244,37 @@ def _fit(args: argparse.Namespace) -> dict[str, Any]:
     chosen = FitOptions.of(**options)
     con = dbfit.connect(settings["database"])
     try:
-        model = fit_options(con, settings["formula"], settings["source"], chosen, name=settings["name"], split=split,
-                            threshold=settings.get("threshold") or 0.5, progress=False)
+        model = fit_options(
+            con,
+            settings["formula"],
+            settings["source"],
+            chosen,
+            name=settings["name"],
+            split=split,
+            threshold=settings.get("threshold") or 0.5,
+            progress=False,
+        )
         if isinstance(model, dbfit.SegmentedFit):
             return _segmented_result(con, model, settings.get("gates"))
         if settings.get("gates"):
             dbfit.set_gates(con, settings["name"], **settings["gates"])
-        return {"model": model.name, "version": model.version, "rows_used": model.stats["n_used"],
-                "iterations": model.stats["iterations"], "scans": model.stats["scans"],
-                "converged": model.stats["converged"], "holdout": model.stats.get("holdout"),
-                "coefficients": model.coefficients.select(["term", "estimate", "std_error"]).to_pylist()}
+        return {
+            "model": model.name,
+            "version": model.version,
+            "rows_used": model.stats["n_used"],
+            "iterations": model.stats["iterations"],
+            "scans": model.stats["scans"],
+            "converged": model.stats["converged"],
+            "holdout": model.stats.get("holdout"),
+            "coefficients": model.coefficients.select(["term", "estimate", "std_error"]).to_pylist(),
+        }
     finally:
         con.close()
 
 
-def _segmented_result(con: duckdb.DuckDBPyConnection, fitted: Any, gates: dict[str, Any] | None) -> dict[str, Any]:
+def _segmented_result(
+    con: duckdb.DuckDBPyConnection, fitted: Any, gates: dict[str, Any] | None
+) -> dict[str, Any]:
     """What ``fit --by`` stored: one row per segment model (each gets the spec's gates), and the unfitted segments."""
     import dbfit
 
@@ -200,11 +282,24 @@ def _segmented_result(con: duckdb.DuckDBPyConnection, fitted: Any, gates: dict[s
     for value, model in fitted.models.items():
         if gates:
             dbfit.set_gates(con, model.name, **gates)
-        rows.append({"segment": str(value), "model": model.name, "version": model.version,
-                     "rows_used": model.stats["n_used"], "iterations": model.stats["iterations"],
-                     "converged": model.stats["converged"], "warnings": len(model.warnings)})
-    return {"by": fitted.by, "passes": fitted.passes, "scans": fitted.scans, "models": rows,
-            "failures": {str(value): reason for value, reason in fitted.failures.items()}}
+        rows.append(
+            {
+                "segment": str(value),
+                "model": model.name,
+                "version": model.version,
+                "rows_used": model.stats["n_used"],
+                "iterations": model.stats["iterations"],
+                "converged": model.stats["converged"],
+                "warnings": len(model.warnings),
+            }
+        )
+    return {
+        "by": fitted.by,
+        "passes": fitted.passes,
+        "scans": fitted.scans,
+        "models": rows,
+        "failures": {str(value): reason for value, reason in fitted.failures.items()},
+    }
 
 
 def _fitted_source(con: duckdb.DuckDBPyConnection, name: str, version: int | None) -> str:
@@ -221,8 +316,15 @@ def _gates(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[str
 
     import dbfit
 
-    settings = {k: v for k, v in (("auc_margin", args.auc_margin), ("log_loss_margin", args.log_loss_margin),
-                                  ("max_shift", args.max_shift)) if v is not None}
+    settings = {
+        k: v
+        for k, v in (
+            ("auc_margin", args.auc_margin),
+            ("log_loss_margin", args.log_loss_margin),
+            ("max_shift", args.max_shift),
+        )
+        if v is not None
+    }
     settings |= {k: (None if v == "none" else v) for k, v in settings.items()}
     if args.require_converged is not None:
         settings["require_converged"] = args.require_converged == "yes"
@@ -240,8 +342,11 @@ def _report(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[st
     if model.design.trials is None:
         tables = dbfit.assessment_tables(con, model, args.source, rows=args.rows)
     path = write_report(model, args.output, assessment=tables)
-    rows = _rows_note(tables["metrics"]) if tables else (
-        "none: a model of successes out of trials is not assessed")
+    rows = (
+        _rows_note(tables["metrics"])
+        if tables
+        else ("none: a model of successes out of trials is not assessed")
+    )
     return {"model": model.name, "version": model.version, "rows": rows, "output": str(path)}
 
 

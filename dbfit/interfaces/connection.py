@@ -27,8 +27,10 @@ def connect_existing(database: str, **config: Any) -> duckdb.DuckDBPyConnection:
     """As :func:`connect`, but refuse a database file that does not exist instead of creating an empty one
     (a mistyped path would otherwise list no models, or run a script on a new empty file)."""
     if database != ":memory:" and not Path(database).exists():
-        raise StoreError(f"the database file '{database}' does not exist: check the path (only 'dbfit fit' creates "
-                         "a database file)")
+        raise StoreError(
+            f"the database file '{database}' does not exist: check the path (only 'dbfit fit' creates "
+            "a database file)"
+        )
     return connect(database, **config)
 
 

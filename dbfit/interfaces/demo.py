@@ -63,11 +63,11 @@ def build_deliveries(con: duckdb.DuckDBPyConnection, rows: int, table: str = "de
         )
         SELECT id AS delivery_id, distance_km, parcel_kg, depot, tier, dispatch_hour, rain,
                (u8 < 1 / (1 + exp(-(
-                   {c['intercept']} + {c['distance_km']} * distance_km + {c['parcel_kg']} * coalesce(parcel_kg, 0)
-                   + CASE depot WHEN 'East' THEN {c['depot=East']} WHEN 'Harbour' THEN {c['depot=Harbour']}
-                                WHEN 'South' THEN {c['depot=South']} WHEN 'West' THEN {c['depot=West']} ELSE 0 END
-                   + CASE tier WHEN 'economy' THEN {c['tier=economy']} WHEN 'express' THEN {c['tier=express']} ELSE 0 END
-                   + {c['dispatch_hour']} * dispatch_hour + CASE WHEN rain THEN {c['rain=true']} ELSE 0 END
+                   {c["intercept"]} + {c["distance_km"]} * distance_km + {c["parcel_kg"]} * coalesce(parcel_kg, 0)
+                   + CASE depot WHEN 'East' THEN {c["depot=East"]} WHEN 'Harbour' THEN {c["depot=Harbour"]}
+                                WHEN 'South' THEN {c["depot=South"]} WHEN 'West' THEN {c["depot=West"]} ELSE 0 END
+                   + CASE tier WHEN 'economy' THEN {c["tier=economy"]} WHEN 'express' THEN {c["tier=express"]} ELSE 0 END
+                   + {c["dispatch_hour"]} * dispatch_hour + CASE WHEN rain THEN {c["rain=true"]} ELSE 0 END
                )))) AS late
         FROM features
     """)
@@ -80,13 +80,21 @@ def run_demo(database: str = "dbfit_demo.duckdb", rows: int = 1_000_000, quiet: 
         began = time.perf_counter()
         build_deliveries(con, rows)
         built = time.perf_counter() - began
-        model = dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, progress=False if quiet else True,
-                          name="demo_late")
+        model = dbfit.fit(
+            con,
+            FORMULA,
+            "deliveries",
+            reference=REFERENCE,
+            progress=False if quiet else True,
+            name="demo_late",
+        )
         fitted = time.perf_counter() - began - built
         dbfit.publish(con, "demo_late", "deliveries", "demo_late_risk")
     finally:
         con.close()
-    print(f"Invented scenario: {rows:,} courier deliveries built in DuckDB in {built:.1f}s; fitted in {fitted:.1f}s.")
+    print(
+        f"Invented scenario: {rows:,} courier deliveries built in DuckDB in {built:.1f}s; fitted in {fitted:.1f}s."
+    )
     print(model.summary())
     print()
     print("How close the estimates come to the coefficients the data were generated with:")
@@ -97,10 +105,16 @@ def run_demo(database: str = "dbfit_demo.duckdb", rows: int = 1_000_000, quiet: 
         gap = (row["estimate"] - truth) / row["std_error"]
         print(f"  {term:<16} {truth:>8.3f} {row['estimate']:>10.4f} {gap:>14.2f}")
     worst = max(abs((table[t]["estimate"] - v) / table[t]["std_error"]) for t, v in TRUE_COEFFICIENTS.items())
-    print(f"Largest gap: {worst:.2f} standard errors (about 95% of gaps fall within 2 when the fit is right).")
-    print(f"The data stay in {Path(database).resolve()}: open it with duckdb and query the table 'deliveries'.")
-    print(f"The model is stored as 'demo_late' version {model.version}; the view 'demo_late_risk' scores every "
-          "delivery in plain SQL (no dbfit needed), and sql_examples/ shows the SQL functions.")
+    print(
+        f"Largest gap: {worst:.2f} standard errors (about 95% of gaps fall within 2 when the fit is right)."
+    )
+    print(
+        f"The data stay in {Path(database).resolve()}: open it with duckdb and query the table 'deliveries'."
+    )
+    print(
+        f"The model is stored as 'demo_late' version {model.version}; the view 'demo_late_risk' scores every "
+        "delivery in plain SQL (no dbfit needed), and sql_examples/ shows the SQL functions."
+    )
     if not math.isfinite(worst):
         raise dbfit.FitError("the demo fit produced non-finite estimates")
     return model

@@ -38,11 +38,23 @@ def _segment_scoring_sql(fitted: SegmentedFit, source: str | None = None, *, uns
 def attach() -> None:
     """Give Model and SegmentedFit their methods of earlier releases, each warning once per call site."""
     Model.save = _method("Model.save(con, name)", "dbfit.save(con, model, name)", _save)  # type: ignore[attr-defined]
-    Model.scoring_sql = _method("Model.scoring_sql(...)", "dbfit.scoring_sql(model, ...)",  # type: ignore[attr-defined]
-                                python_api.scoring_sql)
-    Model.report = _method("Model.report(path)", "dbfit.write_report(model, path)",  # type: ignore[attr-defined]
-                           python_api.write_report)
-    SegmentedFit.save = _method("SegmentedFit.save(con, name)",  # type: ignore[attr-defined]
-                                "dbfit.save(con, fitted, name)", _save)
-    SegmentedFit.scoring_sql = _method("SegmentedFit.scoring_sql(...)",  # type: ignore[attr-defined]
-                                       "dbfit.scoring_sql(fitted, source=...)", _segment_scoring_sql)
+    Model.scoring_sql = _method(
+        "Model.scoring_sql(...)",
+        "dbfit.scoring_sql(model, ...)",  # type: ignore[attr-defined]
+        python_api.scoring_sql,
+    )
+    Model.report = _method(
+        "Model.report(path)",
+        "dbfit.write_report(model, path)",  # type: ignore[attr-defined]
+        python_api.write_report,
+    )
+    SegmentedFit.save = _method(
+        "SegmentedFit.save(con, name)",  # type: ignore[attr-defined]
+        "dbfit.save(con, fitted, name)",
+        _save,
+    )
+    SegmentedFit.scoring_sql = _method(
+        "SegmentedFit.scoring_sql(...)",  # type: ignore[attr-defined]
+        "dbfit.scoring_sql(fitted, source=...)",
+        _segment_scoring_sql,
+    )

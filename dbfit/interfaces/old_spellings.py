@@ -19,10 +19,15 @@ def version_by_keyword(positional: int) -> Callable[[Function], Function]:
         def call(*args: Any, **kwargs: Any) -> Any:
             if len(args) > positional:
                 if len(args) > positional + 1 or "version" in kwargs:
-                    raise TypeError(f"{function.__name__}() takes {positional} positional arguments and version=")
-                warnings.warn(f"{function.__name__}(..., version) with the version by position is deprecated and "
-                              f"goes in the next release; write {function.__name__}(..., version=...)",
-                              DeprecationWarning, stacklevel=2)
+                    raise TypeError(
+                        f"{function.__name__}() takes {positional} positional arguments and version="
+                    )
+                warnings.warn(
+                    f"{function.__name__}(..., version) with the version by position is deprecated and "
+                    f"goes in the next release; write {function.__name__}(..., version=...)",
+                    DeprecationWarning,
+                    stacklevel=2,
+                )
                 args, kwargs = args[:positional], {**kwargs, "version": args[positional]}
             return function(*args, **kwargs)
 
@@ -33,4 +38,6 @@ def version_by_keyword(positional: int) -> Callable[[Function], Function]:
 
 def warn_renamed(old: str, new: str) -> None:
     """Warn that ``old`` is deprecated in favour of ``new`` (at the caller's caller)."""
-    warnings.warn(f"{old} is deprecated and goes in the next release; use {new}", DeprecationWarning, stacklevel=3)
+    warnings.warn(
+        f"{old} is deprecated and goes in the next release; use {new}", DeprecationWarning, stacklevel=3
+    )

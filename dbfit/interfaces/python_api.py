@@ -2,40 +2,44 @@
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any
 
 import duckdb
+import numpy as np
 import pyarrow as pa
 
-import numpy as np
-
 from dbfit.assessment import metrics as assessment
-
-from dbfit.deployment import views as deploy
-
-from dbfit.fitting import driver as fitting
-
-from dbfit.model import reading as serialize
-
-from dbfit.store import model_store as store
-from dbfit.interfaces.old_spellings import version_by_keyword, warn_renamed
-from dbfit.lifecycle import refit as refitting, saving, training
-from dbfit.lifecycle.drift import psi_table
-from dbfit.deployment import scoring
-from dbfit.deployment.segment_views import segment_scoring_query
 from dbfit.assessment import report
-from dbfit.model.segmented import SegmentedFit
-from pathlib import Path
+from dbfit.deployment import scoring
+from dbfit.deployment import views as deploy
+from dbfit.deployment.segment_views import segment_scoring_query
 from dbfit.engines.duckdb_engine import DuckDBEngine, translate_error
 from dbfit.errors import FitError, StoreError
-from dbfit.expressions.splits import Holdout, KFold, part_source
-from dbfit.model.fitted import Model
 from dbfit.expressions.names import model_name
+from dbfit.expressions.splits import Holdout, KFold, part_source
+from dbfit.fitting import driver as fitting
 from dbfit.fitting.options import FitOptions
+from dbfit.interfaces.old_spellings import version_by_keyword, warn_renamed
+from dbfit.lifecycle import refit as refitting
+from dbfit.lifecycle import saving, training
+from dbfit.lifecycle.drift import psi_table
+from dbfit.model import reading as serialize
+from dbfit.model.fitted import Model
+from dbfit.model.segmented import SegmentedFit
+from dbfit.store import model_store as store
 
 
-def fit(con: duckdb.DuckDBPyConnection, formula: str, source: str, *, name: str | None = None,
-        split: Holdout | None = None, threshold: float = 0.5, **options: Any) -> Model | SegmentedFit:
+def fit(
+    con: duckdb.DuckDBPyConnection,
+    formula: str,
+    source: str,
+    *,
+    name: str | None = None,
+    split: Holdout | None = None,
+    threshold: float = 0.5,
+    **options: Any,
+) -> Model | SegmentedFit:
     """Fit as :func:`dbfit.fitting.driver.fit`; with ``name=...`` also store the model as that name's next version.
 
     With ``split=dbfit.Holdout(key, share)`` the model is fitted on the training part only and its held-out
@@ -45,15 +49,26 @@ def fit(con: duckdb.DuckDBPyConnection, formula: str, source: str, *, name: str 
     """
     progress = options.pop("progress", None)
     chosen = FitOptions.of(**options)
-    return fit_options(con, formula, source, chosen, name=name, split=split, threshold=threshold, progress=progress)
+    return fit_options(
+        con, formula, source, chosen, name=name, split=split, threshold=threshold, progress=progress
+    )
 
 
-def fit_options(con: duckdb.DuckDBPyConnection, formula: str, source: str, options: FitOptions, *,
-                name: str | None = None, split: Holdout | None = None, threshold: float = 0.5,
-                progress: fitting.Progress = None) -> Model | SegmentedFit:
+def fit_options(
+    con: duckdb.DuckDBPyConnection,
+    formula: str,
+    source: str,
+    options: FitOptions,
+    *,
+    name: str | None = None,
+    split: Holdout | None = None,
+    threshold: float = 0.5,
+    progress: fitting.Progress = None,
+) -> Model | SegmentedFit:
     """:func:`fit` with the fit's options already checked (the command line, spec files and refit build them)."""
-    return training.fit_and_store(con, formula, source, options, name=name, split=split, threshold=threshold,
-                                  progress=progress)
+    return training.fit_and_store(
+        con, formula, source, options, name=name, split=split, threshold=threshold, progress=progress
+    )
 
 
 def _part_source(source: str, split: Holdout | KFold, part: str | int, keep: bool = True) -> str:
@@ -61,8 +76,15 @@ def _part_source(source: str, split: Holdout | KFold, part: str | int, keep: boo
     return part_source(source, split, part, keep=keep)
 
 
-def assess(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *,
-           rows: str | None = None, threshold: float = 0.5, version: int | None = None) -> pa.Table:
+def assess(
+    con: duckdb.DuckDBPyConnection,
+    model: str | Model,
+    source: str | None = None,
+    *,
+    rows: str | None = None,
+    threshold: float = 0.5,
+    version: int | None = None,
+) -> pa.Table:
     """One row per metric (metric, value, note) of ``model``; the note of metric ``rows`` says which rows.
 
     Default: the held-out rows of a holdout fit, else all rows of the model's source (in-sample). ``source``
@@ -71,9 +93,15 @@ def assess(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | Non
     return training.assess(con, model, source, rows=rows, threshold=threshold, version=version)
 
 
-def assessment_tables(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *,
-                      rows: str | None = None, threshold: float = 0.5,
-                      version: int | None = None) -> dict[str, pa.Table]:
+def assessment_tables(
+    con: duckdb.DuckDBPyConnection,
+    model: str | Model,
+    source: str | None = None,
+    *,
+    rows: str | None = None,
+    threshold: float = 0.5,
+    version: int | None = None,
+) -> dict[str, pa.Table]:
     """Metrics, confusion counts, cut-off curve, calibration and gains of ``model`` (rows as ``assess``)."""
     resolved = deploy.resolve_model(con, model, version)
     text, note = resolved.assessed_rows(source, rows)
@@ -81,8 +109,15 @@ def assessment_tables(con: duckdb.DuckDBPyConnection, model: str | Model, source
     return assessment.assessment_tables(DuckDBEngine(con), scored, threshold, rows_note=note)
 
 
-def cross_validate(con: duckdb.DuckDBPyConnection, formula: str, source: str, split: KFold, *,
-                   threshold: float = 0.5, **options: Any) -> pa.Table:
+def cross_validate(
+    con: duckdb.DuckDBPyConnection,
+    formula: str,
+    source: str,
+    split: KFold,
+    *,
+    threshold: float = 0.5,
+    **options: Any,
+) -> pa.Table:
     """k-fold cross-validation in the database: fit on k - 1 folds, assess on the held fold, for each fold.
 
     Returns one row per metric: the mean over folds, their standard deviation, and each fold's value.
@@ -96,7 +131,9 @@ def cross_validate(con: duckdb.DuckDBPyConnection, formula: str, source: str, sp
     chosen = FitOptions.of(**options)
     per_fold: list[dict[str, float | None]] = []
     for fold in range(split.folds):
-        model = fitting.fit_with(con, formula, _part_source(source, split, fold, keep=False), chosen, progress)
+        model = fitting.fit_with(
+            con, formula, _part_source(source, split, fold, keep=False), chosen, progress
+        )
         table = assess(con, model, _part_source(source, split, fold), threshold=threshold)
         per_fold.append(dict(zip(table["metric"].to_pylist(), table["value"].to_pylist())))
     names = list(per_fold[0])
@@ -110,7 +147,9 @@ def cross_validate(con: duckdb.DuckDBPyConnection, formula: str, source: str, sp
     return pa.table(columns)
 
 
-fit.__doc__ = (fitting.fit.__doc__ or "") + "\n    name : store the fitted model as the next version of this name.\n"
+fit.__doc__ = (
+    fitting.fit.__doc__ or ""
+) + "\n    name : store the fitted model as the next version of this name.\n"
 
 
 @version_by_keyword(2)
@@ -124,9 +163,17 @@ def from_json(text: str) -> Model:
     return serialize.from_json(text)
 
 
-def score(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *, rows: str = "all",
-          version: int | None = None, standard_error: bool = False, level: float = 0.95,
-          unseen: str = "null") -> pa.Table:
+def score(
+    con: duckdb.DuckDBPyConnection,
+    model: str | Model,
+    source: str | None = None,
+    *,
+    rows: str = "all",
+    version: int | None = None,
+    standard_error: bool = False,
+    level: float = 0.95,
+    unseen: str = "null",
+) -> pa.Table:
     """Every column of the rows plus the score columns, as a pyarrow table; its schema metadata ``dbfit_rows``
     says which rows (default: all rows of ``source``, else of the model's whole source).
 
@@ -135,8 +182,9 @@ def score(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None
     """
     resolved = deploy.resolve_model(con, model, version)
     text, note = resolved.assessed_rows(source, rows)
-    query = deploy.build_scoring(con, resolved, text, unseen=unseen, standard_error=standard_error,
-                                 level=level)
+    query = deploy.build_scoring(
+        con, resolved, text, unseen=unseen, standard_error=standard_error, level=level
+    )
     try:
         table = con.sql(query.sql("duckdb")).to_arrow_table()
     except duckdb.Error as err:
@@ -150,29 +198,33 @@ def models(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:
 
 
 @version_by_keyword(2)
-def drop_model(con: duckdb.DuckDBPyConnection, name: str, *,
-               version: int | None = None) -> list[tuple[str, int]]:
+def drop_model(
+    con: duckdb.DuckDBPyConnection, name: str, *, version: int | None = None
+) -> list[tuple[str, int]]:
     """Delete one version, or every version, of a stored model; returns what was deleted."""
     return store.drop_model(con, name, version)
 
 
-def drift(con: duckdb.DuckDBPyConnection, model: str | Model, source: str, *,
-          version: int | None = None) -> pa.Table:
+def drift(
+    con: duckdb.DuckDBPyConnection, model: str | Model, source: str, *, version: int | None = None
+) -> pa.Table:
     """Population stability index per variable between the stored training snapshot of ``model`` and
     ``source`` (see :mod:`dbfit.lifecycle.drift`); the SQL ``dbfit.drift`` and ``dbfit drift`` alike."""
     return psi_table(con, deploy.resolve_model(con, model, version), source)
 
 
-def population_stability(con: duckdb.DuckDBPyConnection, model: str | Model, source: str, *,
-                         version: int | None = None) -> pa.Table:
+def population_stability(
+    con: duckdb.DuckDBPyConnection, model: str | Model, source: str, *, version: int | None = None
+) -> pa.Table:
     """Deprecated name of :func:`drift`."""
     warn_renamed("dbfit.population_stability(con, model, source)", "dbfit.drift(con, model, source)")
     return drift(con, model, source, version=version)
 
 
 @version_by_keyword(2)
-def promote(con: duckdb.DuckDBPyConnection, name: str, *, version: int,
-            force: bool = False) -> dict[str, Any]:
+def promote(
+    con: duckdb.DuckDBPyConnection, name: str, *, version: int, force: bool = False
+) -> dict[str, Any]:
     """Make stored ``version`` of ``name`` current after its gates (:func:`dbfit.lifecycle.refit.promote`)."""
     return refitting.promote(con, name, version=version, force=force)
 
@@ -182,16 +234,24 @@ def decisions(con: duckdb.DuckDBPyConnection, name: str | None = None) -> list[d
     return store.decision_rows(con, None if name is None else model_name(name))
 
 
-def save(con: duckdb.DuckDBPyConnection, fitted: Model | SegmentedFit, name: str, *,
-         promote: bool = True) -> int | dict[Any, tuple[str, int]]:
+def save(
+    con: duckdb.DuckDBPyConnection, fitted: Model | SegmentedFit, name: str, *, promote: bool = True
+) -> int | dict[Any, tuple[str, int]]:
     """Store ``fitted`` as the next version of ``name`` (its version number back); a ``by=`` fit stores every
     segment's model as ``name.segment`` in one transaction (``{segment: (name, version)}`` back).
     ``promote=False`` stores a candidate that becomes current only through ``dbfit.promote``."""
     return saving.save(con, fitted, name, promote=promote)
 
 
-def scoring_sql(fitted: Model | SegmentedFit, dialect: str = "duckdb", *, source: str | None = None,
-                unseen: str = "null", standard_error: bool = False, level: float = 0.95) -> str:
+def scoring_sql(
+    fitted: Model | SegmentedFit,
+    dialect: str = "duckdb",
+    *,
+    source: str | None = None,
+    unseen: str = "null",
+    standard_error: bool = False,
+    level: float = 0.95,
+) -> str:
     """A SELECT over ``source`` (default: the model's source) adding ``linear_predictor`` and ``probability``.
 
     ``unseen`` says what a categorical level never seen in training gives: ``"null"`` (NULL scores),
@@ -201,10 +261,13 @@ def scoring_sql(fitted: Model | SegmentedFit, dialect: str = "duckdb", *, source
     if isinstance(fitted, SegmentedFit):
         if fitted.by_expression is None:
             raise StoreError("this segmented fit does not know its by expression")
-        query = segment_scoring_query(fitted.models, fitted.by_expression, source or fitted.source, unseen=unseen)
+        query = segment_scoring_query(
+            fitted.models, fitted.by_expression, source or fitted.source, unseen=unseen
+        )
         return query.sql("duckdb")
-    return scoring.scoring_sql(fitted, dialect, source=source, unseen=unseen, standard_error=standard_error,
-                               level=level)
+    return scoring.scoring_sql(
+        fitted, dialect, source=source, unseen=unseen, standard_error=standard_error, level=level
+    )
 
 
 def write_report(model: Model, path: str | Path, assessment: dict[str, pa.Table] | None = None) -> Path:

@@ -19,10 +19,31 @@ from dbfit.errors import DbfitError, UsageError
 REQUIRED = ("database", "name", "formula", "source")
 # The fit's own options: checked by dbfit.fitting.options.FitOptions where the command builds the fit (with the
 # command line's values over these), so their rules live in one place.
-FIT_OPTIONS = ("weights", "offset", "trials", "positive", "reference", "max_iter", "tol", "firth", "by", "robust",
-               "cluster", "population_rate", "shrinkage", "l1_share", "folds", "split_key")
-OPTIONAL = {**{key: object for key in FIT_OPTIONS}, "holdout_key": str, "holdout_share": (int, float),
-            "threshold": (int, float), "gates": dict}
+FIT_OPTIONS = (
+    "weights",
+    "offset",
+    "trials",
+    "positive",
+    "reference",
+    "max_iter",
+    "tol",
+    "firth",
+    "by",
+    "robust",
+    "cluster",
+    "population_rate",
+    "shrinkage",
+    "l1_share",
+    "folds",
+    "split_key",
+)
+OPTIONAL = {
+    **{key: object for key in FIT_OPTIONS},
+    "holdout_key": str,
+    "holdout_share": (int, float),
+    "threshold": (int, float),
+    "gates": dict,
+}
 
 
 def read_spec(path: str) -> dict[str, Any]:
@@ -35,15 +56,19 @@ def read_spec(path: str) -> dict[str, Any]:
     try:
         spec = tomllib.loads(text) if file.suffix.lower() == ".toml" else json.loads(text)
     except (tomllib.TOMLDecodeError, json.JSONDecodeError) as err:
-        raise DbfitError(f"the spec file {path} is not valid {'TOML' if file.suffix == '.toml' else 'JSON'}: {err}") from None
+        raise DbfitError(
+            f"the spec file {path} is not valid {'TOML' if file.suffix == '.toml' else 'JSON'}: {err}"
+        ) from None
     if not isinstance(spec, dict):
         raise DbfitError(f"the spec file {path} must hold one object of settings")
     unknown = sorted(set(spec) - set(REQUIRED) - set(OPTIONAL))
     if unknown:
-        raise DbfitError(f"the spec file {path} has unknown key(s) {unknown}; known: {sorted(REQUIRED + tuple(OPTIONAL))}")
+        raise DbfitError(
+            f"the spec file {path} has unknown key(s) {unknown}; known: {sorted(REQUIRED + tuple(OPTIONAL))}"
+        )
     for key, value in spec.items():
         wanted = OPTIONAL.get(key, str)
-        if not isinstance(value, wanted) or (wanted != object and isinstance(value, bool)):
+        if not isinstance(value, wanted) or (wanted is not object and isinstance(value, bool)):
             raise DbfitError(f"the spec file {path}: {key} = {value!r} has the wrong type")
     return spec
 
@@ -53,5 +78,7 @@ def merge(spec: dict[str, Any], given: dict[str, Any]) -> dict[str, Any]:
     settings = {**spec, **{k: v for k, v in given.items() if v is not None}}
     missing = [k for k in REQUIRED if not settings.get(k)]
     if missing:
-        raise UsageError(f"fit needs {', '.join('--' + k for k in missing)} (on the command line or in --spec)")
+        raise UsageError(
+            f"fit needs {', '.join('--' + k for k in missing)} (on the command line or in --spec)"
+        )
     return settings

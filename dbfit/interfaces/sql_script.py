@@ -29,7 +29,9 @@ def run_script(con: duckdb.DuckDBPyConnection, script: str) -> list[StatementRes
             columns = [d[0] for d in relation.description] if relation.description else []
             rows = relation.fetchall() if columns else []
         except duckdb.Error as err:
-            raise DbfitError(f"statement {number} of the script failed: {str(err).splitlines()[0]}\n  {text[:200]}") from None
+            raise DbfitError(
+                f"statement {number} of the script failed: {str(err).splitlines()[0]}\n  {text[:200]}"
+            ) from None
         results.append(StatementResult(text=text, columns=columns, rows=rows))
     return results
 

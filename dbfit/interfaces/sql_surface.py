@@ -16,64 +16,107 @@ import duckdb
 from sqlglot import exp
 
 from dbfit.assessment import metrics as assessment
-
-from dbfit.fitting import driver as fitting
-
-from dbfit.store import model_store as store
-from dbfit.engines.duckdb_engine import DuckDBEngine
-from dbfit.deployment.views import build_scoring, check_score_columns, publish
-from dbfit.lifecycle.drift import psi_table
-from dbfit.errors import FitError, SourceError, StoreError
-from dbfit.model.fitted import Model
-from dbfit.fitting.options import FitOptions
-from dbfit.expressions.names import model_name
-from dbfit.model.segmented import SegmentedFit
-from dbfit.lifecycle import saving
 from dbfit.deployment.segment_views import publish_segments
+from dbfit.deployment.views import build_scoring, check_score_columns, publish
+from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.errors import FitError, SourceError, StoreError
 from dbfit.expressions.formula import holds_top_level_tilde
+from dbfit.expressions.names import model_name
 from dbfit.expressions.source import source_relation
+from dbfit.fitting import driver as fitting
+from dbfit.fitting.options import FitOptions
+from dbfit.lifecycle import saving
+from dbfit.lifecycle.drift import psi_table
+from dbfit.model.fitted import Model
+from dbfit.model.segmented import SegmentedFit
+from dbfit.store import model_store as store
 
 CATALOG = "dbfit"
-EARLIER_FIT_ORDER = ("deprecated: dbfit.fit(model, source, formula) goes in the next release; "
-                     "write dbfit.fit(model, formula, source)")
+EARLIER_FIT_ORDER = (
+    "deprecated: dbfit.fit(model, source, formula) goes in the next release; "
+    "write dbfit.fit(model, formula, source)"
+)
 T = duckdb.sqltype
 COEFFICIENT_FIELDS = {"model": T("VARCHAR"), "version": T("INTEGER"), "term": T("VARCHAR")} | {
     c: T("DOUBLE") for c in store.COEFFICIENT_COLUMNS[1:]
 }
 # dbfit.fit: with by := each segment's model is stored as 'model.segment'; a segment that could not be fitted
 # is one row with its reason in ``note`` and no model. ``note`` otherwise holds the model's warnings.
-FIT_FIELDS = {"model": T("VARCHAR"), "version": T("INTEGER"), "segment": T("VARCHAR"), "term": T("VARCHAR")} | {
-    c: T("DOUBLE") for c in store.COEFFICIENT_COLUMNS[1:]
-} | {"note": T("VARCHAR")}
+FIT_FIELDS = (
+    {"model": T("VARCHAR"), "version": T("INTEGER"), "segment": T("VARCHAR"), "term": T("VARCHAR")}
+    | {c: T("DOUBLE") for c in store.COEFFICIENT_COLUMNS[1:]}
+    | {"note": T("VARCHAR")}
+)
 VERSION_FIELDS = {
-    "model": T("VARCHAR"), "version": T("INTEGER"), "created_at": T("TIMESTAMP"), "formula": T("VARCHAR"),
-    "source": T("VARCHAR"), "source_rows": T("BIGINT"), "rows_used": T("BIGINT"), "deviance": T("DOUBLE"),
-    "aic": T("DOUBLE"), "converged": T("BOOLEAN"), "warnings_count": T("INTEGER"), "current": T("BOOLEAN"),
+    "model": T("VARCHAR"),
+    "version": T("INTEGER"),
+    "created_at": T("TIMESTAMP"),
+    "formula": T("VARCHAR"),
+    "source": T("VARCHAR"),
+    "source_rows": T("BIGINT"),
+    "rows_used": T("BIGINT"),
+    "deviance": T("DOUBLE"),
+    "aic": T("DOUBLE"),
+    "converged": T("BOOLEAN"),
+    "warnings_count": T("INTEGER"),
+    "current": T("BOOLEAN"),
 }
-PUBLISHED_FIELDS = {"view": T("VARCHAR"), "model": T("VARCHAR"), "version": T("INTEGER"), "mode": T("VARCHAR")}
+PUBLISHED_FIELDS = {
+    "view": T("VARCHAR"),
+    "model": T("VARCHAR"),
+    "version": T("INTEGER"),
+    "mode": T("VARCHAR"),
+}
 SEGMENT_VIEW_FIELDS = {"view": T("VARCHAR"), "segments": T("INTEGER"), "mode": T("VARCHAR")}
 DROPPED_FIELDS = {"model": T("VARCHAR"), "version": T("INTEGER")}
-CUTOFF_COLUMNS = ("threshold", "true_positive_rate", "false_positive_rate", "precision", "recall", "specificity",
-                  "share_flagged")
-CALIBRATION_COLUMNS = ("mean_predicted", "observed_rate", "wilson_low", "wilson_high", "lowest_score", "highest_score")
-DRIFT_FIELDS = {"variable": T("VARCHAR"), "kind": T("VARCHAR"), "bins": T("BIGINT"), "training_rows": T("BIGINT"),
-                "new_rows": T("BIGINT"), "psi": T("DOUBLE"), "reading": T("VARCHAR")}
+CUTOFF_COLUMNS = (
+    "threshold",
+    "true_positive_rate",
+    "false_positive_rate",
+    "precision",
+    "recall",
+    "specificity",
+    "share_flagged",
+)
+CALIBRATION_COLUMNS = (
+    "mean_predicted",
+    "observed_rate",
+    "wilson_low",
+    "wilson_high",
+    "lowest_score",
+    "highest_score",
+)
+DRIFT_FIELDS = {
+    "variable": T("VARCHAR"),
+    "kind": T("VARCHAR"),
+    "bins": T("BIGINT"),
+    "training_rows": T("BIGINT"),
+    "new_rows": T("BIGINT"),
+    "psi": T("DOUBLE"),
+    "reading": T("VARCHAR"),
+}
 GAINS_COLUMNS = ("share_of_rows", "share_of_positives", "lift", "cumulative_lift")
 
 _ROWS = "SELECT dbfit_row.* FROM (SELECT unnest({call}) AS dbfit_row)"
 _SCORE_OPTIONS = ", standard_error := false, level := 0.95, unseen := 'null'"
-_SCORE = "SELECT * FROM query(dbfit_sql_score(model, source, {version}, standard_error, level::VARCHAR, unseen))"
+_SCORE = (
+    "SELECT * FROM query(dbfit_sql_score(model, source, {version}, standard_error, level::VARCHAR, unseen))"
+)
 MACROS = {
-    "fit": [(
-        "model, formula, source, weights := NULL, \"offset\" := NULL, trials := NULL, reference := NULL, "
-        "positive := NULL, max_iter := 50, tol := 1e-10, robust := NULL, \"cluster\" := NULL, firth := false, "
-        "population_rate := NULL, shrinkage := NULL, l1_share := 0.0, \"by\" := NULL",
-        _ROWS.format(call="dbfit_sql_fit(model, formula, source, weights, \"offset\", trials, reference, "
-                          "positive, max_iter::VARCHAR, tol::VARCHAR, "
-                          "(SELECT dbfit_count.n FROM query(dbfit_sql_count(formula, source)) "
-                          "AS dbfit_count), robust, \"cluster\", firth::VARCHAR, "
-                          "population_rate::VARCHAR, shrinkage::VARCHAR, l1_share::VARCHAR, \"by\")"),
-    )],
+    "fit": [
+        (
+            'model, formula, source, weights := NULL, "offset" := NULL, trials := NULL, reference := NULL, '
+            'positive := NULL, max_iter := 50, tol := 1e-10, robust := NULL, "cluster" := NULL, firth := false, '
+            'population_rate := NULL, shrinkage := NULL, l1_share := 0.0, "by" := NULL',
+            _ROWS.format(
+                call='dbfit_sql_fit(model, formula, source, weights, "offset", trials, reference, '
+                "positive, max_iter::VARCHAR, tol::VARCHAR, "
+                "(SELECT dbfit_count.n FROM query(dbfit_sql_count(formula, source)) "
+                'AS dbfit_count), robust, "cluster", firth::VARCHAR, '
+                'population_rate::VARCHAR, shrinkage::VARCHAR, l1_share::VARCHAR, "by")'
+            ),
+        )
+    ],
     "models": [("", _ROWS.format(call="dbfit_sql_models()"))],
     "coefficients": [
         ("model", _ROWS.format(call="dbfit_sql_coefficients(model, NULL)")),
@@ -83,20 +126,44 @@ MACROS = {
         ("model, source" + _SCORE_OPTIONS, _SCORE.format(version="NULL")),
         ("model, source, version" + _SCORE_OPTIONS, _SCORE.format(version="version")),
     ],
-    "publish": [(
-        "model, source, view, version := NULL, live := false, unseen := 'null', \"replace\" := false",
-        _ROWS.format(call="dbfit_sql_publish(model, source, view, version, live, unseen, \"replace\")"),
-    )],
-    "publish_segments": [(
-        "model, source, view, unseen := 'null', \"replace\" := false",
-        _ROWS.format(call="dbfit_sql_publish_segments(model, source, view, unseen, \"replace\")"),
-    )],
-    "assess": [("model, source, threshold := 0.5", _ROWS.format(call="dbfit_sql_assess(model, source, threshold::VARCHAR, 'metrics')"))],
-    "confusion": [("model, source, threshold := 0.5", _ROWS.format(call="dbfit_sql_confusion(model, source, threshold::VARCHAR, 'confusion')"))],
+    "publish": [
+        (
+            "model, source, view, version := NULL, live := false, unseen := 'null', \"replace\" := false",
+            _ROWS.format(call='dbfit_sql_publish(model, source, view, version, live, unseen, "replace")'),
+        )
+    ],
+    "publish_segments": [
+        (
+            "model, source, view, unseen := 'null', \"replace\" := false",
+            _ROWS.format(call='dbfit_sql_publish_segments(model, source, view, unseen, "replace")'),
+        )
+    ],
+    "assess": [
+        (
+            "model, source, threshold := 0.5",
+            _ROWS.format(call="dbfit_sql_assess(model, source, threshold::VARCHAR, 'metrics')"),
+        )
+    ],
+    "confusion": [
+        (
+            "model, source, threshold := 0.5",
+            _ROWS.format(call="dbfit_sql_confusion(model, source, threshold::VARCHAR, 'confusion')"),
+        )
+    ],
     "cutoffs": [("model, source", _ROWS.format(call="dbfit_sql_cutoffs(model, source, '0.5', 'curve')"))],
-    "roc": [("model, source", "SELECT threshold, false_positive_rate, true_positive_rate FROM "
-             + _ROWS.format(call="dbfit_sql_cutoffs(model, source, '0.5', 'curve')").replace("SELECT ", "(SELECT ", 1) + ")")],
-    "calibration": [("model, source", _ROWS.format(call="dbfit_sql_calibration(model, source, '0.5', 'calibration')"))],
+    "roc": [
+        (
+            "model, source",
+            "SELECT threshold, false_positive_rate, true_positive_rate FROM "
+            + _ROWS.format(call="dbfit_sql_cutoffs(model, source, '0.5', 'curve')").replace(
+                "SELECT ", "(SELECT ", 1
+            )
+            + ")",
+        )
+    ],
+    "calibration": [
+        ("model, source", _ROWS.format(call="dbfit_sql_calibration(model, source, '0.5', 'calibration')"))
+    ],
     "gains": [("model, source", _ROWS.format(call="dbfit_sql_gains(model, source, '0.5', 'gains')"))],
     "drift": [("model, source", _ROWS.format(call="dbfit_sql_drift(model, source)"))],
     "drop_model": [
@@ -108,7 +175,9 @@ MACROS = {
 
 def register(con: duckdb.DuckDBPyConnection) -> None:
     """Attach the in-memory ``dbfit`` catalog and create the table macros and their Python functions."""
-    attached = con.execute("SELECT path FROM duckdb_databases() WHERE database_name = ?", [CATALOG]).fetchall()
+    attached = con.execute(
+        "SELECT path FROM duckdb_databases() WHERE database_name = ?", [CATALOG]
+    ).fetchall()
     if attached and attached[0][0] is not None:
         raise StoreError(
             f"this connection's database is named '{CATALOG}' (file {attached[0][0]}), the name dbfit's SQL functions "
@@ -126,22 +195,60 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
     def second() -> duckdb.DuckDBPyConnection:
         return con.cursor()
 
-    def fit_rows(model, formula, source, weights, offset, trials, reference, positive, max_iter, tol,
-                 visible_rows, robust, cluster, firth, population_rate, shrinkage, l1_share, by):
+    def fit_rows(
+        model,
+        formula,
+        source,
+        weights,
+        offset,
+        trials,
+        reference,
+        positive,
+        max_iter,
+        tol,
+        visible_rows,
+        robust,
+        cluster,
+        firth,
+        population_rate,
+        shrinkage,
+        l1_share,
+        by,
+    ):
         model_name(model)
         formula, source, earlier = formula_and_source(formula, source)
-        options = FitOptions.from_text(weights=weights, offset=offset, trials=trials, reference=reference,
-                                       positive=positive, max_iter=max_iter, tol=tol, robust=robust, cluster=cluster,
-                                       firth=firth, population_rate=population_rate, shrinkage=shrinkage,
-                                       l1_share=l1_share, by=by)
+        options = FitOptions.from_text(
+            weights=weights,
+            offset=offset,
+            trials=trials,
+            reference=reference,
+            positive=positive,
+            max_iter=max_iter,
+            tol=tol,
+            robust=robust,
+            cluster=cluster,
+            firth=firth,
+            population_rate=population_rate,
+            shrinkage=shrinkage,
+            l1_share=l1_share,
+            by=by,
+        )
         with second() as reader:
             fitted = _fit_on_second_connection(reader, source, formula, visible_rows, options)
             if isinstance(fitted, SegmentedFit):
                 rows = _segment_rows(fitted, saving.save_segments(reader, fitted, model))
             else:
                 version = saving.save_model(reader, fitted, model)
-                rows = [{"model": model, "version": version, "segment": None, **row,
-                         "note": _warnings_note(fitted)} for row in fitted.coefficients.to_pylist()]
+                rows = [
+                    {
+                        "model": model,
+                        "version": version,
+                        "segment": None,
+                        **row,
+                        "note": _warnings_note(fitted),
+                    }
+                    for row in fitted.coefficients.to_pylist()
+                ]
         if earlier:
             for row in rows:
                 row["note"] = "; ".join(filter(None, [EARLIER_FIT_ORDER, row["note"]]))
@@ -151,7 +258,11 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
         source = formula_and_source(formula, source)[1]
         with second() as reader:
             check_readable(reader, source)
-        return exp.select(exp.alias_(exp.Count(this=exp.Star()), "n")).from_(source_relation(source)).sql("duckdb")
+        return (
+            exp.select(exp.alias_(exp.Count(this=exp.Star()), "n"))
+            .from_(source_relation(source))
+            .sql("duckdb")
+        )
 
     def version_rows():
         with second() as reader:
@@ -171,20 +282,30 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
                 check_score_columns(reader, source_relation(source), bool(standard_error))
             except SourceError:
                 pass  # not visible to the second connection (a temporary table?): the calling query reads it
-        query = build_scoring(None, fitted, source, unseen=unseen or "null", standard_error=bool(standard_error),
-                              level=level)
+        query = build_scoring(
+            None, fitted, source, unseen=unseen or "null", standard_error=bool(standard_error), level=level
+        )
         return query.sql("duckdb")
 
     def publish_rows(model, source, view, version, live, unseen, replace):
         with second() as writer:
-            made = publish(writer, model, source=source, view=view, version=version, live=bool(live),
-                           unseen=unseen or "null", replace=bool(replace))
+            made = publish(
+                writer,
+                model,
+                source=source,
+                view=view,
+                version=version,
+                live=bool(live),
+                unseen=unseen or "null",
+                replace=bool(replace),
+            )
         return [{k: made[k] for k in PUBLISHED_FIELDS}]
 
     def publish_segment_rows(model, source, view, unseen, replace):
         with second() as writer:
-            made = publish_segments(writer, model, source=source, view=view, unseen=unseen or "null",
-                                    replace=bool(replace))
+            made = publish_segments(
+                writer, model, source=source, view=view, unseen=unseen or "null", replace=bool(replace)
+            )
         return [{k: made[k] for k in SEGMENT_VIEW_FIELDS}]
 
     def drop_rows(model, version):
@@ -200,10 +321,12 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
             threshold = _text_number(threshold, "threshold", 0.5)
             if table == "metrics":
                 return assessment.metrics(engine, scored, threshold, rows_note=note).table().to_pylist()
-            builders = {"confusion": lambda: assessment.confusion_table(engine, scored, threshold),
-                        "curve": lambda: assessment.curve_points(engine, scored),
-                        "calibration": lambda: assessment.calibration_table(engine, scored),
-                        "gains": lambda: assessment.gains_table(engine, scored)}
+            builders = {
+                "confusion": lambda: assessment.confusion_table(engine, scored, threshold),
+                "curve": lambda: assessment.curve_points(engine, scored),
+                "calibration": lambda: assessment.calibration_table(engine, scored),
+                "gains": lambda: assessment.gains_table(engine, scored),
+            }
             return builders[table]().to_pylist()
 
     def drift_rows(model, source):
@@ -213,8 +336,12 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
     V, I, D, B = T("VARCHAR"), T("INTEGER"), T("DOUBLE"), T("BOOLEAN")
     reference_type = duckdb.map_type(V, V)
     functions: list[tuple[str, Callable[..., Any], list[Any], Any]] = [
-        ("dbfit_sql_fit", fit_rows, [V, V, V, V, V, V, reference_type, V, V, V, T("BIGINT"), V, V, V, V, V, V, V],
-         _rows_of(FIT_FIELDS)),
+        (
+            "dbfit_sql_fit",
+            fit_rows,
+            [V, V, V, V, V, V, reference_type, V, V, V, T("BIGINT"), V, V, V, V, V, V, V],
+            _rows_of(FIT_FIELDS),
+        ),
         ("dbfit_sql_count", count_sql, [V, V], V),
         ("dbfit_sql_models", version_rows, [], _rows_of(VERSION_FIELDS)),
         ("dbfit_sql_coefficients", coefficient_rows, [V, I], _rows_of(COEFFICIENT_FIELDS)),
@@ -223,16 +350,32 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
         ("dbfit_sql_publish_segments", publish_segment_rows, [V, V, V, V, B], _rows_of(SEGMENT_VIEW_FIELDS)),
         ("dbfit_sql_drop", drop_rows, [V, I], _rows_of(DROPPED_FIELDS)),
         ("dbfit_sql_assess", assessment_rows, [V, V, V, V], _rows_of({"metric": V, "value": D, "note": V})),
-        ("dbfit_sql_confusion", assessment_rows, [V, V, V, V], _rows_of({"actual": I, "predicted": I, "rows": T("BIGINT")})),
+        (
+            "dbfit_sql_confusion",
+            assessment_rows,
+            [V, V, V, V],
+            _rows_of({"actual": I, "predicted": I, "rows": T("BIGINT")}),
+        ),
         ("dbfit_sql_cutoffs", assessment_rows, [V, V, V, V], _rows_of({c: D for c in CUTOFF_COLUMNS})),
-        ("dbfit_sql_calibration", assessment_rows, [V, V, V, V], _rows_of(
-            {"group": I, "rows": T("BIGINT"), **{c: D for c in CALIBRATION_COLUMNS}})),
-        ("dbfit_sql_gains", assessment_rows, [V, V, V, V], _rows_of({"group": I, **{c: D for c in GAINS_COLUMNS}})),
+        (
+            "dbfit_sql_calibration",
+            assessment_rows,
+            [V, V, V, V],
+            _rows_of({"group": I, "rows": T("BIGINT"), **{c: D for c in CALIBRATION_COLUMNS}}),
+        ),
+        (
+            "dbfit_sql_gains",
+            assessment_rows,
+            [V, V, V, V],
+            _rows_of({"group": I, **{c: D for c in GAINS_COLUMNS}}),
+        ),
         ("dbfit_sql_drift", drift_rows, [V, V], _rows_of(DRIFT_FIELDS)),
     ]
     for name, function, parameters, returns in functions:
         try:
-            con.create_function(name, function, parameters, returns, null_handling="special", side_effects=True)
+            con.create_function(
+                name, function, parameters, returns, null_handling="special", side_effects=True
+            )
         except duckdb.NotImplementedException as err:
             if "already created" not in str(err):
                 raise
@@ -253,12 +396,22 @@ def _is_query(text: str) -> bool:
 
 def _segment_rows(fitted: SegmentedFit, saved: dict[Any, tuple[str, int]]) -> list[dict[str, Any]]:
     """Every stored segment model's coefficient rows, then one row per segment that could not be fitted."""
-    rows = [{"model": saved[value][0], "version": saved[value][1], "segment": str(value), **row,
-             "note": _warnings_note(model)}
-            for value, model in fitted.models.items() for row in model.coefficients.to_pylist()]
+    rows = [
+        {
+            "model": saved[value][0],
+            "version": saved[value][1],
+            "segment": str(value),
+            **row,
+            "note": _warnings_note(model),
+        }
+        for value, model in fitted.models.items()
+        for row in model.coefficients.to_pylist()
+    ]
     blank = {c: None for c in store.COEFFICIENT_COLUMNS}
-    return rows + [{"model": None, "version": None, "segment": str(value), **blank, "note": f"not fitted: {reason}"}
-                   for value, reason in fitted.failures.items()]
+    return rows + [
+        {"model": None, "version": None, "segment": str(value), **blank, "note": f"not fitted: {reason}"}
+        for value, reason in fitted.failures.items()
+    ]
 
 
 def _warnings_note(model: Model) -> str | None:
@@ -269,15 +422,22 @@ def _rows_of(fields: dict[str, Any]) -> Any:
     return duckdb.list_type(duckdb.struct_type(fields))
 
 
-def _fit_on_second_connection(reader: duckdb.DuckDBPyConnection, source: str, formula: str, visible_rows: int | None,
-                              options: FitOptions):
+def _fit_on_second_connection(
+    reader: duckdb.DuckDBPyConnection,
+    source: str,
+    formula: str,
+    visible_rows: int | None,
+    options: FitOptions,
+):
     """Fit on the second connection; explain plainly when it sees other rows than the calling connection."""
     invisible = (
         f"source {source!r} has {visible_rows} rows on your connection, but the second connection that the SQL "
         "dbfit.fit reads on"
     )
-    advice = ("temporary tables and rows or tables of a transaction not yet committed are invisible to it. "
-              "COMMIT first, copy the data into a permanent table, or call dbfit.fit from Python, which has no such limit")
+    advice = (
+        "temporary tables and rows or tables of a transaction not yet committed are invisible to it. "
+        "COMMIT first, copy the data into a permanent table, or call dbfit.fit from Python, which has no such limit"
+    )
     try:
         model = fitting.fit_with(reader, formula, source, options, progress=False)
     except SourceError as err:

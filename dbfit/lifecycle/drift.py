@@ -19,12 +19,12 @@ from typing import Any
 import pyarrow as pa
 from sqlglot import exp
 
-from dbfit.expressions import builders as sb
+from dbfit.deployment.scoring import scoring_query
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import DbfitError, StoreError
-from dbfit.model.fitted import Model
-from dbfit.deployment.scoring import scoring_query
+from dbfit.expressions import builders as sb
 from dbfit.expressions.source import source_relation
+from dbfit.model.fitted import Model
 
 FLOOR = 1e-4  # common practice
 QUANTILES = [k / 10 for k in range(1, 10)]  # deciles
@@ -66,21 +66,34 @@ def _bin_number(value: exp.Expression, edges: list[float]) -> exp.Expression:
     """0 .. len(edges): how many edges lie strictly below ``value`` (NULL stays NULL)."""
     count: exp.Expression = sb.number(0)
     for edge in edges:
-        below = exp.Cast(this=exp.GT(this=value.copy(), expression=sb.number(edge)), to=exp.DataType.build("INTEGER"))
+        below = exp.Cast(
+            this=exp.GT(this=value.copy(), expression=sb.number(edge)), to=exp.DataType.build("INTEGER")
+        )
         count = exp.Add(this=count, expression=below)
     return count
 
 
-def _numeric_counts(engine: DuckDBEngine, scored: exp.Expression, variables: list[tuple[str, exp.Expression]],
-                    edges: dict[str, list[float]]) -> dict[str, list[int]]:
+def _numeric_counts(
+    engine: DuckDBEngine,
+    scored: exp.Expression,
+    variables: list[tuple[str, exp.Expression]],
+    edges: dict[str, list[float]],
+) -> dict[str, list[int]]:
     """One scan: the rows in each bin of each numeric variable (each row's bin numbered once, then counted)."""
     columns, layout, bins = [], [], []
     for index, (name, value) in enumerate(variables):
         alias = f"dbfit_bin_{index}"
         bins.append(exp.alias_(_bin_number(value, edges[name]), alias, quoted=True))
         for k in range(len(edges[name]) + 1):
-            columns.append(exp.Sum(this=exp.If(this=exp.EQ(this=sb.column(alias), expression=sb.number(k)),
-                                               true=sb.number(1), false=sb.number(0))))
+            columns.append(
+                exp.Sum(
+                    this=exp.If(
+                        this=exp.EQ(this=sb.column(alias), expression=sb.number(k)),
+                        true=sb.number(1),
+                        false=sb.number(0),
+                    )
+                )
+            )
             layout.append(name)
     if not columns:
         return {}
@@ -92,16 +105,22 @@ def _numeric_counts(engine: DuckDBEngine, scored: exp.Expression, variables: lis
     return counts
 
 
-def _level_counts(engine: DuckDBEngine, scored: exp.Expression,
-                  variables: list[tuple[str, exp.Expression]]) -> dict[str, dict[str, int]]:
+def _level_counts(
+    engine: DuckDBEngine, scored: exp.Expression, variables: list[tuple[str, exp.Expression]]
+) -> dict[str, dict[str, int]]:
     """One scan (GROUPING SETS): rows per level (as JSON text of the value) of each categorical, NULLs left out."""
     if not variables:
         return {}
     aliases = [f"dbfit_level_{k}" for k in range(len(variables))]
-    inner = exp.select(*[exp.alias_(value.copy(), alias, quoted=True) for (_, value), alias in zip(variables, aliases)])
+    inner = exp.select(
+        *[exp.alias_(value.copy(), alias, quoted=True) for (_, value), alias in zip(variables, aliases)]
+    )
     sets = exp.GroupingSets(expressions=[exp.Tuple(expressions=[sb.column(a)]) for a in aliases])
-    query = exp.select(*[sb.column(a) for a in aliases], exp.Count(this=exp.Star())).from_(
-        inner.from_(scored.copy()).subquery("dbfit_levels")).group_by(sets)
+    query = (
+        exp.select(*[sb.column(a) for a in aliases], exp.Count(this=exp.Star()))
+        .from_(inner.from_(scored.copy()).subquery("dbfit_levels"))
+        .group_by(sets)
+    )
     counts: dict[str, dict[str, int]] = {name: {} for name, _ in variables}
     for row in engine.fetch(query):
         present = [k for k in range(len(variables)) if row[k] is not None]
@@ -120,12 +139,26 @@ def training_snapshot(con: Any, model: Model) -> dict[str, list[Any]]:
     scored = _scored(model, model.rows_source("training"))
     variables = _variables(model)
     numeric = [(name, value) for name, kind, value in variables if kind != "categorical"]
-    rows: dict[str, list[Any]] = {k: [] for k in ("variable", "kind", "position", "lower", "upper", "level", "rows", "share")}
+    rows: dict[str, list[Any]] = {
+        k: [] for k in ("variable", "kind", "position", "lower", "upper", "level", "rows", "share")
+    }
     edges: dict[str, list[float]] = {}
     if numeric:
         quantiles = exp.Array(expressions=[sb.number(q) for q in QUANTILES])
-        found = engine.fetch(exp.select(*[exp.Anonymous(this="quantile_cont", expressions=[exp.Cast(
-            this=value.copy(), to=exp.DataType.build("DOUBLE")), quantiles.copy()]) for _, value in numeric]).from_(scored.copy()))[0]
+        found = engine.fetch(
+            exp.select(
+                *[
+                    exp.Anonymous(
+                        this="quantile_cont",
+                        expressions=[
+                            exp.Cast(this=value.copy(), to=exp.DataType.build("DOUBLE")),
+                            quantiles.copy(),
+                        ],
+                    )
+                    for _, value in numeric
+                ]
+            ).from_(scored.copy())
+        )[0]
         for (name, _), values in zip(numeric, found):
             edges[name] = sorted({float(v) for v in (values or []) if v is not None and math.isfinite(v)})
         counts = _numeric_counts(engine, scored, numeric, edges)
@@ -136,7 +169,9 @@ def training_snapshot(con: Any, model: Model) -> dict[str, list[Any]]:
             bounds = [None, *edges[name], None]
             for k, n in enumerate(counts[name]):
                 _append(rows, name, kind, k, bounds[k], bounds[k + 1], None, n, n / total)
-    categorical = _level_counts(engine, scored, [(name, value) for name, kind, value in variables if kind == "categorical"])
+    categorical = _level_counts(
+        engine, scored, [(name, value) for name, kind, value in variables if kind == "categorical"]
+    )
     for name, levels in categorical.items():
         total = sum(levels.values()) or 1
         for k, (level, n) in enumerate(sorted(levels.items())):
@@ -153,11 +188,15 @@ def _check_new_rows(source: str, rows: dict[str, int]) -> None:
     """Refuse a comparison with no new rows: a PSI against zero rows reads as a shift that is not there."""
     empty = [name for name, n in rows.items() if n == 0]
     if rows and len(empty) == len(rows):
-        raise DbfitError(f"the source {source} has 0 rows with values of the model's variables; drift "
-                         "compares new rows with the training snapshot and needs some")
+        raise DbfitError(
+            f"the source {source} has 0 rows with values of the model's variables; drift "
+            "compares new rows with the training snapshot and needs some"
+        )
     if empty:
-        raise DbfitError(f"the source {source} has 0 rows with a value of {', '.join(empty)}; drift needs "
-                         "new rows for every variable")
+        raise DbfitError(
+            f"the source {source} has 0 rows with a value of {', '.join(empty)}; drift needs "
+            "new rows for every variable"
+        )
 
 
 def psi_table(con: Any, model: Model, source: str) -> pa.Table:
@@ -165,43 +204,78 @@ def psi_table(con: Any, model: Model, source: str) -> pa.Table:
     from dbfit.store.model_store import version_table
 
     if model.name is None or model.version is None:
-        raise StoreError("drift compares with the training snapshot in the store: save the model first or pass its name")
+        raise StoreError(
+            "drift compares with the training snapshot in the store: save the model first or pass its name"
+        )
     stored = version_table(con, "drift_bins", model.name, model.version, order="variable, position")
     if not stored and (model.options.get("segment") or {}).get("by"):
-        raise StoreError(f"model '{model.name}' is one segment of a by= fit, which records no training snapshot (that "
-                         "would take a scan per segment): fit the segment on its own source to record one")
+        raise StoreError(
+            f"model '{model.name}' is one segment of a by= fit, which records no training snapshot (that "
+            "would take a scan per segment): fit the segment on its own source to record one"
+        )
     if not stored:
-        raise StoreError(f"model '{model.name}' version {model.version} has no training snapshot (saved by an older "
-                         "dbfit, or its source was unreadable at save time): refit it to record one")
+        raise StoreError(
+            f"model '{model.name}' version {model.version} has no training snapshot (saved by an older "
+            "dbfit, or its source was unreadable at save time): refit it to record one"
+        )
     engine = DuckDBEngine(con)
     scored = _scored(model, source)
     by_variable: dict[str, list[dict[str, Any]]] = {}
     for row in stored:
         by_variable.setdefault(row["variable"], []).append(row)
     expressions = {name: (kind, value) for name, kind, value in _variables(model)}
-    numeric = [(name, expressions[name][1]) for name, bins in by_variable.items()
-               if bins[0]["kind"] != "categorical" and name in expressions]
+    numeric = [
+        (name, expressions[name][1])
+        for name, bins in by_variable.items()
+        if bins[0]["kind"] != "categorical" and name in expressions
+    ]
     edges = {name: [b["upper"] for b in by_variable[name][:-1]] for name, _ in numeric}
     counts = _numeric_counts(engine, scored, numeric, edges)
-    categorical = _level_counts(engine, scored, [(name, expressions[name][1]) for name, bins in by_variable.items()
-                                                 if bins[0]["kind"] == "categorical" and name in expressions])
-    out: dict[str, list[Any]] = {k: [] for k in ("variable", "kind", "bins", "training_rows", "new_rows", "psi", "reading")}
-    _check_new_rows(source, {
-        name: sum(counts[name]) if name in counts else sum(categorical.get(name, {}).values())
-        for name in by_variable if name in expressions})
+    categorical = _level_counts(
+        engine,
+        scored,
+        [
+            (name, expressions[name][1])
+            for name, bins in by_variable.items()
+            if bins[0]["kind"] == "categorical" and name in expressions
+        ],
+    )
+    out: dict[str, list[Any]] = {
+        k: [] for k in ("variable", "kind", "bins", "training_rows", "new_rows", "psi", "reading")
+    }
+    _check_new_rows(
+        source,
+        {
+            name: sum(counts[name]) if name in counts else sum(categorical.get(name, {}).values())
+            for name in by_variable
+            if name in expressions
+        },
+    )
     for name, bins in by_variable.items():
         expected = [b["share"] for b in bins]
         if bins[0]["kind"] == "categorical":
             levels = categorical[name]
             known = [b["level"] for b in bins]
-            new = [levels.get(level, 0) for level in known] + [sum(n for lv, n in levels.items() if lv not in known)]
+            new = [levels.get(level, 0) for level in known] + [
+                sum(n for lv, n in levels.items() if lv not in known)
+            ]
             expected = expected + [0.0]
         else:
             new = counts[name]
         total = sum(new)
         actual = [n / total if total else 0.0 for n in new]
         value = psi(actual, expected)
-        for key, item in zip(out, (name, bins[0]["kind"], len(expected), sum(b["rows"] for b in bins), total, value,
-                                   reading(value))):
+        for key, item in zip(
+            out,
+            (
+                name,
+                bins[0]["kind"],
+                len(expected),
+                sum(b["rows"] for b in bins),
+                total,
+                value,
+                reading(value),
+            ),
+        ):
             out[key].append(item)
     return pa.table(out)

@@ -14,10 +14,10 @@ from typing import Any
 
 import duckdb
 
-from dbfit.store import model_store as store
 from dbfit.errors import StoreError
-from dbfit.model.fitted import Model
 from dbfit.expressions.names import model_name
+from dbfit.model.fitted import Model
+from dbfit.store import model_store as store
 
 
 @dataclasses.dataclass(frozen=True)
@@ -32,8 +32,12 @@ class Gates:
     def __post_init__(self) -> None:
         for field in ("auc_margin", "log_loss_margin", "max_shift"):
             value = getattr(self, field)
-            if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))
-                                      or not math.isfinite(value) or value < 0):
+            if value is not None and (
+                isinstance(value, bool)
+                or not isinstance(value, (int, float))
+                or not math.isfinite(value)
+                or value < 0
+            ):
                 raise StoreError(f"gate {field} must be a non-negative number or None (got {value!r})")
         if not isinstance(self.require_converged, bool):
             raise StoreError(f"gate require_converged must be true or false (got {self.require_converged!r})")
@@ -74,15 +78,27 @@ def coefficient_shift(candidate: Model, current: Model) -> tuple[float, str | No
     return largest, where
 
 
-def evaluate(gates: Gates, candidate: Model, current: Model, candidate_metrics: dict[str, Any],
-             current_metrics: dict[str, Any]) -> tuple[bool, list[str], dict[str, Any]]:
+def evaluate(
+    gates: Gates,
+    candidate: Model,
+    current: Model,
+    candidate_metrics: dict[str, Any],
+    current_metrics: dict[str, Any],
+) -> tuple[bool, list[str], dict[str, Any]]:
     """(passed, reasons for refusal, figures) of a candidate against the current version."""
     reasons: list[str] = []
     shift, term = coefficient_shift(candidate, current)
-    figures = {"candidate_auc": candidate_metrics.get("auc"), "current_auc": current_metrics.get("auc"),
-               "candidate_log_loss": candidate_metrics.get("log_loss"), "current_log_loss": current_metrics.get("log_loss"),
-               "largest_shift": shift, "largest_shift_term": term, "converged": bool(candidate.stats.get("converged")),
-               "separation": bool(candidate.stats.get("separation")), "gates": dataclasses.asdict(gates)}
+    figures = {
+        "candidate_auc": candidate_metrics.get("auc"),
+        "current_auc": current_metrics.get("auc"),
+        "candidate_log_loss": candidate_metrics.get("log_loss"),
+        "current_log_loss": current_metrics.get("log_loss"),
+        "largest_shift": shift,
+        "largest_shift_term": term,
+        "converged": bool(candidate.stats.get("converged")),
+        "separation": bool(candidate.stats.get("separation")),
+        "gates": dataclasses.asdict(gates),
+    }
     if gates.require_converged and not figures["converged"]:
         reasons.append("the candidate did not converge")
     if gates.require_converged and figures["separation"]:
@@ -92,7 +108,9 @@ def evaluate(gates: Gates, candidate: Model, current: Model, candidate_metrics: 
         reasons.append(f"AUC {_text(new)} is more than {gates.auc_margin:g} below the current {_text(old)}")
     new, old = figures["candidate_log_loss"], figures["current_log_loss"]
     if gates.log_loss_margin is not None and _worse(new, old, gates.log_loss_margin, lower_is_worse=False):
-        reasons.append(f"log loss {_text(new)} is more than {gates.log_loss_margin:g} above the current {_text(old)}")
+        reasons.append(
+            f"log loss {_text(new)} is more than {gates.log_loss_margin:g} above the current {_text(old)}"
+        )
     if gates.max_shift is not None and shift > gates.max_shift:
         reasons.append(f"coefficient {term} moved {shift:.3g} standard errors (bound {gates.max_shift:g})")
     return not reasons, reasons, figures
@@ -100,7 +118,9 @@ def evaluate(gates: Gates, candidate: Model, current: Model, candidate_metrics: 
 
 def _worse(new: float | None, old: float | None, margin: float, *, lower_is_worse: bool) -> bool:
     if new is None or old is None or not math.isfinite(new):
-        return new is None or not math.isfinite(new)  # a candidate without the figure cannot show it is not worse
+        return new is None or not math.isfinite(
+            new
+        )  # a candidate without the figure cannot show it is not worse
     return (old - new > margin) if lower_is_worse else (new - old > margin)
 
 

@@ -14,63 +14,119 @@ from typing import Any
 
 import duckdb
 
-from dbfit.lifecycle import training
-
-from dbfit.store import model_store as store
-from dbfit.lifecycle import saving
 from dbfit.errors import GateRefusedError, StoreError
+from dbfit.expressions.names import model_name
+from dbfit.expressions.splits import Holdout, part_source
+from dbfit.fitting.options import FitOptions
+from dbfit.lifecycle import saving, training
 from dbfit.lifecycle.fingerprint import fingerprint, origin_source
 from dbfit.lifecycle.gates import evaluate, gates_of
 from dbfit.model.fitted import Model
-from dbfit.expressions.names import model_name
-from dbfit.fitting.options import FitOptions
-from dbfit.expressions.splits import Holdout, part_source
+from dbfit.store import model_store as store
 
-REUSED_OPTIONS = ("weights", "offset", "trials", "reference", "positive", "max_iter", "tol", "firth", "robust", "cluster",
-                  "population_rate", "shrinkage", "l1_share", "folds", "split_key")
+REUSED_OPTIONS = (
+    "weights",
+    "offset",
+    "trials",
+    "reference",
+    "positive",
+    "max_iter",
+    "tol",
+    "firth",
+    "robust",
+    "cluster",
+    "population_rate",
+    "shrinkage",
+    "l1_share",
+    "folds",
+    "split_key",
+)
 
 
-def refit(con: duckdb.DuckDBPyConnection, name: str, *, source: str | None = None, skip_unchanged: bool = False,
-          cold: bool = False, progress: bool = False) -> dict[str, Any]:
+def refit(
+    con: duckdb.DuckDBPyConnection,
+    name: str,
+    *,
+    source: str | None = None,
+    skip_unchanged: bool = False,
+    cold: bool = False,
+    progress: bool = False,
+) -> dict[str, Any]:
     """Refit ``name`` and decide on promotion; returns the decision. ``source`` overrides the stored source;
     ``cold=True`` starts from the intercept-only fit instead of the current estimates."""
     name = model_name(name)
     current = store.load_model(con, name)
     source = source if source is not None else origin_source(current.options, current.source)
     seen = fingerprint(con, source)
-    result: dict[str, Any] = {"model": name, "source": source, "current_version": current.version,
-                              "candidate_version": None, "source_rows": seen["source_rows"]}
+    result: dict[str, Any] = {
+        "model": name,
+        "source": source,
+        "current_version": current.version,
+        "candidate_version": None,
+        "source_rows": seen["source_rows"],
+    }
     if skip_unchanged and _unchanged(con, current, seen):
-        store.record_decision(con, name, None, current.version, "skipped",
-                              "the source fingerprint equals the current version's", seen, promote=False)
-        return result | {"decision": "skipped", "reasons": ["the source fingerprint equals the current version's"]}
+        store.record_decision(
+            con,
+            name,
+            None,
+            current.version,
+            "skipped",
+            "the source fingerprint equals the current version's",
+            seen,
+            promote=False,
+        )
+        return result | {
+            "decision": "skipped",
+            "reasons": ["the source fingerprint equals the current version's"],
+        }
     options = {k: current.options[k] for k in REUSED_OPTIONS if current.options.get(k) is not None}
     if current.options.get("by") is not None:
         raise StoreError(f"model '{name}' was fitted by segment (by=); refit it from Python")
     split = current.options.get("split")
     holdout = Holdout(split["key"], split["share"]) if split else None
-    start = None if cold else {label: float(v) for label, v in zip(current.labels, current.estimates) if math.isfinite(v)}
+    start = (
+        None
+        if cold
+        else {label: float(v) for label, v in zip(current.labels, current.estimates) if math.isfinite(v)}
+    )
     chosen = FitOptions.of(start=start, **options)
-    candidate = training.fit_and_store(con, current.formula, source, chosen, split=holdout, progress=progress,
-                                threshold=split["threshold"] if split else 0.5)
+    candidate = training.fit_and_store(
+        con,
+        current.formula,
+        source,
+        chosen,
+        split=holdout,
+        progress=progress,
+        threshold=split["threshold"] if split else 0.5,
+    )
     if current.options.get("segment"):
         candidate.options["segment"] = current.options["segment"]  # still one segment of its by= fit
     version = saving.save_model(con, candidate, name, promote=False)
     figures_source = part_source(source, holdout, "holdout") if holdout else source
     candidate_metrics = candidate.stats.get("holdout") or _metrics(con, candidate, figures_source)
-    passed, reasons, figures = evaluate(gates_of(con, name), candidate, current, candidate_metrics,
-                                        _metrics(con, current, figures_source))
-    figures |= {"measured_on": "held-out rows" if holdout else "all rows of the source (no holdout set)",
-                "iterations": candidate.stats["iterations"], "scans": candidate.stats["scans"]}
+    passed, reasons, figures = evaluate(
+        gates_of(con, name), candidate, current, candidate_metrics, _metrics(con, current, figures_source)
+    )
+    figures |= {
+        "measured_on": "held-out rows" if holdout else "all rows of the source (no holdout set)",
+        "iterations": candidate.stats["iterations"],
+        "scans": candidate.stats["scans"],
+    }
     decision = "promoted" if passed else "refused"
     reason = "passed every gate" if passed else "; ".join(reasons)
     store.record_decision(con, name, version, current.version, decision, reason, figures, promote=passed)
-    return result | {"candidate_version": version, "decision": decision, "reasons": reasons or [reason],
-                     "figures": figures}
+    return result | {
+        "candidate_version": version,
+        "decision": decision,
+        "reasons": reasons or [reason],
+        "figures": figures,
+    }
 
 
-def promote(con: duckdb.DuckDBPyConnection, name: str, *, version: int,
-            force: bool = False) -> dict[str, Any]:
+def promote(
+    con: duckdb.DuckDBPyConnection, name: str, *, version: int, force: bool = False
+) -> dict[str, Any]:
     """Make stored ``version`` of ``name`` current after its gates (measured as in :func:`refit`; ``force``
     skips them, and the audit row says so); raises GateRefusedError on refusal."""
     name = model_name(name)
@@ -78,16 +134,33 @@ def promote(con: duckdb.DuckDBPyConnection, name: str, *, version: int,
     candidate = store.load_model(con, name, version)
     result = {"model": name, "candidate_version": candidate.version, "current_version": current.version}
     if force:
-        store.record_decision(con, name, candidate.version, current.version, "promoted", "forced: gates not applied",
-                              {}, promote=True)
+        store.record_decision(
+            con,
+            name,
+            candidate.version,
+            current.version,
+            "promoted",
+            "forced: gates not applied",
+            {},
+            promote=True,
+        )
         return result | {"decision": "promoted", "reasons": ["forced: gates not applied"]}
     source = origin_source(candidate.options, candidate.source)
     split = candidate.options.get("split")
-    figures_source = part_source(source, Holdout(split["key"], split["share"]), "holdout") if split else source
-    passed, reasons, figures = evaluate(gates_of(con, name), candidate, current, _metrics(con, candidate, figures_source),
-                                        _metrics(con, current, figures_source))
+    figures_source = (
+        part_source(source, Holdout(split["key"], split["share"]), "holdout") if split else source
+    )
+    passed, reasons, figures = evaluate(
+        gates_of(con, name),
+        candidate,
+        current,
+        _metrics(con, candidate, figures_source),
+        _metrics(con, current, figures_source),
+    )
     decision, reason = ("promoted", "passed every gate") if passed else ("refused", "; ".join(reasons))
-    store.record_decision(con, name, candidate.version, current.version, decision, reason, figures, promote=passed)
+    store.record_decision(
+        con, name, candidate.version, current.version, decision, reason, figures, promote=passed
+    )
     result |= {"decision": decision, "reasons": reasons or [reason], "figures": figures}
     if not passed:
         raise GateRefusedError(f"version {version} of '{name}' was not promoted: {reason}", result)

@@ -20,8 +20,10 @@ def save_time_rows(con: duckdb.DuckDBPyConnection, model: Model) -> Extra:
     version's transaction; none when the source cannot be read here (a model moved in as JSON)."""
     try:
         source = origin_source(model.options, model.source_or_own(None))
-        return {"fingerprints": {k: [v] for k, v in fingerprint(con, source).items()},
-                "drift_bins": training_snapshot(con, model)}
+        return {
+            "fingerprints": {k: [v] for k, v in fingerprint(con, source).items()},
+            "drift_bins": training_snapshot(con, model),
+        }
     except AbortedTransactionError:
         raise
     except DbfitError:
@@ -34,27 +36,35 @@ def save_model(con: duckdb.DuckDBPyConnection, model: Model, name: str, *, promo
     return save_models(con, [(model, name, save_time_rows(con, model))], promote=promote)[0]
 
 
-def save_segments(con: duckdb.DuckDBPyConnection, fitted: SegmentedFit, name: str, *,
-                  promote: bool = True) -> dict[Any, tuple[str, int]]:
+def save_segments(
+    con: duckdb.DuckDBPyConnection, fitted: SegmentedFit, name: str, *, promote: bool = True
+) -> dict[Any, tuple[str, int]]:
     """Store every segment's model as the next version of ``name.segment``, all in one transaction;
     returns ``{segment: (model name, version)}``. Each model's source is its segment's rows."""
     names = fitted.model_names(name)
     if fitted.by_expression is None:
         raise StoreError("this segmented fit does not know its by expression and cannot be stored")
     try:
-        prints = segment_fingerprints(con, fitted.source, fitted.by_expression,
-                                      {value: model.source for value, model in fitted.models.items()})
+        prints = segment_fingerprints(
+            con,
+            fitted.source,
+            fitted.by_expression,
+            {value: model.source for value, model in fitted.models.items()},
+        )
     except DbfitError:
         prints = {}  # the source cannot be read here (fitted on another engine): no fingerprints, as for one model
     # No drift snapshot per segment: one per segment would scan the source once per segment.
-    entries = [(model, names[value], {"fingerprints": {k: [v] for k, v in prints[value].items()}} if prints else {})
-               for value, model in fitted.models.items()]
+    entries = [
+        (model, names[value], {"fingerprints": {k: [v] for k, v in prints[value].items()}} if prints else {})
+        for value, model in fitted.models.items()
+    ]
     versions = save_models(con, entries, promote=promote)
     return {value: (names[value], version) for value, version in zip(fitted.models, versions)}
 
 
-def save(con: duckdb.DuckDBPyConnection, fitted: Model | SegmentedFit, name: str, *,
-         promote: bool = True) -> int | dict[Any, tuple[str, int]]:
+def save(
+    con: duckdb.DuckDBPyConnection, fitted: Model | SegmentedFit, name: str, *, promote: bool = True
+) -> int | dict[Any, tuple[str, int]]:
     """Store a fitted model (its version number back) or every model of a ``by=`` fit (``{segment: (name,
     version)}`` back)."""
     if isinstance(fitted, SegmentedFit):

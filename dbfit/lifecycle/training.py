@@ -18,9 +18,17 @@ from dbfit.model.fitted import Model
 from dbfit.model.segmented import SegmentedFit
 
 
-def fit_and_store(con: duckdb.DuckDBPyConnection, formula: str, source: str, options: FitOptions, *,
-                name: str | None = None, split: Holdout | None = None, threshold: float = 0.5,
-                progress: fitting.Progress = None) -> Model | SegmentedFit:
+def fit_and_store(
+    con: duckdb.DuckDBPyConnection,
+    formula: str,
+    source: str,
+    options: FitOptions,
+    *,
+    name: str | None = None,
+    split: Holdout | None = None,
+    threshold: float = 0.5,
+    progress: fitting.Progress = None,
+) -> Model | SegmentedFit:
     """Fit with options already checked; with ``split`` on the training rows, the held-out metrics (at
     ``threshold``) in ``model.stats["holdout"]``; with ``name`` stored as that name's next version."""
     if name is not None:
@@ -35,7 +43,12 @@ def fit_and_store(con: duckdb.DuckDBPyConnection, formula: str, source: str, opt
     model = fitting.fit_with(con, formula, training, options, progress)
     if split is not None:
         model.source = source
-        model.options["split"] = {"key": split.key, "share": split.share, "source": source, "threshold": threshold}
+        model.options["split"] = {
+            "key": split.key,
+            "share": split.share,
+            "source": source,
+            "threshold": threshold,
+        }
         held_out = assess(con, model, None, rows="held_out", threshold=threshold)
         model.stats["holdout"] = dict(zip(held_out["metric"].to_pylist(), held_out["value"].to_pylist()))
     if name is not None:
@@ -43,8 +56,15 @@ def fit_and_store(con: duckdb.DuckDBPyConnection, formula: str, source: str, opt
     return model
 
 
-def assess(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | None = None, *,
-           rows: str | None = None, threshold: float = 0.5, version: int | None = None) -> pa.Table:
+def assess(
+    con: duckdb.DuckDBPyConnection,
+    model: str | Model,
+    source: str | None = None,
+    *,
+    rows: str | None = None,
+    threshold: float = 0.5,
+    version: int | None = None,
+) -> pa.Table:
     """One row per metric (metric, value, note) of ``model``; the note of metric ``rows`` says which rows.
 
     Default: the held-out rows of a holdout fit, else all rows of the model's source (in-sample). ``source``
@@ -52,5 +72,6 @@ def assess(con: duckdb.DuckDBPyConnection, model: str | Model, source: str | Non
     """
     resolved = deploy.resolve_model(con, model, version)
     text, note = resolved.assessed_rows(source, rows)
-    return assessment.metrics(DuckDBEngine(con), assessment.scored_relation(resolved, text), threshold,
-                              rows_note=note).table()
+    return assessment.metrics(
+        DuckDBEngine(con), assessment.scored_relation(resolved, text), threshold, rows_note=note
+    ).table()

@@ -24,7 +24,6 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-
 if TYPE_CHECKING:
     from dbfit.model.fitted import Model
 
@@ -45,8 +44,14 @@ def to_document(model: Model) -> dict[str, Any]:
         "offset": design.offset_text,
         **({"source_columns": list(design.source_columns)} if design.source_columns else {}),
         "factors": [
-            {"expression": f.text, "kind": f.kind, "sql_type": f.sql_type, "levels": list(f.levels),
-             "reference": f.reference, **({"cast_from": f.cast_from} if f.cast_from else {})}
+            {
+                "expression": f.text,
+                "kind": f.kind,
+                "sql_type": f.sql_type,
+                "levels": list(f.levels),
+                "reference": f.reference,
+                **({"cast_from": f.cast_from} if f.cast_from else {}),
+            }
             for f in design.factors
         ],
         "columns": [
@@ -95,5 +100,5 @@ def _plain(value: Any) -> Any:
     if isinstance(value, (int, np.integer)):
         return int(value)
     if isinstance(value, (float, np.floating)):
-        return _finite_or_none(value)
+        return _finite_or_none(float(value))
     return value

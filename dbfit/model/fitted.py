@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from typing import Any
 
 import numpy as np
@@ -37,7 +37,7 @@ class Model:
     stats: dict[str, Any]
     warnings: list[str] = field(default_factory=list)
     options: dict[str, Any] = field(default_factory=dict)
-    fitted_at: datetime = field(default_factory=lambda: datetime.now(timezone.utc))
+    fitted_at: datetime = field(default_factory=lambda: datetime.now(UTC))
     name: str | None = None  # set once saved to (or loaded from) a model store
     version: int | None = None
     source_is_data: bool = False  # read from a model document: its source is text to show, never run unasked
@@ -59,7 +59,7 @@ class Model:
         return int(self.design.rows_total)
 
     @property
-    def split(self) -> "Holdout | None":
+    def split(self) -> Holdout | None:
         """The holdout split the model was fitted with (recorded in ``options["split"]``), or None."""
         recorded = self.options.get("split")
         return Holdout(recorded["key"], recorded["share"]) if recorded else None
@@ -80,8 +80,9 @@ class Model:
         if split is None:
             if rows == "training" and source is None:
                 return whole
-            raise UsageError(f"rows={rows!r} needs a model fitted with split=dbfit.Holdout(...); "
-                             "this one has none")
+            raise UsageError(
+                f"rows={rows!r} needs a model fitted with split=dbfit.Holdout(...); this one has none"
+            )
         return part_source(whole, split, "holdout" if rows == "held_out" else "train")
 
     def rows_note(self, rows: str | None, source: str | None = None) -> str:
@@ -108,8 +109,10 @@ class Model:
         """
         if rows is None and source is None:
             rows = self.default_rows
-        text = source if rows is None else self.rows_source(rows, source)
-        return text, self.rows_note(rows, source)
+        if rows is None and source is not None:
+            return source, self.rows_note(None, source)
+        chosen = rows if rows is not None else self.default_rows
+        return self.rows_source(chosen, source), self.rows_note(chosen, source)
 
     def to_json(self) -> str:
         """The model as a JSON document (format ``dbfit-model`` 1, see README.md); read back with ``dbfit.from_json``."""
@@ -125,11 +128,20 @@ class Model:
         lines = [
             f"dbfit | logistic model of  {self.formula}",
             f"  data      {self.source}",
-            *([f"  split     fitted on the training rows; share {self.split.share:g} held out by the hash of "
-               f"{self.split.key} (figures in stats['holdout'])"] if self.split is not None else []),
-            f"  rows      {s['n_used']:,} used, {s['n_excluded']:,} set aside for NULLs" + (
+            *(
+                [
+                    f"  split     fitted on the training rows; share {self.split.share:g} held out by the hash of "
+                    f"{self.split.key} (figures in stats['holdout'])"
+                ]
+                if self.split is not None
+                else []
+            ),
+            f"  rows      {s['n_used']:,} used, {s['n_excluded']:,} set aside for NULLs"
+            + (
                 f"; {s['rows_zero_trials']:,} used rows have 0 trials (no information)"
-                if s.get("rows_zero_trials") else ""),
+                if s.get("rows_zero_trials")
+                else ""
+            ),
             f"  fit       {'converged' if s['converged'] else 'NOT converged'} after {s['iterations']} Newton passes"
             f" ({s['scans']} scans of the data)",
             f"  deviance  {s['deviance']:,.4f} on {s['df_residual']:,} df; intercept-only {s['null_deviance']:,.4f}",
@@ -147,8 +159,12 @@ class Model:
                 lines.append(f"  {row['term']:<{width}}  {'aliased: no estimate':>40}")
                 continue
             if row["std_error"] is None:
-                note = "exactly 0: removed by the penalty" if row["estimate"] == 0 else "penalised: no std.err"
-                lines.append(f"  {row['term']:<{width}}  {row['estimate']:>11.5g}   {note:<38}   {row['odds_ratio']:>9.4g}")
+                note = (
+                    "exactly 0: removed by the penalty" if row["estimate"] == 0 else "penalised: no std.err"
+                )
+                lines.append(
+                    f"  {row['term']:<{width}}  {row['estimate']:>11.5g}   {note:<38}   {row['odds_ratio']:>9.4g}"
+                )
                 continue
             lines.append(
                 f"  {row['term']:<{width}}  {row['estimate']:>11.5g} {row['std_error']:>10.4g} {row['wald_z']:>8.3g}"

@@ -17,8 +17,18 @@ from dbfit.design.layout import Design
 # the standard library's normal quantile (Wichura 1988, AS 241) keeps scipy out of "import dbfit"
 WALD_Z_95 = NormalDist().inv_cdf(0.975)
 # The columns of the coefficient table, in order (the model store keeps them under the same names).
-COEFFICIENT_COLUMNS = ("term", "estimate", "std_error", "wald_z", "p_value", "ci_low", "ci_high",
-                       "odds_ratio", "odds_ratio_low", "odds_ratio_high")
+COEFFICIENT_COLUMNS = (
+    "term",
+    "estimate",
+    "std_error",
+    "wald_z",
+    "p_value",
+    "ci_low",
+    "ci_high",
+    "odds_ratio",
+    "odds_ratio_low",
+    "odds_ratio_high",
+)
 
 
 def original_scale_map(design: Design, parameters: list[int]) -> np.ndarray:
@@ -62,8 +72,12 @@ def coefficient_table(labels: list[str], estimates: np.ndarray, covariance: np.n
         return pa.array(values, mask=np.isnan(values), type=pa.float64())
 
     values = (estimates, std_error, wald_z, p_value, low, high, odds, odds_low, odds_high)
-    return pa.table({"term": pa.array(labels, type=pa.string()),
-                     **{name: column(v) for name, v in zip(COEFFICIENT_COLUMNS[1:], values)}})
+    return pa.table(
+        {
+            "term": pa.array(labels, type=pa.string()),
+            **{name: column(v) for name, v in zip(COEFFICIENT_COLUMNS[1:], values)},
+        }
+    )
 
 
 def logit(probability: float) -> float:

@@ -45,11 +45,25 @@ def from_document(document: dict[str, Any], name: str | None = None, version: in
     except DbfitError:
         raise
     except (KeyError, TypeError, IndexError, ValueError, AttributeError) as err:
-        raise StoreError(f"the dbfit model document is incomplete or malformed: {type(err).__name__} {err}") from None
+        raise StoreError(
+            f"the dbfit model document is incomplete or malformed: {type(err).__name__} {err}"
+        ) from None
 
 
-SHAPE = {"formula": str, "source": str, "options": dict, "intercept": bool, "factors": list, "columns": list,
-         "labels": list, "estimates": list, "covariance": list, "stats": dict, "warnings": list, "fingerprint": dict}
+SHAPE = {
+    "formula": str,
+    "source": str,
+    "options": dict,
+    "intercept": bool,
+    "factors": list,
+    "columns": list,
+    "labels": list,
+    "estimates": list,
+    "covariance": list,
+    "stats": dict,
+    "warnings": list,
+    "fingerprint": dict,
+}
 
 
 def _check_shape(document: dict[str, Any]) -> None:
@@ -58,19 +72,29 @@ def _check_shape(document: dict[str, Any]) -> None:
         if key not in document:
             raise StoreError(f"the dbfit model document lacks the key '{key}'")
         if not isinstance(document[key], wanted):
-            raise StoreError(f"the dbfit model document's '{key}' must be a {wanted.__name__} "
-                             f"(got {type(document[key]).__name__} {document[key]!r:.60})")
+            raise StoreError(
+                f"the dbfit model document's '{key}' must be a {wanted.__name__} "
+                f"(got {type(document[key]).__name__} {document[key]!r:.60})"
+            )
     size = len(document["labels"])
     if len(document["estimates"]) != size:
-        raise StoreError(f"the dbfit model document has {len(document['estimates'])} estimates for {size} labels")
+        raise StoreError(
+            f"the dbfit model document has {len(document['estimates'])} estimates for {size} labels"
+        )
     for position, value in enumerate(document["estimates"]):
         if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))):
-            raise StoreError(f"the dbfit model document's estimate {position} ('{document['labels'][position]}') is "
-                             f"not a number: {value!r}")
+            raise StoreError(
+                f"the dbfit model document's estimate {position} ('{document['labels'][position]}') is "
+                f"not a number: {value!r}"
+            )
     rows = document["covariance"]
     if len(rows) != size or any(not isinstance(row, list) or len(row) != size for row in rows):
         raise StoreError(f"the dbfit model document's covariance must be {size} x {size}, one row per label")
-    if any(v is not None and (isinstance(v, bool) or not isinstance(v, (int, float))) for row in rows for v in row):
+    if any(
+        v is not None and (isinstance(v, bool) or not isinstance(v, (int, float)))
+        for row in rows
+        for v in row
+    ):
         raise StoreError("the dbfit model document's covariance holds a value that is not a number")
 
 
@@ -106,7 +130,9 @@ def _rebuild(document: dict[str, Any], name: str | None, version: int | None) ->
     for column in columns:
         for index in column.numeric + tuple(i for i, _ in column.indicators):
             if not 0 <= index < len(factors):
-                raise StoreError(f"column '{column.label}' refers to factor {index}, but the model has {len(factors)}")
+                raise StoreError(
+                    f"column '{column.label}' refers to factor {index}, but the model has {len(factors)}"
+                )
 
     def optional_expression(key: str) -> Any:
         text = options.get(key)
@@ -138,7 +164,9 @@ def _rebuild(document: dict[str, Any], name: str | None, version: int | None) ->
     if labels != design.labels:
         raise StoreError(f"the document's labels {labels} do not match its columns {design.labels}")
     estimates = np.array([math.nan if v is None else float(v) for v in document["estimates"]])
-    covariance = np.array([[math.nan if v is None else float(v) for v in row] for row in document["covariance"]])
+    covariance = np.array(
+        [[math.nan if v is None else float(v) for v in row] for row in document["covariance"]]
+    )
     if estimates.shape != (len(labels),) or covariance.shape != (len(labels), len(labels)):
         raise StoreError(
             f"the document has {estimates.size} estimates and a {covariance.shape} covariance for {len(labels)} terms"
@@ -162,13 +190,21 @@ def _rebuild(document: dict[str, Any], name: str | None, version: int | None) ->
 
 # Option expressions a model keeps (top-level option, or option inside a nested record): checked on load, so a
 # tampered document or store row is refused before anything runs.
-_EXPRESSION_OPTIONS = (("weights",), ("offset",), ("trials",), ("cluster",), ("by",), ("split_key",),
-                       ("split", "key"), ("segment", "by"))
+_EXPRESSION_OPTIONS: tuple[tuple[str, ...], ...] = (
+    ("weights",),
+    ("offset",),
+    ("trials",),
+    ("cluster",),
+    ("by",),
+    ("split_key",),
+    ("split", "key"),
+    ("segment", "by"),
+)
 
 
 def check_option_expressions(options: dict[str, Any], offset: Any = None) -> None:
     """Parse (and so check against the allowlist) every expression a model's options hold."""
-    found = [(("offset",), offset)]
+    found: list[tuple[tuple[str, ...], Any]] = [(("offset",), offset)]
     for path in _EXPRESSION_OPTIONS:
         value: Any = options
         for key in path:

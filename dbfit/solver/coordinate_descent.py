@@ -33,7 +33,9 @@ class Penalty:
         b = beta[self.penalised]
         if not b.any():
             return 0.0
-        return self.shrinkage * ((1.0 - self.l1_share) / 2.0 * float(b @ b) + self.l1_share * float(np.abs(b).sum()))
+        return self.shrinkage * (
+            (1.0 - self.l1_share) / 2.0 * float(b @ b) + self.l1_share * float(np.abs(b).sum())
+        )
 
 
 @dataclass(frozen=True)
@@ -50,18 +52,26 @@ class PenalisedObjective:
         gram = scan.gram.as_array()
         linear = (scan.score + gram @ beta) / self.trials
         proposal = coordinate_descent(gram / self.trials, linear, beta, self.penalty)
-        return proposal - beta
+        step: np.ndarray = proposal - beta
+        return step
 
 
-def penalised_run(start: np.ndarray, penalty: Penalty, trials: float, max_iter: int,
-                  first: PassResult | None = None) -> NewtonRun:
+def penalised_run(
+    start: np.ndarray, penalty: Penalty, trials: float, max_iter: int, first: PassResult | None = None
+) -> NewtonRun:
     """The Newton run minimising F from ``start``; ``first`` is a scan already run at ``start`` (saves one).
 
     Converged when coordinate descent moves no coefficient by FINAL_STEP; the estimate is that last proposal
     (no confirming scan: its change is below any rounding of the sums).
     """
-    rules = NewtonRules(max_passes=max_iter, tol=0.0, step_floor=FINAL_STEP, confirm=False,
-                        check_aliasing=False, detect_separation=False)
+    rules = NewtonRules(
+        max_passes=max_iter,
+        tol=0.0,
+        step_floor=FINAL_STEP,
+        confirm=False,
+        check_aliasing=False,
+        detect_separation=False,
+    )
     return NewtonRun(PenalisedObjective(penalty, trials), start, rules, first)
 
 

@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import dataclasses
 from dataclasses import dataclass
-from typing import Union
 
 import numpy as np
 
@@ -25,7 +24,8 @@ class DenseInformation:
 
     @property
     def shape(self) -> tuple[int, int]:
-        return self.matrix.shape  # type: ignore[return-value]
+        rows, columns = self.matrix.shape
+        return int(rows), int(columns)
 
     @property
     def size(self) -> int:
@@ -37,7 +37,8 @@ class DenseInformation:
             factor = np.linalg.cholesky(self.matrix)
             return np.linalg.solve(factor.T, np.linalg.solve(factor, rhs))
         except np.linalg.LinAlgError:
-            return np.linalg.lstsq(self.matrix, rhs, rcond=None)[0]
+            least_squares: np.ndarray = np.linalg.lstsq(self.matrix, rhs, rcond=None)[0]
+            return least_squares
 
     def inverse(self) -> np.ndarray:
         """The inverse; the pseudo-inverse when the matrix is singular."""
@@ -49,7 +50,7 @@ class DenseInformation:
     def diag(self) -> np.ndarray:
         return np.diag(self.matrix)
 
-    def keep(self, keep: list[int]) -> "DenseInformation":
+    def keep(self, keep: list[int]) -> DenseInformation:
         """Restricted to the parameters ``keep`` (positions)."""
         return DenseInformation(self.matrix[np.ix_(keep, keep)])
 
@@ -60,7 +61,7 @@ class DenseInformation:
     def eigenvalues(self) -> np.ndarray:
         return np.linalg.eigvalsh(self.matrix) if self.matrix.size else np.array([1.0])
 
-    def scaled(self, factor: float) -> "DenseInformation":
+    def scaled(self, factor: float) -> DenseInformation:
         return DenseInformation(self.matrix * factor)
 
     def as_array(self) -> np.ndarray:
@@ -85,7 +86,8 @@ class BlockInformation:
         return self.shape[0] * self.shape[1]
 
     def schur(self) -> np.ndarray:
-        return self.dense - self.cross.T @ (self.cross / self.diagonal[:, None])
+        complement: np.ndarray = self.dense - self.cross.T @ (self.cross / self.diagonal[:, None])
+        return complement
 
     def solve(self, rhs: np.ndarray) -> np.ndarray:
         k = self.dense.shape[0]
@@ -105,7 +107,7 @@ class BlockInformation:
     def diag(self) -> np.ndarray:
         return np.concatenate([np.diag(self.dense), self.diagonal])
 
-    def keep(self, keep: list[int]) -> "BlockInformation":
+    def keep(self, keep: list[int]) -> BlockInformation:
         """Restricted to the parameters ``keep``; only dense ones are dropped (the levels carry weight)."""
         dense = [k for k in keep if k < self.dense.shape[0]]
         return BlockInformation(self.dense[np.ix_(dense, dense)], self.cross[:, dense], self.diagonal)
@@ -118,14 +120,14 @@ class BlockInformation:
         schur, dense = np.linalg.eigvalsh(self.schur()), np.linalg.eigvalsh(self.dense)
         return np.concatenate([schur, self.diagonal, dense])
 
-    def scaled(self, factor: float) -> "BlockInformation":
+    def scaled(self, factor: float) -> BlockInformation:
         return BlockInformation(self.dense * factor, self.cross * factor, self.diagonal * factor)
 
     def as_array(self) -> np.ndarray:
         return np.block([[self.dense, self.cross.T], [self.cross, np.diag(self.diagonal)]])
 
 
-Information = Union[DenseInformation, BlockInformation]
+Information = DenseInformation | BlockInformation
 
 
 @dataclass
@@ -145,6 +147,6 @@ class PassResult:
         if isinstance(self.gram, np.ndarray):
             self.gram = DenseInformation(self.gram)
 
-    def restricted(self, keep: list[int]) -> "PassResult":
+    def restricted(self, keep: list[int]) -> PassResult:
         """This result over the parameters ``keep`` (positions) only."""
         return dataclasses.replace(self, gram=self.gram.keep(keep), score=self.score[keep])

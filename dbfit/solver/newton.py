@@ -30,15 +30,22 @@ logistic regression models", Biometrika 71(1), 1-10, doi:10.1093/biomet/71.1.1 (
 from __future__ import annotations
 
 import time
+from collections.abc import Callable, Generator
 from dataclasses import dataclass, field
-from typing import Callable, Generator, Literal, Protocol
+from typing import Literal, Protocol
 
 import numpy as np
 
 from dbfit.solver.information import Information, PassResult
 from dbfit.solver.tolerances import (
-    ALIAS_TOLERANCE, COLLAPSED_WEIGHT, MAX_HALVINGS, RISE_TOLERANCE, SEPARATION_CHANGE, SINGULAR_RATIO,
-    STEP_FLOOR, STEP_TOLERANCE,
+    ALIAS_TOLERANCE,
+    COLLAPSED_WEIGHT,
+    MAX_HALVINGS,
+    RISE_TOLERANCE,
+    SEPARATION_CHANGE,
+    SINGULAR_RATIO,
+    STEP_FLOOR,
+    STEP_TOLERANCE,
 )
 
 
@@ -142,8 +149,9 @@ class NewtonRun:
     ``first`` is a scan already run at ``start``: it is used without a pass being counted.
     """
 
-    def __init__(self, objective: Objective, start: np.ndarray, rules: NewtonRules,
-                 first: PassResult | None = None) -> None:
+    def __init__(
+        self, objective: Objective, start: np.ndarray, rules: NewtonRules, first: PassResult | None = None
+    ) -> None:
         self.objective, self.rules, self.first = objective, rules, first
         self.beta = np.asarray(start, dtype=float).copy()
         self.active = list(range(len(self.beta)))
@@ -286,13 +294,24 @@ class NewtonRun:
         last = self.accepted_scan
         if last is None or self.accepted_beta is None:
             raise ValueError("max_iter must be at least 1")
-        if (self.rules.detect_separation and self.converged and last.extreme > 0 and last.misfit_extreme == 0
-                and _some_rows_perfect(last)):
+        if (
+            self.rules.detect_separation
+            and self.converged
+            and last.extreme > 0
+            and last.misfit_extreme == 0
+            and _some_rows_perfect(last)
+        ):
             self.separation = True
         return NewtonResult(
-            beta=self.accepted_beta if self.stopped else self.beta, active=self.active, aliased=self.aliased,
-            last=last, iterations=self.passes, converged=self.converged and not self.separation,
-            separation=self.separation, suspects=self.suspects, scanned=self.accepted_beta,
+            beta=self.accepted_beta if self.stopped else self.beta,
+            active=self.active,
+            aliased=self.aliased,
+            last=last,
+            iterations=self.passes,
+            converged=self.converged and not self.separation,
+            separation=self.separation,
+            suspects=self.suspects,
+            scanned=self.accepted_beta,
             objective=self.accepted_value,
         )
 
@@ -306,8 +325,16 @@ class NewtonRun:
 
     def _report(self, iteration: int, value: float, step_size: float, halving: bool = False) -> None:
         if self.rules.report:
-            self.rules.report(IterationReport(iteration, value, time.perf_counter() - self.began, step_size,
-                                              halving=halving, phase=self.rules.phase))
+            self.rules.report(
+                IterationReport(
+                    iteration,
+                    value,
+                    time.perf_counter() - self.began,
+                    step_size,
+                    halving=halving,
+                    phase=self.rules.phase,
+                )
+            )
 
 
 def solve(run: NewtonRun, evaluate: Callable[[np.ndarray, list[int]], PassResult]) -> NewtonResult:
@@ -318,7 +345,8 @@ def solve(run: NewtonRun, evaluate: Callable[[np.ndarray, list[int]], PassResult
         while True:
             request = steps.send(evaluate(*request))
     except StopIteration as finished:
-        return finished.value
+        result: NewtonResult = finished.value
+        return result
 
 
 class Stepper:

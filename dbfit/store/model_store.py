@@ -24,7 +24,7 @@ import random
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from typing import Any
 
 import duckdb
@@ -33,10 +33,10 @@ from sqlglot import exp
 
 from dbfit.engines.duckdb_engine import connection_lock
 from dbfit.errors import StoreConflictError, StoreError
-from dbfit.model.fitted import Model
-from dbfit.model.inference import COEFFICIENT_COLUMNS
 from dbfit.expressions.names import model_name, model_version
 from dbfit.model.document import to_document
+from dbfit.model.fitted import Model
+from dbfit.model.inference import COEFFICIENT_COLUMNS
 from dbfit.model.reading import from_document
 
 SCHEMA = "dbfit_store"
@@ -71,12 +71,26 @@ _TABLES = {
         model VARCHAR, version INTEGER, mode VARCHAR NOT NULL, definition VARCHAR NOT NULL,
         published_at TIMESTAMP NOT NULL, PRIMARY KEY (database_name, schema_name, view_name)""",
 }
-VERSION_TABLES = ("drift_bins", "fingerprints", "covariance", "encodings", "factors", "coefficients", "versions")
+VERSION_TABLES = (
+    "drift_bins",
+    "fingerprints",
+    "covariance",
+    "encodings",
+    "factors",
+    "coefficients",
+    "versions",
+)
 Extra = dict[str, dict[str, list[Any]]]  # more per-version rows, column-wise by table (the key is added)
 
 
-def save_model(con: duckdb.DuckDBPyConnection, model: Model, name: str, *, promote: bool = True,
-               extra: Extra | None = None) -> int:
+def save_model(
+    con: duckdb.DuckDBPyConnection,
+    model: Model,
+    name: str,
+    *,
+    promote: bool = True,
+    extra: Extra | None = None,
+) -> int:
     """Write ``model`` as the next version of ``name`` in one transaction; return the version number.
 
     ``promote=True`` makes it the current version in the same transaction; ``promote=False`` stores a candidate.
@@ -85,8 +99,9 @@ def save_model(con: duckdb.DuckDBPyConnection, model: Model, name: str, *, promo
     return save_models(con, [(model, name, extra)], promote=promote)[0]
 
 
-def save_models(con: duckdb.DuckDBPyConnection, entries: list[tuple[Model, str, Extra | None]], *,
-                promote: bool = True) -> list[int]:
+def save_models(
+    con: duckdb.DuckDBPyConnection, entries: list[tuple[Model, str, Extra | None]], *, promote: bool = True
+) -> list[int]:
     """Write each ``(model, name, extra)`` as the next version of its name, all in one transaction: every one
     of them or none. Returns the version numbers in order."""
     names = [model_name(name) for _, name, _ in entries]
@@ -103,8 +118,11 @@ def save_models(con: duckdb.DuckDBPyConnection, entries: list[tuple[Model, str, 
                 _write_versions(writer, [model for model, _, _ in entries], names, versions, extras, promote)
             break
         except StoreConflictError:
-            if attempt == WRITE_ATTEMPTS - 1 or not versions or any(
-                    _orphan_rows(con, n, v) for n, v in zip(names, versions)):
+            if (
+                attempt == WRITE_ATTEMPTS - 1
+                or not versions
+                or any(_orphan_rows(con, n, v) for n, v in zip(names, versions))
+            ):
                 raise
             # Randomised exponential back-off: with several busy writers a fixed short wait can lose every round.
             time.sleep(random.uniform(0.0, min(MAX_BACKOFF_SECONDS, 0.002 * 2**attempt)))
@@ -117,7 +135,9 @@ def load_model(con: duckdb.DuckDBPyConnection, name: str, version: int | None = 
     """Read version ``version`` (default: the current one) of model ``name``."""
     name = model_name(name)
     version = resolve_version(con, name, version)
-    rows = _fetch(con, f"SELECT document FROM {SCHEMA}.versions WHERE model = ? AND version = ?", [name, version])
+    rows = _fetch(
+        con, f"SELECT document FROM {SCHEMA}.versions WHERE model = ? AND version = ?", [name, version]
+    )
     return from_document(json.loads(rows[0][0]), name=name, version=version)
 
 
@@ -126,13 +146,19 @@ def resolve_version(con: duckdb.DuckDBPyConnection, name: str, version: int | No
     version = model_version(version)
     versions = stored_versions(con, name)
     if not versions:
-        known = [row[0] for row in _fetch(con, f"SELECT model FROM {SCHEMA}.models ORDER BY model")] if store_exists(con) else []
+        known = (
+            [row[0] for row in _fetch(con, f"SELECT model FROM {SCHEMA}.models ORDER BY model")]
+            if store_exists(con)
+            else []
+        )
         listing = f"stored models: {', '.join(known)}" if known else "the store is empty"
         raise StoreError(f"model '{name}' is not in the store of this database ({listing})")
     if version is None:
         return current_version(con, name) or versions[-1]
     if version not in versions:
-        raise StoreError(f"model '{name}' has no version {version} (stored versions: {', '.join(map(str, versions))})")
+        raise StoreError(
+            f"model '{name}' has no version {version} (stored versions: {', '.join(map(str, versions))})"
+        )
     return int(version)
 
 
@@ -176,8 +202,11 @@ def names_starting_with(con: duckdb.DuckDBPyConnection, prefix: str) -> list[str
     """The stored model names that begin with ``prefix`` (such as the ``name.<segment>`` models of a by= fit)."""
     if not store_exists(con):
         return []
-    rows = _fetch(con, f"SELECT DISTINCT model FROM {SCHEMA}.versions WHERE starts_with(model, ?) ORDER BY model",
-                  [prefix])
+    rows = _fetch(
+        con,
+        f"SELECT DISTINCT model FROM {SCHEMA}.versions WHERE starts_with(model, ?) ORDER BY model",
+        [prefix],
+    )
     return [r[0] for r in rows]
 
 
@@ -189,8 +218,19 @@ def version_rows(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:
     """One dict per stored version (name, version, times, formula, source, rows, deviance, AIC, converged, warnings)."""
     if not store_exists(con):
         return []
-    columns = ["model", "version", "created_at", "formula", "source", "source_rows", "rows_used", "deviance", "aic",
-               "converged", "warnings_count"]
+    columns = [
+        "model",
+        "version",
+        "created_at",
+        "formula",
+        "source",
+        "source_rows",
+        "rows_used",
+        "deviance",
+        "aic",
+        "converged",
+        "warnings_count",
+    ]
     rows = _fetch(con, f"SELECT {', '.join(columns)} FROM {SCHEMA}.versions ORDER BY model, version")
     listed = [dict(zip(columns, row)) for row in rows]
     current = {m: None for m in {row["model"] for row in listed}}
@@ -202,7 +242,9 @@ def version_rows(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:
     return listed
 
 
-def coefficient_rows(con: duckdb.DuckDBPyConnection, name: str, version: int | None = None) -> list[dict[str, Any]]:
+def coefficient_rows(
+    con: duckdb.DuckDBPyConnection, name: str, version: int | None = None
+) -> list[dict[str, Any]]:
     """The stored coefficient table of one version, with ``model`` and ``version``."""
     name = model_name(name)
     version = resolve_version(con, name, version)
@@ -215,7 +257,9 @@ def coefficient_rows(con: duckdb.DuckDBPyConnection, name: str, version: int | N
     return [dict(zip(("model", "version") + COEFFICIENT_COLUMNS, row)) for row in rows]
 
 
-def drop_model(con: duckdb.DuckDBPyConnection, name: str, version: int | None = None) -> list[tuple[str, int]]:
+def drop_model(
+    con: duckdb.DuckDBPyConnection, name: str, version: int | None = None
+) -> list[tuple[str, int]]:
     """Delete one version (or, without ``version``, every version) of ``name`` in one transaction."""
     name = model_name(name)
     versions = [resolve_version(con, name, version)] if version is not None else stored_versions(con, name)
@@ -224,23 +268,45 @@ def drop_model(con: duckdb.DuckDBPyConnection, name: str, version: int | None = 
     placeholders = ", ".join("?" for _ in versions)
     with _transaction(con) as writer:
         for table in VERSION_TABLES:
-            _run(writer, [f"DELETE FROM {SCHEMA}.{table} WHERE model = ? AND version IN ({placeholders})"], [name, *versions])
+            _run(
+                writer,
+                [f"DELETE FROM {SCHEMA}.{table} WHERE model = ? AND version IN ({placeholders})"],
+                [name, *versions],
+            )
         if has_table(writer, "current_versions"):
-            _run(writer, [f"DELETE FROM {SCHEMA}.current_versions WHERE model = ? AND version IN ({placeholders})"],
-                 [name, *versions])
-        _run(writer, [f"DELETE FROM {SCHEMA}.models WHERE model = ? AND NOT EXISTS "
-                      f"(SELECT 1 FROM {SCHEMA}.versions WHERE model = ?)"], [name, name])
+            _run(
+                writer,
+                [f"DELETE FROM {SCHEMA}.current_versions WHERE model = ? AND version IN ({placeholders})"],
+                [name, *versions],
+            )
+        _run(
+            writer,
+            [
+                f"DELETE FROM {SCHEMA}.models WHERE model = ? AND NOT EXISTS "
+                f"(SELECT 1 FROM {SCHEMA}.versions WHERE model = ?)"
+            ],
+            [name, name],
+        )
     return [(name, v) for v in versions]
 
 
-def record_decision(con: duckdb.DuckDBPyConnection, name: str, candidate: int | None, current: int | None,
-                    decision: str, reason: str, figures: dict[str, Any], *, promote: bool) -> None:
+def record_decision(
+    con: duckdb.DuckDBPyConnection,
+    name: str,
+    candidate: int | None,
+    current: int | None,
+    decision: str,
+    reason: str,
+    figures: dict[str, Any],
+    *,
+    promote: bool,
+) -> None:
     """One audit row in ``decisions`` and, when ``promote``, the candidate made current: one transaction.
 
     A promotion checks in the same transaction that ``current`` is still the current version: when another
     refit promoted meanwhile, nothing is written and a StoreConflictError names the version now current.
     """
-    now = datetime.now(timezone.utc).replace(tzinfo=None)
+    now = datetime.now(UTC).replace(tzinfo=None)
     with _transaction(con, ensure_schema_statements(con)) as writer:
         if promote:
             rows = _fetch(writer, f"SELECT version FROM {SCHEMA}.current_versions WHERE model = ?", [name])
@@ -248,9 +314,13 @@ def record_decision(con: duckdb.DuckDBPyConnection, name: str, candidate: int | 
             if rows and now_current != current:
                 raise StoreConflictError(
                     f"model '{name}': version {now_current} became current while candidate {candidate} was checked "
-                    f"against version {current}; candidate {candidate} stays stored, not current (run the refit again)")
-        _run(writer, [f"INSERT INTO {SCHEMA}.decisions VALUES (?, ?, ?, ?, ?, ?, ?)"],
-             [now, name, candidate, current, decision, reason, json.dumps(figures, default=str)])
+                    f"against version {current}; candidate {candidate} stays stored, not current (run the refit again)"
+                )
+        _run(
+            writer,
+            [f"INSERT INTO {SCHEMA}.decisions VALUES (?, ?, ?, ?, ?, ?, ?)"],
+            [now, name, candidate, current, decision, reason, json.dumps(figures, default=str)],
+        )
         if promote and candidate is not None:
             _set_current(writer, name, candidate)
 
@@ -261,13 +331,15 @@ def decision_rows(con: duckdb.DuckDBPyConnection, name: str | None = None) -> li
         return []
     columns = ["decided_at", "model", "candidate_version", "current_version", "decision", "reason", "figures"]
     where, parameters = ("WHERE model = ? ", [name]) if name is not None else ("", None)
-    rows = _fetch(con, f"SELECT {', '.join(columns)} FROM {SCHEMA}.decisions {where}ORDER BY decided_at", parameters)
+    rows = _fetch(
+        con, f"SELECT {', '.join(columns)} FROM {SCHEMA}.decisions {where}ORDER BY decided_at", parameters
+    )
     return [dict(zip(columns, row)) | {"figures": json.loads(row[-1])} for row in rows]
 
 
 def write_setting(con: duckdb.DuckDBPyConnection, table: str, name: str, settings: dict[str, Any]) -> None:
     """Replace the JSON settings row of ``name`` in a per-model settings table (``gates``)."""
-    now = datetime.now(timezone.utc).replace(tzinfo=None)
+    now = datetime.now(UTC).replace(tzinfo=None)
     with _transaction(con, ensure_schema_statements(con)) as writer:
         _run(writer, [f"DELETE FROM {SCHEMA}.{table} WHERE model = ?"], [name])
         _run(writer, [f"INSERT INTO {SCHEMA}.{table} VALUES (?, ?, ?)"], [name, json.dumps(settings), now])
@@ -280,8 +352,14 @@ def read_setting(con: duckdb.DuckDBPyConnection, table: str, name: str) -> dict[
     return json.loads(rows[0][0]) if rows else None
 
 
-def publish_view(con: duckdb.DuckDBPyConnection, target: exp.Table, query: exp.Select, record: dict[str, Any], *,
-                 replace: bool = False) -> exp.Create:
+def publish_view(
+    con: duckdb.DuckDBPyConnection,
+    target: exp.Table,
+    query: exp.Select,
+    record: dict[str, Any],
+    *,
+    replace: bool = False,
+) -> exp.Create:
     """Create or replace the view ``target`` AS ``query`` and record it in ``published_views``, one transaction.
 
     An existing view is replaced only when dbfit published it and DuckDB's text of it is still the recorded
@@ -291,31 +369,56 @@ def publish_view(con: duckdb.DuckDBPyConnection, target: exp.Table, query: exp.S
     """
     here, schema = _fetch(con, "SELECT current_database(), current_schema()")[0]
     database = target.catalog or here
-    qualified = exp.Table(this=exp.to_identifier(target.name, quoted=True),
-                          db=exp.to_identifier(target.db or schema, quoted=True),
-                          catalog=exp.to_identifier(database, quoted=True))
+    qualified = exp.Table(
+        this=exp.to_identifier(target.name, quoted=True),
+        db=exp.to_identifier(target.db or schema, quoted=True),
+        catalog=exp.to_identifier(database, quoted=True),
+    )
     statement = exp.Create(this=target.copy(), kind="VIEW", replace=True, expression=query)
     shown = target.sql("duckdb")
     with _transaction(con, ensure_schema_statements(con)) as writer:
         key = [database if database.lower() != here.lower() else "", target.db or schema, target.name]
         found = _view_text(writer, database, key[1], key[2])
         if found is not None and not replace:
-            recorded = _fetch(writer, f"SELECT definition FROM {SCHEMA}.published_views WHERE database_name = ? "
-                                      "AND lower(schema_name) = lower(?) AND lower(view_name) = lower(?)", key)
+            recorded = _fetch(
+                writer,
+                f"SELECT definition FROM {SCHEMA}.published_views WHERE database_name = ? "
+                "AND lower(schema_name) = lower(?) AND lower(view_name) = lower(?)",
+                key,
+            )
             if not recorded or recorded[0][0] != found:
-                raise StoreError(f"view {shown} already exists and was not published by dbfit (or was changed "
-                                 "since): choose another name, or pass replace=True to replace it")
+                raise StoreError(
+                    f"view {shown} already exists and was not published by dbfit (or was changed "
+                    "since): choose another name, or pass replace=True to replace it"
+                )
         try:
-            writer.execute(exp.Create(this=qualified, kind="VIEW", replace=True, expression=query).sql("duckdb"))
+            writer.execute(
+                exp.Create(this=qualified, kind="VIEW", replace=True, expression=query).sql("duckdb")
+            )
         except duckdb.Error as err:
             first = (str(err).strip().splitlines() or [type(err).__name__])[0]
             raise StoreError(f"view {shown} cannot be created or replaced: {first}") from None
-        now = datetime.now(timezone.utc).replace(tzinfo=None)
-        _run(writer, [f"DELETE FROM {SCHEMA}.published_views WHERE database_name = ? AND lower(schema_name) = "
-                      "lower(?) AND lower(view_name) = lower(?)"], key)
-        _run(writer, [f"INSERT INTO {SCHEMA}.published_views VALUES (?, ?, ?, ?, ?, ?, ?, ?)"],
-             key + [record.get("model"), record.get("version"), record["mode"],
-                    _view_text(writer, database, key[1], key[2]), now])
+        now = datetime.now(UTC).replace(tzinfo=None)
+        _run(
+            writer,
+            [
+                f"DELETE FROM {SCHEMA}.published_views WHERE database_name = ? AND lower(schema_name) = "
+                "lower(?) AND lower(view_name) = lower(?)"
+            ],
+            key,
+        )
+        _run(
+            writer,
+            [f"INSERT INTO {SCHEMA}.published_views VALUES (?, ?, ?, ?, ?, ?, ?, ?)"],
+            key
+            + [
+                record.get("model"),
+                record.get("version"),
+                record["mode"],
+                _view_text(writer, database, key[1], key[2]),
+                now,
+            ],
+        )
     return statement
 
 
@@ -326,43 +429,61 @@ def is_published_view(con: duckdb.DuckDBPyConnection, target: exp.Table) -> bool
     here, schema = _fetch(con, "SELECT current_database(), current_schema()")[0]
     database = target.catalog or here
     key = [database if database.lower() != here.lower() else "", target.db or schema, target.name]
-    recorded = _fetch(con, f"SELECT count(*) FROM {SCHEMA}.published_views WHERE database_name = ? "
-                           "AND lower(schema_name) = lower(?) AND lower(view_name) = lower(?)", key)
+    recorded = _fetch(
+        con,
+        f"SELECT count(*) FROM {SCHEMA}.published_views WHERE database_name = ? "
+        "AND lower(schema_name) = lower(?) AND lower(view_name) = lower(?)",
+        key,
+    )
     return recorded[0][0] > 0 and _view_text(con, database, key[1], key[2]) is not None
 
 
 def _view_text(connection: duckdb.DuckDBPyConnection, database: str, schema: str, view: str) -> str | None:
     """DuckDB's text of a view (None when there is no such view); names compare as DuckDB compares them."""
-    rows = _fetch(connection, "SELECT sql FROM duckdb_views() WHERE lower(database_name) = lower(?) AND "
-                              "lower(schema_name) = lower(?) AND lower(view_name) = lower(?)", [database, schema, view])
+    rows = _fetch(
+        connection,
+        "SELECT sql FROM duckdb_views() WHERE lower(database_name) = lower(?) AND "
+        "lower(schema_name) = lower(?) AND lower(view_name) = lower(?)",
+        [database, schema, view],
+    )
     return rows[0][0] if rows else None
 
 
-def version_table(con: duckdb.DuckDBPyConnection, table: str, name: str, version: int,
-                  order: str = "") -> list[dict[str, Any]]:
+def version_table(
+    con: duckdb.DuckDBPyConnection, table: str, name: str, version: int, order: str = ""
+) -> list[dict[str, Any]]:
     """The rows of one version in a per-version table (``fingerprints``, ``drift_bins``) as dicts."""
     if table not in VERSION_TABLES:
         raise StoreError(f"no per-version store table {table!r}")
     if not has_table(con, table):
         return []
     with connection_lock(con):
-        cursor = con.execute(f"SELECT * FROM {SCHEMA}.{table} WHERE model = ? AND version = ?"
-                             + (f" ORDER BY {order}" if order else ""), [name, version])
+        cursor = con.execute(
+            f"SELECT * FROM {SCHEMA}.{table} WHERE model = ? AND version = ?"
+            + (f" ORDER BY {order}" if order else ""),
+            [name, version],
+        )
         names = [d[0] for d in cursor.description]
         return [dict(zip(names, row)) for row in cursor.fetchall()]
 
 
 def _set_current(writer: duckdb.DuckDBPyConnection, name: str, version: int) -> None:
-    _set_current_versions(writer, [name], [version], datetime.now(timezone.utc).replace(tzinfo=None))
+    _set_current_versions(writer, [name], [version], datetime.now(UTC).replace(tzinfo=None))
 
 
-def _set_current_versions(writer: duckdb.DuckDBPyConnection, names: list[str], versions: list[int], now: datetime) -> None:
+def _set_current_versions(
+    writer: duckdb.DuckDBPyConnection, names: list[str], versions: list[int], now: datetime
+) -> None:
     _run(writer, [f"DELETE FROM {SCHEMA}.current_versions WHERE model IN (SELECT unnest(?))"], [names])
-    _insert(writer, "current_versions", {"model": names, "version": versions, "promoted_at": [now] * len(names)})
+    _insert(
+        writer, "current_versions", {"model": names, "version": versions, "promoted_at": [now] * len(names)}
+    )
 
 
 @contextmanager
-def _transaction(con: duckdb.DuckDBPyConnection, preamble: list[str] | None = None) -> Iterator[duckdb.DuckDBPyConnection]:
+def _transaction(
+    con: duckdb.DuckDBPyConnection, preamble: list[str] | None = None
+) -> Iterator[duckdb.DuckDBPyConnection]:
     """A connection of its own with one open transaction: committed on success, rolled back on any exit else."""
     writer = con.cursor()
     try:
@@ -393,10 +514,14 @@ def _orphan_rows(con: duckdb.DuckDBPyConnection, name: str, version: int) -> boo
     commits a version whole, so a key clash then is not a race with another writer (and retrying cannot help).
     One statement, so both counts come from one snapshot."""
     others = " UNION ALL ".join(
-        f"SELECT 1 FROM {SCHEMA}.{table} WHERE model = $1 AND version = $2" for table in VERSION_TABLES if table != "versions"
+        f"SELECT 1 FROM {SCHEMA}.{table} WHERE model = $1 AND version = $2"
+        for table in VERSION_TABLES
+        if table != "versions"
     )
-    query = (f"SELECT (SELECT count(*) FROM {SCHEMA}.versions WHERE model = $1 AND version = $2), "
-             f"(SELECT count(*) FROM ({others}))")
+    query = (
+        f"SELECT (SELECT count(*) FROM {SCHEMA}.versions WHERE model = $1 AND version = $2), "
+        f"(SELECT count(*) FROM ({others}))"
+    )
     with con.cursor() as fresh:
         headers, parts = _fetch(fresh, query, [name, version])[0]
     return headers == 0 and parts > 0
@@ -409,24 +534,39 @@ def _schema_statements() -> list[str]:
 
 
 def _next_versions(writer: duckdb.DuckDBPyConnection, names: list[str]) -> list[int]:
-    rows = _fetch(writer, f"SELECT model, max(version) FROM {SCHEMA}.versions WHERE model IN (SELECT unnest(?)) "
-                  "GROUP BY model", [names])
+    rows = _fetch(
+        writer,
+        f"SELECT model, max(version) FROM {SCHEMA}.versions WHERE model IN (SELECT unnest(?)) GROUP BY model",
+        [names],
+    )
     latest = dict(rows)
     return [int(latest.get(name) or 0) + 1 for name in names]
 
 
-def _write_versions(writer: duckdb.DuckDBPyConnection, models: list[Model], names: list[str], versions: list[int],
-                    extras: list[Extra], promote: bool) -> None:
+def _write_versions(
+    writer: duckdb.DuckDBPyConnection,
+    models: list[Model],
+    names: list[str],
+    versions: list[int],
+    extras: list[Extra],
+    promote: bool,
+) -> None:
     """All rows of all the versions, one INSERT per table (a store of many segment models writes in seconds)."""
-    now = datetime.now(timezone.utc).replace(tzinfo=None)
+    now = datetime.now(UTC).replace(tzinfo=None)
     batches: dict[str, list[dict[str, list[Any]]]] = {}
     for model, name, version, extra in zip(models, names, versions, extras):
         for table, columns in _version_rows(model, name, version, now).items():
             batches.setdefault(table, []).append(columns)
         for table, columns in extra.items():
             batches.setdefault(table, []).append({"model": [name], "version": [version], **columns})
-    _run(writer, [f"INSERT INTO {SCHEMA}.models SELECT name, ? FROM (SELECT unnest(?) AS name) "
-                  f"WHERE name NOT IN (SELECT model FROM {SCHEMA}.models)"], [now, names])
+    _run(
+        writer,
+        [
+            f"INSERT INTO {SCHEMA}.models SELECT name, ? FROM (SELECT unnest(?) AS name) "
+            f"WHERE name NOT IN (SELECT model FROM {SCHEMA}.models)"
+        ],
+        [now, names],
+    )
     for table, parts in batches.items():
         _insert(writer, table, _stacked(parts))
     if promote:
@@ -450,33 +590,57 @@ def _version_rows(model: Model, name: str, version: int, now: datetime) -> dict[
     document = to_document(model)
     stats = model.stats
     key = {"model": [name], "version": [version]}
-    rows: dict[str, dict[str, list[Any]]] = {"versions": {
-        **key, "created_at": [now], "formula": [model.formula], "source": [model.source],
-        "source_rows": [int(model.design.rows_total)], "rows_used": [int(stats["n_used"])],
-        "fitted_at": [model.fitted_at.astimezone(timezone.utc).replace(tzinfo=None)],
-        "deviance": [_finite(stats.get("deviance"))], "aic": [_finite(stats.get("aic"))],
-        "converged": [bool(stats["converged"])], "warnings_count": [len(model.warnings)],
-        "document": [json.dumps(document, allow_nan=False, sort_keys=False)]}}
+    rows: dict[str, dict[str, list[Any]]] = {
+        "versions": {
+            **key,
+            "created_at": [now],
+            "formula": [model.formula],
+            "source": [model.source],
+            "source_rows": [int(model.design.rows_total)],
+            "rows_used": [int(stats["n_used"])],
+            "fitted_at": [model.fitted_at.astimezone(UTC).replace(tzinfo=None)],
+            "deviance": [_finite(stats.get("deviance"))],
+            "aic": [_finite(stats.get("aic"))],
+            "converged": [bool(stats["converged"])],
+            "warnings_count": [len(model.warnings)],
+            "document": [json.dumps(document, allow_nan=False, sort_keys=False)],
+        }
+    }
     coefficients = model.coefficients
-    rows["coefficients"] = {**key, "position": list(range(coefficients.num_rows)),
-                            **{c: coefficients[c].to_pylist() for c in COEFFICIENT_COLUMNS}}
+    rows["coefficients"] = {
+        **key,
+        "position": list(range(coefficients.num_rows)),
+        **{c: coefficients[c].to_pylist() for c in COEFFICIENT_COLUMNS},
+    }
     factors = document["factors"]
-    rows["factors"] = {**key, "position": list(range(len(factors))),
-                       "expression": [f["expression"] for f in factors], "kind": [f["kind"] for f in factors],
-                       "sql_type": [f["sql_type"] for f in factors],
-                       "levels": [json.dumps(f["levels"]) for f in factors],
-                       "reference": [None if f["reference"] is None else json.dumps(f["reference"]) for f in factors]}
+    rows["factors"] = {
+        **key,
+        "position": list(range(len(factors))),
+        "expression": [f["expression"] for f in factors],
+        "kind": [f["kind"] for f in factors],
+        "sql_type": [f["sql_type"] for f in factors],
+        "levels": [json.dumps(f["levels"]) for f in factors],
+        "reference": [None if f["reference"] is None else json.dumps(f["reference"]) for f in factors],
+    }
     columns = model.design.columns
     texts = [f.text for f in model.design.factors]
-    rows["encodings"] = {**key, "position": list(range(len(columns))), "label": [c.label for c in columns],
-                         "term": [c.term for c in columns],
-                         "numeric_factors": [json.dumps([texts[i] for i in c.numeric]) for c in columns],
-                         "indicators": [json.dumps([[texts[i], level] for i, level in c.indicators]) for c in columns],
-                         "centre": [c.centre for c in columns], "scale": [c.scale for c in columns]}
+    rows["encodings"] = {
+        **key,
+        "position": list(range(len(columns))),
+        "label": [c.label for c in columns],
+        "term": [c.term for c in columns],
+        "numeric_factors": [json.dumps([texts[i] for i in c.numeric]) for c in columns],
+        "indicators": [json.dumps([[texts[i], level] for i, level in c.indicators]) for c in columns],
+        "centre": [c.centre for c in columns],
+        "scale": [c.scale for c in columns],
+    }
     labels = model.labels
-    rows["covariance"] = {**key, "row_term": [a for a in labels for _ in labels],
-                          "column_term": [b for _ in labels for b in labels],
-                          "value": [_finite(v) for v in model.covariance.ravel()]}
+    rows["covariance"] = {
+        **key,
+        "row_term": [a for a in labels for _ in labels],
+        "column_term": [b for _ in labels for b in labels],
+        "value": [_finite(v) for v in model.covariance.ravel()],
+    }
     return rows
 
 
@@ -507,15 +671,23 @@ def _rollback(writer: duckdb.DuckDBPyConnection) -> None:
         pass
 
 
-def _run(connection: duckdb.DuckDBPyConnection, statements: list[str], parameters: list[Any] | None = None) -> None:
+def _run(
+    connection: duckdb.DuckDBPyConnection, statements: list[str], parameters: list[Any] | None = None
+) -> None:
     for statement in statements:
         _fetch(connection, statement, parameters)
 
 
-def _fetch(connection: duckdb.DuckDBPyConnection, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
+def _fetch(
+    connection: duckdb.DuckDBPyConnection, sql: str, parameters: list[Any] | None = None
+) -> list[tuple[Any, ...]]:
     try:
         with connection_lock(connection):
-            return connection.execute(sql, parameters).fetchall() if parameters else connection.execute(sql).fetchall()
+            return (
+                connection.execute(sql, parameters).fetchall()
+                if parameters
+                else connection.execute(sql).fetchall()
+            )
     except duckdb.Error as err:
         raise store_error(err) from None
 
@@ -524,10 +696,14 @@ def store_error(err: duckdb.Error) -> StoreError:
     """A DuckDB error met while reading or writing the store, in plain words."""
     first = (str(err).strip().splitlines() or [type(err).__name__])[0]
     if isinstance(err, duckdb.ConstraintException):
-        return StoreConflictError(f"the model store already holds a row with this key (written by another connection "
-                                  f"meanwhile, or left there by hand): {first}")
+        return StoreConflictError(
+            f"the model store already holds a row with this key (written by another connection "
+            f"meanwhile, or left there by hand): {first}"
+        )
     if isinstance(err, duckdb.TransactionException) or "conflict" in first.lower():
-        return StoreConflictError(f"another connection wrote to the model store at the same time; retry ({first})")
+        return StoreConflictError(
+            f"another connection wrote to the model store at the same time; retry ({first})"
+        )
     if "read-only" in first.lower() or "read only" in first.lower():
         return StoreError(f"the database is open read-only, so the model store cannot be written ({first})")
     if isinstance(err, duckdb.IOException) and "lock" in first.lower():

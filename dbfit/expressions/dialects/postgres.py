@@ -9,6 +9,12 @@ from dbfit.expressions.dialects import DOUBLE_EXP_LIMIT, Dialect, FittingForms
 # isfinite exists for dates and timestamps only; PostgreSQL orders NaN equal to itself, so NOT IN finds it.
 # The planner inlines a subquery's expressions into every aggregate above it; OFFSET 0 fences each one.
 # No SQL function raises an error with a message, so unseen='error' is refused.
-POSTGRES = Dialect(name="postgres", exp_limit=DOUBLE_EXP_LIMIT, raise_function=None, has_booleans=True,
-                   fitting=FittingForms(clamps_exp=True, finite_test="not_in", sorted_levels="array_agg",
-                                        fences_subqueries=True))
+POSTGRES = Dialect(
+    name="postgres",
+    exp_limit=DOUBLE_EXP_LIMIT,
+    raise_function=None,
+    has_booleans=True,
+    fitting=FittingForms(
+        clamps_exp=True, finite_test="not_in", sorted_levels="array_agg", fences_subqueries=True
+    ),
+)

@@ -11,8 +11,9 @@ from dbfit.errors import DbfitError
 from dbfit.expressions.dialects import Dialect, FittingForms
 
 # The forms the trees are built in (DuckDB's): queries in these forms run as built.
-AS_BUILT = FittingForms(clamps_exp=False, finite_test="isfinite", sorted_levels="array_agg",
-                        fences_subqueries=False)
+AS_BUILT = FittingForms(
+    clamps_exp=False, finite_test="isfinite", sorted_levels="array_agg", fences_subqueries=False
+)
 
 
 def adapt(query: exp.Expression, dialect: Dialect) -> exp.Expression:
@@ -40,26 +41,34 @@ def _rewrite(node: exp.Expression, forms: FittingForms, limit: float) -> exp.Exp
     levels = isinstance(node, exp.ArrayAgg) and isinstance(node.this, exp.Order)
     if levels and forms.sorted_levels == "collect_set":
         distinct = node.this.this
-        return exp.Anonymous(this="array_sort", expressions=[
-            exp.Anonymous(this="collect_set", expressions=[distinct.expressions[0].copy()])])
+        return exp.Anonymous(
+            this="array_sort",
+            expressions=[exp.Anonymous(this="collect_set", expressions=[distinct.expressions[0].copy()])],
+        )
     return node
 
 
 def _clamped(argument: exp.Expression, limit: float) -> exp.Expression:
     low, high = exp.Neg(this=exp.Literal.number(limit)), exp.Literal.number(limit)
-    return exp.Case(ifs=[
-        exp.If(this=exp.LT(this=argument.copy(), expression=low.copy()), true=low),
-        exp.If(this=exp.GT(this=argument.copy(), expression=high.copy()), true=high),
-    ], default=argument.copy())
+    return exp.Case(
+        ifs=[
+            exp.If(this=exp.LT(this=argument.copy(), expression=low.copy()), true=low),
+            exp.If(this=exp.GT(this=argument.copy(), expression=high.copy()), true=high),
+        ],
+        default=argument.copy(),
+    )
 
 
 def _finite(value: exp.Expression, test: str) -> exp.Expression:
     """isfinite(value) without isfinite: not +/-Infinity, and not NaN (listed, or through isnan)."""
+
     def double(text: str) -> exp.Expression:
         return exp.Cast(this=exp.Literal.string(text), to=exp.DataType.build("DOUBLE"))
 
     infinite = [double("Infinity"), double("-Infinity")]
     if test == "not_in":
         return exp.Not(this=exp.In(this=value.copy(), expressions=[*infinite, double("NaN")]))
-    return exp.and_(exp.Not(this=exp.In(this=value.copy(), expressions=infinite)),
-                    exp.Not(this=exp.Anonymous(this="isnan", expressions=[value.copy()])))
+    return exp.and_(
+        exp.Not(this=exp.In(this=value.copy(), expressions=infinite)),
+        exp.Not(this=exp.Anonymous(this="isnan", expressions=[value.copy()])),
+    )

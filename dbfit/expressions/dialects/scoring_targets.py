@@ -9,8 +9,13 @@ from dbfit.expressions.dialects import DOUBLE_EXP_LIMIT, Dialect
 
 
 def _target(name: str, raise_function: str | None, has_booleans: bool = True) -> Dialect:
-    return Dialect(name=name, exp_limit=DOUBLE_EXP_LIMIT, raise_function=raise_function,
-                   has_booleans=has_booleans, fitting=None)
+    return Dialect(
+        name=name,
+        exp_limit=DOUBLE_EXP_LIMIT,
+        raise_function=raise_function,
+        has_booleans=has_booleans,
+        fitting=None,
+    )
 
 
 SNOWFLAKE = _target("snowflake", raise_function=None)

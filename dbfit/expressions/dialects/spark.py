@@ -6,6 +6,12 @@ from dbfit.expressions.dialects import DOUBLE_EXP_LIMIT, Dialect, FittingForms
 
 # Spark's exp returns 0 or Infinity out of range; its arguments are clamped all the same, so an exp() in a
 # formula gives the same finite numbers as on PostgreSQL.
-SPARK = Dialect(name="spark", exp_limit=DOUBLE_EXP_LIMIT, raise_function="raise_error", has_booleans=True,
-                fitting=FittingForms(clamps_exp=True, finite_test="isnan", sorted_levels="collect_set",
-                                     fences_subqueries=False))
+SPARK = Dialect(
+    name="spark",
+    exp_limit=DOUBLE_EXP_LIMIT,
+    raise_function="raise_error",
+    has_booleans=True,
+    fitting=FittingForms(
+        clamps_exp=True, finite_test="isnan", sorted_levels="collect_set", fences_subqueries=False
+    ),
+)
