@@ -23,8 +23,7 @@ from dbfit.expressions import builders as sb
 from dbfit.expressions.formula import parse_formula
 from dbfit.expressions.source import source_relation
 from dbfit.fitting import firth as bias_reduction
-from dbfit.fitting import penalised as penalized
-from dbfit.fitting import prior_correction as priorcorrection
+from dbfit.fitting import penalised, prior_correction
 from dbfit.fitting import robust as robust_errors
 from dbfit.fitting.blocks import BlockedStatisticsPass, blocked_factor, dense_first
 from dbfit.fitting.options import FitOptions, FitVariants
@@ -273,10 +272,10 @@ def _fit(
         bias_reduction.firth_evaluator(engine, design, full_pass, has_intercept) if firth else full_pass
     )
     if special.penalty_request is not None:
-        penalised = penalized.fit_penalised(
+        path = penalised.fit_penalised(
             engine, design, full_pass, beta_start, fitted, special.penalty_request, max_iter, reporter
         )
-        newton = penalised.newton
+        newton = path.newton
     else:
         fallback = None if start is None else default_start
         if firth:
@@ -314,13 +313,13 @@ def _fit(
     if firth:
         model = bias_reduction.annotate(model, newton.last)
     if special.penalty_request is not None:
-        model = penalized.annotate(model, penalised, special.penalty_request)
+        model = penalised.annotate(model, path, special.penalty_request)
     if special.robust_kind is not None:
         model = robust_errors.with_robust_errors(
             engine.connection, model, special.robust_kind, special.cluster
         )
     if special.population_rate is not None:
-        model = priorcorrection.prior_corrected(model, special.population_rate)
+        model = prior_correction.prior_corrected(model, special.population_rate)
     return model
 
 

@@ -15,8 +15,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from dbfit.errors import FitError
-from dbfit.fitting import penalised as penalized
-from dbfit.fitting import prior_correction as priorcorrection
+from dbfit.fitting import penalised, prior_correction
 from dbfit.fitting import robust as robust_errors
 
 EXPRESSION_OPTIONS = ("weights", "offset", "trials", "by", "cluster", "split_key")
@@ -101,13 +100,13 @@ class FitOptions:
             raise FitError(
                 f"robust must be one of {', '.join(robust_errors.KINDS)} (got {values['robust']!r})"
             )
-        priorcorrection.check_population_rate(values.get("population_rate"))
+        prior_correction.check_population_rate(values.get("population_rate"))
         shrinkage = values.get("shrinkage")
         if isinstance(shrinkage, (list, tuple)):
             shrinkage = tuple(shrinkage)
         values["shrinkage"] = shrinkage
         values["robust_kind"] = robust_errors.choose_kind(values.get("robust"), values.get("cluster"))
-        values["penalty_request"] = penalized.check_request(
+        values["penalty_request"] = penalised.check_request(
             shrinkage, values["l1_share"], values["folds"], values.get("split_key")
         )
         chosen = cls(**values)

@@ -24,7 +24,7 @@ from dbfit.interfaces.old_spellings import version_by_keyword, warn_renamed
 from dbfit.lifecycle import refit as refitting
 from dbfit.lifecycle import saving, training
 from dbfit.lifecycle.drift import psi_table
-from dbfit.model import reading as serialize
+from dbfit.model import reading
 from dbfit.model.fitted import Model
 from dbfit.model.segmented import SegmentedFit
 from dbfit.store import model_store as store
@@ -160,7 +160,7 @@ def load(con: duckdb.DuckDBPyConnection, name: str, *, version: int | None = Non
 
 def from_json(text: str) -> Model:
     """A model from the JSON of :meth:`Model.to_json` (format ``dbfit-model`` 1)."""
-    return serialize.from_json(text)
+    return reading.from_json(text)
 
 
 def score(
