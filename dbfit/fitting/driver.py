@@ -26,7 +26,7 @@ from dbfit.fitting import firth as bias_reduction
 from dbfit.fitting import penalised, prior_correction
 from dbfit.fitting import robust as robust_errors
 from dbfit.fitting.blocks import BlockedStatisticsPass, blocked_factor, dense_first
-from dbfit.fitting.options import FitOptions, FitVariants
+from dbfit.fitting.options import FitOptions
 from dbfit.fitting.segments import fit_segments
 from dbfit.fitting.statistics import StatisticsPass
 from dbfit.model import inference
@@ -145,7 +145,6 @@ def fit_with(
 ) -> Model | SegmentedFit:
     """:func:`fit` with its options already checked (each entry point builds :class:`FitOptions` once)."""
     check_progress(progress)
-    special = options.variants()
     engine = engine_for(con)
     options.check_engine(engine.dialect)
     engine.live_progress = (
@@ -154,24 +153,11 @@ def fit_with(
         and not callable(progress)
         and sys.stderr.isatty()
     )
-    arguments = dict(
-        weights=options.weights,
-        offset=options.offset,
-        trials=options.trials,
-        reference=options.reference,
-        positive=options.positive,
-        max_iter=options.max_iter,
-        tol=options.tol,
-        start=options.start,
-        progress=progress,
-        by=options.by,
-        special=special,
-    )
     if engine.dialect == "duckdb":
         # dbfit reports progress itself (or is quiet): DuckDB's own printed bar stays off during the fit.
         with progress_settings(con, track=engine.live_progress):
-            return _fit(engine, formula, source, **arguments)
-    return _fit(engine, formula, source, **arguments)
+            return _fit(engine, formula, source, options, progress)
+    return _fit(engine, formula, source, options, progress)
 
 
 def check_progress(progress: Any) -> None:
@@ -180,32 +166,20 @@ def check_progress(progress: Any) -> None:
 
 
 def _fit(
-    engine: DuckDBEngine,
-    formula: str,
-    source: str,
-    *,
-    weights: str | None,
-    offset: str | None,
-    trials: str | None,
-    reference: Mapping[str, Any] | None,
-    positive: Any,
-    max_iter: int,
-    tol: float,
-    start: Mapping[str, float] | Sequence[float] | None,
-    progress: Progress,
-    by: str | None,
-    special: FitVariants,
+    engine: DuckDBEngine, formula: str, source: str, options: FitOptions, progress: Progress
 ) -> Model | SegmentedFit:
+    special = options.variants()
+    max_iter, tol, start, by = options.max_iter, options.tol, options.start, options.by
     parsed = parse_formula(formula)
     design = build_design(
         engine,
         parsed,
         source_relation(source),
-        weights=weights,
-        offset=offset,
-        trials=trials,
-        positive=positive,
-        reference=dict(reference or {}),
+        weights=options.weights,
+        offset=options.offset,
+        trials=options.trials,
+        positive=options.positive,
+        reference=dict(options.reference or {}),
         by=by,
     )
     has_intercept = 1 if design.intercept else 0
@@ -213,16 +187,7 @@ def _fit(
     all_parameters = list(range(len(design.labels)))
     fitted = [k for k in all_parameters if k not in constant]
     reporter = progress_reporter(progress)
-    options = dict(
-        weights=weights,
-        offset=offset,
-        trials=trials,
-        reference=dict(reference or {}),
-        positive=positive,
-        max_iter=max_iter,
-        tol=tol,
-        by=by,
-    )
+    recorded = options.recorded()
     if by is not None:
         if start is not None:
             raise FitError("start= cannot be combined with by=: every segment starts from its own intercept")
@@ -237,7 +202,7 @@ def _fit(
             assemble=assemble_model,
             formula=formula,
             source=source,
-            options=options,
+            options=recorded,
         )
 
     factor = blocked_factor(design) if engine.parameters else None
@@ -308,7 +273,7 @@ def _fit(
         engine.scans,
         formula,
         source,
-        {**options, "firth": firth},
+        {**recorded, "firth": firth},
     )
     if firth:
         model = bias_reduction.annotate(model, newton.last)

@@ -142,6 +142,20 @@ class FitOptions:
             self.robust_kind, self.cluster, self.firth, self.population_rate, self.penalty_request
         )
 
+    def recorded(self) -> dict[str, Any]:
+        """The options a model keeps in its ``options`` (and its document), in the shape documents have always had:
+        the expressions and settings that define the fit (the variants add their own records)."""
+        return {
+            "weights": self.weights,
+            "offset": self.offset,
+            "trials": self.trials,
+            "reference": dict(self.reference or {}),
+            "positive": self.positive,
+            "max_iter": self.max_iter,
+            "tol": self.tol,
+            "by": self.by,
+        }
+
     def _check_combinations(self) -> None:
         if self.penalty_request is not None and (self.firth or self.robust_kind is not None):
             raise FitError("shrinkage cannot be combined with firth=True or robust standard errors")
