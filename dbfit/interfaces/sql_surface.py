@@ -191,11 +191,18 @@ def register(con: duckdb.DuckDBPyConnection) -> None:
         con.execute(f"CREATE OR REPLACE MACRO {CATALOG}.main.{name} {bodies}").fetchall()
 
 
-def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
-    def second() -> duckdb.DuckDBPyConnection:
-        return con.cursor()
+class SqlFunctions:
+    """The Python functions behind the ``dbfit.`` macros, each on a connection of its own (``second``)."""
+
+    def __init__(self, con: duckdb.DuckDBPyConnection) -> None:
+        self.con = con
+
+    def second(self) -> duckdb.DuckDBPyConnection:
+        """A connection of its own: a cursor of the caller's connection, so nothing runs in the caller's transaction."""
+        return self.con.cursor()
 
     def fit_rows(
+        self,
         model,
         formula,
         source,
@@ -233,7 +240,7 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
             l1_share=l1_share,
             by=by,
         )
-        with second() as reader:
+        with self.second() as reader:
             fitted = _fit_on_second_connection(reader, source, formula, visible_rows, options)
             if isinstance(fitted, SegmentedFit):
                 rows = _segment_rows(fitted, saving.save_segments(reader, fitted, model))
@@ -254,9 +261,9 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
                 row["note"] = "; ".join(filter(None, [EARLIER_FIT_ORDER, row["note"]]))
         return rows
 
-    def count_sql(formula, source):
+    def count_sql(self, formula, source):
         source = formula_and_source(formula, source)[1]
-        with second() as reader:
+        with self.second() as reader:
             check_readable(reader, source)
         return (
             exp.select(exp.alias_(exp.Count(this=exp.Star()), "n"))
@@ -264,17 +271,17 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
             .sql("duckdb")
         )
 
-    def version_rows():
-        with second() as reader:
+    def version_rows(self):
+        with self.second() as reader:
             return [{k: row[k] for k in VERSION_FIELDS} for row in store.version_rows(reader)]
 
-    def coefficient_rows(model, version):
-        with second() as reader:
+    def coefficient_rows(self, model, version):
+        with self.second() as reader:
             return store.coefficient_rows(reader, model, version)
 
-    def score_sql(model, source, version, standard_error, level, unseen):
+    def score_sql(self, model, source, version, standard_error, level, unseen):
         level = _text_number(level, "level", 0.95)
-        with second() as reader:
+        with self.second() as reader:
             if source is not None:
                 check_readable(reader, source)
             fitted = store.load_model(reader, model, version)
@@ -287,8 +294,8 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
         )
         return query.sql("duckdb")
 
-    def publish_rows(model, source, view, version, live, unseen, replace):
-        with second() as writer:
+    def publish_rows(self, model, source, view, version, live, unseen, replace):
+        with self.second() as writer:
             made = publish(
                 writer,
                 model,
@@ -301,19 +308,19 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
             )
         return [{k: made[k] for k in PUBLISHED_FIELDS}]
 
-    def publish_segment_rows(model, source, view, unseen, replace):
-        with second() as writer:
+    def publish_segment_rows(self, model, source, view, unseen, replace):
+        with self.second() as writer:
             made = publish_segments(
                 writer, model, source=source, view=view, unseen=unseen or "null", replace=bool(replace)
             )
         return [{k: made[k] for k in SEGMENT_VIEW_FIELDS}]
 
-    def drop_rows(model, version):
-        with second() as writer:
+    def drop_rows(self, model, version):
+        with self.second() as writer:
             return [{"model": m, "version": v} for m, v in store.drop_model(writer, model, version)]
 
-    def assessment_rows(model, source, threshold, table):
-        with second() as reader:
+    def assessment_rows(self, model, source, threshold, table):
+        with self.second() as reader:
             fitted = store.load_model(reader, model, None)
             engine = DuckDBEngine(reader)
             text, note = fitted.assessed_rows(source, None)
@@ -329,49 +336,70 @@ def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
             }
             return builders[table]().to_pylist()
 
-    def drift_rows(model, source):
-        with second() as reader:
+    def drift_rows(self, model, source):
+        with self.second() as reader:
             return psi_table(reader, store.load_model(reader, model, None), source).to_pylist()
 
-    V, I, D, B = T("VARCHAR"), T("INTEGER"), T("DOUBLE"), T("BOOLEAN")
-    reference_type = duckdb.map_type(V, V)
-    functions: list[tuple[str, Callable[..., Any], list[Any], Any]] = [
-        (
-            "dbfit_sql_fit",
-            fit_rows,
-            [V, V, V, V, V, V, reference_type, V, V, V, T("BIGINT"), V, V, V, V, V, V, V],
-            _rows_of(FIT_FIELDS),
-        ),
-        ("dbfit_sql_count", count_sql, [V, V], V),
-        ("dbfit_sql_models", version_rows, [], _rows_of(VERSION_FIELDS)),
-        ("dbfit_sql_coefficients", coefficient_rows, [V, I], _rows_of(COEFFICIENT_FIELDS)),
-        ("dbfit_sql_score", score_sql, [V, V, I, B, V, V], V),
-        ("dbfit_sql_publish", publish_rows, [V, V, V, I, B, V, B], _rows_of(PUBLISHED_FIELDS)),
-        ("dbfit_sql_publish_segments", publish_segment_rows, [V, V, V, V, B], _rows_of(SEGMENT_VIEW_FIELDS)),
-        ("dbfit_sql_drop", drop_rows, [V, I], _rows_of(DROPPED_FIELDS)),
-        ("dbfit_sql_assess", assessment_rows, [V, V, V, V], _rows_of({"metric": V, "value": D, "note": V})),
-        (
-            "dbfit_sql_confusion",
-            assessment_rows,
-            [V, V, V, V],
-            _rows_of({"actual": I, "predicted": I, "rows": T("BIGINT")}),
-        ),
-        ("dbfit_sql_cutoffs", assessment_rows, [V, V, V, V], _rows_of({c: D for c in CUTOFF_COLUMNS})),
-        (
-            "dbfit_sql_calibration",
-            assessment_rows,
-            [V, V, V, V],
-            _rows_of({"group": I, "rows": T("BIGINT"), **{c: D for c in CALIBRATION_COLUMNS}}),
-        ),
-        (
-            "dbfit_sql_gains",
-            assessment_rows,
-            [V, V, V, V],
-            _rows_of({"group": I, **{c: D for c in GAINS_COLUMNS}}),
-        ),
-        ("dbfit_sql_drift", drift_rows, [V, V], _rows_of(DRIFT_FIELDS)),
-    ]
-    for name, function, parameters, returns in functions:
+    def signatures(self) -> list[tuple[str, Callable[..., Any], list[Any], Any]]:
+        """Each SQL function: its name, the method, its parameter types and its return type."""
+        V, I, D, B = T("VARCHAR"), T("INTEGER"), T("DOUBLE"), T("BOOLEAN")
+        reference_type = duckdb.map_type(V, V)
+        functions: list[tuple[str, Callable[..., Any], list[Any], Any]] = [
+            (
+                "dbfit_sql_fit",
+                self.fit_rows,
+                [V, V, V, V, V, V, reference_type, V, V, V, T("BIGINT"), V, V, V, V, V, V, V],
+                _rows_of(FIT_FIELDS),
+            ),
+            ("dbfit_sql_count", self.count_sql, [V, V], V),
+            ("dbfit_sql_models", self.version_rows, [], _rows_of(VERSION_FIELDS)),
+            ("dbfit_sql_coefficients", self.coefficient_rows, [V, I], _rows_of(COEFFICIENT_FIELDS)),
+            ("dbfit_sql_score", self.score_sql, [V, V, I, B, V, V], V),
+            ("dbfit_sql_publish", self.publish_rows, [V, V, V, I, B, V, B], _rows_of(PUBLISHED_FIELDS)),
+            (
+                "dbfit_sql_publish_segments",
+                self.publish_segment_rows,
+                [V, V, V, V, B],
+                _rows_of(SEGMENT_VIEW_FIELDS),
+            ),
+            ("dbfit_sql_drop", self.drop_rows, [V, I], _rows_of(DROPPED_FIELDS)),
+            (
+                "dbfit_sql_assess",
+                self.assessment_rows,
+                [V, V, V, V],
+                _rows_of({"metric": V, "value": D, "note": V}),
+            ),
+            (
+                "dbfit_sql_confusion",
+                self.assessment_rows,
+                [V, V, V, V],
+                _rows_of({"actual": I, "predicted": I, "rows": T("BIGINT")}),
+            ),
+            (
+                "dbfit_sql_cutoffs",
+                self.assessment_rows,
+                [V, V, V, V],
+                _rows_of({c: D for c in CUTOFF_COLUMNS}),
+            ),
+            (
+                "dbfit_sql_calibration",
+                self.assessment_rows,
+                [V, V, V, V],
+                _rows_of({"group": I, "rows": T("BIGINT"), **{c: D for c in CALIBRATION_COLUMNS}}),
+            ),
+            (
+                "dbfit_sql_gains",
+                self.assessment_rows,
+                [V, V, V, V],
+                _rows_of({"group": I, **{c: D for c in GAINS_COLUMNS}}),
+            ),
+            ("dbfit_sql_drift", self.drift_rows, [V, V], _rows_of(DRIFT_FIELDS)),
+        ]
+        return functions
+
+
+def _register_functions(con: duckdb.DuckDBPyConnection) -> None:
+    for name, function, parameters, returns in SqlFunctions(con).signatures():
         try:
             con.create_function(
                 name, function, parameters, returns, null_handling="special", side_effects=True
