@@ -14,7 +14,7 @@ import duckdb
 from sqlglot import exp
 
 from dbfit.deployment.scoring import Coefficient, scoring_query
-from dbfit.deployment.views import NOT_GIVEN, check_score_columns, create_view, source_and_view
+from dbfit.deployment.views import NOT_GIVEN, check_score_columns, source_and_view
 from dbfit.errors import StoreError
 from dbfit.expressions import builders as sb
 from dbfit.expressions.formula import parse_expression
@@ -23,7 +23,7 @@ from dbfit.expressions.source import source_relation
 from dbfit.fitting.segments import segment_literal
 from dbfit.model.fitted import Model
 from dbfit.model.segmented import SegmentedFit
-from dbfit.store.model_store import load_model, names_starting_with
+from dbfit.store.model_store import load_model, names_starting_with, publish_view
 
 SEGMENT_ALIAS = "dbfit_segment_estimates"
 KEY = "dbfit_segment"
@@ -105,7 +105,7 @@ def publish_segments(
             raise StoreError("publishing stored segment models needs the source to score")
         models, by = stored_segments(con, fitted)
     check_score_columns(con, source_relation(source), False)
-    statement = create_view(
+    statement = publish_view(
         con,
         target,
         segment_scoring_query(models, by, source, unseen=unseen),

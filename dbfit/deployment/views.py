@@ -132,7 +132,7 @@ def publish(
         "version": None if live else resolved.version,
         "mode": "live" if live else "pinned",
     }
-    statement = create_view(con, target, query, record, replace=replace)
+    statement = publish_view(con, target, query, record, replace=replace)
     return {
         "view": target.sql("duckdb"),
         **record,
@@ -185,19 +185,6 @@ def _may_become_view(con: duckdb.DuckDBPyConnection, text: Any) -> bool:
     except DbfitError:
         return True
     return is_published_view(con, target)
-
-
-def create_view(
-    con: duckdb.DuckDBPyConnection,
-    target: exp.Table,
-    query: exp.Select,
-    record: dict[str, Any],
-    *,
-    replace: bool = False,
-) -> exp.Create:
-    """CREATE OR REPLACE VIEW ``target`` AS ``query`` on the store's own connection, recorded as dbfit's
-    (see :func:`dbfit.store.model_store.publish_view`); a failure or a view dbfit did not publish is a StoreError naming it."""
-    return publish_view(con, target, query, record, replace=replace)
 
 
 def _live_coefficients(model: Model) -> tuple[Coefficient, exp.Expression]:

@@ -52,7 +52,7 @@ class DuckDBEngine(Engine):
     def __init__(self, connection: Any) -> None:
         super().__init__(connection)
         self.aborted = False
-        self._checked: set[str] = set()  # query texts already bound inside the caller's transaction
+        self._checked: set[str] = set()  # query texts already looked at (and bound inside a transaction)
 
     def describe(self, query: exp.Expression) -> list[tuple[str, str]]:
         """Column names and SQL types of ``query`` without reading its rows."""
@@ -84,11 +84,12 @@ class DuckDBEngine(Engine):
 
     def _run(self, sql: str, parameters: list[Any] | None = None) -> list[tuple[Any, ...]]:
         # Outside a transaction a failing statement ends only its own; inside, it must fail before it runs. A
-        # query text is bound once (the Newton passes repeat one text with new parameters): binding a wide
-        # statistics query costs about a third of running it on a small table.
+        # query text is looked at once (the Newton passes repeat one text with new parameters): binding a wide
+        # statistics query costs about a third of running it on a small table, and asking whether a
+        # transaction is open costs two small queries.
         with connection_lock(self.connection):
-            if sql not in self._checked and in_transaction(self.connection):
-                if self._parse(sql).type == duckdb.StatementType.SELECT:
+            if sql not in self._checked:
+                if in_transaction(self.connection) and self._parse(sql).type == duckdb.StatementType.SELECT:
                     self._bind(sql, parameters)
                 self._checked.add(sql)
             return self._read(lambda: self.connection.execute(sql, parameters).fetchall())

@@ -70,11 +70,10 @@ class FitOptions:
     @classmethod
     def of(cls, **options: Any) -> FitOptions:
         """Check ``options`` (the keywords of :func:`dbfit.fit` but ``progress``) and return them, typed."""
-        known = {f.name for f in dataclasses.fields(cls)} - {"robust_kind", "penalty_request"}
-        unknown = sorted(set(options) - known)
+        unknown = sorted(set(options) - set(OPTION_NAMES))
         if unknown:
             raise FitError(
-                f"unknown fit option(s) {', '.join(unknown)}; the options are {', '.join(sorted(known))}"
+                f"unknown fit option(s) {', '.join(unknown)}; the options are {', '.join(sorted(OPTION_NAMES))}"
             )
         for name, default in DEFAULTS.items():
             if name in options and options[name] is None:
@@ -171,6 +170,10 @@ class FitOptions:
                 f"on {dialect}, dbfit fits plain models (weights, offset and by= allowed); trials, "
                 "firth, shrinkage, robust and population_rate need DuckDB for now"
             )
+
+
+# The options a user gives (derived values such as robust_kind are not among them), in declaration order.
+OPTION_NAMES = tuple(f.name for f in dataclasses.fields(FitOptions) if f.compare)
 
 
 def _expression_text(name: str, value: Any) -> str | None:

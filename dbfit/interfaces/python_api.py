@@ -71,11 +71,6 @@ def fit_options(
     )
 
 
-def _part_source(source: str, split: Holdout | KFold, part: str | int, keep: bool = True) -> str:
-    """A SELECT (as SQL text written by sqlglot from the parsed source) of one part of the split."""
-    return part_source(source, split, part, keep=keep)
-
-
 def assess(
     con: duckdb.DuckDBPyConnection,
     model: str | Model,
@@ -131,10 +126,8 @@ def cross_validate(
     chosen = FitOptions.of(**options)
     per_fold: list[dict[str, float | None]] = []
     for fold in range(split.folds):
-        model = fitting.fit_with(
-            con, formula, _part_source(source, split, fold, keep=False), chosen, progress
-        )
-        table = assess(con, model, _part_source(source, split, fold), threshold=threshold)
+        model = fitting.fit_with(con, formula, part_source(source, split, fold, keep=False), chosen, progress)
+        table = assess(con, model, part_source(source, split, fold), threshold=threshold)
         per_fold.append(dict(zip(table["metric"].to_pylist(), table["value"].to_pylist())))
     names = list(per_fold[0])
     columns: dict[str, list[Any]] = {"metric": names, "mean": [], "std_dev": []}

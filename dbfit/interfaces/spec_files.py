@@ -15,28 +15,12 @@ from pathlib import Path
 from typing import Any
 
 from dbfit.errors import DbfitError, UsageError
+from dbfit.fitting.options import OPTION_NAMES
 
 REQUIRED = ("database", "name", "formula", "source")
 # The fit's own options: checked by dbfit.fitting.options.FitOptions where the command builds the fit (with the
 # command line's values over these), so their rules live in one place.
-FIT_OPTIONS = (
-    "weights",
-    "offset",
-    "trials",
-    "positive",
-    "reference",
-    "max_iter",
-    "tol",
-    "firth",
-    "by",
-    "robust",
-    "cluster",
-    "population_rate",
-    "shrinkage",
-    "l1_share",
-    "folds",
-    "split_key",
-)
+FIT_OPTIONS = tuple(name for name in OPTION_NAMES if name != "start")  # start values come from refit only
 OPTIONAL = {
     **{key: object for key in FIT_OPTIONS},
     "holdout_key": str,

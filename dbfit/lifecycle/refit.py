@@ -17,30 +17,15 @@ import duckdb
 from dbfit.errors import GateRefusedError, StoreError
 from dbfit.expressions.names import model_name
 from dbfit.expressions.splits import Holdout, part_source
-from dbfit.fitting.options import FitOptions
+from dbfit.fitting.options import OPTION_NAMES, FitOptions
 from dbfit.lifecycle import saving, training
 from dbfit.lifecycle.fingerprint import fingerprint, origin_source
 from dbfit.lifecycle.gates import evaluate, gates_of
 from dbfit.model.fitted import Model
 from dbfit.store import model_store as store
 
-REUSED_OPTIONS = (
-    "weights",
-    "offset",
-    "trials",
-    "reference",
-    "positive",
-    "max_iter",
-    "tol",
-    "firth",
-    "robust",
-    "cluster",
-    "population_rate",
-    "shrinkage",
-    "l1_share",
-    "folds",
-    "split_key",
-)
+# every option of the current version but its start values (refit warm-starts) and by= (refused above)
+REUSED_OPTIONS = tuple(name for name in OPTION_NAMES if name not in ("start", "by"))
 
 
 def refit(
