@@ -316,10 +316,12 @@ def gains_table(engine: DuckDBEngine, scored: exp.Expression, groups: int = GROU
     return pa.table(out)
 
 
-def scored_relation(model, source: str | None) -> exp.Expression:
+def scored_relation(model, source: str | None, by: exp.Expression | None = None) -> exp.Expression:
     """The rows of ``source`` (default: all rows of the model's source) as (y, p), complete rows only.
 
-    ``model`` is a :class:`dbfit.Model`; the scoring query is the one a published view runs.
+    ``model`` is a :class:`dbfit.Model`; the scoring query is the one a published view runs. With ``by`` (a
+    checked expression tree over the source's columns) also the linear predictor ``eta`` and the group ``g``,
+    the text of ``by``'s value (NULL stays NULL).
     """
     from dbfit.deployment.scoring import scoring_query
     from dbfit.expressions.source import source_relation
@@ -335,6 +337,11 @@ def scored_relation(model, source: str | None) -> exp.Expression:
     rows = exp.select(
         exp.alias_(y, "y", quoted=True), exp.alias_(exp.column("probability", quoted=True), "p", quoted=True)
     )
+    if by is not None:
+        rows = rows.select(
+            exp.alias_(exp.column("linear_predictor", quoted=True), "eta", quoted=True),
+            exp.alias_(exp.Cast(this=by.copy(), to=exp.DataType.build("VARCHAR")), "g", quoted=True),
+        )
     rows = rows.from_(scored.subquery("dbfit_scored_rows"))
     complete = (
         exp.select("*")

@@ -13,6 +13,7 @@ from typing import Any
 
 import duckdb
 
+from dbfit.assessment.groups import MIN_GROUP_ROWS
 from dbfit.errors import DbfitError, GateRefusedError, UsageError
 from dbfit.model.fitted import ROW_CHOICES
 
@@ -119,6 +120,16 @@ def add_model_commands(command: Command) -> None:
     assess.add_argument(
         "--threshold", type=float, default=0.5, help="probability cut-off (default %(default)s)"
     )
+    assess.add_argument("--by", help="SQL expression of a group: one row of metrics and gaps per value")
+    assess.add_argument(
+        "--reference", help="with --by: the group the others are compared with (default: largest)"
+    )
+    assess.add_argument(
+        "--min-rows",
+        type=int,
+        default=MIN_GROUP_ROWS,
+        help="with --by: a group of fewer rows gets counts only (default %(default)s)",
+    )
 
     drift = base("drift", "population stability index per variable between the training rows and a source")
     drift.add_argument("--source", required=True, help="the new rows")
@@ -182,6 +193,8 @@ def _run(args: argparse.Namespace) -> tuple[dict[str, Any], int]:
                 con, args.name, source, args.view, version=args.version, live=args.live, replace=args.replace
             )
             return made, OK
+        if args.command == "assess" and args.by is not None:
+            return _assess_groups(con, args), OK
         if args.command == "assess":
             table = dbfit.assess(
                 con, args.name, args.source, rows=args.rows, threshold=args.threshold, version=args.version
@@ -348,6 +361,24 @@ def _report(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[st
         else ("none: a model of successes out of trials is not assessed")
     )
     return {"model": model.name, "version": model.version, "rows": rows, "output": str(path)}
+
+
+def _assess_groups(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[str, Any]:
+    import dbfit
+
+    table = dbfit.assess(
+        con,
+        args.name,
+        args.source,
+        rows=args.rows,
+        threshold=args.threshold,
+        version=args.version,
+        by=args.by,
+        reference=args.reference,
+        min_rows=args.min_rows,
+    )
+    made = {k.decode().removeprefix("dbfit_"): v.decode() for k, v in (table.schema.metadata or {}).items()}
+    return {"model": args.name, **made, "groups": table.to_pylist()}
 
 
 def _rows_note(metrics: Any) -> str | None:

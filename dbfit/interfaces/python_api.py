@@ -9,8 +9,8 @@ import duckdb
 import numpy as np
 import pyarrow as pa
 
+from dbfit.assessment import groups, report
 from dbfit.assessment import metrics as assessment
-from dbfit.assessment import report
 from dbfit.deployment import scoring
 from dbfit.deployment import views as deploy
 from dbfit.deployment.segment_views import segment_scoring_query
@@ -79,13 +79,32 @@ def assess(
     rows: str | None = None,
     threshold: float = 0.5,
     version: int | None = None,
+    by: str | None = None,
+    reference: Any = None,
+    min_rows: int = groups.MIN_GROUP_ROWS,
 ) -> pa.Table:
     """One row per metric (metric, value, note) of ``model``; the note of metric ``rows`` says which rows.
 
     Default: the held-out rows of a holdout fit, else all rows of the model's source (in-sample). ``source``
     assesses all rows of another source; ``rows`` ("held_out", "training", "all") picks a part of the split.
+
+    With ``by`` (a row-wise SQL expression): one row per group instead, with the rates compared against the
+    group ``reference`` (default: the largest); see :func:`dbfit.assessment.groups.assess_groups`.
     """
-    return training.assess(con, model, source, rows=rows, threshold=threshold, version=version)
+    if by is None:
+        return training.assess(con, model, source, rows=rows, threshold=threshold, version=version)
+    resolved = deploy.resolve_model(con, model, version)
+    text, note = resolved.assessed_rows(source, rows)
+    return groups.assess_groups(
+        DuckDBEngine(con),
+        resolved,
+        text,
+        by,
+        reference=reference,
+        threshold=threshold,
+        min_rows=min_rows,
+        rows_note=note,
+    ).table
 
 
 def assessment_tables(

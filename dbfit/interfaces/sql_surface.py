@@ -16,6 +16,7 @@ import duckdb
 from sqlglot import exp
 
 from dbfit.assessment import metrics as assessment
+from dbfit.assessment.groups import GROUP_COLUMNS, MIN_GROUP_ROWS, assess_groups
 from dbfit.deployment.segment_views import publish_segments
 from dbfit.deployment.views import build_scoring, check_score_columns, publish
 from dbfit.engines.duckdb_engine import DuckDBEngine
@@ -96,6 +97,10 @@ DRIFT_FIELDS = {
     "reading": T("VARCHAR"),
 }
 GAINS_COLUMNS = ("share_of_rows", "share_of_positives", "lift", "cumulative_lift")
+GROUP_FIELDS = {
+    name: {"string": T("VARCHAR"), "bool": T("BOOLEAN"), "int64": T("BIGINT")}.get(str(kind), T("DOUBLE"))
+    for name, kind in GROUP_COLUMNS.items()
+}
 
 _ROWS = "SELECT dbfit_row.* FROM (SELECT unnest({call}) AS dbfit_row)"
 _SCORE_OPTIONS = ", standard_error := false, level := 0.95, unseen := 'null'"
@@ -142,7 +147,14 @@ MACROS = {
         (
             "model, source, threshold := 0.5",
             _ROWS.format(call="dbfit_sql_assess(model, source, threshold::VARCHAR, 'metrics')"),
-        )
+        ),
+        (
+            'model, source, "by", reference := NULL, threshold := 0.5, min_rows := ' + str(MIN_GROUP_ROWS),
+            _ROWS.format(
+                call='dbfit_sql_assess_groups(model, source, "by", reference::VARCHAR, threshold::VARCHAR, '
+                "min_rows::VARCHAR)"
+            ),
+        ),
     ],
     "confusion": [
         (
@@ -336,6 +348,22 @@ class SqlFunctions:
             }
             return builders[table]().to_pylist()
 
+    def group_assessment_rows(self, model, source, by, reference, threshold, min_rows):
+        with self.second() as reader:
+            fitted = store.load_model(reader, model, None)
+            text, note = fitted.assessed_rows(source, None)
+            made = assess_groups(
+                DuckDBEngine(reader),
+                fitted,
+                text,
+                by,
+                reference=reference,
+                threshold=_text_number(threshold, "threshold", 0.5),
+                min_rows=_whole_number(min_rows, "min_rows", MIN_GROUP_ROWS),
+                rows_note=note,
+            )
+            return made.table.to_pylist()
+
     def drift_rows(self, model, source):
         with self.second() as reader:
             return psi_table(reader, store.load_model(reader, model, None), source).to_pylist()
@@ -392,6 +420,12 @@ class SqlFunctions:
                 self.assessment_rows,
                 [V, V, V, V],
                 _rows_of({"group": I, **{c: D for c in GAINS_COLUMNS}}),
+            ),
+            (
+                "dbfit_sql_assess_groups",
+                self.group_assessment_rows,
+                [V, V, V, V, V, V],
+                _rows_of(GROUP_FIELDS),
             ),
             ("dbfit_sql_drift", self.drift_rows, [V, V], _rows_of(DRIFT_FIELDS)),
         ]
@@ -483,6 +517,13 @@ def check_readable(reader: duckdb.DuckDBPyConnection, source: str) -> None:
     except SourceError as err:
         if "cannot be found" not in str(err):
             raise
+
+
+def _whole_number(text: str | None, name: str, default: int) -> int:
+    number = _text_number(text, name, default)
+    if not float(number).is_integer():
+        raise FitError(f"{name} := {text!r} is not a whole number")
+    return int(number)
 
 
 def _text_number(text: str | None, name: str, default: float) -> float:

