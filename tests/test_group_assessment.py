@@ -7,8 +7,11 @@ grouped by class) and ISLR ``Default`` (credit card default, grouped by student 
 from __future__ import annotations
 
 import json
+import re
+import shlex
 import subprocess
 import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -20,6 +23,7 @@ from sklearn import metrics as sk
 import dbfit
 from dbfit.assessment.groups import assess_groups
 from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.interfaces.demo import run_demo
 
 NULL_SECOND_CLASS = "CASE WHEN passengerClass = '2nd' THEN NULL ELSE passengerClass END"
 
@@ -214,3 +218,30 @@ def test_command_line_by(tmp_path):
     result = json.loads(done.stdout)
     assert result["reference"] == "1st" and result["by"] == "passengerClass"
     assert result["groups"] == expected
+
+
+def readme_blocks(language: str) -> list[str]:
+    """The ``language`` code blocks of the README's section on assessment by group."""
+    text = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    section = text.split("### Assessment by group", 1)[1].split("\n## ", 1)[0]
+    return re.findall(rf"```{language}\n(.*?)```", section, flags=re.DOTALL)
+
+
+def test_readme_example_runs_as_written_on_the_demo_database(tmp_path, monkeypatch, capsys):
+    monkeypatch.chdir(tmp_path)
+    run_demo("dbfit_demo.duckdb", rows=20_000, quiet=True)
+    capsys.readouterr()
+    (python,) = readme_blocks("python")
+    exec(compile(python, "README.md", "exec"), {})
+    assert "calibration_slope" in capsys.readouterr().out
+    (sql,) = readme_blocks("sql")
+    with dbfit.connect("dbfit_demo.duckdb") as con:
+        rows = con.sql(sql).fetchall()
+    assert [row[0] for row in rows] == ["East", "Harbour", "North", "South", "West"]
+    assert all(row[1] == "ok" for row in rows) and dict((r[0], r[6]) for r in rows)["North"] == 1.0
+    (command,) = readme_blocks("bash")
+    done = subprocess.run(
+        [sys.executable, "-m", *shlex.split(command)], capture_output=True, text=True, timeout=300
+    )
+    assert done.returncode == 0, done.stderr
+    assert len(json.loads(done.stdout)["groups"]) == 5
