@@ -21,6 +21,7 @@ from conftest import load_frame
 from sklearn import metrics as sk
 
 import dbfit
+from dbfit.assessment import groups as groups_module
 from dbfit.assessment.groups import assess_groups
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.interfaces.demo import run_demo
@@ -174,13 +175,26 @@ def test_one_grouped_scan_then_one_query_per_newton_pass(con, titanic):
 
 
 @pytest.mark.parametrize(
-    "by",
-    ["random() > 0.5", "passengerClass; DROP TABLE titanic", "(SELECT 1)", "count(*)", "current_user"],
+    ("by", "message"),
+    [
+        ("random() > 0.5", "function random"),
+        ("passengerClass; DROP TABLE titanic", "contains ';'"),
+        ("(SELECT 1)", "subquery"),
+        ("count(*)", "count"),
+        ("current_user", "current_user"),
+        ("passenger_class", "unknown column 'passenger_class'"),
+    ],
 )
-def test_by_expression_is_checked_against_the_allowlist(con, titanic, by):
-    with pytest.raises(dbfit.DbfitError):
+def test_by_expression_is_checked_against_the_allowlist(con, titanic, by, message):
+    with pytest.raises(dbfit.DbfitError, match=message):
         dbfit.assess(con, titanic, by=by)
     assert con.sql("SELECT count(*) FROM titanic").fetchall()[0][0] == 1309
+
+
+def test_a_key_is_refused_as_a_grouping(con, titanic, monkeypatch):
+    monkeypatch.setattr(groups_module, "MAX_GROUPS", 1000)
+    with pytest.raises(dbfit.DbfitError, match="gives 1,046 groups, more than the 1,000"):
+        dbfit.assess(con, titanic, by="rownames")
 
 
 def test_unknown_reference_group_names_the_groups(con, titanic):

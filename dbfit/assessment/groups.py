@@ -31,6 +31,7 @@ from dbfit.solver.tolerances import FINAL_STEP, MAX_HALVINGS, RISE_TOLERANCE, SI
 
 MIN_GROUP_ROWS = 30  # groups with fewer rows get counts and rates only; their other figures are withheld
 MAX_CALIBRATION_PASSES = 50
+MAX_GROUPS = 10_000  # more groups than this is almost surely a key, not a grouping: refused
 
 OK, TOO_FEW_ROWS, ONE_CLASS = "ok", "too_few_rows", "one_class"
 RATES = ("positive_rate", "true_positive_rate", "false_positive_rate")
@@ -120,6 +121,11 @@ def assess_groups(
     groups = _group_sums(engine, scored, threshold)
     if not groups:
         raise FitError("no rows to assess: every row of the source has a NULL target or predictor")
+    if len(groups) > MAX_GROUPS:
+        raise FitError(
+            f"by {by!r} gives {len(groups):,} groups, more than the {MAX_GROUPS:,} dbfit assesses at once: "
+            "group by a coarser expression (a band, a prefix, a CASE)"
+        )
     bad = sum(int(g["bad"]) for g in groups.values())
     if bad:
         raise FitError(f"{bad} rows have a target outside 0/1 or a probability outside [0, 1]")
