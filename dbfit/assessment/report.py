@@ -1,7 +1,8 @@
 """A standalone HTML report of a fitted model: no external assets, inline CSS and inline SVG, no script.
 
 ``render_report(model, assessment)`` returns the page; ``assessment`` is an optional dict of the pyarrow tables
-of ``dbfit.assessment.metrics`` (``metrics``, ``curve``, ``calibration``, ``gains``). Every piece of user text is escaped.
+of ``dbfit.assessment.metrics`` (``metrics``, ``curve``, ``calibration``, ``gains``), and ``groups`` of
+``dbfit.assessment.groups`` when the assessment was made by group. Every piece of user text is escaped.
 Run ``python -m dbfit.assessment.report --screenshot report.html out.png`` to look at a written report.
 """
 
@@ -14,7 +15,13 @@ from typing import TYPE_CHECKING, Any
 
 import pyarrow as pa
 
-from dbfit.assessment.report_plots import calibration_plot, forest_plot, gains_plot, roc_plot
+from dbfit.assessment.report_plots import (
+    calibration_plot,
+    forest_plot,
+    gains_plot,
+    group_rates_plot,
+    roc_plot,
+)
 from dbfit.assessment.report_style import STYLE
 from dbfit.errors import DbfitError
 
@@ -268,6 +275,70 @@ def _assessment_section(assessment: dict[str, pa.Table]) -> str:
     )
 
 
+GROUP_FIGURES = (
+    ("rows", "rows"),
+    ("events", "events"),
+    ("mean_predicted", "mean predicted"),
+    ("observed_rate", "observed rate"),
+    ("auc", "AUC"),
+    ("log_loss", "log loss"),
+    ("brier_score", "Brier score"),
+    ("calibration_slope", "calibration slope"),
+    ("calibration_intercept", "calibration intercept"),
+)
+GROUP_RATES = (
+    ("positive_rate", "flagged"),
+    ("true_positive_rate", "true-positive rate"),
+    ("false_positive_rate", "false-positive rate"),
+)
+GROUP_CAUTION = (
+    "These figures describe how this model scores these rows, group by group. They do not establish that the "
+    "model or a decision based on it is fair, lawful or unlawful, nor why the groups differ (base rates, the "
+    "data collected, the model). Which groups, which threshold and which gap matter are policy choices; local "
+    "regulation and licensed professional practice come first."
+)
+
+
+def _groups_section(groups: pa.Table) -> str:
+    """The assessment by group: each group's figures, then its rates and their gaps against the reference."""
+    made = {k.decode(): v.decode() for k, v in (groups.schema.metadata or {}).items()}
+    rows = groups.to_pylist()
+
+    def name(row: dict) -> str:
+        shown = "NULL" if row["group"] is None else escape(row["group"])
+        return f"<b>{shown}</b> (reference)" if row["is_reference"] else shown
+
+    def table(columns: list[tuple[str, str]], kind: str) -> str:
+        head = "".join(f"<th>{escape(title)}</th>" for _, title in columns)
+        body = "".join(
+            f"<tr><td>{name(row)}</td><td>{escape(row['status'])}</td>"
+            + "".join(f"<td>{_number(row[key])}</td>" for key, _ in columns)
+            + "</tr>"
+            for row in rows
+        )
+        return (
+            f'<table class="groups {kind}"><thead><tr><th>group</th><th>status</th>{head}</tr></thead>'
+            f"<tbody>{body}</tbody></table>"
+        )
+
+    gaps: list[tuple[str, str]] = []
+    for key, title in GROUP_RATES:
+        gaps += [(key, title), (f"{key}_ratio", "ratio"), (f"{key}_difference", "difference")]
+    notes = "".join(f"<li>{name(row)}: {escape(row['note'])}</li>" for row in rows if row["note"] is not None)
+    threshold = escape(made.get("dbfit_threshold", "?"))
+    return (
+        f'<section class="by-group"><h2>Assessment by group</h2><p class="rows">Groups by '
+        f"<code>{escape(made.get('dbfit_by', '?'))}</code> over {escape(made.get('dbfit_rows', 'the rows'))}; "
+        f"flagged when p &gt;= {threshold}; groups of fewer than {escape(made.get('dbfit_min_rows', '?'))} "
+        f"rows show counts only.</p>{table(list(GROUP_FIGURES), 'figures')}"
+        f"<h3>Rates at the threshold, against the reference group</h3>{table(gaps, 'gaps')}"
+        f"<figure>{group_rates_plot(groups)}</figure>"
+        f'<p class="hint">Ratio = group / reference, difference = group - reference.</p>'
+        + (f'<ul class="notes">{notes}</ul>' if notes else "")
+        + f'<p class="hint">{GROUP_CAUTION}</p></section>'
+    )
+
+
 def render_report(model: Model, assessment: dict[str, pa.Table] | None = None) -> str:
     """The report page as one HTML string."""
     from dbfit import __version__
@@ -281,6 +352,8 @@ def render_report(model: Model, assessment: dict[str, pa.Table] | None = None) -
     ]
     if assessment is not None:
         parts.append(_assessment_section(assessment))
+        if "groups" in assessment:
+            parts.append(_groups_section(assessment["groups"]))
     else:
         parts.append(
             '<section><h2>Assessment</h2><p class="hint">No assessment was given: this report shows the '

@@ -177,3 +177,47 @@ def gains_plot(gains: pa.Table) -> str:
         [(0.0, 0.0)] + [(r["share_of_rows"], r["share_of_positives"] or 0.0) for r in table], "curve"
     )
     return chart.svg()
+
+
+GROUP_RATE_MARKS = (
+    ("positive_rate", "estimate", "share flagged"),
+    ("true_positive_rate", "rate tpr", "true-positive rate"),
+    ("false_positive_rate", "rate fpr", "false-positive rate"),
+)
+
+
+def group_rates_plot(groups: pa.Table) -> str:
+    """Per group (one row each, the first at the top): share flagged, true- and false-positive rate at the
+    threshold, on a 0-1 axis; a group whose rates are withheld shows a note instead."""
+    rows = groups.to_pylist()
+    names = ["NULL" if r["group"] is None else str(r["group"]) for r in rows]
+    labels = max(len(_short(n)) for n in names)
+    left = min(40 + labels * CHAR_WIDTH, 230)
+    chart = Chart.make(
+        (0, 1),
+        (0, len(rows)),
+        "Rates at the threshold by group",
+        "rate (filled: share flagged; amber: true-positive rate; hollow: false-positive rate)",
+        "",
+        "group-rates",
+        height=MARGIN_TOP + MARGIN_BOTTOM + ROW_HEIGHT * len(rows),
+        left=left,
+        width=FOREST_WIDTH,
+    )
+    for index, (row, name) in enumerate(zip(rows, names)):
+        middle = len(rows) - index - 0.5
+        y = num(chart.y(middle) + 4)
+        shown = _short(name) + (" (ref.)" if row["is_reference"] else "")
+        chart.raw(
+            f'<text class="term" x="{num(left - 8)}" y="{y}" text-anchor="end">{escape(shown)}'
+            f"<title>{escape(name)}</title></text>"
+        )
+        marks = [(key, css, title) for key, css, title in GROUP_RATE_MARKS if row[key] is not None]
+        if not marks:
+            chart.raw(
+                f'<text class="aliased-note" x="{num(chart.x(0.02))}" y="{y}">{escape(row["status"])}: '
+                "rates withheld</text>"
+            )
+        for key, css, title in marks:
+            chart.point(row[key], middle, css, f"{name}: {title} {row[key]:.4g}", radius=4.5)
+    return chart.svg(y_ticks=False)

@@ -49,6 +49,8 @@ svg .curve { fill:none; stroke:var(--accent); stroke-width:2.4; stroke-linejoin:
 svg .interval { stroke:var(--accent); stroke-width:2; }
 svg .estimate { fill:var(--accent); stroke:#fff; stroke-width:1.2; }
 svg .estimate.penalised { fill:#fff; stroke:var(--accent); stroke-width:2; }
+svg .rate.tpr { fill:var(--warm); stroke:#fff; stroke-width:1.2; }
+svg .rate.fpr { fill:#fff; stroke:var(--ink); stroke-width:1.6; }
 svg .step { fill:var(--accent-soft); stroke:#fff; }
 svg .aliased-note { font-size:12px; fill:var(--warm); font-style:italic; }
 svg .cut-off { font-size:11px; fill:var(--warm); }

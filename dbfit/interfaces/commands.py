@@ -140,6 +140,8 @@ def add_model_commands(command: Command) -> None:
     report.add_argument("--source", help="rows to assess in the report (default: as for assess)")
     report.add_argument("--rows", choices=ROW_CHOICES, help=ROWS_HELP)
     report.add_argument("--version", type=int, help="stored version (default: the current one)")
+    report.add_argument("--by", help="also assess by group: a SQL expression (as assess --by)")
+    report.add_argument("--reference", help="with --by: the reference group (default: the largest)")
 
 
 def run_model_command(args: argparse.Namespace) -> int:
@@ -353,7 +355,9 @@ def _report(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[st
     # Assessed on --source, else on the held-out rows of a holdout fit, else on the rows it was fitted on.
     tables = None
     if model.design.trials is None:
-        tables = dbfit.assessment_tables(con, model, args.source, rows=args.rows)
+        tables = dbfit.assessment_tables(
+            con, model, args.source, rows=args.rows, by=args.by, reference=args.reference
+        )
     path = write_report(model, args.output, assessment=tables)
     rows = (
         _rows_note(tables["metrics"])

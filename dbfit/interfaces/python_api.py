@@ -115,12 +115,28 @@ def assessment_tables(
     rows: str | None = None,
     threshold: float = 0.5,
     version: int | None = None,
+    by: str | None = None,
+    reference: Any = None,
+    min_rows: int = groups.MIN_GROUP_ROWS,
 ) -> dict[str, pa.Table]:
-    """Metrics, confusion counts, cut-off curve, calibration and gains of ``model`` (rows as ``assess``)."""
+    """Metrics, confusion counts, cut-off curve, calibration and gains of ``model`` (rows as ``assess``); with
+    ``by`` also ``groups``, the table of ``assess(..., by=by)``."""
     resolved = deploy.resolve_model(con, model, version)
     text, note = resolved.assessed_rows(source, rows)
     scored = assessment.scored_relation(resolved, text)
-    return assessment.assessment_tables(DuckDBEngine(con), scored, threshold, rows_note=note)
+    tables = assessment.assessment_tables(DuckDBEngine(con), scored, threshold, rows_note=note)
+    if by is not None:
+        tables["groups"] = assess(
+            con,
+            resolved,
+            source,
+            rows=rows,
+            threshold=threshold,
+            by=by,
+            reference=reference,
+            min_rows=min_rows,
+        )
+    return tables
 
 
 def cross_validate(
