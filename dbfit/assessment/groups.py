@@ -130,13 +130,13 @@ def assess_groups(
     if bad:
         raise FitError(f"{bad} rows have a target outside 0/1 or a probability outside [0, 1]")
     rows = {key: _figures(key, sums, min_rows) for key, sums in groups.items()}
+    chosen = _reference(rows, reference)
     eligible = [key for key, row in rows.items() if row["status"] == OK]
     fits, passes = calibration_fits(engine, scored, eligible)
     for key, (slope, intercept, note) in fits.items():
         rows[key]["calibration_slope"], rows[key]["calibration_intercept"] = slope, intercept
         if note:
             rows[key]["note"] = _joined(rows[key]["note"], note)
-    chosen = _reference(rows, reference)
     _disparities(rows, chosen)
     ordered = sorted(rows, key=lambda key: (key is None, key or ""))
     table = pa.table(
