@@ -213,6 +213,13 @@ def test_a_key_is_refused_as_a_grouping(con, titanic, monkeypatch):
         dbfit.assess(con, titanic, by="rownames")
 
 
+def test_a_boolean_or_number_reference_names_its_group(con, titanic):
+    table = dbfit.assess(con, titanic, by="sex = 'male'", reference=True)
+    assert by_group(table)["true"]["is_reference"] and table["group"].to_pylist() == ["false", "true"]
+    table = dbfit.assess(con, titanic, by="CAST(left(passengerClass, 1) AS INTEGER)", reference=2)
+    assert by_group(table)["2"]["is_reference"]
+
+
 def test_unknown_reference_group_names_the_groups(con, titanic):
     with pytest.raises(dbfit.DbfitError, match="reference group '4th'.*'1st', '2nd', '3rd'"):
         dbfit.assess(con, titanic, by="passengerClass", reference="4th")

@@ -298,7 +298,8 @@ def _key_literal(group: str | None) -> exp.Expression:
 def _reference(rows: dict[str | None, dict[str, Any]], reference: Any) -> str | None:
     if reference is None:
         return max(rows, key=lambda key: rows[key]["rows"])
-    wanted = reference if isinstance(reference, str) else str(reference)
+    # the text DuckDB gives the value: true/false for a boolean, str() of a number matches its cast
+    wanted = str(reference).lower() if isinstance(reference, bool) else str(reference)
     if wanted not in rows:
         shown = ", ".join(
             "NULL" if k is None else repr(k) for k in sorted(rows, key=lambda k: (k is None, k or ""))
