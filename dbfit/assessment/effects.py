@@ -48,6 +48,7 @@ from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError
 from dbfit.expressions import builders as sb
 from dbfit.expressions.source import source_relation
+from dbfit.fitting.likelihood_ratio_terms import fitted_rows_design
 from dbfit.model import inference
 from dbfit.model.fitted import Model
 
@@ -544,9 +545,7 @@ def marginal_effects(
     The table's schema metadata says where the effects were taken (``dbfit_at``), over which rows
     (``dbfit_rows``) and how many scans it cost (``dbfit_scans``).
     """
-    design = model.design
-    if source is None and model.source_is_data:
-        model.source_or_own(None)
+    design = fitted_rows_design(model) if source is None else model.design
     beta = np.nan_to_num(np.asarray(model.estimates, dtype=float), nan=0.0)
     effects = choose_effects(design, variables)
     before = engine.scans

@@ -13,6 +13,7 @@ a column leaves the intercept near its answer); each pass is one scan.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from typing import Any
 
@@ -22,6 +23,7 @@ import pyarrow as pa
 from dbfit.design.layout import Design, build_design
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError
+from dbfit.expressions.source import source_relation
 from dbfit.fitting.prior_correction import fitted_estimates
 from dbfit.fitting.statistics import StatisticsPass
 from dbfit.model import inference
@@ -55,11 +57,17 @@ def refuse_likelihood_ratio(model: Model) -> None:
     model.source_or_own(None)
 
 
+def fitted_rows_design(model: Model) -> Design:
+    """The model's design over the rows it was fitted on: the training part of a holdout fit, one segment's
+    rows for a segment's model (whose design was laid out over the whole source), else its source."""
+    return dataclasses.replace(model.design, relation=source_relation(model.rows_source("training")))
+
+
 def profiled_design(engine: DuckDBEngine, model: Model) -> Design:
     """The model's design with the sums of its profiling scan. A model read from the store or a document
     keeps its columns but not those sums (nor the typing of its target), so its rows are profiled again (one
     scan), with its reference levels; the source must still give the same columns and rows."""
-    design = model.design
+    design = fitted_rows_design(model)
     if design.trial_sum > 0:
         return design
     again = build_design(
