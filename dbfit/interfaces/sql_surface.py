@@ -16,8 +16,8 @@ import duckdb
 from sqlglot import exp
 
 from dbfit.assessment import metrics as assessment
-from dbfit.assessment.groups import GROUP_COLUMNS, MIN_GROUP_ROWS, assess_groups
 from dbfit.assessment.effects import EFFECT_COLUMNS, marginal_effects
+from dbfit.assessment.groups import GROUP_COLUMNS, MIN_GROUP_ROWS, assess_groups
 from dbfit.deployment.segment_views import publish_segments
 from dbfit.deployment.views import build_scoring, check_score_columns, publish
 from dbfit.engines.duckdb_engine import DuckDBEngine
