@@ -81,12 +81,18 @@ def test_the_frame_is_registered_only_for_the_call_even_when_it_fails(con, monke
     assert registered_frames(con) == []
 
 
-def test_coefficients_are_arrow_and_read_by_pandas_and_polars(con):
+def test_coefficients_are_arrow_and_read_by_pandas_and_polars_without_a_copy(con):
+    import pandas as pd
+
     load_frame(con, "birthwt", birthwt_frame())
     model = dbfit.fit(con, FORMULA, "birthwt", progress=False)
     assert isinstance(model.coefficients, pa.Table)
-    assert model.coefficients.to_pandas()["estimate"].tolist() == model.coefficients["estimate"].to_pylist()
-    assert polars.from_arrow(model.coefficients)["term"].to_list() == model.labels
+    values = model.coefficients["estimate"].chunk(0).buffers()[1].address
+    in_pandas = model.coefficients.to_pandas(types_mapper=pd.ArrowDtype)["estimate"].array.__arrow_array__()
+    in_polars = polars.from_arrow(model.coefficients, rechunk=False)["estimate"].to_arrow()
+    assert in_pandas.chunk(0).buffers()[1].address == values
+    assert in_polars.buffers()[1].address == values
+    assert in_polars.to_pylist() == model.coefficients["estimate"].to_pylist()
 
 
 class Cells(HTMLParser):
@@ -176,3 +182,15 @@ def test_progress_true_watches_scans_where_stderr_is_not_a_terminal(
     dbfit.fit(con, FORMULA, "birthwt", progress=progress)
     assert bool(calls) == watched
     assert ("dbfit pass 1: deviance" in capsys.readouterr().err) == (progress is True)
+
+
+def test_readme_example_runs_on_the_demo_database(demo_database):
+    # The README's notebook example, as written, on `dbfit demo`'s database (20,000 rows here).
+    from conftest import readme_blocks
+
+    (python,) = readme_blocks("## Use from a notebook")["python"]
+    names: dict = {}
+    exec(compile(python, "README.md", "exec"), names)
+    names["con"].close()
+    assert names["scored"].num_rows == 1000 and "reason_2" in names["scored"].column_names
+    assert "<table>" in names["model"]._repr_html_()

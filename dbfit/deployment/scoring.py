@@ -21,8 +21,9 @@ intercept is not centred, so there the baseline of a numeric column is 0) and ev
 reference level); ``baseline=`` gives a row of its own. The contributions of all terms then sum to the linear
 predictor minus the baseline's (the offset, not a term, is in both). The rank of a term is 1 + the number of
 terms with a larger contribution, or an equal one earlier in the formula (ties are broken by formula order),
-written as a CASE over the terms: plain SQL in every dialect. DuckDB computes each contribution once, as an
-inner column that ``* EXCLUDE`` leaves out; the other dialects, without EXCLUDE, repeat the contributions inline.
+written as a CASE over the terms: plain SQL in every dialect. DuckDB computes each contribution once, in a
+STRUCT column of the inner query that ``* EXCLUDE`` leaves out; the other dialects, without EXCLUDE, repeat the
+contributions inline.
 """
 
 from __future__ import annotations
@@ -48,6 +49,7 @@ SOURCE_ALIAS, SCORED_ALIAS = "dbfit_source", "dbfit_scored"
 SCORE_COLUMNS = ("linear_predictor", "probability")
 INTERVAL_COLUMNS = ("linear_predictor_se", "probability_low", "probability_high")
 DEFAULT_REASONS = 4
+CONTRIBUTIONS = "dbfit_contributions"
 
 INTEGER_TYPE = re.compile(r"^U?(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT)$|^INT\d*$", re.IGNORECASE)
 
@@ -201,17 +203,21 @@ def scoring_query(
     if count:
         contributions = term_contributions(design, coefficient, baseline_values(design, baseline), dialect)
         if dialect.name == "duckdb":
-            # Each contribution once, as an inner column that the outer SELECT's * leaves out.
-            inner = inner.select(
-                *[
-                    exp.alias_(c, f"dbfit_contribution_{i}", quoted=True)
-                    for i, (_, c) in enumerate(contributions)
-                ]
-            )
-            contributions = [
-                (label, sb.column(f"dbfit_contribution_{i}")) for i, (label, _) in enumerate(contributions)
+            # Each contribution once, in one STRUCT column of the inner query that the outer * leaves out
+            # (one column: DuckDB keeps the text of a view's EXCLUDE list in no fixed order).
+            fields = [
+                exp.PropertyEQ(this=exp.Literal.string(f"c{i}"), expression=c)
+                for i, (_, c) in enumerate(contributions)
             ]
-            outer.expressions[0].this.set("except_", [c.copy() for _, c in contributions])
+            inner = inner.select(exp.alias_(exp.Struct(expressions=fields), CONTRIBUTIONS, quoted=True))
+            contributions = [
+                (
+                    label,
+                    exp.StructExtract(this=sb.column(CONTRIBUTIONS), expression=exp.Literal.string(f"c{i}")),
+                )
+                for i, (label, _) in enumerate(contributions)
+            ]
+            outer.expressions[0].this.set("except_", [sb.column(CONTRIBUTIONS)])
         elif joined is not None:
             raise DbfitError("reason codes of live or segment scoring are written in DuckDB SQL only")
         outer = outer.select(*reason_expressions(contributions, count))
