@@ -252,6 +252,13 @@ def test_segment_models_score_reasons_with_their_own_estimates(con, births):
     ).fetchall()
     for race, eta, *contributions in rows:
         assert abs(sum(contributions) - (eta - baseline_linear_predictor(fitted.models[race]))) < 1e-12
+    dbfit.save(con, fitted, "low_by_race")
+    con.execute("SELECT * FROM dbfit.publish_segments('low_by_race', 'birthwt', 'why_by_race', reasons := 3)")
+    published = con.execute(
+        "SELECT race_name, linear_predictor, reason_1_contribution, reason_2_contribution, "
+        "reason_3_contribution FROM why_by_race"
+    ).fetchall()
+    assert sorted(published) == sorted(rows)
 
 
 def test_sql_and_command_line_give_the_python_reasons(stored):

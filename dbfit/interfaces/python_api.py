@@ -145,9 +145,10 @@ def cross_validate(
     return pa.table(columns)
 
 
-fit.__doc__ = (
-    fitting.fit.__doc__ or ""
-) + "\n    name : store the fitted model as the next version of this name.\n"
+fit.__doc__ = (fitting.fit.__doc__ or "") + (
+    "\n    name : store the fitted model as the next version of this name.\n"
+    "    source may also be a pandas or polars DataFrame or an Arrow table (see :func:`frame_source`).\n"
+)
 
 
 @version_by_keyword(2)

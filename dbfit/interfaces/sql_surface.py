@@ -140,8 +140,10 @@ MACROS = {
     ],
     "publish_segments": [
         (
-            "model, source, view, unseen := 'null', \"replace\" := false",
-            _ROWS.format(call='dbfit_sql_publish_segments(model, source, view, unseen, "replace")'),
+            "model, source, view, unseen := 'null', \"replace\" := false, reasons := 0, baseline := NULL",
+            _ROWS.format(
+                call='dbfit_sql_publish_segments(model, source, view, unseen, "replace", reasons, baseline)'
+            ),
         )
     ],
     "assess": [
@@ -325,10 +327,17 @@ class SqlFunctions:
             )
         return [{k: made[k] for k in PUBLISHED_FIELDS}]
 
-    def publish_segment_rows(self, model, source, view, unseen, replace):
+    def publish_segment_rows(self, model, source, view, unseen, replace, reasons, baseline):
         with self.second() as writer:
             made = publish_segments(
-                writer, model, source=source, view=view, unseen=unseen or "null", replace=bool(replace)
+                writer,
+                model,
+                source=source,
+                view=view,
+                unseen=unseen or "null",
+                replace=bool(replace),
+                reasons=reasons or 0,
+                baseline=_baseline_row(baseline),
             )
         return [{k: made[k] for k in SEGMENT_VIEW_FIELDS}]
 
@@ -376,7 +385,7 @@ class SqlFunctions:
             (
                 "dbfit_sql_publish_segments",
                 self.publish_segment_rows,
-                [V, V, V, V, B],
+                [V, V, V, V, B, I, V],
                 _rows_of(SEGMENT_VIEW_FIELDS),
             ),
             ("dbfit_sql_drop", self.drop_rows, [V, I], _rows_of(DROPPED_FIELDS)),
