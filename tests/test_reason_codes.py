@@ -15,12 +15,14 @@ import sys
 
 import numpy as np
 import pytest
+import sqlglot
 from conftest import load_frame
 from test_scoring import FORMULA, birthwt_frame
 
 import dbfit
 from dbfit.deployment.scoring import baseline_linear_predictor
 from dbfit.errors import DbfitError
+from dbfit.expressions.dialects import supported
 from dbfit.interfaces.cli import main
 
 TERMS = ["age", "lwt", "race_name", "smoker", "lwt:smoker"]
@@ -35,14 +37,16 @@ def births(con):
     return frame, model
 
 
-def numpy_reasons(model, rows: list[dict], means: dict[str, float], baseline: dict | None = None):
+def numpy_reasons(
+    model, rows: list[dict], means: dict[str, float], baseline: dict | None = None, terms: list[str] = TERMS
+):
     """Per row: every term's contribution, in formula order, from the estimates and the design's columns."""
     estimates = np.nan_to_num(model.estimates)
     design = model.design
     offset = 1 if design.intercept else 0
     out = []
     for row in rows:
-        contributions = dict.fromkeys(TERMS, 0.0)
+        contributions = dict.fromkeys(terms, 0.0)
         for j, column in enumerate(design.columns):
             texts = [design.factors[i].text for i in column.numeric]
             levels = [(design.factors[i].text, level) for i, level in column.indicators]
@@ -64,9 +68,10 @@ def column_value(values: dict, texts: list[str], levels: list[tuple[str, object]
 
 def ranked(contributions: dict[str, float]) -> list[tuple[str, float]]:
     """Largest contribution first; ties by formula order (np.lexsort is stable on its last key)."""
-    values = np.array([contributions[t] for t in TERMS])
-    order = np.lexsort((np.arange(len(TERMS)), -values))
-    return [(TERMS[i], values[i]) for i in order]
+    terms = list(contributions)
+    values = np.array([contributions[t] for t in terms])
+    order = np.lexsort((np.arange(len(terms)), -values))
+    return [(terms[i], values[i]) for i in order]
 
 
 def data_means(frame) -> dict[str, float]:
@@ -94,6 +99,33 @@ def test_contributions_sum_to_the_linear_predictor_less_the_baseline_and_order_m
         assert abs(sum(v for _, v in got) - (lp - base)) < 1e-12, row
         assert [name for name, _ in got] == [name for name, _ in ranked(wanted)], row
         np.testing.assert_allclose([v for _, v in got], [v for _, v in ranked(wanted)], rtol=0, atol=1e-12)
+
+
+def test_a_product_of_numeric_columns_is_one_reason_against_the_mean_of_the_product(con, births):
+    # age:lwt (a product of two numeric columns) has its own training mean, mean(age x lwt), not mean(age) x mean(lwt).
+    frame, _ = births
+    terms = ["age", "lwt", "age:lwt", "race_name"]
+    model = dbfit.fit(con, "low ~ age + lwt + age:lwt + race_name", "birthwt", progress=False)
+    assert [c.term for c in model.design.columns] == ["age", "lwt", "age:lwt", "race_name", "race_name"]
+    means = {**data_means(frame), "age*lwt": (frame.age * frame.lwt).mean()}
+    table = dbfit.score(con, model, reasons=4)
+    rows = table.select(["age", "lwt", "race_name"]).to_pylist()
+    expected = numpy_reasons(model, rows, means, terms=terms)
+    estimates = model.estimates
+    base = estimates[0] + estimates[1:4] @ np.array([means["age"], means["lwt"], means["age*lwt"]])
+    for wanted, got, lp in zip(expected, reason_rows(table, 4), table["linear_predictor"].to_pylist()):
+        assert [name for name, _ in got] == [name for name, _ in ranked(wanted)]
+        np.testing.assert_allclose([v for _, v in got], [v for _, v in ranked(wanted)], rtol=0, atol=1e-12)
+        assert abs(sum(v for _, v in got) - (lp - base)) < 1e-12
+
+
+def test_every_dialect_writes_reasons_that_parse_back(births):
+    # Spark, Snowflake, BigQuery and T-SQL are not run here: their text must at least parse in that dialect.
+    _, model = births
+    for name in supported():
+        sql = dbfit.scoring_sql(model, name, source="births", reasons=3)
+        tree = sqlglot.parse_one(sql, read=name)
+        assert {"reason_3", "reason_3_contribution"} <= set(tree.named_selects), name
 
 
 def test_ties_follow_formula_order(con, births):
