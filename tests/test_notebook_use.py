@@ -81,6 +81,13 @@ def test_the_frame_is_registered_only_for_the_call_even_when_it_fails(con, monke
     assert registered_frames(con) == []
 
 
+def test_a_stream_that_can_be_read_once_is_refused_naming_what_to_pass(con):
+    table = frames(birthwt_frame())["arrow"]
+    with pytest.raises(DbfitError, match=r"RecordBatchReader can be read once.*read_all\(\)"):
+        dbfit.fit(con, FORMULA, pa.RecordBatchReader.from_batches(table.schema, table.to_batches()))
+    assert registered_frames(con) == []
+
+
 def test_coefficients_are_arrow_and_read_by_pandas_and_polars_without_a_copy(con):
     import pandas as pd
 

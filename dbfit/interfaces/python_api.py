@@ -212,6 +212,11 @@ def frame_source(con: duckdb.DuckDBPyConnection, source: Any) -> Iterator[Any]:
     if source is None or isinstance(source, str) or package not in ("pandas", "polars", "pyarrow"):
         yield source
         return
+    if isinstance(source, pa.RecordBatchReader):
+        raise SourceError(
+            "a pyarrow RecordBatchReader can be read once, and dbfit reads its source several times: "
+            "pass a pyarrow Table (reader.read_all()) instead"
+        )
     name = f"dbfit_frame_{uuid.uuid4().hex[:12]}"
     try:
         con.register(name, source)
