@@ -11,13 +11,26 @@ errors of the linear predictor are sqrt(x' V x) from the stored covariance V (de
 probability interval maps the Wald interval of the linear predictor through the logistic function (common
 practice; see Agresti 2013, Categorical Data Analysis, 3rd ed., Wiley, on inference for logistic regression,
 cited from memory).
+
+Reason codes (opt-in, ``reasons=k``) name, for each row, the k formula terms whose contributions push its
+linear predictor most towards the event, relative to a baseline design row: the contribution of a term is the
+sum over its design columns of estimate x (row value - baseline value), so a categorical (all its indicator
+columns) or an interaction is one reason. The default baseline is each numeric column at its training mean
+(the unweighted mean over the rows used, which the design keeps as the column's centre; a model without an
+intercept is not centred, so there the baseline of a numeric column is 0) and every indicator at 0 (the
+reference level); ``baseline=`` gives a row of its own. The contributions of all terms then sum to the linear
+predictor minus the baseline's (the offset, not a term, is in both). The rank of a term is 1 + the number of
+terms with a larger contribution, or an equal one earlier in the formula (ties are broken by formula order),
+written as a CASE over the terms: plain SQL in every dialect. DuckDB computes each contribution once, in a
+STRUCT column of the inner query that ``* EXCLUDE`` leaves out; the other dialects, without EXCLUDE, repeat the
+contributions inline.
 """
 
 from __future__ import annotations
 
 import math
 import re
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from statistics import NormalDist
 from typing import Any
 
@@ -35,6 +48,8 @@ UNSEEN_POLICIES = ("null", "reference", "error")
 SOURCE_ALIAS, SCORED_ALIAS = "dbfit_source", "dbfit_scored"
 SCORE_COLUMNS = ("linear_predictor", "probability")
 INTERVAL_COLUMNS = ("linear_predictor_se", "probability_low", "probability_high")
+DEFAULT_REASONS = 4
+CONTRIBUTIONS = "dbfit_contributions"
 
 INTEGER_TYPE = re.compile(r"^U?(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT)$|^INT\d*$", re.IGNORECASE)
 
@@ -147,16 +162,21 @@ def scoring_query(
     with_standard_error: bool = False,
     level: float = 0.95,
     dialect: Dialect = DUCKDB,
+    reasons: int | bool | None = 0,
+    baseline: Mapping[str, Any] | None = None,
 ) -> exp.Select:
-    """SELECT every column of ``relation`` plus the score columns (and on request the interval columns).
+    """SELECT every column of ``relation`` plus the score columns (and on request the interval columns and
+    ``reasons`` reason codes against ``baseline``, see the module docstring).
 
     ``joined`` is a relation the ``coefficient`` expressions read: cross-joined (one row), or LEFT JOINed
     on ``join_on`` (one row per segment, see :mod:`dbfit.deployment.segment_views`).
     """
     check_options(dialect, unseen)
+    count = check_reasons(reasons)
     design = model.design
     relation = _aliased(relation)
-    eta = linear_predictor(design, coefficient or constant_coefficients(model), unseen, dialect)
+    coefficient = coefficient or constant_coefficients(model)
+    eta = linear_predictor(design, coefficient, unseen, dialect)
     inner = exp.select(
         exp.Column(this=exp.Star(), table=exp.to_identifier(SOURCE_ALIAS)),
         exp.alias_(eta, "linear_predictor", quoted=True),
@@ -164,11 +184,7 @@ def scoring_query(
     if with_standard_error:
         se = standard_error(design, model.covariance, unseen, dialect)
         inner = inner.select(exp.alias_(se, "linear_predictor_se", quoted=True))
-    inner = inner.from_(relation)
-    if joined is not None and join_on is not None:
-        inner = inner.join(joined, on=join_on, join_type="LEFT")
-    elif joined is not None:
-        inner = inner.join(joined, join_type="CROSS")
+    inner = _joined(inner.from_(relation), joined, join_on)
     lp = sb.column("linear_predictor")
     outer = exp.select(
         exp.Column(this=exp.Star(), table=exp.to_identifier(SCORED_ALIAS)),
@@ -184,7 +200,129 @@ def scoring_query(
         outer = outer.select(
             exp.alias_(low, "probability_low", quoted=True), exp.alias_(high, "probability_high", quoted=True)
         )
+    if count:
+        contributions = term_contributions(design, coefficient, baseline_values(design, baseline), dialect)
+        if dialect.name == "duckdb":
+            # Each contribution once, in one STRUCT column of the inner query that the outer * leaves out
+            # (one column: DuckDB keeps the text of a view's EXCLUDE list in no fixed order).
+            fields = [
+                exp.PropertyEQ(this=exp.Literal.string(f"c{i}"), expression=c)
+                for i, (_, c) in enumerate(contributions)
+            ]
+            inner = inner.select(exp.alias_(exp.Struct(expressions=fields), CONTRIBUTIONS, quoted=True))
+            contributions = [
+                (
+                    label,
+                    exp.StructExtract(this=sb.column(CONTRIBUTIONS), expression=exp.Literal.string(f"c{i}")),
+                )
+                for i, (label, _) in enumerate(contributions)
+            ]
+            outer.expressions[0].this.set("except_", [sb.column(CONTRIBUTIONS)])
+        elif joined is not None:
+            raise DbfitError("reason codes of live or segment scoring are written in DuckDB SQL only")
+        outer = outer.select(*reason_expressions(contributions, count))
     return outer.from_(inner.subquery(SCORED_ALIAS))
+
+
+def check_reasons(reasons: Any) -> int:
+    """The number of reasons asked for (True: :data:`DEFAULT_REASONS`; None, False or 0: none)."""
+    if reasons is None or reasons is False:
+        return 0
+    if reasons is True:
+        reasons = DEFAULT_REASONS
+    if not isinstance(reasons, int) or reasons < 0:
+        raise DbfitError(f"reasons must be a whole number of reasons per row, e.g. 4 (got {reasons!r})")
+    return reasons
+
+
+def reason_columns(reasons: int) -> tuple[str, ...]:
+    """``reason_1``, ``reason_1_contribution``, ``reason_2``, ... for ``reasons`` ranks."""
+    return tuple(n for r in range(1, reasons + 1) for n in (f"reason_{r}", f"reason_{r}_contribution"))
+
+
+def baseline_values(design: Design, baseline: Mapping[str, Any] | None = None) -> list[float]:
+    """The baseline value of each design column: the training mean of a numeric column (its centre; 0 when
+    not centred) and 0 for an indicator, or the column's value at the row ``baseline`` gives."""
+    if baseline is None:
+        return [0.0 if column.indicators else float(column.centre) for column in design.columns]
+    row = _baseline_row(design, baseline)
+    values = []
+    for column in design.columns:
+        value = math.prod(float(row[i]) for i in column.numeric)
+        values.append(value if all(row[i] == level for i, level in column.indicators) else 0.0)
+    return values
+
+
+def baseline_linear_predictor(model: Any, baseline: Mapping[str, Any] | None = None) -> float:
+    """The linear predictor of the baseline row (without any offset): intercept + sum b_j x baseline_j."""
+    design = model.design
+    has_intercept = 1 if design.intercept else 0
+    total = float(model.estimates[0]) if design.intercept else 0.0
+    for j, value in enumerate(baseline_values(design, baseline)):
+        estimate = float(model.estimates[j + has_intercept])
+        total += estimate * value if estimate == estimate else 0.0
+    return total
+
+
+def term_contributions(
+    design: Design, coefficient: Coefficient, base: list[float], dialect: Dialect
+) -> list[tuple[str, exp.Expression]]:
+    """Each formula term with an estimate, in formula order: its label and SQL for
+    sum_j b_j (x_j - base_j) over its design columns."""
+    has_intercept = 1 if design.intercept else 0
+    pieces: dict[str, list[exp.Expression]] = {}
+    for term_columns in _columns_by_term(design):
+        kept = [(j, c) for j, c in term_columns if coefficient(j + has_intercept) is not None]
+        if not kept:
+            continue
+        weighted = [(coefficient(j + has_intercept), c) for j, c in kept]
+        term = pieces.setdefault(kept[0][1].term, [])
+        term.append(_term_contribution(design, weighted, dialect))
+        term += [sb.mul(double(-base[j]), coefficient(j + has_intercept)) for j, _ in kept if base[j] != 0.0]
+    return [(label, sb.as_double(sb.add(*parts))) for label, parts in pieces.items()]
+
+
+def reason_expressions(contributions: list[tuple[str, exp.Expression]], reasons: int) -> list[exp.Expression]:
+    """``reason_r`` and ``reason_r_contribution`` for r = 1..reasons from each term's label and contribution
+    (a column or the expression itself): NULL where the linear predictor is NULL or there is no r-th term.
+
+    The rank of term i is 1 + the number of terms j with c_j > c_i, or with c_j = c_i and j before i, so the
+    ranks are 1..m with ties broken by formula order; rank r is found with a CASE over the terms.
+    """
+    ranks = [_rank(contributions, i) for i in range(len(contributions))]
+    missing = exp.Is(this=sb.column("linear_predictor"), expression=exp.Null())
+    picked: list[exp.Expression] = []
+    for r in range(1, reasons + 1):
+        for name, value_of in ((f"reason_{r}", 0), (f"reason_{r}_contribution", 1)):
+            ifs = [
+                exp.If(
+                    this=exp.EQ(this=rank.copy(), expression=exp.Literal.number(r)),
+                    true=exp.Literal.string(label) if value_of == 0 else contribution.copy(),
+                )
+                for rank, (label, contribution) in zip(ranks, contributions)
+            ]
+            value = exp.Case(ifs=[exp.If(this=missing.copy(), true=exp.Null()), *ifs])
+            picked.append(exp.alias_(value, name, quoted=True))
+    return picked
+
+
+def _rank(contributions: list[tuple[str, exp.Expression]], i: int) -> exp.Expression:
+    """1 + the number of terms ahead of term i (larger contribution, or equal and earlier in the formula)."""
+    mine = contributions[i][1]
+    ahead = [
+        exp.Case(
+            ifs=[
+                exp.If(
+                    this=(exp.GTE if j < i else exp.GT)(this=other.copy(), expression=mine.copy()),
+                    true=exp.Literal.number(1),
+                )
+            ],
+            default=exp.Literal.number(0),
+        )
+        for j, (_, other) in enumerate(contributions)
+        if j != i
+    ]
+    return sb.paren(sb.add(exp.Literal.number(1), *ahead))
 
 
 def scoring_sql(
@@ -195,6 +333,8 @@ def scoring_sql(
     unseen: str = "null",
     standard_error: bool = False,
     level: float = 0.95,
+    reasons: int | bool | None = 0,
+    baseline: Mapping[str, Any] | None = None,
 ) -> str:
     """The scoring SELECT as text in the dialect named ``dialect`` (see :func:`dbfit.scoring_sql`)."""
     target = dialects.dialect(dialect)
@@ -206,8 +346,52 @@ def scoring_sql(
         with_standard_error=standard_error,
         level=level,
         dialect=target,
+        reasons=reasons,
+        baseline=baseline,
     )
     return query.sql(dialect=target.name)
+
+
+def _joined(query: exp.Select, joined: exp.Expression | None, join_on: exp.Expression | None) -> exp.Select:
+    if joined is not None and join_on is not None:
+        return query.join(joined.copy(), on=join_on.copy(), join_type="LEFT")
+    if joined is not None:
+        return query.join(joined.copy(), join_type="CROSS")
+    return query
+
+
+def _baseline_row(design: Design, baseline: Mapping[str, Any]) -> list[Any]:
+    """The baseline value of every factor, by the factor's text; each one named, numbers finite, levels known."""
+    names = [factor.text for factor in design.factors]
+    if not isinstance(baseline, Mapping):
+        raise DbfitError(
+            f"baseline must map each variable to its value, e.g. {{{names[0]!r}: ...}}"
+            if names
+            else "baseline must be a mapping of variable to value"
+        )
+    unknown = [str(k) for k in baseline if k not in names]
+    missing = [n for n in names if n not in baseline]
+    if unknown or missing:
+        raise DbfitError(
+            f"baseline must give exactly the model's variables {', '.join(names)}"
+            + (f"; not in the model: {', '.join(unknown)}" if unknown else "")
+            + (f"; missing: {', '.join(missing)}" if missing else "")
+        )
+    row: list[Any] = []
+    for factor in design.factors:
+        value = baseline[factor.text]
+        if factor.kind == "numeric":
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+                raise DbfitError(f"baseline {factor.text} must be a finite number (got {value!r})")
+            row.append(float(value))
+            continue
+        matches = [level for level in factor.levels if level == value and type(level) is type(value)]
+        matches = matches or [level for level in factor.levels if str(level) == str(value)]
+        if not matches:
+            shown = ", ".join(map(str, factor.levels[:10])) + (", ..." if len(factor.levels) > 10 else "")
+            raise DbfitError(f"baseline {factor.text}={value!r} is not a level seen in training ({shown})")
+        row.append(matches[0])
+    return row
 
 
 def _aliased(relation: exp.Expression) -> exp.Expression:

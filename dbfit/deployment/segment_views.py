@@ -8,12 +8,13 @@ estimate that is NULL in a segment (aliased there) contributes nothing, as in a 
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from typing import Any
 
 import duckdb
 from sqlglot import exp
 
-from dbfit.deployment.scoring import Coefficient, scoring_query
+from dbfit.deployment.scoring import Coefficient, check_reasons, scoring_query
 from dbfit.deployment.views import NOT_GIVEN, check_score_columns, source_and_view
 from dbfit.errors import StoreError
 from dbfit.expressions import builders as sb
@@ -30,9 +31,17 @@ KEY = "dbfit_segment"
 
 
 def segment_scoring_query(
-    models: dict[Any, Model], by: exp.Expression, source: str, *, unseen: str = "null"
+    models: dict[Any, Model],
+    by: exp.Expression,
+    source: str,
+    *,
+    unseen: str = "null",
+    reasons: int | bool | None = 0,
+    baseline: Mapping[str, Any] | None = None,
 ) -> exp.Select:
-    """Every column of ``source`` plus ``linear_predictor`` and ``probability`` from each row's segment model."""
+    """Every column of ``source`` plus ``linear_predictor`` and ``probability`` from each row's segment model
+    (and reason codes against ``baseline``: the segments share a design, so the baseline row is the same and
+    each row's contributions use its own segment's estimates)."""
     if not models:
         raise StoreError("there is no segment model to score with")
     first = next(iter(models.values()))
@@ -51,6 +60,8 @@ def segment_scoring_query(
         joined=estimates,
         join_on=on,
         unseen=unseen,
+        reasons=reasons,
+        baseline=baseline,
     )
 
 
@@ -84,6 +95,8 @@ def publish_segments(
     view: str = NOT_GIVEN,
     unseen: str = "null",
     replace: bool = False,
+    reasons: int | bool | None = 0,
+    baseline: Mapping[str, Any] | None = None,
 ) -> dict[str, Any]:
     """``publish_segments(con, fitted, source, view)``: create ``view`` (or replace the one dbfit published
     under that name) scoring each row of ``source`` with its segment's model, estimates pinned. Another view
@@ -104,11 +117,11 @@ def publish_segments(
         if source is None:
             raise StoreError("publishing stored segment models needs the source to score")
         models, by = stored_segments(con, fitted)
-    check_score_columns(con, source_relation(source), False)
+    check_score_columns(con, source_relation(source), False, check_reasons(reasons))
     statement = publish_view(
         con,
         target,
-        segment_scoring_query(models, by, source, unseen=unseen),
+        segment_scoring_query(models, by, source, unseen=unseen, reasons=reasons, baseline=baseline),
         {"model": fitted if isinstance(fitted, str) else None, "version": None, "mode": "pinned"},
         replace=replace,
     )

@@ -8,12 +8,20 @@ none promoted), so a promoted refit of the same formula flows through and a refu
 from __future__ import annotations
 
 import warnings
+from collections.abc import Mapping
 from typing import Any
 
 import duckdb
 from sqlglot import exp
 
-from dbfit.deployment.scoring import INTERVAL_COLUMNS, SCORE_COLUMNS, Coefficient, scoring_query
+from dbfit.deployment.scoring import (
+    INTERVAL_COLUMNS,
+    SCORE_COLUMNS,
+    Coefficient,
+    check_reasons,
+    reason_columns,
+    scoring_query,
+)
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import DbfitError, StoreError
 from dbfit.expressions import builders as sb
@@ -46,12 +54,15 @@ def build_scoring(
     unseen: str = "null",
     standard_error: bool = False,
     level: float = 0.95,
+    reasons: int | bool | None = 0,
+    baseline: Mapping[str, Any] | None = None,
 ) -> exp.Select:
-    """The DuckDB scoring query of ``model`` over ``source``, after checking the source's columns on ``con``."""
+    """The DuckDB scoring query of ``model`` over ``source``, after checking the source's columns on ``con``;
+    ``reasons`` and ``baseline`` add reason codes (see :mod:`dbfit.deployment.scoring`)."""
     check_scoring_options(live=live, standard_error=standard_error, level=level)
     relation = source_relation(model.source_or_own(source))
     if con is not None:
-        check_score_columns(con, relation, standard_error)
+        check_score_columns(con, relation, standard_error, check_reasons(reasons))
     coefficient, joined = None, None
     if live:
         if model.name is None:
@@ -67,6 +78,8 @@ def build_scoring(
         unseen=unseen,
         with_standard_error=standard_error,
         level=level,
+        reasons=reasons,
+        baseline=baseline,
     )
 
 
@@ -80,10 +93,10 @@ def check_scoring_options(*, live: Any = False, standard_error: Any = False, lev
 
 
 def check_score_columns(
-    con: duckdb.DuckDBPyConnection, relation: exp.Expression, standard_error: bool
+    con: duckdb.DuckDBPyConnection, relation: exp.Expression, standard_error: bool, reasons: int = 0
 ) -> None:
     """Refuse a source that already has a column the scoring query adds."""
-    taken = SCORE_COLUMNS + (INTERVAL_COLUMNS if standard_error else ())
+    taken = SCORE_COLUMNS + (INTERVAL_COLUMNS if standard_error else ()) + reason_columns(reasons)
     names = [name for name, _ in DuckDBEngine(con).describe(exp.select("*").from_(relation.copy()))]
     clashes = [name for name in names if name.lower() in taken]
     if clashes:
@@ -110,10 +123,13 @@ def publish(
     live: bool = False,
     unseen: str = "null",
     replace: bool = False,
+    reasons: int | bool | None = 0,
+    baseline: Mapping[str, Any] | None = None,
 ) -> dict[str, Any]:
     """``publish(con, model, source, view)``: create ``view``, or replace the one dbfit published under that
     name: every column of ``source`` (None: the source the model was fitted on) plus ``linear_predictor``
-    and ``probability``.
+    and ``probability`` (and with ``reasons=k`` the reason codes ``reason_1``, ``reason_1_contribution``, ...
+    against ``baseline``, see :mod:`dbfit.deployment.scoring`).
 
     ``model`` is a stored model's name (``version`` picks one; default the current one) or a Model object.
     ``live=True`` reads the current version's stored estimates at query time instead of writing them in as
@@ -126,7 +142,7 @@ def publish(
     source, view = source_and_view(con, "publish", given, source, view)
     target = relation_name(view, "view name")
     resolved = resolve_model(con, model, version)
-    query = build_scoring(con, resolved, source, live=live, unseen=unseen)
+    query = build_scoring(con, resolved, source, live=live, unseen=unseen, reasons=reasons, baseline=baseline)
     record = {
         "model": resolved.name,
         "version": None if live else resolved.version,

@@ -151,7 +151,7 @@ def fit_with(
         engine.dialect == "duckdb"
         and progress is not False
         and not callable(progress)
-        and sys.stderr.isatty()
+        and (progress is True or sys.stderr.isatty())  # True: plain lines where stderr is no terminal
     )
     if engine.dialect == "duckdb":
         # dbfit reports progress itself (or is quiet): DuckDB's own printed bar stays off during the fit.

@@ -108,6 +108,12 @@ def add_model_commands(command: Command) -> None:
         action="store_true",
         help="replace a view of that name even when dbfit did not publish it",
     )
+    publish.add_argument(
+        "--reasons", type=int, default=0, help="add the top N reason codes per row (reason_1, ...)"
+    )
+    publish.add_argument(
+        "--baseline", type=json.loads, help="JSON object of each variable's baseline value for the reasons"
+    )
 
     assess = base("assess", "metrics of a model on a source (AUC, log loss, Brier score, ...)")
     assess.add_argument(
@@ -212,7 +218,15 @@ def _run(args: argparse.Namespace) -> tuple[dict[str, Any], int]:
         if args.command == "publish":
             source = args.source or _fitted_source(con, args.name, args.version)
             made = dbfit.publish(
-                con, args.name, source, args.view, version=args.version, live=args.live, replace=args.replace
+                con,
+                args.name,
+                source,
+                args.view,
+                version=args.version,
+                live=args.live,
+                replace=args.replace,
+                reasons=args.reasons,
+                baseline=args.baseline,
             )
             return made, OK
         if args.command == "assess" and args.by is not None:

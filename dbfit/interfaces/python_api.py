@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import uuid
+from collections.abc import Iterator, Mapping
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -17,7 +20,7 @@ from dbfit.deployment import scoring
 from dbfit.deployment import views as deploy
 from dbfit.deployment.segment_views import segment_scoring_query
 from dbfit.engines.duckdb_engine import DuckDBEngine, translate_error
-from dbfit.errors import FitError, StoreError
+from dbfit.errors import FitError, SourceError, StoreError
 from dbfit.expressions.names import model_name
 from dbfit.expressions.splits import Holdout, KFold, part_source
 from dbfit.fitting import driver as fitting
@@ -52,9 +55,10 @@ def fit(
     """
     progress = options.pop("progress", None)
     chosen = FitOptions.of(**options)
-    return fit_options(
-        con, formula, source, chosen, name=name, split=split, threshold=threshold, progress=progress
-    )
+    with frame_source(con, source) as text:
+        return fit_options(
+            con, formula, text, chosen, name=name, split=split, threshold=threshold, progress=progress
+        )
 
 
 def fit_options(
@@ -94,20 +98,21 @@ def assess(
     With ``by`` (a row-wise SQL expression): one row per group instead, with the rates compared against the
     group ``reference`` (default: the largest); see :func:`dbfit.assessment.groups.assess_groups`.
     """
-    if by is None:
-        return training.assess(con, model, source, rows=rows, threshold=threshold, version=version)
-    resolved = deploy.resolve_model(con, model, version)
-    text, note = resolved.assessed_rows(source, rows)
-    return groups.assess_groups(
-        DuckDBEngine(con),
-        resolved,
-        text,
-        by,
-        reference=reference,
-        threshold=threshold,
-        min_rows=min_rows,
-        rows_note=note,
-    ).table
+    with frame_source(con, source) as text:
+        if by is None:
+            return training.assess(con, model, text, rows=rows, threshold=threshold, version=version)
+        resolved = deploy.resolve_model(con, model, version)
+        assessed, note = resolved.assessed_rows(text, rows)
+        return groups.assess_groups(
+            DuckDBEngine(con),
+            resolved,
+            assessed,
+            by,
+            reference=reference,
+            threshold=threshold,
+            min_rows=min_rows,
+            rows_note=note,
+        ).table
 
 
 def assessment_tables(
@@ -178,9 +183,10 @@ def cross_validate(
     return pa.table(columns)
 
 
-fit.__doc__ = (
-    fitting.fit.__doc__ or ""
-) + "\n    name : store the fitted model as the next version of this name.\n"
+fit.__doc__ = (fitting.fit.__doc__ or "") + (
+    "\n    name : store the fitted model as the next version of this name.\n"
+    "    source may also be a pandas or polars DataFrame or an Arrow table (see :func:`frame_source`).\n"
+)
 
 
 @version_by_keyword(2)
@@ -197,29 +203,41 @@ def from_json(text: str) -> Model:
 def score(
     con: duckdb.DuckDBPyConnection,
     model: str | Model,
-    source: str | None = None,
+    source: Any = None,
     *,
     rows: str = "all",
     version: int | None = None,
     standard_error: bool = False,
     level: float = 0.95,
     unseen: str = "null",
+    reasons: int | bool | None = 0,
+    baseline: Mapping[str, Any] | None = None,
 ) -> pa.Table:
     """Every column of the rows plus the score columns, as a pyarrow table; its schema metadata ``dbfit_rows``
     says which rows (default: all rows of ``source``, else of the model's whole source).
 
     ``model`` is a stored model's name or a Model; ``rows`` picks a part of a holdout model's split
-    ("held_out", "training", "all"); the other options are those of :meth:`Model.scoring_sql`.
+    ("held_out", "training", "all"); ``reasons=k`` (True: 4) adds ``reason_1``, ``reason_1_contribution``, ...
+    against ``baseline`` (see :mod:`dbfit.deployment.scoring`); the other options are those of
+    :meth:`Model.scoring_sql`. ``source`` may also be a pandas or polars DataFrame or an Arrow table.
     """
     resolved = deploy.resolve_model(con, model, version)
-    text, note = resolved.assessed_rows(source, rows)
-    query = deploy.build_scoring(
-        con, resolved, text, unseen=unseen, standard_error=standard_error, level=level
-    )
-    try:
-        table = con.sql(query.sql("duckdb")).to_arrow_table()
-    except duckdb.Error as err:
-        raise translate_error(err) from None
+    with frame_source(con, source) as given:
+        text, note = resolved.assessed_rows(given, rows)
+        query = deploy.build_scoring(
+            con,
+            resolved,
+            text,
+            unseen=unseen,
+            standard_error=standard_error,
+            level=level,
+            reasons=reasons,
+            baseline=baseline,
+        )
+        try:
+            table = con.sql(query.sql("duckdb")).to_arrow_table()
+        except duckdb.Error as err:
+            raise translate_error(err) from None
     return table.replace_schema_metadata({**(table.schema.metadata or {}), b"dbfit_rows": note.encode()})
 
 
@@ -255,6 +273,33 @@ def term_tests(
     (column ``refit_scans`` and metadata ``dbfit_scans`` say what it cost)."""
     resolved = deploy.resolve_model(con, model, version)
     return tests_of(DuckDBEngine(con), resolved, likelihood_ratio=likelihood_ratio)
+
+
+@contextmanager
+def frame_source(con: duckdb.DuckDBPyConnection, source: Any) -> Iterator[Any]:
+    """A pandas or polars DataFrame or an Arrow table given as ``source``: registered with DuckDB under a
+    generated name for the call (DuckDB reads it in place, no row-by-row copy) and unregistered afterwards.
+    Anything else passes through unchanged."""
+    package = type(source).__module__.split(".")[0]
+    if source is None or isinstance(source, str) or package not in ("pandas", "polars", "pyarrow"):
+        yield source
+        return
+    if isinstance(source, pa.RecordBatchReader):
+        raise SourceError(
+            "a pyarrow RecordBatchReader can be read once, and dbfit reads its source several times: "
+            "pass a pyarrow Table (reader.read_all()) instead"
+        )
+    name = f"dbfit_frame_{uuid.uuid4().hex[:12]}"
+    try:
+        con.register(name, source)
+    except (duckdb.Error, TypeError, ValueError) as err:
+        raise SourceError(
+            f"the {package} {type(source).__name__} given as source cannot be read: {err}"
+        ) from None
+    try:
+        yield name
+    finally:
+        con.unregister(name)
 
 
 def models(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:
@@ -316,8 +361,11 @@ def scoring_sql(
     unseen: str = "null",
     standard_error: bool = False,
     level: float = 0.95,
+    reasons: int | bool | None = 0,
+    baseline: Mapping[str, Any] | None = None,
 ) -> str:
-    """A SELECT over ``source`` (default: the model's source) adding ``linear_predictor`` and ``probability``.
+    """A SELECT over ``source`` (default: the model's source) adding ``linear_predictor`` and ``probability``
+    (and with ``reasons=k`` the reason codes against ``baseline``, see :mod:`dbfit.deployment.scoring`).
 
     ``unseen`` says what a categorical level never seen in training gives: ``"null"`` (NULL scores),
     ``"reference"`` (scored as the reference level) or ``"error"`` (the query fails; DuckDB, Spark, BigQuery).
@@ -327,11 +375,23 @@ def scoring_sql(
         if fitted.by_expression is None:
             raise StoreError("this segmented fit does not know its by expression")
         query = segment_scoring_query(
-            fitted.models, fitted.by_expression, source or fitted.source, unseen=unseen
+            fitted.models,
+            fitted.by_expression,
+            source or fitted.source,
+            unseen=unseen,
+            reasons=reasons,
+            baseline=baseline,
         )
         return query.sql("duckdb")
     return scoring.scoring_sql(
-        fitted, dialect, source=source, unseen=unseen, standard_error=standard_error, level=level
+        fitted,
+        dialect,
+        source=source,
+        unseen=unseen,
+        standard_error=standard_error,
+        level=level,
+        reasons=reasons,
+        baseline=baseline,
     )
 
 

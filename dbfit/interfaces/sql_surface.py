@@ -9,6 +9,7 @@ only; ``dbfit.fit`` compares the row count the caller sees with what it fitted a
 
 from __future__ import annotations
 
+import json
 from collections.abc import Callable
 from typing import Any
 
@@ -18,6 +19,7 @@ from sqlglot import exp
 from dbfit.assessment import metrics as assessment
 from dbfit.assessment.effects import EFFECT_COLUMNS, marginal_effects
 from dbfit.assessment.groups import GROUP_COLUMNS, MIN_GROUP_ROWS, assess_groups
+from dbfit.deployment.scoring import check_reasons
 from dbfit.deployment.segment_views import publish_segments
 from dbfit.deployment.views import build_scoring, check_score_columns, publish
 from dbfit.engines.duckdb_engine import DuckDBEngine
@@ -115,9 +117,10 @@ GROUP_FIELDS = {
 }
 
 _ROWS = "SELECT dbfit_row.* FROM (SELECT unnest({call}) AS dbfit_row)"
-_SCORE_OPTIONS = ", standard_error := false, level := 0.95, unseen := 'null'"
+_SCORE_OPTIONS = ", standard_error := false, level := 0.95, unseen := 'null', reasons := 0, baseline := NULL"
 _SCORE = (
-    "SELECT * FROM query(dbfit_sql_score(model, source, {version}, standard_error, level::VARCHAR, unseen))"
+    "SELECT * FROM query(dbfit_sql_score(model, source, {version}, standard_error, level::VARCHAR, unseen, "
+    "reasons, baseline))"
 )
 MACROS = {
     "fit": [
@@ -145,14 +148,19 @@ MACROS = {
     ],
     "publish": [
         (
-            "model, source, view, version := NULL, live := false, unseen := 'null', \"replace\" := false",
-            _ROWS.format(call='dbfit_sql_publish(model, source, view, version, live, unseen, "replace")'),
+            "model, source, view, version := NULL, live := false, unseen := 'null', \"replace\" := false, "
+            "reasons := 0, baseline := NULL",
+            _ROWS.format(
+                call='dbfit_sql_publish(model, source, view, version, live, unseen, "replace", reasons, baseline)'
+            ),
         )
     ],
     "publish_segments": [
         (
-            "model, source, view, unseen := 'null', \"replace\" := false",
-            _ROWS.format(call='dbfit_sql_publish_segments(model, source, view, unseen, "replace")'),
+            "model, source, view, unseen := 'null', \"replace\" := false, reasons := 0, baseline := NULL",
+            _ROWS.format(
+                call='dbfit_sql_publish_segments(model, source, view, unseen, "replace", reasons, baseline)'
+            ),
         )
     ],
     "assess": [
@@ -315,22 +323,31 @@ class SqlFunctions:
         with self.second() as reader:
             return store.coefficient_rows(reader, model, version)
 
-    def score_sql(self, model, source, version, standard_error, level, unseen):
+    def score_sql(self, model, source, version, standard_error, level, unseen, reasons, baseline):
         level = _text_number(level, "level", 0.95)
         with self.second() as reader:
             if source is not None:
                 check_readable(reader, source)
             fitted = store.load_model(reader, model, version)
             try:
-                check_score_columns(reader, source_relation(source), bool(standard_error))
+                check_score_columns(
+                    reader, source_relation(source), bool(standard_error), check_reasons(reasons)
+                )
             except SourceError:
                 pass  # not visible to the second connection (a temporary table?): the calling query reads it
         query = build_scoring(
-            None, fitted, source, unseen=unseen or "null", standard_error=bool(standard_error), level=level
+            None,
+            fitted,
+            source,
+            unseen=unseen or "null",
+            standard_error=bool(standard_error),
+            level=level,
+            reasons=reasons or 0,
+            baseline=_baseline_row(baseline),
         )
         return query.sql("duckdb")
 
-    def publish_rows(self, model, source, view, version, live, unseen, replace):
+    def publish_rows(self, model, source, view, version, live, unseen, replace, reasons, baseline):
         with self.second() as writer:
             made = publish(
                 writer,
@@ -341,13 +358,22 @@ class SqlFunctions:
                 live=bool(live),
                 unseen=unseen or "null",
                 replace=bool(replace),
+                reasons=reasons or 0,
+                baseline=_baseline_row(baseline),
             )
         return [{k: made[k] for k in PUBLISHED_FIELDS}]
 
-    def publish_segment_rows(self, model, source, view, unseen, replace):
+    def publish_segment_rows(self, model, source, view, unseen, replace, reasons, baseline):
         with self.second() as writer:
             made = publish_segments(
-                writer, model, source=source, view=view, unseen=unseen or "null", replace=bool(replace)
+                writer,
+                model,
+                source=source,
+                view=view,
+                unseen=unseen or "null",
+                replace=bool(replace),
+                reasons=reasons or 0,
+                baseline=_baseline_row(baseline),
             )
         return [{k: made[k] for k in SEGMENT_VIEW_FIELDS}]
 
@@ -421,12 +447,12 @@ class SqlFunctions:
             ("dbfit_sql_count", self.count_sql, [V, V], V),
             ("dbfit_sql_models", self.version_rows, [], _rows_of(VERSION_FIELDS)),
             ("dbfit_sql_coefficients", self.coefficient_rows, [V, I], _rows_of(COEFFICIENT_FIELDS)),
-            ("dbfit_sql_score", self.score_sql, [V, V, I, B, V, V], V),
-            ("dbfit_sql_publish", self.publish_rows, [V, V, V, I, B, V, B], _rows_of(PUBLISHED_FIELDS)),
+            ("dbfit_sql_score", self.score_sql, [V, V, I, B, V, V, I, V], V),
+            ("dbfit_sql_publish", self.publish_rows, [V, V, V, I, B, V, B, I, V], _rows_of(PUBLISHED_FIELDS)),
             (
                 "dbfit_sql_publish_segments",
                 self.publish_segment_rows,
-                [V, V, V, V, B],
+                [V, V, V, V, B, I, V],
                 _rows_of(SEGMENT_VIEW_FIELDS),
             ),
             ("dbfit_sql_drop", self.drop_rows, [V, I], _rows_of(DROPPED_FIELDS)),
@@ -570,6 +596,19 @@ def _whole_number(text: str | None, name: str, default: int) -> int:
     if not float(number).is_integer():
         raise FitError(f"{name} := {text!r} is not a whole number")
     return int(number)
+
+
+def _baseline_row(text: str | None) -> dict[str, Any] | None:
+    """``baseline := '{"distance_km": 5, "depot": "North"}'``: a JSON object of each variable's value."""
+    if text is None:
+        return None
+    try:
+        row = json.loads(text)
+    except ValueError as err:
+        raise FitError(f"baseline := {text[:80]!r} is not a JSON object: {err}") from None
+    if not isinstance(row, dict):
+        raise FitError(f"baseline := {text[:80]!r} is not a JSON object of variable: value")
+    return row
 
 
 def _text_number(text: str | None, name: str, default: float) -> float:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
+from html import escape
 from typing import Any
 
 import numpy as np
@@ -176,8 +177,44 @@ class Model:
             lines += [f"  ! {w}" for w in self.warnings]
         return "\n".join(lines)
 
+    def _repr_html_(self) -> str:
+        """A compact HTML summary for notebooks: identity, rows, deviance, AIC and one row per term."""
+        s = self.stats
+        stored = f" &middot; stored as {escape(self.name)} v{self.version}" if self.name is not None else ""
+        facts = [
+            ("rows used", f"{s['n_used']:,} of {self.rows_total:,}"),
+            ("deviance", f"{s['deviance']:,.4f}"),
+            ("AIC", f"{s['aic']:,.4f}"),
+            ("fit", f"{'converged' if s['converged'] else 'not converged'}, {s['iterations']} passes"),
+        ]
+        head = "".join(
+            f"<th style='text-align:right'>{h}</th>" for h in ("estimate", "std. error", "odds x", "p")
+        )
+        body = []
+        for row in self.coefficients.to_pylist():
+            cells = [_html_number(row["estimate"], ".5g"), _html_number(row["std_error"], ".4g")]
+            cells += [_html_number(row["odds_ratio"], ".4g"), escape(_p_text(row["p_value"]))]
+            tds = "".join(f"<td style='text-align:right'>{cell}</td>" for cell in cells)
+            body.append(f"<tr><td>{escape(row['term'])}</td>{tds}</tr>")
+        notes = "".join(f"<li>{escape(w)}</li>" for w in self.warnings)
+        return (
+            f"<div class='dbfit-model'><p><b>dbfit logistic model</b>{stored}<br>"
+            f"<code>{escape(self.formula)}</code> on <code>{escape(self.source)}</code></p>"
+            + "<p>"
+            + " &middot; ".join(f"{label}: {value}" for label, value in facts)
+            + "</p>"
+            + f"<table><thead><tr><th style='text-align:left'>term</th>{head}</tr></thead>"
+            + f"<tbody>{''.join(body)}</tbody></table>"
+            + (f"<p>warnings:</p><ul>{notes}</ul>" if notes else "")
+            + "</div>"
+        )
+
     def __repr__(self) -> str:
         return f"<dbfit.Model {self.formula!r}: {self.stats['n_used']} rows, deviance {self.stats['deviance']:.6g}>"
+
+
+def _html_number(value: float | None, style: str) -> str:
+    return "&ndash;" if value is None or value != value else format(value, style)
 
 
 def _p_text(p: float | None) -> str:
