@@ -1,12 +1,19 @@
-"""Large fits start from a fit on a reservoir sample kept in a temporary table, then finish on all rows."""
+"""Large fits start from a fit on a sample held in memory (its Newton passes in numpy), then finish on all rows."""
 
 from __future__ import annotations
 
+import numpy as np
 import statsmodels.api as sm
-from conftest import assert_close
+from conftest import assert_close, load_frame
 
 import dbfit
 import dbfit.fitting.driver
+from dbfit.design.layout import build_design
+from dbfit.engines import engine_for
+from dbfit.expressions.formula import parse_formula
+from dbfit.expressions.source import source_relation
+from dbfit.fitting.sample_fit import SampleArrays
+from dbfit.fitting.statistics import StatisticsPass
 from dbfit.interfaces.demo import FORMULA, REFERENCE, build_deliveries
 
 
@@ -44,3 +51,32 @@ def test_sample_start_gives_the_full_data_answer_in_fewer_passes(con, monkeypatc
         "SELECT count(*) FROM duckdb_tables() WHERE table_name LIKE 'dbfit_sample_%'"
     ).fetchall()
     assert leftover[0][0] == 0
+
+
+def test_the_sample_passes_in_numpy_equal_the_statistics_query_on_the_same_rows(con):
+    # Reference: the SQL statistics query (McCullagh and Nelder 1989, section 4.4) on the rows of statsmodels'
+    # bundled star98 data (grouped binomial: NABOVE of NABOVE + NBELOW), with weights, an offset and trials,
+    # at a moderate and at an extreme point (|eta| far above 17, where only the e = exp(-|eta|) forms hold).
+    load_frame(con, "star98", sm.datasets.star98.load_pandas().data)
+    engine = engine_for(con)
+    design = build_design(
+        engine,
+        parse_formula("NABOVE ~ LOWINC + PERASIAN + PTRATIO + LOWINC:PTRATIO"),
+        source_relation("star98"),
+        weights="1 + PERMINTE / 100",
+        offset="PCTAF / 100",
+        trials="NABOVE + NBELOW",
+    )
+    parameters = list(range(len(design.labels)))
+    rows = design.base_query()
+    arrays = SampleArrays.fetch(engine, design, parameters, rows, scan=False)
+    assert arrays.rows == 303
+    in_sql = StatisticsPass(engine, design, rows)
+    for beta in (np.array([-0.4, 0.3, -0.2, 0.1, 0.05]), np.array([30.0, -25.0, 12.0, -40.0, 22.0])):
+        expected, actual = in_sql(parameters, beta), arrays.statistics(parameters, beta)
+        assert_close(actual.gram.as_array(), expected.gram.as_array(), 1e-12, "information")
+        assert_close(actual.score, expected.score, 1e-12, "score")
+        assert_close(actual.loglik, expected.loglik, 1e-12, "log-likelihood")
+        tails = [actual.extreme, actual.misfit_extreme]
+        assert_close(tails, [expected.extreme, expected.misfit_extreme], 1e-12, "rows fitted at 0 or 1")
+    assert expected.extreme > 0 and expected.misfit_extreme > 0  # the extreme point reaches those branches

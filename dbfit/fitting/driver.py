@@ -2,24 +2,20 @@
 
 from __future__ import annotations
 
-import dataclasses
 import logging
 import math
 import sys
-import uuid
 from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 import duckdb
 import numpy as np
-from sqlglot import exp
 
 from dbfit.design.layout import Design, build_design
 from dbfit.engines import engine_for
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.engines.progress import progress_settings
 from dbfit.errors import FitError
-from dbfit.expressions import builders as sb
 from dbfit.expressions.formula import parse_formula
 from dbfit.expressions.source import source_relation
 from dbfit.fitting import firth as bias_reduction
@@ -27,6 +23,7 @@ from dbfit.fitting import penalised, prior_correction
 from dbfit.fitting import robust as robust_errors
 from dbfit.fitting.blocks import BlockedStatisticsPass, blocked_factor, dense_first
 from dbfit.fitting.options import FitOptions
+from dbfit.fitting.sample_fit import SampleArrays, sampled_rows
 from dbfit.fitting.segments import fit_segments
 from dbfit.fitting.statistics import StatisticsPass
 from dbfit.model import inference
@@ -297,58 +294,33 @@ def _sample_start(
     tol: float,
     reporter: Callable[[IterationReport], None] | None,
 ) -> tuple[np.ndarray, float]:
-    """Fit a sample of the complete rows, kept in a temporary table, and start from its estimates.
+    """Fit a sample of the complete rows in memory, and start from its estimates.
 
-    The sample is a repeatable system sample of a table's row blocks (it reads only those blocks), or for
-    other sources a reservoir sample (one scan). From its estimates, score-only scans with the sample's
-    information scaled to the full data (a chord method) close in on the answer, and one full Newton pass
-    confirms it. Returns the start and the last deviance.
+    The sample (see :func:`dbfit.fitting.sample_fit.sampled_rows`: a system sample of a table's row blocks,
+    otherwise a reservoir sample in one scan) is fetched once as its standardised design, and its Newton
+    passes run in numpy. From its estimates, score-only scans with the sample's information scaled to the
+    full data (a chord method) close in on the answer, and one full Newton pass confirms it. Returns the
+    start and the last deviance.
     """
-    table = f"dbfit_sample_{uuid.uuid4().hex}"
-    if isinstance(design.relation, exp.Table) and not design.relation.args.get("sample"):
-        share = min(100.0, 100.0 * SAMPLE_ROWS / max(design.rows_total, 1))
-        sampled = design.relation.copy()
-        sampled.set(
-            "sample",
-            exp.TableSample(
-                method=exp.var("SYSTEM"),
-                percent=sb.number(round(share, 6)),
-                seed=exp.Literal.number(SAMPLE_SEED),
-            ),
-        )
-        base_sql = engine.sql(dataclasses.replace(design, relation=sampled).base_query())
-        engine.execute(scan=False, sql=f'CREATE TEMP TABLE "{table}" AS {base_sql}')
-    else:
-        base_sql = engine.sql(design.base_query())
-        engine.execute(
-            scan=True,
-            sql=f'CREATE TEMP TABLE "{table}" AS SELECT * FROM ({base_sql}) '
-            f"USING SAMPLE reservoir({SAMPLE_ROWS} ROWS) REPEATABLE ({SAMPLE_SEED})",
-        )
-    try:
-        rows = exp.select("*").from_(exp.Table(this=exp.to_identifier(table, quoted=True)))
+    rows, reads_all = sampled_rows(design, SAMPLE_ROWS, SAMPLE_SEED)
+    sample_rows = SampleArrays.fetch(engine, design, fitted, rows, scan=reads_all)
+    if sample_rows.rows <= len(fitted):
+        return default_start, np.inf
 
-        def sample_report(item: IterationReport) -> None:
-            item.phase = f"sample of {SAMPLE_ROWS:,} rows"
-            reporter(item)
+    def sample_report(item: IterationReport) -> None:
+        item.phase = f"sample of {SAMPLE_ROWS:,} rows"
+        reporter(item)
 
-        sample_pass = StatisticsPass(engine, design, rows)
-        protected = 1 if design.intercept else 0
-        rules = NewtonRules(
-            max_passes=max_iter,
-            tol=max(tol, SAMPLE_TOL),
-            protected=protected,
-            report=sample_report if reporter else None,
-        )
-        sample = solve(
-            NewtonRun(Deviance(0.0), default_start, rules),
-            lambda beta, active: sample_pass([fitted[k] for k in active], beta),
-        )
-        sampled_rows = engine.fetch(
-            exp.select(exp.Count(this=exp.Star())).from_(rows.subquery("dbfit_s")), scan=False
-        )[0][0]
-    finally:
-        engine.execute(sql=f'DROP TABLE IF EXISTS "{table}"', scan=False)
+    rules = NewtonRules(
+        max_passes=max_iter,
+        tol=max(tol, SAMPLE_TOL),
+        protected=1 if design.intercept else 0,
+        report=sample_report if reporter else None,
+    )
+    sample = solve(
+        NewtonRun(Deviance(0.0), default_start, rules),
+        lambda beta, active: sample_rows.statistics(active, beta),
+    )
     if not sample.converged or sample.separation:
         return default_start, np.inf
     start = np.zeros(len(fitted))
@@ -356,7 +328,7 @@ def _sample_start(
     if sample.aliased:
         return start, np.inf
     full_pass = StatisticsPass(engine, design)
-    scaled = sample.last.gram.scaled(design.rows_used / sampled_rows)
+    scaled = sample.last.gram.scaled(design.rows_used / sample_rows.rows)
     return refine_with_fixed_information(full_pass, fitted, start, scaled, design.saturated_loglik, reporter)
 
 
