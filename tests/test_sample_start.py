@@ -80,3 +80,26 @@ def test_the_sample_passes_in_numpy_equal_the_statistics_query_on_the_same_rows(
         tails = [actual.extreme, actual.misfit_extreme]
         assert_close(tails, [expected.extreme, expected.misfit_extreme], 1e-12, "rows fitted at 0 or 1")
     assert expected.extreme > 0 and expected.misfit_extreme > 0  # the extreme point reaches those branches
+
+
+def test_the_score_only_scans_stop_once_one_full_newton_pass_finishes_the_fit(con, monkeypatch):
+    # Newton's method converges quadratically near the estimate (Nocedal and Wright 2006, Numerical
+    # Optimization, 2nd ed., section 3.3): the refinement stops when the full pass that follows converges at
+    # once, whatever the tolerance; the answer then agrees with a fit run to a much tighter tolerance, to
+    # 1e-10 at the default tolerance. The invented demo data is only input here; the reference is that
+    # fully converged cold fit.
+    build_deliveries(con, 40_000)
+    converged = dbfit.fit(
+        con, FORMULA, "deliveries", reference=REFERENCE, tol=1e-15, max_iter=100, progress=False
+    )
+    monkeypatch.setattr(dbfit.fitting.driver, "SAMPLE_START_ROWS", 10_000)
+    monkeypatch.setattr(dbfit.fitting.driver, "SAMPLE_ROWS", 8_000)
+    score_only = {}
+    for tol, agreement in ((1e-8, 1e-8), (1e-10, 1e-10), (1e-12, 1e-10)):
+        reports: list = []
+        warm = dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, tol=tol, progress=reports.append)
+        assert warm.stats["converged"] and warm.stats["iterations"] == 1  # one full Newton pass
+        score_only[tol] = [report.phase for report in reports].count("full data, score only")
+        assert score_only[tol] < dbfit.fitting.driver.REFINE_PASSES
+        assert_close(warm.estimates, converged.estimates, agreement, f"estimates at tol={tol}")
+    assert score_only[1e-8] < score_only[1e-10] < score_only[1e-12]
