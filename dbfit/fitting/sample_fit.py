@@ -90,7 +90,8 @@ class SampleArrays:
         """What one statistics query returns over the columns at ``positions``: X'WX, the score
         X'(w (y - n mu)), the log-likelihood and the weighted counts of rows fitted at 0 or 1 (of those, at
         the wrong one)."""
-        x = self.design_rows[:, positions]
+        every = list(positions) == list(range(self.design_rows.shape[1]))
+        x = self.design_rows if every else self.design_rows[:, positions]  # a copy only once some are aliased
         eta = self.offset + x @ np.asarray(beta, dtype=float)
         e = np.exp(-np.abs(eta))
         one_plus_e = 1.0 + e
