@@ -103,3 +103,20 @@ def test_the_score_only_scans_stop_once_one_full_newton_pass_finishes_the_fit(co
         assert score_only[tol] < dbfit.fitting.driver.REFINE_PASSES
         assert_close(warm.estimates, converged.estimates, agreement, f"estimates at tol={tol}")
     assert score_only[1e-8] < score_only[1e-10] < score_only[1e-12]
+
+
+def test_a_source_that_is_not_a_table_is_sampled_by_a_reservoir_in_one_scan(con, monkeypatch):
+    # A SELECT cannot be sampled by row blocks: a reservoir sample of its complete rows is drawn in one
+    # counted scan. Reference: the cold fit of the same rows (itself checked against statsmodels above).
+    build_deliveries(con, 40_000)
+    source = "SELECT * FROM deliveries WHERE dispatch_hour < 20"
+    cold = dbfit.fit(con, FORMULA, source, reference=REFERENCE, progress=False)
+    monkeypatch.setattr(dbfit.fitting.driver, "SAMPLE_START_ROWS", 10_000)
+    monkeypatch.setattr(dbfit.fitting.driver, "SAMPLE_ROWS", 8_000)
+    reports: list = []
+    warm = dbfit.fit(con, FORMULA, source, reference=REFERENCE, progress=reports.append)
+    phases = [report.phase for report in reports]
+    assert "sample of 8,000 rows" in phases
+    # profile, the reservoir, the score-only scans, the Newton passes and the confirming scan
+    assert warm.stats["scans"] == 2 + phases.count("full data, score only") + warm.stats["iterations"] + 1
+    assert_close(warm.estimates, cold.estimates, 1e-8, "same estimates as the cold start")
