@@ -94,6 +94,18 @@ class DuckDBEngine(Engine):
                 self._checked.add(sql)
             return self._read(lambda: self.connection.execute(sql, parameters).fetchall())
 
+    def fetch_columns(self, query: exp.Expression, *, scan: bool = True) -> dict[str, Any]:
+        """Run ``query`` and return its columns as numpy arrays by name (for small results, such as a sample;
+        DuckDB's own conversion, which unlike Arrow's to_numpy does not import pandas)."""
+        sql = self.sql(query)
+        if scan:
+            self.scans += 1
+        with connection_lock(self.connection):
+            if in_transaction(self.connection):
+                self._parse(sql)
+                self._bind(sql)
+            return self._read(lambda: self.connection.execute(sql).fetchnumpy())
+
     def _parse(self, sql: str) -> Any:
         """The parsed statement (a parser error, unlike one from ``execute``, leaves the transaction alone)."""
         try:

@@ -2,24 +2,20 @@
 
 from __future__ import annotations
 
-import dataclasses
 import logging
 import math
 import sys
-import uuid
 from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 import duckdb
 import numpy as np
-from sqlglot import exp
 
 from dbfit.design.layout import Design, build_design
 from dbfit.engines import engine_for
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.engines.progress import progress_settings
 from dbfit.errors import FitError
-from dbfit.expressions import builders as sb
 from dbfit.expressions.formula import parse_formula
 from dbfit.expressions.source import source_relation
 from dbfit.fitting import firth as bias_reduction
@@ -27,6 +23,7 @@ from dbfit.fitting import penalised, prior_correction
 from dbfit.fitting import robust as robust_errors
 from dbfit.fitting.blocks import BlockedStatisticsPass, blocked_factor, dense_first
 from dbfit.fitting.options import FitOptions
+from dbfit.fitting.sample_fit import SampleArrays, sampled_rows
 from dbfit.fitting.segments import fit_segments
 from dbfit.fitting.statistics import StatisticsPass
 from dbfit.model import inference
@@ -40,8 +37,10 @@ from dbfit.solver.newton import (
     NewtonResult,
     NewtonRules,
     NewtonRun,
+    Stepper,
     solve,
 )
+from dbfit.solver.tolerances import STEP_TOLERANCE
 
 log = logging.getLogger("dbfit")
 
@@ -50,7 +49,10 @@ SAMPLE_ROWS = 100_000
 SAMPLE_SEED = 20261201
 SAMPLE_TOL = 1e-4  # the sample's estimates are within sampling error of the answer anyway
 REFINE_PASSES = 6  # most score-only scans of the refinement from the sample's estimates
-REFINE_STEP = 1e-5  # a refinement step this small ends the score-only scans
+# Shares of the full pass's tolerances the last refinement step may use (see full_pass_finishes): the fall of
+# the deviance it predicts is within a few per cent, the rate of the chord steps within a factor of about 3.
+REFINE_FALL_SHARE = 0.5
+REFINE_STEP_SHARE = 0.25
 
 Progress = bool | Callable[[IterationReport], None] | None
 Reporter = Callable[[IterationReport], None]
@@ -297,58 +299,33 @@ def _sample_start(
     tol: float,
     reporter: Callable[[IterationReport], None] | None,
 ) -> tuple[np.ndarray, float]:
-    """Fit a sample of the complete rows, kept in a temporary table, and start from its estimates.
+    """Fit a sample of the complete rows in memory, and start from its estimates.
 
-    The sample is a repeatable system sample of a table's row blocks (it reads only those blocks), or for
-    other sources a reservoir sample (one scan). From its estimates, score-only scans with the sample's
-    information scaled to the full data (a chord method) close in on the answer, and one full Newton pass
-    confirms it. Returns the start and the last deviance.
+    The sample (see :func:`dbfit.fitting.sample_fit.sampled_rows`: a system sample of a table's row blocks,
+    otherwise a reservoir sample in one scan) is fetched once as its standardised design, and its Newton
+    passes run in numpy. From its estimates, score-only scans with the sample's information scaled to the
+    full data (a chord method) close in on the answer, and one full Newton pass confirms it. Returns the
+    start and the last deviance.
     """
-    table = f"dbfit_sample_{uuid.uuid4().hex}"
-    if isinstance(design.relation, exp.Table) and not design.relation.args.get("sample"):
-        share = min(100.0, 100.0 * SAMPLE_ROWS / max(design.rows_total, 1))
-        sampled = design.relation.copy()
-        sampled.set(
-            "sample",
-            exp.TableSample(
-                method=exp.var("SYSTEM"),
-                percent=sb.number(round(share, 6)),
-                seed=exp.Literal.number(SAMPLE_SEED),
-            ),
-        )
-        base_sql = engine.sql(dataclasses.replace(design, relation=sampled).base_query())
-        engine.execute(scan=False, sql=f'CREATE TEMP TABLE "{table}" AS {base_sql}')
-    else:
-        base_sql = engine.sql(design.base_query())
-        engine.execute(
-            scan=True,
-            sql=f'CREATE TEMP TABLE "{table}" AS SELECT * FROM ({base_sql}) '
-            f"USING SAMPLE reservoir({SAMPLE_ROWS} ROWS) REPEATABLE ({SAMPLE_SEED})",
-        )
-    try:
-        rows = exp.select("*").from_(exp.Table(this=exp.to_identifier(table, quoted=True)))
+    rows, reads_all = sampled_rows(design, SAMPLE_ROWS, SAMPLE_SEED)
+    sample_rows = SampleArrays.fetch(engine, design, fitted, rows, scan=reads_all)
+    if sample_rows.rows <= len(fitted):
+        return default_start, np.inf
 
-        def sample_report(item: IterationReport) -> None:
-            item.phase = f"sample of {SAMPLE_ROWS:,} rows"
-            reporter(item)
+    def sample_report(item: IterationReport) -> None:
+        item.phase = f"sample of {SAMPLE_ROWS:,} rows"
+        reporter(item)
 
-        sample_pass = StatisticsPass(engine, design, rows)
-        protected = 1 if design.intercept else 0
-        rules = NewtonRules(
-            max_passes=max_iter,
-            tol=max(tol, SAMPLE_TOL),
-            protected=protected,
-            report=sample_report if reporter else None,
-        )
-        sample = solve(
-            NewtonRun(Deviance(0.0), default_start, rules),
-            lambda beta, active: sample_pass([fitted[k] for k in active], beta),
-        )
-        sampled_rows = engine.fetch(
-            exp.select(exp.Count(this=exp.Star())).from_(rows.subquery("dbfit_s")), scan=False
-        )[0][0]
-    finally:
-        engine.execute(sql=f'DROP TABLE IF EXISTS "{table}"', scan=False)
+    rules = NewtonRules(
+        max_passes=max_iter,
+        tol=max(tol, SAMPLE_TOL),
+        protected=1 if design.intercept else 0,
+        report=sample_report if reporter else None,
+    )
+    sample = solve(
+        NewtonRun(Deviance(0.0), default_start, rules),
+        lambda beta, active: sample_rows.statistics(active, beta),
+    )
     if not sample.converged or sample.separation:
         return default_start, np.inf
     start = np.zeros(len(fitted))
@@ -356,8 +333,10 @@ def _sample_start(
     if sample.aliased:
         return start, np.inf
     full_pass = StatisticsPass(engine, design)
-    scaled = sample.last.gram.scaled(design.rows_used / sampled_rows)
-    return refine_with_fixed_information(full_pass, fitted, start, scaled, design.saturated_loglik, reporter)
+    scaled = sample.last.gram.scaled(design.rows_used / sample_rows.rows)
+    return refine_with_fixed_information(
+        full_pass, fitted, start, scaled, design.saturated_loglik, reporter, tol
+    )
 
 
 def refine_with_fixed_information(
@@ -367,13 +346,15 @@ def refine_with_fixed_information(
     information: Information,
     saturated_loglik: float,
     reporter: Reporter | None,
+    tol: float,
 ) -> tuple[np.ndarray, float]:
     """Newton steps with a fixed approximation of the information (a chord method, :class:`ChordDeviance`) on
     score-only scans, several times cheaper than one for X'WX; stops at the first rise, after REFINE_PASSES
-    scans, or at a step below REFINE_STEP. Returns the refined estimates and the last deviance measured."""
+    scans, or once the full Newton pass that follows finishes the fit (:func:`full_pass_finishes`). Returns
+    the refined estimates and the last deviance measured."""
     rules = NewtonRules(
         max_passes=REFINE_PASSES,
-        step_floor=REFINE_STEP,
+        step_floor=0.0,
         confirm=False,
         stop_on_rise=True,
         check_aliasing=False,
@@ -381,11 +362,50 @@ def refine_with_fixed_information(
         report=reporter,
         phase="full data, score only",
     )
-    refined = solve(
-        NewtonRun(ChordDeviance(saturated_loglik, information), start, rules),
-        lambda beta, active: full_pass.score_only(fitted, beta),
-    )
+    run = NewtonRun(ChordDeviance(saturated_loglik, information), start, rules)
+    stepper = Stepper(run)
+    previous_size = np.inf
+    while (beta := stepper.wanted()) is not None:
+        scan = full_pass.score_only(fitted, beta)
+        stepper.take(scan)
+        following = stepper.wanted()
+        if following is None:
+            break
+        step = following - beta
+        if full_pass_finishes(scan.score, step, previous_size, run.accepted_value, tol):
+            return following, run.accepted_value
+        previous_size = float(np.max(np.abs(step)))
+    refined = stepper.result()
     return refined.beta, refined.objective
+
+
+def full_pass_finishes(
+    score: np.ndarray, step: np.ndarray, previous_size: float, deviance: float, tol: float
+) -> bool:
+    """Whether the score-only scans can stop after ``step`` (taken from a point of this ``deviance`` and
+    ``score``): the full Newton pass at the next point then converges at once, and its step finishes the fit.
+
+    The step lowers the deviance by about score's step (2 U's - s'Is with I s close to U); the full pass
+    measures that fall, and converges when it is below ``tol`` relative to the deviance and its own step is
+    below STEP_TOLERANCE: the fall must be below REFINE_FALL_SHARE of that. The chord steps shrink by a
+    steady rate r (their ratio; 1/2 taken before there are two), so the point reached is about
+    r / (1 - r) times this step from the estimate, the size of the full pass's Newton step, which must be
+    below REFINE_STEP_SHARE of STEP_TOLERANCE.
+    Newton's method converges quadratically near the estimate (Nocedal and Wright 2006, Numerical
+    Optimization, 2nd ed., section 3.3, Theorem 3.5, from memory): from an error e one step leaves about
+    C e^2, with C of order one on the standardised scale, so the steps before the last do not need to be
+    smaller than that rule asks.
+    """
+    size = float(np.max(np.abs(step))) if step.size else 0.0
+    rate = size / previous_size if np.isfinite(previous_size) and previous_size > 0 else 0.5
+    if rate >= 1.0:
+        return False
+    fall = float(score @ step)
+    left = rate / (1.0 - rate) * size
+    return (
+        fall <= REFINE_FALL_SHARE * tol * (abs(deviance - fall) + 0.1)
+        and left < REFINE_STEP_SHARE * STEP_TOLERANCE
+    )
 
 
 def start_values(
