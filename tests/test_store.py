@@ -18,6 +18,7 @@ import textwrap
 import time
 from pathlib import Path
 
+import duckdb
 import numpy as np
 import pytest
 import statsmodels.api as sm
@@ -402,3 +403,39 @@ def test_postgres_writers_of_one_model_wait_for_its_lock(database, spector_file)
     writer.join(timeout=60)
     assert saved == [2] and [r["version"] for r in dbfit.models(con)] == [1, 2]
     holder.close()
+
+
+def test_published_views_score_with_plain_sql_of_the_engine(spector_file):
+    # Reference: statsmodels Logit predictions on spector (version 1) and with weights 1 + GPA (freq_weights of
+    # statsmodels GLM, version 2). The views are queried on a fresh connection with nothing of dbfit loaded
+    # (duckdb.connect, or psycopg); the pinned view keeps version 1, the live view follows the promotion.
+    con, database = spector_file
+    frame = sm.datasets.spector.load_pandas().data
+    design = sm.add_constant(frame[["GPA", "TUCE", "PSI"]])
+    first = sm.Logit(frame.GRADE, design).fit(disp=0, tol=1e-12).predict(design)
+    weighted = sm.GLM(frame.GRADE, design, family=sm.families.Binomial(), freq_weights=1 + frame.GPA)
+    second = weighted.fit(tol=1e-12).predict(design)
+    spector_model(con, name="grades")
+    pinned = dbfit.publish(con, "grades", "spector", "grades_pinned")
+    live = dbfit.publish(con, "grades", "spector", "grades_live", live=True)
+    assert (pinned["mode"], pinned["version"], live["mode"], live["version"]) == ("pinned", 1, "live", None)
+    plain = duckdb.connect(database.target) if database.engine == "duckdb" else database.connect()
+
+    def probabilities(view: str) -> np.ndarray:
+        rows = database.query(plain, f'SELECT "GPA", "TUCE", "PSI", probability FROM {view} ORDER BY 1, 2, 3')
+        ordered = frame.assign(p=np.arange(len(frame))).sort_values(["GPA", "TUCE", "PSI"])
+        assert np.array_equal(np.array([r[:3] for r in rows]), ordered[["GPA", "TUCE", "PSI"]].to_numpy())
+        return np.array([r[3] for r in rows])[np.argsort(ordered["p"].to_numpy())]
+
+    np.testing.assert_allclose(probabilities("grades_pinned"), first, rtol=1e-7)
+    np.testing.assert_allclose(probabilities("grades_live"), first, rtol=1e-7)
+    spector_model(con, name="grades", weights="1 + GPA")
+    np.testing.assert_allclose(probabilities("grades_pinned"), first, rtol=1e-7)
+    np.testing.assert_allclose(probabilities("grades_live"), second, rtol=1e-7)
+    assert (
+        dbfit.publish(con, "grades", "spector", "grades_pinned")["version"] == 2
+    )  # dbfit's own view: replaced
+    database.query(con, "CREATE VIEW by_hand AS SELECT 1 AS x")
+    with pytest.raises(dbfit.StoreError, match="already exists and was not published by dbfit"):
+        dbfit.publish(con, "grades", "spector", "by_hand")
+    plain.close()
