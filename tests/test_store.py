@@ -51,6 +51,14 @@ class Database:
             return self.target
         return " ".join(f"{k}={v}" for k, v in self.target.items())
 
+    @property
+    def uri(self) -> str:
+        """What ``--database`` of the command line takes: the DuckDB file, or a postgresql:// URI."""
+        if self.engine == "duckdb":
+            return self.target
+        keywords = self.target
+        return f"postgresql://{keywords['user']}@{keywords['host']}:{keywords['port']}/{keywords['dbname']}"
+
     def query(self, con, sql: str, parameters: list | None = None) -> list[tuple]:
         if self.engine == "duckdb":
             return con.execute(sql, parameters).fetchall() if parameters else con.execute(sql).fetchall()
@@ -439,3 +447,39 @@ def test_published_views_score_with_plain_sql_of_the_engine(spector_file):
     with pytest.raises(dbfit.StoreError, match="already exists and was not published by dbfit"):
         dbfit.publish(con, "grades", "spector", "by_hand")
     plain.close()
+
+
+def test_command_line_keeps_models_in_the_store_of_either_engine(spector_file):
+    # The scheduler's commands with --database naming the DuckDB file or a postgresql:// URI.
+    con, database = spector_file
+    env = {**os.environ, "PYTHONPATH": WORKTREE}
+
+    def run(*arguments: str) -> tuple[int, dict]:
+        done = subprocess.run(
+            [sys.executable, "-m", "dbfit", *arguments, "--database", database.uri, "--json"],
+            capture_output=True,
+            text=True,
+            env=env,
+            timeout=300,
+        )
+        return done.returncode, json.loads(done.stdout) if done.stdout.strip() else {"stderr": done.stderr}
+
+    con.close()  # DuckDB lets one process write a file at a time
+    formula = ["--formula", "GRADE ~ GPA + TUCE + PSI", "--source", "spector"]
+    assert run("fit", "--name", "grades", *formula)[0] == 0
+    assert run("fit", "--name", "grades", *formula, "--weights", "1 + GPA")[1]["version"] == 2
+    code, listing = run("models")
+    assert code == 0 and [(v["version"], v["current"]) for v in listing["versions"]] == [
+        (1, False),
+        (2, True),
+    ]
+    code, made = run("publish", "grades", "--view", "grades_view", "--version", "1")
+    assert code == 0 and (made["mode"], made["version"]) == ("pinned", 1)
+    code, promoted = run("promote", "grades", "1", "--force")
+    assert code == 0 and promoted["decision"] == "promoted"
+    code, trail = run("decisions", "grades")
+    assert code == 0 and [d["reason"] for d in trail["decisions"]] == ["forced: gates not applied"]
+    reopened = database.connect()
+    assert dbfit.load(reopened, "grades").version == 1
+    assert len(database.query(reopened, "SELECT * FROM grades_view")) == 32
+    reopened.close()

@@ -17,10 +17,7 @@ from dbfit.store.model_store import Extra, save_models
 
 def save_time_rows(con: duckdb.DuckDBPyConnection, model: Model) -> Extra:
     """The fingerprint of the source the user gave and the drift snapshot of the training rows, computed before the
-    version's transaction; none when the source cannot be read here (a model moved in as JSON) or the store is
-    not in DuckDB (both are written in DuckDB's SQL: ``hash`` of a row, ``quantile_cont``)."""
-    if not isinstance(con, duckdb.DuckDBPyConnection):
-        return {}
+    version's transaction; none when the source cannot be read here (a model moved in as JSON)."""
     try:
         source = origin_source(model.options, model.source_or_own(None))
         return {
@@ -47,15 +44,13 @@ def save_segments(
     names = fitted.model_names(name)
     if fitted.by_expression is None:
         raise StoreError("this segmented fit does not know its by expression and cannot be stored")
-    prints: dict[Any, dict[str, Any]] = {}
     try:
-        if isinstance(con, duckdb.DuckDBPyConnection):  # the fingerprint is written in DuckDB's SQL
-            prints = segment_fingerprints(
-                con,
-                fitted.source,
-                fitted.by_expression,
-                {value: model.source for value, model in fitted.models.items()},
-            )
+        prints = segment_fingerprints(
+            con,
+            fitted.source,
+            fitted.by_expression,
+            {value: model.source for value, model in fitted.models.items()},
+        )
     except DbfitError:
         prints = {}  # the source cannot be read here (fitted on another engine): no fingerprints, as for one model
     # No drift snapshot per segment: one per segment would scan the source once per segment.
