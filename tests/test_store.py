@@ -26,6 +26,7 @@ from conftest import load_frame
 from pg_server import fresh_database
 
 import dbfit
+from dbfit.store import model_store as store
 
 WORKTREE = str(Path(__file__).resolve().parents[1])
 ENGINES = ["duckdb", "postgres"]
@@ -483,3 +484,21 @@ def test_command_line_keeps_models_in_the_store_of_either_engine(spector_file):
     assert dbfit.load(reopened, "grades").version == 1
     assert len(database.query(reopened, "SELECT * FROM grades_view")) == 32
     reopened.close()
+
+
+def test_gates_and_a_stale_promotion_on_either_engine(spector_file):
+    # The promotion check runs inside the decision's transaction (PostgreSQL: under the model's lock): a
+    # candidate checked against version 1 after version 2 became current is refused whole, nothing written.
+    con, _ = spector_file
+    model = spector_model(con)
+    dbfit.save(con, model, "grades")
+    assert [dbfit.save(con, model, "grades", promote=False) for _ in range(2)] == [2, 3]
+    assert dbfit.set_gates(con, "grades", max_shift=3.0).max_shift == 3.0
+    assert dbfit.gates_of(con, "grades").max_shift == 3.0
+    store.record_decision(con, "grades", 2, 1, "promoted", "passed every gate", {"auc": 0.9}, promote=True)
+    with pytest.raises(dbfit.StoreConflictError, match="version 2 became current"):
+        store.record_decision(con, "grades", 3, 1, "promoted", "passed every gate", {}, promote=True)
+    assert dbfit.load(con, "grades").version == 2
+    assert [(d["candidate_version"], d["figures"]) for d in dbfit.decisions(con, "grades")] == [
+        (2, {"auc": 0.9})
+    ]
