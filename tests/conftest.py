@@ -1,9 +1,10 @@
-"""Shared fixtures: a fresh in-memory dbfit connection per test, one PostgreSQL server and one local Spark session
-per test session, loaders for open datasets, and the rule that makes an engine test's skip a failure in CI.
+"""Shared fixtures: a fresh in-memory dbfit connection per test, one PostgreSQL server and one local Spark
+session per test session, loaders for open datasets, and the rule that makes an engine test's skip a failure
+in CI.
 
-With ``DBFIT_REQUIRE_ENGINES=1`` (``.ci/run`` sets it) a test skipped because PostgreSQL, psycopg, PySpark or
-Java is missing fails instead, with the skip's reason; without it such tests are skipped, so a developer without
-Java can still run the rest.
+With ``DBFIT_REQUIRE_ENGINES=1`` (``.ci/run`` sets it) a test skipped because PostgreSQL, psycopg, PySpark
+or Java is missing fails instead, with the skip's reason; without it such tests are skipped, so a developer
+without Java can still run the rest.
 """
 
 from __future__ import annotations
@@ -63,7 +64,7 @@ def con():
 
 @pytest.fixture(scope="session")
 def pg_server():
-    """psycopg connection keywords of the one PostgreSQL server of this test session (database ``postgres``)."""
+    """psycopg keywords of the one PostgreSQL server of this test session (database ``postgres``)."""
     from pg_server import server_or_skip
 
     with server_or_skip() as keywords:

@@ -87,7 +87,7 @@ def server_or_skip() -> Iterator[dict[str, object]]:
 
 @contextmanager
 def fresh_database(keywords: dict[str, object], name: str) -> Iterator[dict[str, object]]:
-    """A new empty database ``name`` on the server of ``keywords`` (its keywords yielded), dropped afterwards."""
+    """A new empty database ``name`` on the server of ``keywords`` (its keywords yielded), dropped after."""
     import psycopg
     from psycopg import sql
 

@@ -1,9 +1,9 @@
 """The model store: versions, round trips, JSON documents, transactions, locks and refused names.
 
 Datasets: statsmodels' spector data (Spector and Mazzeo 1980); reference: statsmodels Logit estimates.
-Each test runs on both engines that hold a store: a real DuckDB file on disk, and a database of its own on the
-test session's real PostgreSQL server (``pg_server`` in conftest); tests of a behaviour only one engine has say
-so. The kill and lock tests use real subprocesses.
+Each test runs on both engines that hold a store: a real DuckDB file on disk, and a database of its own on
+the test session's real PostgreSQL server (``pg_server`` in conftest); tests of a behaviour only one engine
+has say so. The kill and lock tests use real subprocesses.
 """
 
 from __future__ import annotations
@@ -33,7 +33,7 @@ ENGINES = ["duckdb", "postgres"]
 
 
 class Database:
-    """One test's database on one engine: new connections to it, plain queries and tables loaded from frames."""
+    """One test's database on one engine: new connections to it, plain queries, tables loaded from frames."""
 
     def __init__(self, engine: str, target: str | dict) -> None:
         self.engine, self.target = engine, target
@@ -250,9 +250,9 @@ def check_store(database: Database, first_estimates: np.ndarray, what: str) -> i
 
 @pytest.mark.parametrize("stop", [signal.SIGKILL, signal.SIGINT], ids=["SIGKILL", "SIGINT"])
 def test_interrupted_fits_never_leave_a_partial_version(database, stop):
-    # common practice: a committed transaction survives a crash, an uncommitted one leaves no trace (PostgreSQL
-    # rolls back the open transaction of a client that is gone). SIGINT raises KeyboardInterrupt (or DuckDB's
-    # interrupt) inside the fit or the write.
+    # common practice: a committed transaction survives a crash, an uncommitted one leaves no trace
+    # (PostgreSQL rolls back the open transaction of a client that is gone). SIGINT raises KeyboardInterrupt
+    # (or DuckDB's interrupt) inside the fit or the write.
     from dbfit.interfaces.demo import build_deliveries
 
     with database.connect() as con:
@@ -323,8 +323,8 @@ def test_second_writer_gets_a_clear_lock_message(tmp_path):
 
 
 def test_read_only_database_cannot_take_a_version(spector_file):
-    # PostgreSQL: a session whose transactions are read-only (default_transaction_read_only), which the store's
-    # own connection for the write inherits from the caller's connection parameters.
+    # PostgreSQL: a session whose transactions are read-only (default_transaction_read_only), which the
+    # store's own connection for the write inherits from the caller's connection parameters.
     con, database = spector_file
     model = spector_model(con)
     con.close()
@@ -415,9 +415,10 @@ def test_postgres_writers_of_one_model_wait_for_its_lock(database, spector_file)
 
 
 def test_published_views_score_with_plain_sql_of_the_engine(spector_file):
-    # Reference: statsmodels Logit predictions on spector (version 1) and with weights 1 + GPA (freq_weights of
-    # statsmodels GLM, version 2). The views are queried on a fresh connection with nothing of dbfit loaded
-    # (duckdb.connect, or psycopg); the pinned view keeps version 1, the live view follows the promotion.
+    # Reference: statsmodels Logit predictions on spector (version 1) and with weights 1 + GPA
+    # (freq_weights of statsmodels GLM, version 2). The views are queried on a fresh connection with nothing
+    # of dbfit loaded (duckdb.connect, or psycopg); the pinned view keeps version 1, the live view follows the
+    # promotion.
     con, database = spector_file
     frame = sm.datasets.spector.load_pandas().data
     design = sm.add_constant(frame[["GPA", "TUCE", "PSI"]])

@@ -52,8 +52,8 @@ class DuckDBEngine(Engine):
     def __init__(self, connection: Any) -> None:
         if not isinstance(connection, duckdb.DuckDBPyConnection):
             raise DbfitError(
-                f"this step (assessment, drift, the source fingerprint, refit and promotion through gates) runs "
-                f"on DuckDB only so far, not on a {type(connection).__module__.split('.')[0]} connection"
+                "this step (assessment, drift, the source fingerprint, refit and promotion through gates) "
+                f"runs on DuckDB only so far, not on a {type(connection).__module__.split('.')[0]} connection"
             )
         super().__init__(connection)
         self.aborted = False

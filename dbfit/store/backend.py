@@ -27,7 +27,7 @@ class StoreDatabase:
         raise NotImplementedError
 
     def fetch_fresh(self, sql: str, parameters: list[Any]) -> list[tuple[Any, ...]]:
-        """As :meth:`fetch`, seeing every committed write (outside the caller's open transaction if needed)."""
+        """As :meth:`fetch`, seeing every committed write (outside the caller's open transaction)."""
         return self.fetch(sql, parameters)
 
     def fetch_dicts(self, sql: str, parameters: list[Any]) -> list[dict[str, Any]]:
@@ -62,7 +62,7 @@ class StoreDatabase:
         raise NotImplementedError
 
     def create_view(self, statement: str, shown: str) -> None:
-        """Run a CREATE OR REPLACE VIEW in a transaction of :meth:`transaction`; a StoreError names ``shown``."""
+        """Run a CREATE OR REPLACE VIEW in a :meth:`transaction`; a StoreError names ``shown``."""
         raise NotImplementedError
 
 

@@ -1,4 +1,4 @@
-"""The versioned model store: tables in schema ``dbfit_store`` of the user's own database (DuckDB or PostgreSQL).
+"""The versioned model store: tables in schema ``dbfit_store`` of the user's database (DuckDB or PostgreSQL).
 
 ``models`` (one row per name), ``versions`` (one row per stored fit: summary statistics, the training-source
 fingerprint and the full model document), ``coefficients`` (the coefficient table of each version),

@@ -125,7 +125,7 @@ class PostgresStore(StoreDatabase):
 
 
 def _bound(sql: str) -> str:
-    """The store's ``?`` parameters in psycopg's spelling (the store's SQL has no ``%`` and no ``?`` in text)."""
+    """The store's ``?`` parameters in psycopg's spelling (the store's SQL has no ``%``, no ``?`` in text)."""
     return sql.replace("?", "%s")
 
 

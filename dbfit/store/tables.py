@@ -28,10 +28,11 @@ TABLES = {
     + ", ".join(f"{c} {'VARCHAR' if c == 'term' else 'DOUBLE'}" for c in COEFFICIENT_COLUMNS)
     + ", PRIMARY KEY (model, version, position)",
     "factors": f"""{_KEY}, position INTEGER NOT NULL, expression VARCHAR NOT NULL, kind VARCHAR NOT NULL,
-        sql_type VARCHAR NOT NULL, levels VARCHAR NOT NULL, reference VARCHAR, PRIMARY KEY (model, version, position)""",
-    "encodings": f"""{_KEY}, position INTEGER NOT NULL, label VARCHAR NOT NULL, term VARCHAR NOT NULL,
-        numeric_factors VARCHAR NOT NULL, indicators VARCHAR NOT NULL, centre DOUBLE NOT NULL, scale DOUBLE NOT NULL,
+        sql_type VARCHAR NOT NULL, levels VARCHAR NOT NULL, reference VARCHAR,
         PRIMARY KEY (model, version, position)""",
+    "encodings": f"""{_KEY}, position INTEGER NOT NULL, label VARCHAR NOT NULL, term VARCHAR NOT NULL,
+        numeric_factors VARCHAR NOT NULL, indicators VARCHAR NOT NULL, centre DOUBLE NOT NULL,
+        scale DOUBLE NOT NULL, PRIMARY KEY (model, version, position)""",
     "covariance": f"{_KEY}, row_term VARCHAR NOT NULL, column_term VARCHAR NOT NULL, value DOUBLE",
     "fingerprints": f"{_KEY}, source VARCHAR NOT NULL, source_rows BIGINT NOT NULL, checksum VARCHAR, "
     "PRIMARY KEY (model, version)",
@@ -41,9 +42,11 @@ TABLES = {
     "current_versions": "model VARCHAR PRIMARY KEY, version INTEGER NOT NULL, promoted_at TIMESTAMP NOT NULL",
     "gates": "model VARCHAR PRIMARY KEY, settings VARCHAR NOT NULL, set_at TIMESTAMP NOT NULL",
     "decisions": """decided_at TIMESTAMP NOT NULL, model VARCHAR NOT NULL, candidate_version INTEGER,
-        current_version INTEGER, decision VARCHAR NOT NULL, reason VARCHAR NOT NULL, figures VARCHAR NOT NULL""",
-    "published_views": """database_name VARCHAR NOT NULL, schema_name VARCHAR NOT NULL, view_name VARCHAR NOT NULL,
-        model VARCHAR, version INTEGER, mode VARCHAR NOT NULL, definition VARCHAR NOT NULL,
+        current_version INTEGER, decision VARCHAR NOT NULL, reason VARCHAR NOT NULL,
+        figures VARCHAR NOT NULL""",
+    "published_views": """database_name VARCHAR NOT NULL, schema_name VARCHAR NOT NULL,
+        view_name VARCHAR NOT NULL, model VARCHAR, version INTEGER, mode VARCHAR NOT NULL,
+        definition VARCHAR NOT NULL,
         published_at TIMESTAMP NOT NULL, PRIMARY KEY (database_name, schema_name, view_name)""",
 }
 VERSION_TABLES = (
