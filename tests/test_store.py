@@ -503,3 +503,15 @@ def test_gates_and_a_stale_promotion_on_either_engine(spector_file):
     assert [(d["candidate_version"], d["figures"]) for d in dbfit.decisions(con, "grades")] == [
         (2, {"auc": 0.9})
     ]
+
+
+def test_segment_models_are_stored_in_one_transaction_on_either_engine(spector_file):
+    # A by= fit stores one model per segment, every one of them or none (PostgreSQL: all their locks held).
+    con, _ = spector_file
+    fitted = dbfit.fit(con, "GRADE ~ GPA + TUCE", "spector", by="PSI", name="grades", progress=False)
+    stored = sorted(r["model"] for r in dbfit.models(con))
+    assert len(stored) == len(fitted.models) == 2 and all(name.startswith("grades.") for name in stored)
+    for model in fitted.models.values():
+        assert np.array_equal(dbfit.load(con, model.name).estimates, model.estimates)
+    again = dbfit.save(con, fitted, "grades")
+    assert sorted(again.values()) == [(name, 2) for name in stored]
