@@ -1,6 +1,18 @@
-"""Shared fixtures: a fresh in-memory dbfit connection per test, and loaders for open datasets."""
+"""Shared fixtures: a fresh in-memory dbfit connection per test, one PostgreSQL server and one local Spark
+session per test session, loaders for open datasets, and the rule that makes an engine test's skip a failure
+in CI.
+
+With ``DBFIT_REQUIRE_ENGINES=1`` (``.ci/run`` sets it) a test skipped because PostgreSQL, psycopg, PySpark
+or Java is missing fails instead, with the skip's reason; without it such tests are skipped, so a developer
+without Java can still run the rest.
+"""
 
 from __future__ import annotations
+
+import importlib
+import os
+import shutil
+from types import ModuleType
 
 import numpy as np
 import pandas as pd
@@ -8,12 +20,75 @@ import pytest
 
 import dbfit
 
+REQUIRE_ENGINES = "DBFIT_REQUIRE_ENGINES"
+
+
+class EngineMissing(pytest.skip.Exception):  # type: ignore[misc, name-defined]
+    """A skip because an engine (PostgreSQL, Spark) or what it needs is not installed here."""
+
+
+def skip_engine(reason: str) -> None:
+    """Skip the test because an engine is missing (a failure when ``DBFIT_REQUIRE_ENGINES=1``)."""
+    raise EngineMissing(reason)
+
+
+def import_engine_module(name: str) -> ModuleType:
+    """``name`` imported, or the test skipped as an engine test."""
+    try:
+        return importlib.import_module(name)
+    except ImportError as err:
+        skip_engine(f"could not import {name!r}: {err}")
+        raise
+
+
+@pytest.hookimpl(hookwrapper=True)
+def pytest_runtest_makereport(item, call):
+    outcome = yield
+    report = outcome.get_result()
+    if (
+        report.skipped
+        and call.excinfo is not None
+        and call.excinfo.errisinstance(EngineMissing)
+        and os.environ.get(REQUIRE_ENGINES) == "1"
+    ):
+        report.outcome = "failed"
+        report.longrepr = f"{REQUIRE_ENGINES}=1 and this engine test cannot run: {call.excinfo.value.msg}"
+
 
 @pytest.fixture
 def con():
     connection = dbfit.connect()
     yield connection
     connection.close()
+
+
+@pytest.fixture(scope="session")
+def pg_server():
+    """psycopg keywords of the one PostgreSQL server of this test session (database ``postgres``)."""
+    from pg_server import server_or_skip
+
+    with server_or_skip() as keywords:
+        yield keywords
+
+
+@pytest.fixture(scope="session")
+def spark_session():
+    """The one local Spark session (``local[2]``) of this test session; stopped at its end."""
+    import_engine_module("pyspark")
+    if shutil.which("java") is None:
+        skip_engine("no Java runtime for Spark")
+    os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
+    from pyspark.sql import SparkSession
+
+    session = (
+        SparkSession.builder.master("local[2]")
+        .appName("dbfit-tests")
+        .config("spark.ui.enabled", "false")
+        .config("spark.sql.shuffle.partitions", "2")
+        .getOrCreate()
+    )
+    yield session
+    session.stop()
 
 
 def load_frame(con, name: str, frame: pd.DataFrame) -> None:

@@ -73,15 +73,32 @@ def running_server(binaries: Path) -> Iterator[dict[str, object]]:
 
 @contextmanager
 def server_or_skip() -> Iterator[dict[str, object]]:
-    """``running_server`` on the installed binaries; the test is skipped when psycopg or PostgreSQL is missing."""
-    import pytest
+    """``running_server`` on the installed binaries; the test is skipped as an engine test (a failure under
+    ``DBFIT_REQUIRE_ENGINES=1``, see conftest) when psycopg or PostgreSQL is missing."""
+    from conftest import import_engine_module, skip_engine
 
-    pytest.importorskip("psycopg")
+    import_engine_module("psycopg")
     binaries = find_binaries()
     if binaries is None:
-        pytest.skip("PostgreSQL binaries are not installed")
+        skip_engine("PostgreSQL server binaries (initdb, pg_ctl) are not installed")
     with running_server(binaries) as keywords:
         yield keywords
+
+
+@contextmanager
+def fresh_database(keywords: dict[str, object], name: str) -> Iterator[dict[str, object]]:
+    """A new empty database ``name`` on the server of ``keywords`` (its keywords yielded), dropped after."""
+    import psycopg
+    from psycopg import sql
+
+    with psycopg.connect(**keywords, autocommit=True) as admin:
+        admin.execute(sql.SQL("DROP DATABASE IF EXISTS {} WITH (FORCE)").format(sql.Identifier(name)))
+        admin.execute(sql.SQL("CREATE DATABASE {}").format(sql.Identifier(name)))
+    try:
+        yield {**keywords, "dbname": name}
+    finally:
+        with psycopg.connect(**keywords, autocommit=True) as admin:
+            admin.execute(sql.SQL("DROP DATABASE IF EXISTS {} WITH (FORCE)").format(sql.Identifier(name)))
 
 
 @contextmanager

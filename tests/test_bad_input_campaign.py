@@ -338,15 +338,14 @@ def test_thousand_predictors_are_refused_before_any_statistics_pass(con, monkeyp
     assert passes == []
 
 
-def test_postgres_date_column_is_described_by_its_type_name():
-    from pg_server import find_binaries, running_server
-
-    binaries = find_binaries()
-    if binaries is None:
-        pytest.skip("PostgreSQL server binaries (initdb, pg_ctl) are not installed")
+def test_postgres_date_column_is_described_by_its_type_name(pg_server):
     import psycopg
+    from pg_server import fresh_database
 
-    with running_server(binaries) as keywords, psycopg.connect(**keywords, autocommit=True) as connection:
+    with (
+        fresh_database(pg_server, "dbfit_bad_input") as keywords,
+        psycopg.connect(**keywords, autocommit=True) as connection,
+    ):
         connection.execute(
             "CREATE TABLE visits AS SELECT (i % 2) AS y, DATE '2024-01-01' + i AS day, i::float8 AS x "
             "FROM generate_series(1, 20) AS i"

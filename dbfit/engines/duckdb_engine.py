@@ -50,6 +50,11 @@ class DuckDBEngine(Engine):
     parameters = True  # coefficients may be bound as ? parameters
 
     def __init__(self, connection: Any) -> None:
+        if not isinstance(connection, duckdb.DuckDBPyConnection):
+            raise DbfitError(
+                "this step (assessment, drift, the source fingerprint, refit and promotion through gates) "
+                f"runs on DuckDB only so far, not on a {type(connection).__module__.split('.')[0]} connection"
+            )
         super().__init__(connection)
         self.aborted = False
         self._checked: set[str] = set()  # query texts already looked at (and bound inside a transaction)

@@ -13,8 +13,14 @@ from dbfit.errors import StoreError
 _LOCK_HOLDER = re.compile(r"held in (.+?) \(PID (\d+)\)")
 
 
-def connect(database: str = ":memory:", **config: Any) -> duckdb.DuckDBPyConnection:
-    """Open a DuckDB connection (``config`` as in ``duckdb.connect``) and install dbfit on it."""
+POSTGRES_URI = re.compile(r"^postgres(?:ql)?://", re.IGNORECASE)
+
+
+def connect(database: str = ":memory:", **config: Any) -> Any:
+    """Open a DuckDB connection (``config`` as in ``duckdb.connect``) and install dbfit on it; a
+    ``postgresql://`` URI opens a psycopg connection (autocommit) to that database instead."""
+    if POSTGRES_URI.match(database):
+        return _connect_postgres(database, **config)
     read_only = bool(config.pop("read_only", False))
     try:
         con = duckdb.connect(database, read_only=read_only, config=config)
@@ -23,15 +29,28 @@ def connect(database: str = ":memory:", **config: Any) -> duckdb.DuckDBPyConnect
     return install(con)
 
 
-def connect_existing(database: str, **config: Any) -> duckdb.DuckDBPyConnection:
+def connect_existing(database: str, **config: Any) -> Any:
     """As :func:`connect`, but refuse a database file that does not exist instead of creating an empty one
     (a mistyped path would otherwise list no models, or run a script on a new empty file)."""
-    if database != ":memory:" and not Path(database).exists():
+    if database != ":memory:" and not POSTGRES_URI.match(database) and not Path(database).exists():
         raise StoreError(
             f"the database file '{database}' does not exist: check the path (only 'dbfit fit' creates "
             "a database file)"
         )
     return connect(database, **config)
+
+
+def _connect_postgres(uri: str, **config: Any) -> Any:
+    """A psycopg connection to the PostgreSQL database of ``uri`` (``config``: more libpq parameters)."""
+    try:
+        import psycopg
+    except ImportError:
+        raise StoreError("a postgresql:// database needs psycopg: pip install 'psycopg[binary]'") from None
+    try:
+        return psycopg.connect(uri, autocommit=True, **config)
+    except psycopg.Error as err:
+        first = (str(err).strip().splitlines() or [type(err).__name__])[0]
+        raise StoreError(f"the PostgreSQL database could not be opened: {first}") from None
 
 
 def install(con: duckdb.DuckDBPyConnection) -> duckdb.DuckDBPyConnection:
