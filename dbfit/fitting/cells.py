@@ -22,7 +22,7 @@ from __future__ import annotations
 import itertools
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -66,6 +66,36 @@ class SumPlan:
     pairs: list[tuple[int, int]]
     slot: np.ndarray
     grouped_levels: list[tuple[tuple[int, Any], ...]]  # per parameter: (position among cells, level)
+
+    def coefficient_tables(self, design: Design) -> list[CoefficientTable]:
+        """The coefficients by level combination of each set of grouped factors the columns carry."""
+        tables: dict[tuple[int, ...], CoefficientTable] = {}
+        for k, levels in enumerate(self.grouped_levels):
+            if not levels:
+                continue
+            factors = tuple(self.cells[position] for position, _ in levels)
+            if factors not in tables:
+                combos = itertools.product(*[design.factors[f].levels for f in factors])
+                tables[factors] = CoefficientTable(factors, {combo: row for row, combo in enumerate(combos)})
+            table = tables[factors]
+            monomial = int(self.monomial_of[k])
+            if monomial not in table.monomials:
+                table.monomials.append(monomial)
+            row = table.row_of[tuple(level for _, level in levels)]
+            table.entries.append((k, row, table.monomials.index(monomial)))
+        return list(tables.values())
+
+    def direct(self) -> list[int]:
+        """The parameters without grouped levels: each is its own monomial, with its own coefficient."""
+        return [k for k, levels in enumerate(self.grouped_levels) if not levels]
+
+    def query_parameters(self, design: Design, beta: np.ndarray) -> list[float]:
+        """The values of the query's parameters at ``beta``: the direct coefficients, then each coefficient
+        table row by row."""
+        values = [float(beta[k]) for k in self.direct()]
+        for table in self.coefficient_tables(design):
+            values += table.values(beta).ravel().tolist()
+        return values
 
     def width(self, score_only: bool = False) -> int:
         """The number of sums the query returns per group."""
@@ -128,6 +158,23 @@ class SumPlan:
             rows = np.flatnonzero(mono == monomial)
             gram[rows, :] = indicators[:, rows].T @ (indicators * per_cell[:, monomial, mono])
         return (gram + gram.T) / 2.0
+
+
+@dataclass
+class CoefficientTable:
+    """Per level combination of ``factors``, the coefficient of each of ``monomials`` in the linear predictor:
+    eta = offset + direct terms + sum over tables of g[levels of the row, a] m_a."""
+
+    factors: tuple[int, ...]
+    row_of: dict[tuple[Any, ...], int]  # every combination of the factors' levels, in product order
+    monomials: list[int] = field(default_factory=list)
+    entries: list[tuple[int, int, int]] = field(default_factory=list)  # (parameter, row, column)
+
+    def values(self, beta: np.ndarray) -> np.ndarray:
+        table = np.zeros((len(self.row_of), len(self.monomials)))
+        for k, row, column in self.entries:
+            table[row, column] += beta[k]
+        return table
 
 
 def sum_plan(design: Design, columns: Sequence[int], constant: bool, cells: Sequence[int] = ()) -> SumPlan:

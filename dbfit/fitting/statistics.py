@@ -18,7 +18,7 @@ from dbfit.design.layout import SEGMENT, Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError
 from dbfit.expressions import builders as sb
-from dbfit.fitting.cells import SumPlan, cell_factors, sum_plan
+from dbfit.fitting.cells import CoefficientTable, SumPlan, cell_factors, sum_plan
 from dbfit.fitting.rowterms import RowQuantities, carried_columns, linear_predictor, with_e
 from dbfit.solver.information import PassResult
 
@@ -74,16 +74,20 @@ def statistics_query(
     keys = [sb.column(key_name)] if key_name else []
     keys += [sb.column(design.factors[f].alias) for f in cells]
     base = (rows.copy() if rows is not None else design.base_query()).subquery("dbfit_base")
+    # Grouped by cells (without segment or level join), each row's linear predictor takes the coefficients of
+    # its level combination from small joined tables instead of one indicator expression per column.
+    tables = plan.coefficient_tables(design) if cells and not segmented and not level_join else None
     zs = [
         exp.alias_(design.column_expression(design.columns[j]), name, quoted=True)
         for j, name in zip(active, z_names)
+        if tables is None
     ]
     parameter_names: list[str | None] = [None] * (len(plan.parameters) - len(active)) + z_names
     names: list[str | None] = []
     monomials: list[exp.Expression] = []
     for a, monomial in enumerate(plan.monomials):
         same = plan.monomial_is_parameter(a)
-        if monomial is None or same is not None:
+        if monomial is None or (same is not None and tables is None):
             names.append(None if monomial is None else parameter_names[same])  # type: ignore[index]
             continue
         names.append(f"dbfit_m{a}")
@@ -100,7 +104,19 @@ def statistics_query(
         values = [exp.Placeholder() for _ in range(size)]
     else:
         values = [sb.number(b) for b in beta]
-    eta = linear_predictor(values, [None] * int(intercept) + [sb.column(name) for name in z_names])
+    if tables is not None:
+        direct = plan.direct()
+        eta = linear_predictor(
+            [values[k] for k in direct], [_named(names[plan.monomial_of[k]]) for k in direct]
+        )
+        for t, table in enumerate(tables):
+            terms = [
+                (exp.column(f"g{c}", table=f"dbfit_t{t}", quoted=True), _named(names[a]))
+                for c, a in enumerate(table.monomials)
+            ]
+            eta = sb.add(eta, *[g if m is None else sb.mul(g, m) for g, m in terms])
+    else:
+        eta = linear_predictor(values, [None] * int(intercept) + [sb.column(name) for name in z_names])
     if level_join:
         eta = sb.add(eta, exp.column("g", table="dbfit_coef", quoted=True))
     kept = [
@@ -113,6 +129,19 @@ def statistics_query(
     if keys:
         kept = [exp.column(c.name, table="dbfit_cols", quoted=True) for c in kept]
     linear = exp.select(*kept, exp.alias_(eta, "eta", quoted=True)).from_(columns.subquery("dbfit_cols"))
+    for t, table in enumerate(tables or []):
+        linear = linear.join(
+            _coefficient_table(design, table, None if beta is None else np.asarray(beta), f"dbfit_t{t}"),
+            on=exp.and_(
+                *[
+                    exp.EQ(
+                        this=exp.column(design.factors[f].alias, table="dbfit_cols", quoted=True),
+                        expression=exp.column(design.factors[f].alias, table=f"dbfit_t{t}", quoted=True),
+                    )
+                    for f in table.factors
+                ]
+            ),
+        )
     joined = coefficients if segmented else (level_join[1] if level_join else None)
     if joined is not None:
         linear = linear.join(
@@ -170,6 +199,37 @@ def statistics_query(
     )
     query = query.from_(weighted.subquery("dbfit_w"))
     return query.group_by(*[k.copy() for k in keys]) if keys else query
+
+
+def _named(name: str | None) -> exp.Expression | None:
+    return None if name is None else sb.column(name)
+
+
+def _coefficient_table(
+    design: Design, table: CoefficientTable, beta: np.ndarray | None, alias: str
+) -> exp.Expression:
+    """VALUES (levels..., g0, g1, ...) of one coefficient table: parameters, or the numbers at ``beta``."""
+    numbers = table.values(beta) if beta is not None else None
+    double = exp.DataType.build("DOUBLE")
+    rows = []
+    for combo, row in table.row_of.items():
+        levels = [design.factors[f].level_literal(v) for f, v in zip(table.factors, combo)]
+        gs = [
+            exp.Cast(
+                this=exp.Placeholder() if numbers is None else sb.number(numbers[row, c]), to=double.copy()
+            )
+            for c in range(len(table.monomials))
+        ]
+        rows.append(exp.Tuple(expressions=levels + gs))
+    columns = [design.factors[f].alias for f in table.factors] + [
+        f"g{c}" for c in range(len(table.monomials))
+    ]
+    return exp.Values(
+        expressions=rows,
+        alias=exp.TableAlias(
+            this=exp.to_identifier(alias), columns=[exp.to_identifier(c, quoted=True) for c in columns]
+        ),
+    )
 
 
 def query_plan(
@@ -244,7 +304,12 @@ class StatisticsPass:
                 )
                 self._sql[key] = (self.engine.sql(query), plan)
             sql, plan = self._sql[key]
-            rows = self.engine.fetch_sql(sql, [float(b) for b in beta], scan=self.rows is None)
+            values = (
+                plan.query_parameters(self.design, np.asarray(beta))
+                if self.cells
+                else [float(b) for b in beta]
+            )
+            rows = self.engine.fetch_sql(sql, values, scan=self.rows is None)
         found = unpack_groups(plan, rows, separate=False, score_only=score_only)
         if None not in found:  # no complete row in any cell
             size = len(plan.parameters)
