@@ -8,9 +8,9 @@ the column's *monomial*, its numeric part times its ungrouped indicators. Within
     (X'WX)[j, k] = sum over cells c of I_j(c) I_k(c) S_c[a(j), a(k)],   S_c[a, b] = sum over c's rows of wt m_a m_b,
 
 and the score is sum over c of I_j(c) R_c[a(j)] with R_c[a] = sum over c's rows of r m_a. Only the monomials'
-products are summed per row: with categoricals of 5, 20 and 50 levels beside 10 numeric columns, 78 sums
-per cell instead of 3,572 dense ones. The block decomposition by a grouping variable is the classic one of
-the analysis of designed experiments (Searle 1971, Linear Models, chapter 7, cited from memory).
+products are summed per row: with categoricals of 5, 20 and 50 levels beside 10 numeric columns, 80 sums
+per cell (66 products, 11 score parts, log-likelihood and two counts) instead of 3,572 dense ones. Sums are
+linear: grouping the rows changes only the order in which the same products are added (common practice).
 
 Products of monomials that are structurally zero (two indicators of different levels of one factor) are
 left out, and products equal to another one already summed (d x d = d for an indicator, d x e = e when e's
@@ -30,12 +30,15 @@ import numpy as np
 from dbfit.design.layout import Design, DesignColumn
 from dbfit.solver.information import PassResult
 
-# Bound on the groups of one grouped scan (cells, times segments with by=): measured on 1M rows, grouping
-# into 20,000 cells costs about as much per row as into 5,000, and the per-cell sums coming back (and their
-# assembly) stay below a tenth of the scan. Above it, fewer factors are grouped.
-MAX_CELLS = 20_000
-# A grouped scan hashes every row once: the saving must be worth at least this many sums per row.
-CELL_OVERHEAD_SUMS = 8
+# What a grouped scan costs, measured on 1M rows (DuckDB 2.0, 2 cores under load, so roughly): a sum costs
+# about the same per row grouped into up to 100 groups as in one, and more as the aggregate states
+# (groups x sums) outgrow the caches: 1.7 times at 55,000 states, 4.3 to 5 at 275,000, 6 to 8 at 1.1 million,
+# 12 at 2.75 million, 38 at 27.5 million, close to sqrt(states / 20,000). Hashing the keys and joining the
+# coefficient tables cost about as much as 16 sums per row.
+STATE_CACHE = 20_000
+CELL_OVERHEAD_SUMS = 16
+# Most groups of one grouped scan (cells, times segments with by=): their sums all come back to numpy.
+MAX_CELLS = 100_000
 # Most categorical factors whose subsets are all tried; beyond, the largest are grouped first.
 EXHAUSTIVE_FACTORS = 10
 FORCED: str | None = None  # "dense" or "cells": tests force one path to compare it with the other
@@ -66,9 +69,12 @@ class SumPlan:
     pairs: list[tuple[int, int]]
     slot: np.ndarray
     grouped_levels: list[tuple[tuple[int, Any], ...]]  # per parameter: (position among cells, level)
+    _tables: list[CoefficientTable] | None = field(default=None, repr=False)
 
     def coefficient_tables(self, design: Design) -> list[CoefficientTable]:
         """The coefficients by level combination of each set of grouped factors the columns carry."""
+        if self._tables is not None:
+            return self._tables
         tables: dict[tuple[int, ...], CoefficientTable] = {}
         for k, levels in enumerate(self.grouped_levels):
             if not levels:
@@ -83,7 +89,8 @@ class SumPlan:
                 table.monomials.append(monomial)
             row = table.row_of[tuple(level for _, level in levels)]
             table.entries.append((k, row, table.monomials.index(monomial)))
-        return list(tables.values())
+        self._tables = list(tables.values())
+        return self._tables
 
     def direct(self) -> list[int]:
         """The parameters without grouped levels: each is its own monomial, with its own coefficient."""
@@ -237,8 +244,8 @@ def cell_factors(design: Design, segments: int = 1) -> tuple[int, ...]:
     """The categorical factors to group the rows by (empty: the dense sums).
 
     Among the subsets of the categorical factors with indicator columns whose cells (the product of their
-    level counts, times ``segments``) stay within MAX_CELLS, the one with the fewest monomials; grouped only
-    when that saves more than CELL_OVERHEAD_SUMS sums per row.
+    level counts, times ``segments``) stay within MAX_CELLS, the one of least modelled cost per row
+    (:func:`grouped_cost`), if that is below the dense sums' count.
     """
     if FORCED == "dense":
         return ()
@@ -255,17 +262,24 @@ def cell_factors(design: Design, segments: int = 1) -> tuple[int, ...]:
     else:
         largest = sorted(used, key=lambda f: -levels[f])
         candidates = [tuple(largest[:size]) for size in range(1, len(used) + 1)]
-    fitting = [c for c in candidates if segments * math.prod(levels[f] for f in c) <= bound]
+    groups = {c: segments * math.prod(levels[f] for f in c) for c in candidates}
+    fitting = [c for c in candidates if groups[c] <= bound]
     if not fitting:
         return ()
 
-    def sums(subset: tuple[int, ...]) -> int:
-        return sum_plan(design, columns, design.intercept, subset).width()
+    def cost(subset: tuple[int, ...]) -> float:
+        monomials = _monomial_count(design, columns, subset)
+        return grouped_cost(groups[subset], monomials * (monomials + 1) // 2 + monomials + 3)
 
-    best = min(fitting, key=lambda c: (_monomial_count(design, columns, c), math.prod(levels[f] for f in c)))
-    if FORCED == "cells" or sums(best) + CELL_OVERHEAD_SUMS < sums(()):
-        return tuple(sorted(best))
-    return ()
+    best = min(fitting, key=lambda c: (cost(c), groups[c]))
+    dense = sum_plan(design, columns, design.intercept).width()
+    return tuple(sorted(best)) if FORCED == "cells" or cost(best) < dense else ()
+
+
+def grouped_cost(groups: int, sums: int) -> float:
+    """A grouped scan's cost per row, in ungrouped sums: ``sums`` slowed by the size of the aggregate states,
+    plus the hashing and joining (see STATE_CACHE)."""
+    return sums * max(1.0, math.sqrt(groups * sums / STATE_CACHE)) + CELL_OVERHEAD_SUMS
 
 
 def _monomial_count(design: Design, columns: Sequence[int], cells: tuple[int, ...]) -> int:

@@ -274,7 +274,8 @@ class StatisticsPass:
     ) -> None:
         self.engine, self.design, self.rows = engine, design, rows
         self.cells = cell_factors(design) if cells is None else cells
-        self._sql: dict[tuple[tuple[int, ...], bool, bool], tuple[str, SumPlan]] = {}
+        self._sql: dict[tuple[tuple[int, ...], bool, bool], str] = {}
+        self._plans: dict[tuple[tuple[int, ...], bool], SumPlan] = {}
 
     def __call__(self, parameters: list[int], beta: np.ndarray) -> PassResult:
         """One scan at ``beta`` over ``parameters`` (indices into intercept + columns)."""
@@ -284,7 +285,10 @@ class StatisticsPass:
         self, columns: tuple[int, ...], intercept: bool, beta: np.ndarray, score_only: bool = False
     ) -> PassResult:
         """One scan at ``beta`` over ``[intercept] + columns`` (indices into the design's columns)."""
-        plan = query_plan(self.design, list(columns), intercept, cells=self.cells)
+        plan_key = (columns, intercept)
+        if plan_key not in self._plans:
+            self._plans[plan_key] = query_plan(self.design, list(columns), intercept, cells=self.cells)
+        plan = self._plans[plan_key]
         if not self.engine.parameters:
             query = statistics_query(
                 self.design,
@@ -302,8 +306,8 @@ class StatisticsPass:
                 query = statistics_query(
                     self.design, list(columns), intercept, None, self.rows, score_only, cells=self.cells
                 )
-                self._sql[key] = (self.engine.sql(query), plan)
-            sql, plan = self._sql[key]
+                self._sql[key] = self.engine.sql(query)
+            sql = self._sql[key]
             values = (
                 plan.query_parameters(self.design, np.asarray(beta))
                 if self.cells
