@@ -11,6 +11,7 @@ from conftest import assert_close, load_frame
 from sqlglot import exp
 
 import dbfit
+import dbfit.fitting.blocks
 import dbfit.fitting.cells as cells
 from dbfit.design.layout import build_design
 from dbfit.engines.duckdb_engine import DuckDBEngine
@@ -188,3 +189,18 @@ def test_birthwt_interactions_by_cells_match_statsmodels(con, monkeypatch):
     for theirs, ours in names.items():
         assert_close(fitted[ours], reference.params[theirs], 1e-7, ours)
         assert_close(errors[ours], reference.bse[theirs], 1e-7, f"SE of {ours}")
+
+
+def test_a_factor_of_many_levels_keeps_the_blocks_path(con, monkeypatch):
+    visits(con)
+    con.execute("ALTER TABLE visits ADD COLUMN outlet VARCHAR")
+    con.execute("UPDATE visits SET outlet = 'o' || lpad((hash(i, 12) % 60)::VARCHAR, 2, '0')")
+    formula = "bought ~ x1 + outlet + day + x2:day"
+    blocked = dbfit.fit(con, formula, "visits", progress=False)
+    assert blocked.stats["statistics_path"] == "blocks"
+    monkeypatch.setattr(dbfit.fitting.blocks, "HIGH_CARDINALITY_LEVELS", 10_000)
+    dense, grouped = both_paths(con, monkeypatch, formula)
+    assert grouped.stats["statistics_path"] == "cells"
+    assert_same_fit(dense, grouped)
+    # The blocks solve through the Schur complement: equal to the dense solve up to its rounding.
+    assert_close(blocked.estimates, dense.estimates, 1e-9, "blocked vs dense estimates")

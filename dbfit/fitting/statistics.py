@@ -67,7 +67,7 @@ def statistics_query(
     sums and their order are those of :func:`query_plan`, whose ``assemble`` reads them back.
     """
     plan = query_plan(design, active, intercept, level_join is not None, cells)
-    check_width(len(plan.monomials) - 1 if cells else len(active))
+    check_width(sum(m is not None for m in plan.monomials) if cells else len(active))
     z_names = [f"dbfit_z{j}" for j in active]
     segmented = coefficients is not None
     key_name = SEGMENT if segmented else (level_join[0] if level_join else None)
@@ -82,16 +82,7 @@ def statistics_query(
         for j, name in zip(active, z_names)
         if tables is None
     ]
-    parameter_names: list[str | None] = [None] * (len(plan.parameters) - len(active)) + z_names
-    names: list[str | None] = []
-    monomials: list[exp.Expression] = []
-    for a, monomial in enumerate(plan.monomials):
-        same = plan.monomial_is_parameter(a)
-        if monomial is None or (same is not None and tables is None):
-            names.append(None if monomial is None else parameter_names[same])  # type: ignore[index]
-            continue
-        names.append(f"dbfit_m{a}")
-        monomials.append(exp.alias_(design.column_expression(monomial), names[-1], quoted=True))
+    names, monomials = _monomial_columns(design, plan, z_names if tables is None else None)
     summed = [n for n in names if n is not None]
     columns = exp.select(*[k.copy() for k in keys], *zs, *monomials, *carried_columns(design)).from_(base)
 
@@ -199,6 +190,26 @@ def statistics_query(
     )
     query = query.from_(weighted.subquery("dbfit_w"))
     return query.group_by(*[k.copy() for k in keys]) if keys else query
+
+
+def _monomial_columns(
+    design: Design, plan: SumPlan, z_names: list[str] | None
+) -> tuple[list[str | None], list[exp.Expression]]:
+    """Each monomial's column name (None: the constant) and the projections of those not already a z column
+    (with ``z_names`` None no z column is projected)."""
+    parameter_names: list[str | None] = [None] * (len(plan.parameters) - len(z_names or [])) + list(
+        z_names or []
+    )
+    names: list[str | None] = []
+    projections: list[exp.Expression] = []
+    for a, monomial in enumerate(plan.monomials):
+        same = plan.monomial_is_parameter(a) if z_names is not None else None
+        if monomial is None or same is not None:
+            names.append(None if monomial is None else parameter_names[same])  # type: ignore[index]
+            continue
+        names.append(f"dbfit_m{a}")
+        projections.append(exp.alias_(design.column_expression(monomial), names[-1], quoted=True))
+    return names, projections
 
 
 def _named(name: str | None) -> exp.Expression | None:
