@@ -128,10 +128,7 @@ class SumPlan:
         score = (scores[:, mono] if indicators is None else indicators * scores[:, mono]).sum(axis=0)
         gram = np.zeros((0, 0))
         if not score_only:
-            per_cell = np.zeros((len(cell_keys), q, q))
-            rows, columns = np.nonzero(self.slot >= 0)
-            per_cell[:, rows, columns] = values[:, self.slot[rows, columns]]
-            gram = self._gram(per_cell, indicators)
+            gram = self._gram(self._per_cell(values), indicators)
         return PassResult(
             gram=gram,
             score=score,
@@ -140,19 +137,43 @@ class SumPlan:
             misfit_extreme=float(tails[2]),
         )
 
+    def assemble_each(self, values: np.ndarray, score_only: bool) -> list[PassResult]:
+        """One PassResult per row of sums (a plan without cell keys: each row is a segment or a level)."""
+        values = np.asarray(values, dtype=float).reshape(-1, self.width(score_only))
+        pairs, q, mono = (0 if score_only else len(self.pairs)), len(self.monomials), self.monomial_of
+        scores = values[:, pairs : pairs + q][:, mono]
+        if score_only:
+            grams = np.zeros((len(values), 0, 0))
+        else:
+            grams = self._per_cell(values)[:, mono][:, :, mono]
+        tails = values[:, pairs + q :].tolist()
+        return [
+            PassResult(gram=grams[k], score=scores[k], loglik=t[0], extreme=t[1], misfit_extreme=t[2])
+            for k, t in enumerate(tails)
+        ]
+
+    def _per_cell(self, values: np.ndarray) -> np.ndarray:
+        """S_c, the monomial products of every row of sums as q x q matrices (0 where structurally zero)."""
+        q = len(self.monomials)
+        per_cell = np.zeros((len(values), q, q))
+        rows, columns = np.nonzero(self.slot >= 0)
+        per_cell[:, rows, columns] = values[:, self.slot[rows, columns]]
+        return per_cell
+
     def _indicators(self, cell_keys: Sequence[tuple[Any, ...]]) -> np.ndarray | None:
         """I_j(c) for every cell (row) and parameter (column); None without cell keys (all ones)."""
         if not self.cells:
             return None
-        keys = np.empty((len(cell_keys), len(self.cells)), dtype=object)
-        keys[:] = [tuple(k) for k in cell_keys] if cell_keys else np.empty((0, len(self.cells)))
-        matches: dict[tuple[int, Any], np.ndarray] = {}
+        codes: dict[int, tuple[dict[Any, int], np.ndarray]] = {}
         indicators = np.ones((len(cell_keys), len(self.parameters)))
         for k, levels in enumerate(self.grouped_levels):
             for position, level in levels:
-                if (position, level) not in matches:
-                    matches[position, level] = np.array([value == level for value in keys[:, position]])
-                indicators[:, k] *= matches[position, level]
+                if position not in codes:
+                    seen: dict[Any, int] = {}
+                    found = [seen.setdefault(key[position], len(seen)) for key in cell_keys]
+                    codes[position] = (seen, np.array(found, dtype=int))
+                seen, found = codes[position]
+                indicators[:, k] *= found == seen.get(level, -1)
         return indicators
 
     def _gram(self, per_cell: np.ndarray, indicators: np.ndarray | None) -> np.ndarray:

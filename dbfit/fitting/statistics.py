@@ -256,6 +256,10 @@ def unpack_groups(
     """Assemble the grouped query's rows: one PassResult per value of the first key when ``separate`` (a
     segment or a level), else the one result under the key None; the cell keys are summed over."""
     keys = (1 if separate else 0) + len(plan.cells)
+    if not plan.cells:
+        values = np.array([row[keys:] for row in rows], dtype=float)
+        results = plan.assemble_each(values, score_only)
+        return dict(zip([row[0] if separate else None for row in rows], results))
     groups: dict[Any, list[tuple]] = {}
     for row in rows:
         groups.setdefault(row[0] if separate else None, []).append(row)
