@@ -204,3 +204,17 @@ def test_a_factor_of_many_levels_keeps_the_blocks_path(con, monkeypatch):
     assert_same_fit(dense, grouped)
     # The blocks solve through the Schur complement: equal to the dense solve up to its rounding.
     assert_close(blocked.estimates, dense.estimates, 1e-9, "blocked vs dense estimates")
+
+
+@pytest.mark.parametrize("table_values", [0, 5_000])
+def test_linear_predictor_from_joined_tables_or_column_by_column(con, monkeypatch, table_values):
+    visits(con)
+    monkeypatch.setattr(cells, "MAX_TABLE_VALUES", table_values)
+    formula = "bought ~ x1 + shop + day + shop:day + size + x1:size"
+    design = build_design(DuckDBEngine(con), parse_formula(formula), source_relation("visits"))
+    columns = list(range(len(design.columns)))
+    query = statistics_query(design, columns, True, None, cells=cell_factors(design))
+    # One table per set of grouped factors a column carries: shop, day, shop:day and size.
+    assert len(list(query.find_all(exp.Values))) == (4 if table_values else 0)
+    dense, grouped = both_paths(con, monkeypatch, formula, weights="copies")
+    assert_same_fit(dense, grouped)

@@ -39,6 +39,9 @@ STATE_CACHE = 20_000
 CELL_OVERHEAD_SUMS = 16
 # Most groups of one grouped scan (cells, times segments with by=): their sums all come back to numpy.
 MAX_CELLS = 100_000
+# Most coefficients the joined tables of one query carry: DuckDB parses a VALUES list again on every pass,
+# about 0.1 s per 2,000 entries; beyond, each row's linear predictor is written out column by column.
+MAX_TABLE_VALUES = 5_000
 # Most categorical factors whose subsets are all tried; beyond, the largest are grouped first.
 EXHAUSTIVE_FACTORS = 10
 FORCED: str | None = None  # "dense" or "cells": tests force one path to compare it with the other
@@ -91,6 +94,15 @@ class SumPlan:
             table.entries.append((k, row, table.monomials.index(monomial)))
         self._tables = list(tables.values())
         return self._tables
+
+    def joined_tables(self, design: Design) -> list[CoefficientTable] | None:
+        """The coefficient tables the linear predictor joins, or None when it is written column by column
+        (no cell keys, or tables too large to write on every pass)."""
+        if not self.cells:
+            return None
+        tables = self.coefficient_tables(design)
+        size = sum(len(table.row_of) * len(table.monomials) for table in tables)
+        return tables if size <= MAX_TABLE_VALUES else None
 
     def direct(self) -> list[int]:
         """The parameters without grouped levels: each is its own monomial, with its own coefficient."""

@@ -76,7 +76,7 @@ def statistics_query(
     base = (rows.copy() if rows is not None else design.base_query()).subquery("dbfit_base")
     # Grouped by cells (without segment or level join), each row's linear predictor takes the coefficients of
     # its level combination from small joined tables instead of one indicator expression per column.
-    tables = plan.coefficient_tables(design) if cells and not segmented and not level_join else None
+    tables = plan.joined_tables(design) if not segmented and not level_join else None
     zs = [
         exp.alias_(design.column_expression(design.columns[j]), name, quoted=True)
         for j, name in zip(active, z_names)
@@ -325,7 +325,7 @@ class StatisticsPass:
             sql = self._sql[key]
             values = (
                 plan.query_parameters(self.design, np.asarray(beta))
-                if self.cells
+                if plan.joined_tables(self.design) is not None
                 else [float(b) for b in beta]
             )
             rows = self.engine.fetch_sql(sql, values, scan=self.rows is None)
