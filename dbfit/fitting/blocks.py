@@ -18,7 +18,7 @@ from sqlglot import exp
 from dbfit.design.layout import Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.expressions import builders as sb
-from dbfit.fitting.statistics import statistics_query, unpack_many
+from dbfit.fitting.statistics import query_plan, statistics_query, unpack_groups
 from dbfit.solver.information import BlockInformation, PassResult
 
 HIGH_CARDINALITY_LEVELS = 50  # a main-effect categorical with more levels than this is fitted by blocks
@@ -65,8 +65,8 @@ class BlockedStatisticsPass:
         rows = [(v, factor.level_literal(v), [float(level_beta.get(v, 0.0))]) for v in factor.levels]
         sql = template.render(rows)
         fetched = self.engine.fetch_sql(sql, [float(b) for b in beta[: len(dense)]], scan=self.rows is None)
-        groups = dict(
-            zip([row[0] for row in fetched], unpack_many([row[1:] for row in fetched], len(columns) + 1))
+        groups = unpack_groups(
+            query_plan(design, columns, intercept, level_join=True), fetched, separate=True
         )
         return _assemble_blocks(groups, level_values, intercept, len(columns))
 

@@ -22,6 +22,7 @@ from dbfit.fitting import firth as bias_reduction
 from dbfit.fitting import penalised, prior_correction
 from dbfit.fitting import robust as robust_errors
 from dbfit.fitting.blocks import BlockedStatisticsPass, blocked_factor, dense_first
+from dbfit.fitting.cells import cell_factors
 from dbfit.fitting.options import FitOptions
 from dbfit.fitting.sample_fit import SampleArrays, sampled_rows
 from dbfit.fitting.segments import fit_segments
@@ -207,7 +208,8 @@ def _fit(
             options=recorded,
         )
 
-    factor = blocked_factor(design) if engine.parameters else None
+    path = statistics_path(engine, design)
+    factor = blocked_factor(design) if path == "blocks" else None
     if factor is not None and not (special.plain and special.robust_kind is None):  # prior correction is fine
         raise FitError(
             f"'{design.factors[factor].text}' has {len(design.factors[factor].levels)} levels: firth, shrinkage and "
@@ -287,7 +289,16 @@ def _fit(
         )
     if special.population_rate is not None:
         model = prior_correction.prior_corrected(model, special.population_rate)
+    model.stats["statistics_path"] = path
     return model
+
+
+def statistics_path(engine: DuckDBEngine, design: Design) -> str:
+    """How a pass computes X'WX: "blocks" for a main-effect categorical of many levels, "cells" when the rows
+    are grouped by categorical levels (:func:`dbfit.fitting.cells.cell_factors`), else "dense"."""
+    if engine.parameters and blocked_factor(design) is not None:
+        return "blocks"
+    return "cells" if cell_factors(design) else "dense"
 
 
 def _sample_start(

@@ -21,7 +21,8 @@ from dbfit.engines.base import Engine
 from dbfit.errors import FitError
 from dbfit.expressions import builders as sb
 from dbfit.expressions.source import source_relation
-from dbfit.fitting.statistics import statistics_query, unpack_many
+from dbfit.fitting.cells import cell_factors
+from dbfit.fitting.statistics import query_plan, statistics_query, unpack_groups
 from dbfit.model import inference
 from dbfit.model.fitted import Model
 from dbfit.model.segmented import SegmentedFit, plain_value
@@ -68,7 +69,8 @@ def fit_segments(
         for value, part in segments.items()
     }
     saturated = {value: part.saturated_loglik for value, part in segments.items()}
-    results, passes = _run_together(engine, design, fitted, steps, failures, reporter, saturated)
+    cells = cell_factors(design, segments=len(segments))
+    results, passes = _run_together(engine, design, fitted, steps, failures, reporter, saturated, cells=cells)
     null = _null_logliks(engine, design, segments, results, max_iter, tol)
 
     models: dict[Any, Model] = {}
@@ -91,6 +93,7 @@ def fit_segments(
             sources[value],
             {**own_options, "segment": {"by": design.segment_text, "value": plain_value(value)}},
         )
+        models[value].stats["statistics_path"] = "cells" if cells else "dense"
     return SegmentedFit(
         by=design.segment_text or "",
         models=models,
@@ -146,6 +149,7 @@ def _run_together(
     saturated: dict[Any, float] | None = None,
     columns: list[int] | None = None,
     intercept: bool | None = None,
+    cells: tuple[int, ...] = (),
 ) -> tuple[dict[Any, NewtonResult], int]:
     """Drive every segment's Newton generator with one grouped query per pass."""
     has_intercept = 1 if design.intercept else 0
@@ -160,7 +164,8 @@ def _run_together(
     began, passes = time.perf_counter(), 0
     latest: dict[Any, float] = {}
     placeholder = sb.ValuesTemplate.placeholder("dbfit_coef")
-    query = statistics_query(design, columns, bool(intercept), None, coefficients=placeholder)
+    query = statistics_query(design, columns, bool(intercept), None, coefficients=placeholder, cells=cells)
+    plan = query_plan(design, columns, bool(intercept), cells=cells)
     template = sb.ValuesTemplate(
         engine.sql(query),
         engine.sql(placeholder),
@@ -171,7 +176,7 @@ def _run_together(
     while requests:
         passes += 1
         found = engine.fetch_sql(template.render(_coefficient_rows(requests, size)), [])
-        rows = dict(zip([row[0] for row in found], unpack_many([row[1:] for row in found], size)))
+        rows = unpack_groups(plan, found, separate=True)
         pending = list(requests.items())
         requests = {}
         for value, (_, active) in pending:

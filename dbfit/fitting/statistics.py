@@ -8,6 +8,9 @@ of :mod:`dbfit.fitting.rowterms`, written with e = exp(-|eta|), so no intermedia
 
 from __future__ import annotations
 
+import math
+from typing import Any
+
 import numpy as np
 from sqlglot import exp
 
@@ -15,15 +18,8 @@ from dbfit.design.layout import SEGMENT, Design
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError
 from dbfit.expressions import builders as sb
-from dbfit.fitting.rowterms import (
-    RowQuantities,
-    carried_columns,
-    linear_predictor,
-    symmetric,
-    triangle_size,
-    upper_pairs,
-    with_e,
-)
+from dbfit.fitting.cells import CoefficientTable, SumPlan, cell_factors, sum_plan
+from dbfit.fitting.rowterms import RowQuantities, carried_columns, linear_predictor, with_e
 from dbfit.solver.information import PassResult
 
 # The statistics query carries p(p + 1) / 2 sums for p dense columns (the intercept's besides): 45,150 at 300,
@@ -55,6 +51,7 @@ def statistics_query(
     score_only: bool = False,
     coefficients: exp.Expression | None = None,
     level_join: tuple[str, exp.Expression] | None = None,
+    cells: tuple[int, ...] = (),
 ) -> exp.Select:
     """Build the aggregate query for coefficients ``beta`` over ``[intercept] + active`` columns.
 
@@ -66,18 +63,28 @@ def statistics_query(
     ``level_join`` is ``(factor alias, relation of (that alias, g))``: each row's level coefficient ``g`` is
     joined in and added to the linear predictor, and the sums are grouped by level, always including the
     sums of the constant column (per-level totals), so that the information can be assembled by blocks.
+    ``cells`` are categorical factors the sums are further grouped by (after the segment or level key); the
+    sums and their order are those of :func:`query_plan`, whose ``assemble`` reads them back.
     """
-    check_width(len(active))
+    plan = query_plan(design, active, intercept, level_join is not None, cells)
+    check_width(sum(m is not None for m in plan.monomials) if cells else len(active))
     z_names = [f"dbfit_z{j}" for j in active]
     segmented = coefficients is not None
     key_name = SEGMENT if segmented else (level_join[0] if level_join else None)
     keys = [sb.column(key_name)] if key_name else []
+    keys += [sb.column(design.factors[f].alias) for f in cells]
     base = (rows.copy() if rows is not None else design.base_query()).subquery("dbfit_base")
+    # Grouped by cells (without segment or level join), each row's linear predictor takes the coefficients of
+    # its level combination from small joined tables instead of one indicator expression per column.
+    tables = plan.joined_tables(design) if not segmented and not level_join else None
     zs = [
         exp.alias_(design.column_expression(design.columns[j]), name, quoted=True)
         for j, name in zip(active, z_names)
+        if tables is None
     ]
-    columns = exp.select(*[k.copy() for k in keys], *zs, *carried_columns(design)).from_(base)
+    names, monomials = _monomial_columns(design, plan, z_names if tables is None else None)
+    summed = [n for n in names if n is not None]
+    columns = exp.select(*[k.copy() for k in keys], *zs, *monomials, *carried_columns(design)).from_(base)
 
     size = len(active) + (1 if intercept else 0)
     if segmented:
@@ -88,12 +95,24 @@ def statistics_query(
         values = [exp.Placeholder() for _ in range(size)]
     else:
         values = [sb.number(b) for b in beta]
-    eta = linear_predictor(values, [None] * int(intercept) + [sb.column(name) for name in z_names])
+    if tables is not None:
+        direct = plan.direct()
+        eta = linear_predictor(
+            [values[k] for k in direct], [_named(names[plan.monomial_of[k]]) for k in direct]
+        )
+        for t, table in enumerate(tables):
+            terms = [
+                (exp.column(f"g{c}", table=f"dbfit_t{t}", quoted=True), _named(names[a]))
+                for c, a in enumerate(table.monomials)
+            ]
+            eta = sb.add(eta, *[g if m is None else sb.mul(g, m) for g, m in terms])
+    else:
+        eta = linear_predictor(values, [None] * int(intercept) + [sb.column(name) for name in z_names])
     if level_join:
         eta = sb.add(eta, exp.column("g", table="dbfit_coef", quoted=True))
     kept = [
         *[k.copy() for k in keys],
-        *[sb.column(n) for n in z_names],
+        *[sb.column(n) for n in summed],
         sb.column("y"),
         sb.column("pw"),
         sb.column("n"),
@@ -101,6 +120,19 @@ def statistics_query(
     if keys:
         kept = [exp.column(c.name, table="dbfit_cols", quoted=True) for c in kept]
     linear = exp.select(*kept, exp.alias_(eta, "eta", quoted=True)).from_(columns.subquery("dbfit_cols"))
+    for t, table in enumerate(tables or []):
+        linear = linear.join(
+            _coefficient_table(design, table, None if beta is None else np.asarray(beta), f"dbfit_t{t}"),
+            on=exp.and_(
+                *[
+                    exp.EQ(
+                        this=exp.column(design.factors[f].alias, table="dbfit_cols", quoted=True),
+                        expression=exp.column(design.factors[f].alias, table=f"dbfit_t{t}", quoted=True),
+                    )
+                    for f in table.factors
+                ]
+            ),
+        )
     joined = coefficients if segmented else (level_join[1] if level_join else None)
     if joined is not None:
         linear = linear.join(
@@ -127,7 +159,7 @@ def statistics_query(
     )
     row_terms = exp.select(
         *[k.copy() for k in keys],
-        *[sb.column(n) for n in z_names],
+        *[sb.column(n) for n in summed],
         exp.alias_(quantities.working_weight(), "wt", quoted=True),
         exp.alias_(quantities.residual(), "r", quoted=True),
         exp.alias_(quantities.loglik(), "ll", quoted=True),
@@ -138,8 +170,8 @@ def statistics_query(
     ).from_(with_e(linear, "dbfit_lin").subquery("dbfit_e"))
     weighted = exp.select(
         *[k.copy() for k in keys],
-        *[sb.column(n) for n in z_names],
-        *[exp.alias_(sb.mul(sb.column("wt"), sb.column(n)), f"w{n}", quoted=True) for n in z_names],
+        *[sb.column(n) for n in summed],
+        *[exp.alias_(sb.mul(sb.column("wt"), sb.column(n)), f"w{n}", quoted=True) for n in summed],
         sb.column("wt"),
         sb.column("r"),
         sb.column("ll"),
@@ -148,9 +180,8 @@ def statistics_query(
     ).from_(row_terms.subquery("dbfit_terms"))
 
     sums: list[exp.Expression] = []
-    names = ([None] if intercept or level_join else []) + z_names
     if not score_only:
-        sums += [sb.agg_sum(_product(names[a], names[b])) for a, b in upper_pairs(len(names))]
+        sums += [sb.agg_sum(_product(names[a], names[b])) for a, b in plan.pairs]
     for name in names:
         sums.append(sb.agg_sum(sb.column("r") if name is None else sb.mul(sb.column("r"), sb.column(name))))
     sums += [sb.agg_sum(sb.column("ll")), sb.agg_sum(sb.column("ext")), sb.agg_sum(sb.column("bad"))]
@@ -161,12 +192,105 @@ def statistics_query(
     return query.group_by(*[k.copy() for k in keys]) if keys else query
 
 
-class StatisticsPass:
-    """Runs the statistics query for any coefficients, writing its SQL once per set of active columns."""
+def _monomial_columns(
+    design: Design, plan: SumPlan, z_names: list[str] | None
+) -> tuple[list[str | None], list[exp.Expression]]:
+    """Each monomial's column name (None: the constant) and the projections of those not already a z column
+    (with ``z_names`` None no z column is projected)."""
+    parameter_names: list[str | None] = [None] * (len(plan.parameters) - len(z_names or [])) + list(
+        z_names or []
+    )
+    names: list[str | None] = []
+    projections: list[exp.Expression] = []
+    for a, monomial in enumerate(plan.monomials):
+        same = plan.monomial_is_parameter(a) if z_names is not None else None
+        if monomial is None or same is not None:
+            names.append(None if monomial is None else parameter_names[same])  # type: ignore[index]
+            continue
+        names.append(f"dbfit_m{a}")
+        projections.append(exp.alias_(design.column_expression(monomial), names[-1], quoted=True))
+    return names, projections
 
-    def __init__(self, engine: DuckDBEngine, design: Design, rows: exp.Expression | None = None) -> None:
+
+def _named(name: str | None) -> exp.Expression | None:
+    return None if name is None else sb.column(name)
+
+
+def _coefficient_table(
+    design: Design, table: CoefficientTable, beta: np.ndarray | None, alias: str
+) -> exp.Expression:
+    """VALUES (levels..., g0, g1, ...) of one coefficient table: parameters, or the numbers at ``beta``."""
+    numbers = table.values(beta) if beta is not None else None
+    double = exp.DataType.build("DOUBLE")
+    rows = []
+    for combo, row in table.row_of.items():
+        levels = [design.factors[f].level_literal(v) for f, v in zip(table.factors, combo)]
+        gs = [
+            exp.Cast(
+                this=exp.Placeholder() if numbers is None else sb.number(numbers[row, c]), to=double.copy()
+            )
+            for c in range(len(table.monomials))
+        ]
+        rows.append(exp.Tuple(expressions=levels + gs))
+    columns = [design.factors[f].alias for f in table.factors] + [
+        f"g{c}" for c in range(len(table.monomials))
+    ]
+    return exp.Values(
+        expressions=rows,
+        alias=exp.TableAlias(
+            this=exp.to_identifier(alias), columns=[exp.to_identifier(c, quoted=True) for c in columns]
+        ),
+    )
+
+
+def query_plan(
+    design: Design, active: list[int], intercept: bool, level_join: bool = False, cells: tuple[int, ...] = ()
+) -> SumPlan:
+    """The sums of :func:`statistics_query` with these arguments; a level join always sums the constant."""
+    return sum_plan(design, active, intercept or level_join, cells)
+
+
+def unpack_groups(
+    plan: SumPlan, rows: list[tuple], separate: bool, score_only: bool = False
+) -> dict[Any, PassResult]:
+    """Assemble the grouped query's rows: one PassResult per value of the first key when ``separate`` (a
+    segment or a level), else the one result under the key None; the cell keys are summed over."""
+    keys = (1 if separate else 0) + len(plan.cells)
+    if not plan.cells:
+        values = np.array([row[keys:] for row in rows], dtype=float)
+        results = plan.assemble_each(values, score_only)
+        return dict(zip([row[0] if separate else None for row in rows], results))
+    groups: dict[Any, list[tuple]] = {}
+    for row in rows:
+        groups.setdefault(row[0] if separate else None, []).append(row)
+    return {
+        value: plan.assemble(
+            [tuple(row[1 if separate else 0 : keys]) for row in members],
+            np.array([row[keys:] for row in members], dtype=float),
+            score_only,
+        )
+        for value, members in groups.items()
+    }
+
+
+class StatisticsPass:
+    """Runs the statistics query for any coefficients, writing its SQL once per set of active columns.
+
+    ``cells`` are the categorical factors the rows are grouped by (see :mod:`dbfit.fitting.cells`); by
+    default the rule of :func:`dbfit.fitting.cells.cell_factors` chooses them.
+    """
+
+    def __init__(
+        self,
+        engine: DuckDBEngine,
+        design: Design,
+        rows: exp.Expression | None = None,
+        cells: tuple[int, ...] | None = None,
+    ) -> None:
         self.engine, self.design, self.rows = engine, design, rows
-        self._sql: dict[tuple[tuple[int, ...], bool], str] = {}
+        self.cells = cell_factors(design) if cells is None else cells
+        self._sql: dict[tuple[tuple[int, ...], bool, bool], str] = {}
+        self._plans: dict[tuple[tuple[int, ...], bool], SumPlan] = {}
 
     def __call__(self, parameters: list[int], beta: np.ndarray) -> PassResult:
         """One scan at ``beta`` over ``parameters`` (indices into intercept + columns)."""
@@ -176,18 +300,42 @@ class StatisticsPass:
         self, columns: tuple[int, ...], intercept: bool, beta: np.ndarray, score_only: bool = False
     ) -> PassResult:
         """One scan at ``beta`` over ``[intercept] + columns`` (indices into the design's columns)."""
+        plan_key = (columns, intercept)
+        if plan_key not in self._plans:
+            self._plans[plan_key] = query_plan(self.design, list(columns), intercept, cells=self.cells)
+        plan = self._plans[plan_key]
         if not self.engine.parameters:
             query = statistics_query(
-                self.design, list(columns), intercept, np.asarray(beta), self.rows, score_only
+                self.design,
+                list(columns),
+                intercept,
+                np.asarray(beta),
+                self.rows,
+                score_only,
+                cells=self.cells,
             )
-            row = self.engine.fetch(query, scan=self.rows is None)[0]
-            return unpack(row, len(columns) + (1 if intercept else 0), score_only)
-        key = (columns, intercept, score_only)
-        if key not in self._sql:
-            query = statistics_query(self.design, list(columns), intercept, None, self.rows, score_only)
-            self._sql[key] = self.engine.sql(query)
-        row = self.engine.fetch_sql(self._sql[key], [float(b) for b in beta], scan=self.rows is None)[0]
-        return unpack(row, len(columns) + (1 if intercept else 0), score_only)
+            rows = self.engine.fetch(query, scan=self.rows is None)
+        else:
+            key = (columns, intercept, score_only)
+            if key not in self._sql:
+                query = statistics_query(
+                    self.design, list(columns), intercept, None, self.rows, score_only, cells=self.cells
+                )
+                self._sql[key] = self.engine.sql(query)
+            sql = self._sql[key]
+            values = (
+                plan.query_parameters(self.design, np.asarray(beta))
+                if plan.joined_tables(self.design) is not None
+                else [float(b) for b in beta]
+            )
+            rows = self.engine.fetch_sql(sql, values, scan=self.rows is None)
+        found = unpack_groups(plan, rows, separate=False, score_only=score_only)
+        if None not in found:  # no complete row in any cell
+            size = len(plan.parameters)
+            return PassResult(
+                np.full((size, size), np.nan), np.full(size, np.nan), math.nan, math.nan, math.nan
+            )
+        return found[None]
 
     def score_only(self, parameters: list[int], beta: np.ndarray) -> PassResult:
         """A cheaper scan: the score and log-likelihood without X'WX (its ``gram`` is empty)."""
@@ -210,24 +358,3 @@ def _product(a: str | None, b: str | None) -> exp.Expression:
     if b is None:
         return sb.column(f"w{a}")
     return sb.mul(sb.column(f"w{a}"), sb.column(b))
-
-
-def unpack(row: tuple, size: int, score_only: bool = False) -> PassResult:
-    """Turn the query's single row into the symmetric Gram matrix, the score and the log-likelihood."""
-    return unpack_many([row], size, score_only)[0]
-
-
-def unpack_many(rows: list[tuple], size: int, score_only: bool = False) -> list[PassResult]:
-    """:func:`unpack` for many rows of the same layout at once (one per segment); NULL sums become NaN."""
-    values = np.array(rows, dtype=float).reshape(len(rows), -1)
-    if score_only:
-        grams, count = np.zeros((len(rows), 0, 0)), 0
-    else:
-        count = triangle_size(size)
-        grams = symmetric(values[:, :count], size)
-    scores = values[:, count : count + size]
-    tails = values[:, count + size : count + size + 3].tolist()
-    return [
-        PassResult(gram=grams[k], score=scores[k], loglik=tail[0], extreme=tail[1], misfit_extreme=tail[2])
-        for k, tail in enumerate(tails)
-    ]
