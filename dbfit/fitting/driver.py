@@ -28,7 +28,8 @@ from dbfit.fitting import robust as robust_errors
 from dbfit.fitting.blocks import BlockedStatisticsPass, blocked_factor, dense_first
 from dbfit.fitting.options import FitOptions
 from dbfit.fitting.segments import fit_segments
-from dbfit.fitting.statistics import StatisticsPass
+from dbfit.fitting.statistics import MAX_DENSE_COLUMNS, StatisticsPass, check_width
+from dbfit.fitting.streamed import MAX_STREAMED_COLUMNS, STREAMED_MIN_COLUMNS, StreamedStatisticsPass
 from dbfit.model import inference
 from dbfit.model.fitted import Model
 from dbfit.model.segmented import SegmentedFit
@@ -215,11 +216,14 @@ def _fit(
         fitted = dense_first(design, fitted, factor)
     default_start = start_values(design, None, fitted)
     start_deviance = np.inf
+    statistics_path = "blocks"
     if factor is not None:
-        full_pass = BlockedStatisticsPass(engine, design, factor)
+        full_pass: StatisticsPass | BlockedStatisticsPass = BlockedStatisticsPass(engine, design, factor)
         beta_start = start_values(design, start, fitted)
     else:
-        full_pass = StatisticsPass(engine, design)
+        check_design_width(engine, design, special.plain and special.robust_kind is None)
+        full_pass = statistics_pass(engine, design)
+        statistics_path = full_pass.path
         if (
             start is None
             and design.rows_used >= SAMPLE_START_ROWS
@@ -275,6 +279,7 @@ def _fit(
         source,
         {**recorded, "firth": firth},
     )
+    model.stats["statistics_path"] = statistics_path
     if firth:
         model = bias_reduction.annotate(model, newton.last)
     if special.penalty_request is not None:
@@ -332,7 +337,7 @@ def _sample_start(
             item.phase = f"sample of {SAMPLE_ROWS:,} rows"
             reporter(item)
 
-        sample_pass = StatisticsPass(engine, design, rows)
+        sample_pass = statistics_pass(engine, design, rows)
         protected = 1 if design.intercept else 0
         rules = NewtonRules(
             max_passes=max_iter,
@@ -355,7 +360,7 @@ def _sample_start(
     start[sample.active] = sample.beta
     if sample.aliased:
         return start, np.inf
-    full_pass = StatisticsPass(engine, design)
+    full_pass = statistics_pass(engine, design)
     scaled = sample.last.gram.scaled(design.rows_used / sampled_rows)
     return refine_with_fixed_information(full_pass, fitted, start, scaled, design.saturated_loglik, reporter)
 
@@ -386,6 +391,38 @@ def refine_with_fixed_information(
         lambda beta, active: full_pass.score_only(fitted, beta),
     )
     return refined.beta, refined.objective
+
+
+def statistics_pass(
+    engine: DuckDBEngine, design: Design, rows: exp.Expression | None = None
+) -> StatisticsPass:
+    """The full statistics pass for ``design``: on DuckDB, from STREAMED_MIN_COLUMNS columns, the design's rows
+    streamed through numpy (:mod:`dbfit.fitting.streamed`); otherwise, and on PostgreSQL and Spark (where the
+    rows would cross the network), the SQL sums. Both answer the same calls; the pass's ``path`` names it."""
+    if engine.dialect == "duckdb" and fitted_columns(design) >= STREAMED_MIN_COLUMNS:
+        return StreamedStatisticsPass(engine, design, rows)
+    return StatisticsPass(engine, design, rows)
+
+
+def check_design_width(engine: DuckDBEngine, design: Design, core_sums_only: bool) -> None:
+    """Refuse a design too wide before any pass runs. Streamed on DuckDB, a fit whose only p x p sums are the
+    core pass's (no Firth, shrinkage or robust errors, whose scans sum p x p products in SQL) may have up to
+    MAX_STREAMED_COLUMNS columns; every other fit at most MAX_DENSE_COLUMNS."""
+    columns = fitted_columns(design)
+    if columns <= MAX_DENSE_COLUMNS or not (engine.dialect == "duckdb" and core_sums_only):
+        check_width(columns)
+    elif columns > MAX_STREAMED_COLUMNS:
+        raise FitError(
+            f"the design has {columns} columns besides the intercept (numeric terms and indicator columns); "
+            f"dbfit fits at most {MAX_STREAMED_COLUMNS} (at most {MAX_DENSE_COLUMNS} with firth, shrinkage or "
+            "robust errors). Use fewer columns, put a categorical of many levels in the formula as one factor "
+            "(fitted by blocks), or select predictors first"
+        )
+
+
+def fitted_columns(design: Design) -> int:
+    """The design's columns besides the intercept that are fitted (not constant in the rows used)."""
+    return sum(1 for column in design.columns if not column.constant)
 
 
 def start_values(

@@ -67,7 +67,8 @@ def statistics_query(
     joined in and added to the linear predictor, and the sums are grouped by level, always including the
     sums of the constant column (per-level totals), so that the information can be assembled by blocks.
     """
-    check_width(len(active))
+    if not score_only:
+        check_width(len(active))
     z_names = [f"dbfit_z{j}" for j in active]
     segmented = coefficients is not None
     key_name = SEGMENT if segmented else (level_join[0] if level_join else None)
@@ -163,6 +164,8 @@ def statistics_query(
 
 class StatisticsPass:
     """Runs the statistics query for any coefficients, writing its SQL once per set of active columns."""
+
+    path = "dense"  # how the pass computes its sums, recorded in a model's stats
 
     def __init__(self, engine: DuckDBEngine, design: Design, rows: exp.Expression | None = None) -> None:
         self.engine, self.design, self.rows = engine, design, rows
