@@ -205,3 +205,15 @@ def test_a_value_failing_while_streamed_is_dbfits_error():
     with pytest.raises(AbortedTransactionError, match="ROLLBACK"):
         DuckDBEngine(connection).stream(FAILING_LATE, 1000, lambda batch: None)
     connection.execute("ROLLBACK")
+
+
+def test_wider_than_the_streamed_limit_is_refused_before_any_pass(con, monkeypatch):
+    load_frame(con, "wide", wide_frame(200, 12, seed=9))
+    monkeypatch.setattr(driver, "MAX_DENSE_COLUMNS", 5)
+    monkeypatch.setattr(driver, "MAX_STREAMED_COLUMNS", 10)
+    monkeypatch.setattr(driver, "STREAMED_MIN_COLUMNS", 1)
+    scans: list[int] = []
+    monkeypatch.setattr(DuckDBEngine, "stream", lambda *args, **kwargs: scans.append(1))
+    with pytest.raises(FitError, match="has 12 columns besides the intercept.*at most 10"):
+        dbfit.fit(con, "yes ~ " + " + ".join(f"x{j}" for j in range(12)), "wide", progress=False)
+    assert not scans

@@ -28,7 +28,8 @@ from dbfit.solver.information import PassResult
 
 # The statistics query carries p(p + 1) / 2 sums for p dense columns (the intercept's besides): 45,150 at 300,
 # 500,500 at 1,000, where building and planning the one aggregate costs minutes and gigabytes. Wider designs
-# (numeric terms and indicator columns, not counting the levels of a factor fitted by blocks) are refused.
+# (numeric terms and indicator columns, not counting the levels of a factor fitted by blocks) are refused,
+# except for plain fits on DuckDB, whose full pass streams the rows instead (:mod:`dbfit.fitting.streamed`).
 MAX_DENSE_COLUMNS = 300
 EXTREME_ETA = 17.0  # |eta| beyond this puts the fitted probability within 4e-8 of 0 or 1
 

@@ -31,10 +31,10 @@ from dbfit.fitting.rowterms import carried_columns
 from dbfit.fitting.statistics import EXTREME_ETA, StatisticsPass
 from dbfit.solver.information import DenseInformation, PassResult
 
-# Measured on 1M rows (2 cores, see the README): below about this many columns the SQL sums are faster.
+# Measured on 500,000 rows (2 busy cores, see the README): below about this many columns the SQL sums are faster.
 STREAMED_MIN_COLUMNS = 16
-# Streamed, the width is bounded by the p x p matrix and one batch, not by the size of one SQL statement.
-MAX_STREAMED_COLUMNS = 1000
+# Streamed, the width is not bounded by the size of one SQL statement; measured up to 500 columns (README).
+MAX_STREAMED_COLUMNS = 500
 BATCH_BYTES = 16 * 2**20  # the rows of one record batch, as doubles: about this many bytes
 MIN_BATCH_ROWS = 2048  # DuckDB's own vector size; smaller batches only add per-batch overhead
 CARRIED = 4  # off, y, pw, n follow the design row in every batch
