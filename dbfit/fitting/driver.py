@@ -29,7 +29,12 @@ from dbfit.fitting.blocks import BlockedStatisticsPass, blocked_factor, dense_fi
 from dbfit.fitting.options import FitOptions
 from dbfit.fitting.segments import fit_segments
 from dbfit.fitting.statistics import MAX_DENSE_COLUMNS, StatisticsPass, check_width
-from dbfit.fitting.streamed import MAX_STREAMED_COLUMNS, STREAMED_MIN_COLUMNS, StreamedStatisticsPass
+from dbfit.fitting.streamed import (
+    MAX_STREAMED_COLUMNS,
+    STREAMED_MIN_COLUMNS,
+    StreamedStatisticsPass,
+    one_blas_thread,
+)
 from dbfit.model import inference
 from dbfit.model.fitted import Model
 from dbfit.model.segmented import SegmentedFit
@@ -154,11 +159,12 @@ def fit_with(
         and not callable(progress)
         and sys.stderr.isatty()
     )
-    if engine.dialect == "duckdb":
-        # dbfit reports progress itself (or is quiet): DuckDB's own printed bar stays off during the fit.
-        with progress_settings(con, track=engine.live_progress):
-            return _fit(engine, formula, source, options, progress)
-    return _fit(engine, formula, source, options, progress)
+    with one_blas_thread():  # the p x p algebra is small; spinning BLAS threads would fight the engine's
+        if engine.dialect == "duckdb":
+            # dbfit reports progress itself (or is quiet): DuckDB's own printed bar stays off during the fit.
+            with progress_settings(con, track=engine.live_progress):
+                return _fit(engine, formula, source, options, progress)
+        return _fit(engine, formula, source, options, progress)
 
 
 def check_progress(progress: Any) -> None:
