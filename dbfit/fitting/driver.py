@@ -402,9 +402,9 @@ def refine_with_fixed_information(
 def statistics_pass(
     engine: DuckDBEngine, design: Design, rows: exp.Expression | None = None
 ) -> StatisticsPass:
-    """The full statistics pass for ``design``: on DuckDB, from STREAMED_MIN_COLUMNS columns, the design's rows
-    streamed through numpy (:mod:`dbfit.fitting.streamed`); otherwise, and on PostgreSQL and Spark (where the
-    rows would cross the network), the SQL sums. Both answer the same calls; the pass's ``path`` names it."""
+    """The full statistics pass for ``design``: on DuckDB, from STREAMED_MIN_COLUMNS columns, the design's
+    rows streamed through numpy (:mod:`dbfit.fitting.streamed`); otherwise, and on PostgreSQL and Spark (where
+    the rows would cross the network), the SQL sums. Both answer the same calls; the pass's ``path`` names it."""
     if engine.dialect == "duckdb" and fitted_columns(design) >= STREAMED_MIN_COLUMNS:
         return StreamedStatisticsPass(engine, design, rows)
     return StatisticsPass(engine, design, rows)
@@ -420,9 +420,9 @@ def check_design_width(engine: DuckDBEngine, design: Design, core_sums_only: boo
     elif columns > MAX_STREAMED_COLUMNS:
         raise FitError(
             f"the design has {columns} columns besides the intercept (numeric terms and indicator columns); "
-            f"dbfit fits at most {MAX_STREAMED_COLUMNS} (at most {MAX_DENSE_COLUMNS} with firth, shrinkage or "
-            "robust errors). Use fewer columns, put a categorical of many levels in the formula as one factor "
-            "(fitted by blocks), or select predictors first"
+            f"dbfit fits at most {MAX_STREAMED_COLUMNS} (at most {MAX_DENSE_COLUMNS} with firth, shrinkage "
+            "or robust errors). Use fewer columns, put a categorical of many levels in the formula as one "
+            "factor (fitted by blocks), or select predictors first"
         )
 
 
