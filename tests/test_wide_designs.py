@@ -217,3 +217,15 @@ def test_wider_than_the_streamed_limit_is_refused_before_any_pass(con, monkeypat
     with pytest.raises(FitError, match="has 12 columns besides the intercept.*at most 10"):
         dbfit.fit(con, "yes ~ " + " + ".join(f"x{j}" for j in range(12)), "wide", progress=False)
     assert not scans
+
+
+def test_streamed_pass_equals_sql_sums_with_categorical_indicators(con):
+    # Indicator columns and a numeric-by-categorical interaction come from the same column expressions.
+    frame = wide_frame(1500, 12, seed=12)
+    frame["depot"] = np.array(["north", "south", "east", "west", "hub"])[np.arange(1500) % 5]
+    load_frame(con, "wide", frame)
+    formula = "yes ~ " + " + ".join(f"x{j}" for j in range(12)) + " + depot + x0:depot"
+    sql, streamed, size = passes(con, formula, weights="w")
+    assert size == 1 + 12 + 4 + 4
+    beta = np.random.default_rng(3).normal(size=size) * 0.1
+    assert_same_pass(sql(list(range(size)), beta), streamed(list(range(size)), beta))
