@@ -26,7 +26,13 @@ from dbfit.fitting.cells import cell_factors
 from dbfit.fitting.options import FitOptions
 from dbfit.fitting.sample_fit import SampleArrays, sampled_rows
 from dbfit.fitting.segments import fit_segments
-from dbfit.fitting.statistics import StatisticsPass
+from dbfit.fitting.statistics import MAX_DENSE_COLUMNS, StatisticsPass, check_width
+from dbfit.fitting.streamed import (
+    MAX_STREAMED_COLUMNS,
+    STREAMED_MIN_COLUMNS,
+    StreamedStatisticsPass,
+    one_blas_thread,
+)
 from dbfit.model import inference
 from dbfit.model.fitted import Model
 from dbfit.model.segmented import SegmentedFit
@@ -156,11 +162,12 @@ def fit_with(
         and not callable(progress)
         and (progress is True or sys.stderr.isatty())  # True: plain lines where stderr is no terminal
     )
-    if engine.dialect == "duckdb":
-        # dbfit reports progress itself (or is quiet): DuckDB's own printed bar stays off during the fit.
-        with progress_settings(con, track=engine.live_progress):
-            return _fit(engine, formula, source, options, progress)
-    return _fit(engine, formula, source, options, progress)
+    with one_blas_thread():  # the p x p algebra is small; spinning BLAS threads would fight the engine's
+        if engine.dialect == "duckdb":
+            # dbfit reports progress itself (or is quiet): DuckDB's own printed bar stays off during the fit.
+            with progress_settings(con, track=engine.live_progress):
+                return _fit(engine, formula, source, options, progress)
+        return _fit(engine, formula, source, options, progress)
 
 
 def check_progress(progress: Any) -> None:
@@ -208,8 +215,7 @@ def _fit(
             options=recorded,
         )
 
-    path = statistics_path(engine, design)
-    factor = blocked_factor(design) if path == "blocks" else None
+    factor = blocked_factor(design) if engine.parameters else None
     if factor is not None and not (special.plain and special.robust_kind is None):  # prior correction is fine
         raise FitError(
             f"'{design.factors[factor].text}' has {len(design.factors[factor].levels)} levels: firth, shrinkage and "
@@ -219,11 +225,14 @@ def _fit(
         fitted = dense_first(design, fitted, factor)
     default_start = start_values(design, None, fitted)
     start_deviance = np.inf
+    statistics_path = "blocks"
     if factor is not None:
-        full_pass = BlockedStatisticsPass(engine, design, factor)
+        full_pass: StatisticsPass | BlockedStatisticsPass = BlockedStatisticsPass(engine, design, factor)
         beta_start = start_values(design, start, fitted)
     else:
-        full_pass = StatisticsPass(engine, design)
+        check_design_width(engine, design, special.plain and special.robust_kind is None)
+        full_pass = statistics_pass(engine, design)
+        statistics_path = full_pass.path
         if (
             start is None
             and design.rows_used >= SAMPLE_START_ROWS
@@ -231,7 +240,7 @@ def _fit(
             and engine.dialect == "duckdb"
         ):
             beta_start, start_deviance = _sample_start(
-                engine, design, fitted, default_start, max_iter, tol, reporter
+                engine, design, full_pass, fitted, default_start, max_iter, tol, reporter
             )
         else:
             beta_start = start_values(design, start, fitted)
@@ -289,21 +298,14 @@ def _fit(
         )
     if special.population_rate is not None:
         model = prior_correction.prior_corrected(model, special.population_rate)
-    model.stats["statistics_path"] = path
+    model.stats["statistics_path"] = statistics_path
     return model
-
-
-def statistics_path(engine: DuckDBEngine, design: Design) -> str:
-    """How a pass computes X'WX: "blocks" for a main-effect categorical of many levels, "cells" when the rows
-    are grouped by categorical levels (:func:`dbfit.fitting.cells.cell_factors`), else "dense"."""
-    if engine.parameters and blocked_factor(design) is not None:
-        return "blocks"
-    return "cells" if cell_factors(design) else "dense"
 
 
 def _sample_start(
     engine: DuckDBEngine,
     design: Design,
+    full_pass: StatisticsPass,
     fitted: list[int],
     default_start: np.ndarray,
     max_iter: int,
@@ -343,7 +345,6 @@ def _sample_start(
     start[sample.active] = sample.beta
     if sample.aliased:
         return start, np.inf
-    full_pass = StatisticsPass(engine, design)
     scaled = sample.last.gram.scaled(design.rows_used / sample_rows.rows)
     return refine_with_fixed_information(
         full_pass, fitted, start, scaled, design.saturated_loglik, reporter, tol
@@ -417,6 +418,49 @@ def full_pass_finishes(
         fall <= REFINE_FALL_SHARE * tol * (abs(deviance - fall) + 0.1)
         and left < REFINE_STEP_SHARE * STEP_TOLERANCE
     )
+
+
+def statistics_pass(
+    engine: DuckDBEngine, design: Design, rows: exp.Expression | None = None
+) -> StatisticsPass:
+    """The full statistics pass for ``design``; its ``path`` names how it computes X'WX.
+
+    "cells" when grouping the rows by categorical levels saves sums (:func:`dbfit.fitting.cells.cell_factors`)
+    and fewer than STREAMED_MIN_COLUMNS numeric parts remain to be summed per row; otherwise on DuckDB, from
+    STREAMED_MIN_COLUMNS columns, "streamed": the design's rows through numpy (:mod:`dbfit.fitting.streamed`);
+    else "dense", the SQL sums (always on PostgreSQL and Spark, where the rows would cross the network).
+    """
+    if cell_factors(design) and len(numeric_parts(design)) < STREAMED_MIN_COLUMNS:
+        return StatisticsPass(engine, design, rows)
+    if engine.dialect == "duckdb" and fitted_columns(design) >= STREAMED_MIN_COLUMNS:
+        return StreamedStatisticsPass(engine, design, rows)
+    return StatisticsPass(engine, design, rows)
+
+
+def numeric_parts(design: Design) -> set[tuple[int, ...]]:
+    """The distinct products of numeric factors among the design's fitted columns (what a cell sums per row)."""
+    return {column.numeric for column in design.columns if column.numeric and not column.constant}
+
+
+def check_design_width(engine: DuckDBEngine, design: Design, core_sums_only: bool) -> None:
+    """Refuse a design too wide before any pass runs. Streamed on DuckDB, a fit whose only p x p sums are the
+    core pass's (no Firth, shrinkage or robust errors, whose scans sum p x p products in SQL) may have up to
+    MAX_STREAMED_COLUMNS columns; every other fit at most MAX_DENSE_COLUMNS."""
+    columns = fitted_columns(design)
+    if columns <= MAX_DENSE_COLUMNS or not (engine.dialect == "duckdb" and core_sums_only):
+        check_width(columns)
+    elif columns > MAX_STREAMED_COLUMNS:
+        raise FitError(
+            f"the design has {columns} columns besides the intercept (numeric terms and indicator columns); "
+            f"dbfit fits at most {MAX_STREAMED_COLUMNS} (at most {MAX_DENSE_COLUMNS} with firth, shrinkage "
+            "or robust errors). Use fewer columns, put a categorical of many levels in the formula as one "
+            "factor (fitted by blocks), or select predictors first"
+        )
+
+
+def fitted_columns(design: Design) -> int:
+    """The design's columns besides the intercept that are fitted (not constant in the rows used)."""
+    return sum(1 for column in design.columns if not column.constant)
 
 
 def start_values(

@@ -24,7 +24,8 @@ from dbfit.solver.information import PassResult
 
 # The statistics query carries p(p + 1) / 2 sums for p dense columns (the intercept's besides): 45,150 at 300,
 # 500,500 at 1,000, where building and planning the one aggregate costs minutes and gigabytes. Wider designs
-# (numeric terms and indicator columns, not counting the levels of a factor fitted by blocks) are refused.
+# (numeric terms and indicator columns, not counting the levels of a factor fitted by blocks) are refused,
+# except for plain fits on DuckDB, whose full pass streams the rows instead (:mod:`dbfit.fitting.streamed`).
 MAX_DENSE_COLUMNS = 300
 EXTREME_ETA = 17.0  # |eta| beyond this puts the fitted probability within 4e-8 of 0 or 1
 
@@ -67,7 +68,8 @@ def statistics_query(
     sums and their order are those of :func:`query_plan`, whose ``assemble`` reads them back.
     """
     plan = query_plan(design, active, intercept, level_join is not None, cells)
-    check_width(sum(m is not None for m in plan.monomials) if cells else len(active))
+    if not score_only:
+        check_width(sum(m is not None for m in plan.monomials) if cells else len(active))
     z_names = [f"dbfit_z{j}" for j in active]
     segmented = coefficients is not None
     key_name = SEGMENT if segmented else (level_join[0] if level_join else None)
@@ -289,6 +291,9 @@ class StatisticsPass:
     ) -> None:
         self.engine, self.design, self.rows = engine, design, rows
         self.cells = cell_factors(design) if cells is None else cells
+        self.path = (
+            "cells" if self.cells else "dense"
+        )  # how the pass computes its sums, kept in a model's stats
         self._sql: dict[tuple[tuple[int, ...], bool, bool], str] = {}
         self._plans: dict[tuple[tuple[int, ...], bool], SumPlan] = {}
 
