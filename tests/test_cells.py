@@ -13,6 +13,7 @@ from sqlglot import exp
 import dbfit
 import dbfit.fitting.blocks
 import dbfit.fitting.cells as cells
+import dbfit.fitting.driver as driver
 from dbfit.design.layout import build_design
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.expressions.formula import parse_formula
@@ -42,6 +43,9 @@ def visits(con, rows: int = 6000) -> None:
 
 def both_paths(con, monkeypatch, formula: str, **options):
     fits = {}
+    monkeypatch.setattr(
+        driver, "STREAMED_MIN_COLUMNS", 10**6
+    )  # compare with the SQL sums, not the streamed pass
     for path in ("dense", "cells"):
         monkeypatch.setattr(cells, "FORCED", path)
         fits[path] = dbfit.fit(con, formula, "visits", progress=False, **options)

@@ -420,9 +420,7 @@ def full_pass_finishes(
     )
 
 
-def statistics_pass(
-    engine: DuckDBEngine, design: Design, rows: exp.Expression | None = None
-) -> StatisticsPass:
+def statistics_pass(engine: DuckDBEngine, design: Design) -> StatisticsPass:
     """The full statistics pass for ``design``; its ``path`` names how it computes X'WX.
 
     "cells" when grouping the rows by categorical levels saves sums (:func:`dbfit.fitting.cells.cell_factors`)
@@ -431,10 +429,10 @@ def statistics_pass(
     else "dense", the SQL sums (always on PostgreSQL and Spark, where the rows would cross the network).
     """
     if cell_factors(design) and len(numeric_parts(design)) < STREAMED_MIN_COLUMNS:
-        return StatisticsPass(engine, design, rows)
+        return StatisticsPass(engine, design)
     if engine.dialect == "duckdb" and fitted_columns(design) >= STREAMED_MIN_COLUMNS:
-        return StreamedStatisticsPass(engine, design, rows)
-    return StatisticsPass(engine, design, rows)
+        return StreamedStatisticsPass(engine, design)
+    return StatisticsPass(engine, design)
 
 
 def numeric_parts(design: Design) -> set[tuple[int, ...]]:
