@@ -55,12 +55,41 @@ def test_every_scenario_runs_tiny_and_agrees_with_the_reference_libraries(name, 
     assert len(compared) == expected_compared
     assert all(r["max_abs_difference"] < 1e-6 for r in compared), [r["max_abs_difference"] for r in compared]
     assert all(r["time_ratio"] > 0 and r["memory_ratio"] > 0 for r in compared)
+    agreement = [c for c in report["targets"] if "estimates agree" in c["target"]]
+    assert [c["met"] for c in agreement] == ([True] if compared else [])
     if name == "categorical":  # 83 columns: the first level of each factor left out, as dbfit codes it
         assert len(records[0]["labels"]) == 1 + 10 + 4 + 19 + 49
         assert all(r["labels"] == records[0]["labels"] for r in records[1:])
     table = capsys.readouterr().out.split("\n\n")[-1].strip().splitlines()
     assert len(table) == 2 + len(records)
     assert all(TABLE_ROW.match(line) for line in table), table
+
+
+def test_targets_are_judged_from_the_ratios_of_one_run():
+    def record(key: str, **figures: float) -> dict:
+        return {"key": key, "method": key, "status": "ok", "subject": "dbfit", **figures}
+
+    scenarios = [
+        {
+            "scenario": "wide",
+            "records": [
+                record("dbfit"),
+                record("numpy", time_ratio=0.5, memory_ratio=0.4, max_abs_difference=2e-8),
+                {"key": "sklearn", "method": "sklearn", "status": "not run"},
+            ],
+        },
+        {
+            "scenario": "core",
+            "records": [record("dbfit"), {"key": "numpy", "method": "n", "status": "did not fit"}],
+        },
+    ]
+    checks = {c["target"]: (c["measured"], c["met"]) for c in bench.target_checks(scenarios)}
+    assert checks == {
+        "wide: dbfit / numpy, time_ratio <= 0.6": (0.5, True),
+        "wide: dbfit / numpy, memory_ratio <= 0.3": (0.4, False),
+        "wide: estimates agree with every baseline to 1e-08": (2e-8, False),
+        "core: dbfit / n, time_ratio <= 0.5": (None, None),
+    }
 
 
 def test_cli_prints_the_markdown_table_writes_json_and_repeats_every_method(tmp_path):

@@ -675,9 +675,55 @@ SCENARIO_RUNNERS: dict[str, Callable[[str, BenchOptions], Scenario]] = {
 }
 
 
+# Targets of issue 13, each: scenario, the record compared with dbfit, the ratio checked, its bound.
+TARGETS = (
+    ("core", "numpy", "time_ratio", 0.5),
+    ("core", "sklearn", "time_ratio", 0.25),
+    ("categorical", "numpy", "time_ratio", 0.25),
+    ("wide", "numpy", "time_ratio", 0.6),
+    ("wide", "numpy", "memory_ratio", 0.3),
+    ("segments", "dbfit", "time_ratio", 2.0),
+)
+AGREEMENT_TARGET = 1e-8
+
+
+def target_checks(scenarios: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """Each target of the scenarios that ran: what it bounds, the figure measured (None when a method did not
+    run) and whether it is met; and per scenario, the largest estimate difference against any baseline."""
+    checks = []
+    for scenario in scenarios:
+        records = {r["key"]: r for r in scenario["records"]}
+        for name, key, field, bound in TARGETS:
+            if name == scenario["scenario"] and key in records:
+                record = records[key]
+                text = (
+                    f"{scenario['scenario']}: {record.get('subject', 'dbfit')} / {record['method']}, {field}"
+                )
+                checks.append(_check(f"{text} <= {bound:g}", record.get(field), bound))
+        gaps = [r["max_abs_difference"] for r in scenario["records"] if "max_abs_difference" in r]
+        if gaps:
+            text = f"{scenario['scenario']}: estimates agree with every baseline to {AGREEMENT_TARGET:g}"
+            checks.append(_check(text, max(gaps), AGREEMENT_TARGET))
+    return checks
+
+
+def _check(target: str, measured: float | None, bound: float) -> dict[str, Any]:
+    met = None if measured is None else measured <= bound
+    return {"target": target, "measured": measured, "met": met}
+
+
+def _targets_table(checks: list[dict[str, Any]]) -> str:
+    lines = ["| target | measured | met |", "| --- | --- | --- |"]
+    for check in checks:
+        measured = "not measured" if check["measured"] is None else f"{check['measured']:.3g}"
+        met = {True: "yes", False: "no", None: ""}[check["met"]]
+        lines.append(f"| {check['target']} | {measured} | {met} |")
+    return "\n".join(lines)
+
+
 def run_bench(options: BenchOptions) -> dict[str, Any]:
-    """Run one scenario (or ``all``), print each measurement and then the Markdown table; write the JSON when
-    ``options.json_path`` is set. Returns what the JSON holds."""
+    """Run one scenario (or ``all``), print each measurement, the targets met or missed and the Markdown
+    table; write the JSON when ``options.json_path`` is set. Returns what the JSON holds."""
     if options.scenario != "all" and options.scenario not in SCENARIO_RUNNERS:
         raise ValueError(f"unknown scenario {options.scenario!r}; choose from {', '.join(SCENARIOS)} or all")
     chosen = SCENARIOS if options.scenario == "all" else (options.scenario,)
@@ -690,7 +736,11 @@ def run_bench(options: BenchOptions) -> dict[str, Any]:
         "machine": {"cpus": os.cpu_count(), "baseline_memory_cap_gb": options.memory_cap_gb},
         "repeat": options.repeat,
         "scenarios": scenarios,
+        "targets": target_checks(scenarios),
     }
+    if report["targets"]:
+        print()
+        print(_targets_table(report["targets"]))
     print()
     print(markdown_table(scenarios))
     if options.json_path:
