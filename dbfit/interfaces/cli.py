@@ -44,23 +44,10 @@ def build_parser() -> argparse.ArgumentParser:
     )
     demo.add_argument("--quiet", action="store_true", help="no per-pass progress lines")
 
-    bench = command("bench", "measure dbfit against export+statsmodels and in-memory numpy")
-    bench.add_argument(
-        "--scenario",
-        default="core",
-        choices=["core", "levels", "segments", "outofcore", "spark", "all"],
-        help="what to measure (default: %(default)s)",
-    )
-    bench.add_argument("--rows", type=int, default=None, help="rows (default: the scenario's own size)")
-    bench.add_argument(
-        "--predictors", type=int, default=None, help="numeric predictors (default: per scenario)"
-    )
-    bench.add_argument("--levels", type=int, default=5000, help="levels of the categorical in 'levels'")
-    bench.add_argument("--segments", type=int, default=1000, help="segments in 'segments'")
-    bench.add_argument("--memory-limit", default="2GB", help="DuckDB memory_limit in 'outofcore'")
-    bench.add_argument("--keep", default=None, help="core: reuse or keep the data in this DuckDB file")
-    bench.add_argument(
-        "--repeat", type=int, default=1, help="run each measurement this many times; show the median"
+    from dbfit.interfaces.bench import add_bench_arguments
+
+    add_bench_arguments(
+        command("bench", "measure dbfit against exported-data baselines, each in its own process")
     )
 
     script = command("sql", "run a .sql script with the dbfit. SQL functions installed")
@@ -81,18 +68,9 @@ def main(argv: list[str] | None = None) -> int:
 
             run_demo(args.database, args.rows, quiet=args.quiet)
         elif args.command == "bench":
-            from dbfit.interfaces.bench import run_bench
+            from dbfit.interfaces.bench import run_bench_command
 
-            run_bench(
-                args.scenario,
-                args.rows,
-                args.predictors,
-                args.keep,
-                args.levels,
-                args.segments,
-                args.memory_limit,
-                args.repeat,
-            )
+            run_bench_command(args)
         elif args.command == "sql":
             _run_sql_file(args.file, args.database)
         else:
