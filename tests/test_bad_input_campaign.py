@@ -13,6 +13,7 @@ import pytest
 
 import dbfit
 from dbfit.fitting import statistics as statsquery
+from dbfit.fitting.streamed import StreamedStatisticsPass
 from dbfit.interfaces.cli import main
 
 OPTION_CASES = [
@@ -330,9 +331,10 @@ def test_unknown_column_hint_lists_all_columns_and_the_closest(con):
 def test_thousand_predictors_are_refused_before_any_statistics_pass(con, monkeypatch):
     columns = ", ".join(f"(((range + {k}) * 7919) % 101)::DOUBLE AS x{k}" for k in range(1000))
     con.execute(f"CREATE TABLE wide AS SELECT (range % 2)::INT AS y, {columns} FROM range(30)")
-    passes = []  # every statistics pass unpacks the one row its query returned
-    original = statsquery.unpack
-    monkeypatch.setattr(statsquery, "unpack", lambda *a, **k: passes.append(1) or original(*a, **k))
+    passes = []
+    for kind in (statsquery.StatisticsPass, StreamedStatisticsPass):
+        original = kind.run
+        monkeypatch.setattr(kind, "run", lambda *a, _run=original, **k: passes.append(1) or _run(*a, **k))
     formula = "y ~ " + " + ".join(f"x{k}" for k in range(1000))
     refused(lambda: dbfit.fit(con, formula, "wide", progress=False), ["1000 columns", "fewer columns"])
     assert passes == []
