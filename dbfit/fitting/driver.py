@@ -20,6 +20,7 @@ from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.engines.progress import progress_settings
 from dbfit.errors import FitError
 from dbfit.expressions import builders as sb
+from dbfit.design.term_resolution import resolve_formula
 from dbfit.expressions.formula import parse_formula
 from dbfit.expressions.source import source_relation
 from dbfit.fitting import firth as bias_reduction
@@ -170,6 +171,15 @@ def _fit(
 ) -> Model | SegmentedFit:
     special = options.variants()
     max_iter, tol, start, by = options.max_iter, options.tol, options.start, options.by
+    resolution = resolve_formula(
+        engine,
+        formula,
+        source_relation(source),
+        missing=options.missing,
+        option_expressions=(options.weights, options.offset, options.trials, by),
+        weights=options.weights,
+    )
+    formula = resolution.formula
     parsed = parse_formula(formula)
     design = build_design(
         engine,
@@ -182,6 +192,7 @@ def _fit(
         reference=dict(options.reference or {}),
         by=by,
     )
+    design.filled_rows, design.columns_at_fit = resolution.filled_rows, resolution.source_columns_seen
     has_intercept = 1 if design.intercept else 0
     constant = [k + has_intercept for k, c in enumerate(design.columns) if c.constant]
     all_parameters = list(range(len(design.labels)))
@@ -497,6 +508,10 @@ def assemble_model(
     }
     if design.trials is not None:
         stats["rows_zero_trials"] = design.rows_zero_trials
+    if design.filled_rows:
+        stats["missing_filled"] = dict(design.filled_rows)
+    if design.columns_at_fit is not None:
+        stats["source_columns_at_fit"] = list(design.columns_at_fit)
     return Model(
         formula=formula,
         source=source,
