@@ -41,8 +41,8 @@ from dbfit.errors import DbfitError
 from dbfit.expressions import builders as sb
 from dbfit.expressions import dialects
 from dbfit.expressions.dialects import Dialect
-from dbfit.expressions.dialects.duckdb import DUCKDB
 from dbfit.expressions.dialects.date_parts import write_date_parts
+from dbfit.expressions.dialects.duckdb import DUCKDB
 from dbfit.expressions.source import source_relation
 
 UNSEEN_POLICIES = ("null", "reference", "error")

@@ -19,6 +19,7 @@ import math
 import re
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+
 from sqlglot import exp
 
 from dbfit.engines.duckdb_engine import DuckDBEngine
@@ -28,7 +29,9 @@ from dbfit.expressions import term_functions as tf
 from dbfit.expressions.formula import formula_pieces, parse_expression, parse_factor
 
 POLICIES = ("drop", "indicator", "level")
-NUMERIC = re.compile(r"^(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|U\w*INT|FLOAT|REAL|DOUBLE|DECIMAL.*|NUMERIC.*|INT\d*)$", re.I)
+NUMERIC = re.compile(
+    r"^(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|U\w*INT|FLOAT|REAL|DOUBLE|DECIMAL.*|NUMERIC.*|INT\d*)$", re.I
+)
 CATEGORICAL = re.compile(r"^(VARCHAR|BOOLEAN|ENUM.*)$", re.IGNORECASE)
 DATE_OR_TIME = re.compile(r"^(DATE|TIMESTAMP(_S|_MS|_NS)?|TIMESTAMP WITHOUT TIME ZONE)$", re.IGNORECASE)
 
@@ -57,8 +60,10 @@ def resolve_formula(
     target_text, pieces = formula_pieces(text)
     calls = [[tf.read_call(factor) for factor in factors] for _, factors in pieces]
     flat = [call for row in calls for call in row if call is not None]
-    if not missing and not any(call.pending or call.name == "filled" for call in flat) and not any(
-        call.name in tf.DATE_FUNCTIONS for call in flat
+    if (
+        not missing
+        and not any(call.pending or call.name == "filled" for call in flat)
+        and not any(call.name in tf.DATE_FUNCTIONS for call in flat)
     ):
         return Resolution(formula=text)
     resolution = Resolution(formula=text)
@@ -145,7 +150,11 @@ def _expand_columns(
                 )
             excluded.add(name)
         chosen = [(name, kind) for name, kind in described if name.lower() not in excluded]
-        unusable = [f"{name} ({kind})" for name, kind in chosen if not (NUMERIC.match(kind) or CATEGORICAL.match(kind))]
+        unusable = [
+            f"{name} ({kind})"
+            for name, kind in chosen
+            if not (NUMERIC.match(kind) or CATEGORICAL.match(kind))
+        ]
         if unusable:
             raise FormulaError(
                 f"'{call.text}' would take columns that are neither numeric nor categorical: "
@@ -162,7 +171,8 @@ def _expand_cycles(pieces: list[tuple[str, list[str]]]) -> list[tuple[str, list[
     expanded: list[tuple[str, list[str]]] = []
     for sign, factors in pieces:
         position = next(
-            (k for k, f in enumerate(factors) if (c := tf.read_call(f)) is not None and c.name == "cyclic"), None
+            (k for k, f in enumerate(factors) if (c := tf.read_call(f)) is not None and c.name == "cyclic"),
+            None,
         )
         if position is None:
             expanded.append((sign, factors))
@@ -218,15 +228,19 @@ def _check_dates(pieces: list[tuple[str, list[str]]], types: dict[str, str]) -> 
                 call.name in ("cycle_sin", "cycle_cos") and tf.unit_of(call, tf.CYCLES) == "hour"
             )
             if hourly and kind.upper() == "DATE":
-                raise FormulaError(f"'{call.text}' asks for the hour of '{call.arguments[0]}', a DATE (no time)")
+                raise FormulaError(
+                    f"'{call.text}' asks for the hour of '{call.arguments[0]}', a DATE (no time)"
+                )
 
 
 def _policy_of(factor: str, kind: str, missing: Mapping[str, str] | str | None) -> str:
     if missing is None:
         return "drop"
     if isinstance(missing, str):
-        wanted = {"indicator": "indicator" if NUMERIC.match(kind) else "drop",
-                  "level": "level" if CATEGORICAL.match(kind) else "drop"}
+        wanted = {
+            "indicator": "indicator" if NUMERIC.match(kind) else "drop",
+            "level": "level" if CATEGORICAL.match(kind) else "drop",
+        }
         return wanted.get(missing, "drop")
     return missing.get(factor, "drop")
 
@@ -237,7 +251,9 @@ def _apply_missing(
     """Rewrite the factors ``missing=`` names; returns the pieces and the factors whose fill is still owed."""
     if not missing:
         return pieces, []
-    plain = {f for _, factors in pieces if not _is_intercept(factors) for f in factors if tf.read_call(f) is None}
+    plain = {
+        f for _, factors in pieces if not _is_intercept(factors) for f in factors if tf.read_call(f) is None
+    }
     if isinstance(missing, Mapping):
         resolved = {
             c.arguments[0]
@@ -316,10 +332,12 @@ def _resolve_with_scan(
     aggregates: list[exp.Expression] = []
     for node in pending_dates.values():
         aggregates.append(exp.Min(this=node.copy()))
-    for text, node in filled_arguments.items():
+    for node in filled_arguments.values():
         present = exp.Not(this=exp.Is(this=node.copy(), expression=exp.Null()))
         value = sb.as_double(node.copy())
-        aggregates.append(sb.agg_sum(exp.If(this=present.copy(), true=sb.mul(w.copy(), value), false=exp.Null())))
+        aggregates.append(
+            sb.agg_sum(exp.If(this=present.copy(), true=sb.mul(w.copy(), value), false=exp.Null()))
+        )
         aggregates.append(sb.agg_sum(exp.If(this=present, true=w.copy(), false=exp.Null())))
         missing_rows = exp.Is(this=node.copy(), expression=exp.Null())
         aggregates.append(
@@ -367,4 +385,3 @@ def _with_values(factor: str, values: dict[str, str]) -> str:
     if call.name == "filled" and call.arguments[1] == "?":
         return f"filled({argument}, {values[f'fill:{argument}']})"
     return factor
-

@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from datetime import date, datetime, timezone
+from datetime import UTC, date, datetime
 
 import sqlglot
 from sqlglot import exp
@@ -77,7 +77,11 @@ def read_call(text: str) -> Call | None:
         tokens = sqlglot.tokenize(text, read=DIALECT)
     except SqlglotError:
         return None
-    if len(tokens) < 3 or tokens[1].token_type != TokenType.L_PAREN or tokens[-1].token_type != TokenType.R_PAREN:
+    if (
+        len(tokens) < 3
+        or tokens[1].token_type != TokenType.L_PAREN
+        or tokens[-1].token_type != TokenType.R_PAREN
+    ):
         return None
     name = tokens[0].text.lower()
     if name not in NAMES or tokens[0].token_type == TokenType.STRING:
@@ -125,7 +129,11 @@ def factor_tree(call: Call) -> exp.Expression:
     if call.pending:
         raise FormulaError(
             f"'{call.text}' is resolved when a model is fitted (to "
-            + ("the columns of the source" if call.name in COLUMN_FUNCTIONS else "its parts and reference date")
+            + (
+                "the columns of the source"
+                if call.name in COLUMN_FUNCTIONS
+                else "its parts and reference date"
+            )
             + "); it cannot stand in a stored model"
         )
     value = argument_tree(call)
@@ -218,7 +226,7 @@ def reference_epoch(call: Call) -> float:
     moment = reference_moment(call)
     if moment.tzinfo is not None:
         raise FormulaError(f"the reference date of '{call.text}' must not carry a time zone")
-    return moment.replace(tzinfo=timezone.utc).timestamp()
+    return moment.replace(tzinfo=UTC).timestamp()
 
 
 def reference_text(value: date | datetime) -> str:
@@ -234,7 +242,9 @@ def fill_value(call: Call) -> float:
     try:
         value = float(call.arguments[1])
     except ValueError:
-        raise FormulaError(f"the fill value of '{call.text}' must be a number (got {call.arguments[1]})") from None
+        raise FormulaError(
+            f"the fill value of '{call.text}' must be a number (got {call.arguments[1]})"
+        ) from None
     if not math.isfinite(value):
         raise FormulaError(f"the fill value of '{call.text}' must be finite")
     return value

@@ -15,12 +15,12 @@ import numpy as np
 from sqlglot import exp
 
 from dbfit.design.layout import Design, build_design
+from dbfit.design.term_resolution import resolve_formula
 from dbfit.engines import engine_for
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.engines.progress import progress_settings
 from dbfit.errors import FitError
 from dbfit.expressions import builders as sb
-from dbfit.design.term_resolution import resolve_formula
 from dbfit.expressions.formula import parse_formula
 from dbfit.expressions.source import source_relation
 from dbfit.fitting import firth as bias_reduction

@@ -156,8 +156,11 @@ class FitOptions:
             "max_iter": self.max_iter,
             "tol": self.tol,
             "by": self.by,
-            **({"missing": self.missing if isinstance(self.missing, str) else dict(self.missing)}
-               if self.missing else {}),
+            **(
+                {"missing": self.missing if isinstance(self.missing, str) else dict(self.missing)}
+                if self.missing
+                else {}
+            ),
         }
 
     def _check_combinations(self) -> None:
@@ -226,8 +229,10 @@ def _missing(value: Any) -> Mapping[str, str] | str | None:
             raise FitError(f"missing := {value!r} is not a JSON object of term to policy: {err}") from None
     if isinstance(value, str):
         if value not in MISSING_POLICIES:
-            raise FitError(f"missing must be one of {', '.join(MISSING_POLICIES)} or a mapping of term to "
-                           f"policy (got {value!r})")
+            raise FitError(
+                f"missing must be one of {', '.join(MISSING_POLICIES)} or a mapping of term to "
+                f"policy (got {value!r})"
+            )
         return value
     if not isinstance(value, Mapping):
         raise FitError(

