@@ -45,3 +45,15 @@ def test_bad_all_columns_requests(con, birthwt):
     con.execute("CREATE TABLE dated AS SELECT *, DATE '2024-01-01' AS seen FROM birthwt")
     with pytest.raises(FormulaError, match=r"seen \(DATE\)"):
         dbfit.fit(con, "low ~ all_columns_except(bwt)", "dated")
+
+
+def test_refit_notes_a_gained_column(tmp_path):
+    con = dbfit.connect(str(tmp_path / "births.duckdb"))
+    load_frame(con, "birthwt", data("MASS", "birthwt")[["low", "age", "lwt", "smoke", "bwt"]])
+    dbfit.fit(con, "low ~ all_columns_except(bwt)", "birthwt", name="births")
+    con.execute("ALTER TABLE birthwt ADD COLUMN ptl DOUBLE DEFAULT 0")
+    decision = dbfit.refit(con, "births")
+    candidate = dbfit.load(con, "births", version=decision["candidate_version"])
+    assert candidate.formula == "low ~ age + lwt + smoke"
+    assert "gained column(s) ptl" in decision["notes"][0]
+    con.close()

@@ -86,3 +86,25 @@ def test_bad_missing_requests_are_refused(con, airquality):
         dbfit.fit(con, "temp > 80 ~ ozone", "airquality", missing="mean")
     with pytest.raises(FormulaError, match="missing= names 'solar', which is not a term"):
         dbfit.fit(con, "temp > 80 ~ ozone", "airquality", missing={"solar": "indicator"})
+
+
+def test_sql_store_and_refit_keep_the_fill_value(tmp_path):
+    source = data("datasets", "airquality").rename(columns={"Ozone": "ozone", "Wind": "wind", "Temp": "temp"})
+    con = dbfit.connect(str(tmp_path / "air.duckdb"))
+    load_frame(con, "airquality", source[["ozone", "wind", "temp"]])
+    con.execute(
+        "SELECT * FROM dbfit.fit('air', 'temp > 80 ~ ozone + wind', 'airquality', "
+        """missing := '{"ozone": "indicator"}')"""
+    ).fetchall()
+    stored = dbfit.load(con, "air")
+    mean = float(source["ozone"].mean())
+    assert stored.formula == f"temp > 80 ~ filled(ozone, {mean!r}) + is_missing(ozone) + wind"
+    assert stored.stats["missing_filled"] == {"ozone": 37}
+    con.execute("UPDATE airquality SET ozone = ozone + 50 WHERE ozone IS NOT NULL")
+    con.execute("UPDATE airquality SET ozone = NULL WHERE wind > 15")
+    decision = dbfit.refit(con, "air")
+    candidate = dbfit.load(con, "air", version=decision["candidate_version"])
+    assert candidate.formula == stored.formula  # the training mean is kept, not recomputed
+    nulls = int(source["ozone"].isna().sum() + ((source["wind"] > 15) & source["ozone"].notna()).sum())
+    assert candidate.stats["missing_filled"] == {"ozone": nulls}
+    con.close()

@@ -80,6 +80,7 @@ def fit(
     l1_share: float = 0.0,
     folds: int = 5,
     split_key: str | None = None,
+    missing: Mapping[str, str] | str | None = None,
 ) -> Model | SegmentedFit:
     """Fit a logistic regression of ``formula`` on ``source`` inside the database.
 
@@ -114,6 +115,9 @@ def fit(
     l1_share : share of the L1 part of the penalty, from 0 (ridge) to 1 (pure L1); default 0.
     folds : number of cross-validation folds, default 5.
     split_key : SQL expression whose hash assigns rows to folds (default: the row's used values).
+    missing : what a NULL in a term does: ``"drop"`` the row (default), ``"indicator"`` (a numeric term is
+        filled with its training mean and gains the term ``is_missing(x)``) or ``"level"`` (a categorical's
+        NULL is the level ``(missing)``); one policy for every term it fits, or ``{term: policy}``.
 
     References
     ----------
@@ -137,6 +141,7 @@ def fit(
         l1_share=l1_share,
         folds=folds,
         split_key=split_key,
+        missing=missing,
     )
     return fit_with(con, formula, source, chosen, progress)
 
