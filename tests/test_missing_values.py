@@ -108,3 +108,58 @@ def test_sql_store_and_refit_keep_the_fill_value(tmp_path):
     nulls = int(source["ozone"].isna().sum() + ((source["wind"] > 15) & source["ozone"].notna()).sum())
     assert candidate.stats["missing_filled"] == {"ozone": nulls}
     con.close()
+
+
+def test_level_policy_for_every_term_touches_only_terms_with_nulls(con):
+    con.execute(
+        "CREATE TABLE shops AS SELECT * FROM (VALUES (1, 'a', 'x'), (0, 'a', 'y'), (1, NULL, 'x'), (0, NULL, 'y'), "
+        "(1, NULL, 'x'), (0, 'b', 'y'), (1, 'b', 'x'), (0, 'b', 'y')) AS t(y, kind, site)"
+    )
+    model = dbfit.fit(con, "y ~ kind + site", "shops", missing="level", reference={"kind": "b"})
+    assert model.formula == "y ~ null_level(kind) + site"
+    assert model.stats["missing_filled"] == {"kind": 3}
+    assert model.labels == ["intercept", "null_level(kind)=(missing)", "null_level(kind)=a", "site=y"]
+
+
+def test_command_line_and_spec_file_take_missing(tmp_path):
+    import json
+    import subprocess
+    import sys
+
+    database = str(tmp_path / "air.duckdb")
+    con = dbfit.connect(database)
+    frame = data("datasets", "airquality").rename(columns={"Ozone": "ozone", "Wind": "wind", "Temp": "temp"})
+    load_frame(con, "airquality", frame[["ozone", "wind", "temp"]])
+    con.close()
+    spec = tmp_path / "air.toml"
+    spec.write_text(
+        f'database = "{database}"\nname = "by_spec"\nformula = "temp > 80 ~ ozone + wind"\n'
+        'source = "airquality"\n[missing]\nozone = "indicator"\n'
+    )
+
+    def run(*args: str) -> None:
+        done = subprocess.run(
+            [sys.executable, "-m", "dbfit", *args], capture_output=True, text=True, timeout=300
+        )
+        assert done.returncode == 0, done.stderr
+
+    run("fit", "--spec", str(spec), "--json")
+    run(
+        "fit",
+        "--database",
+        database,
+        "--name",
+        "by_flag",
+        "--formula",
+        "temp > 80 ~ ozone + wind",
+        "--source",
+        "airquality",
+        "--missing",
+        "ozone=indicator",
+        "--json",
+    )
+    con = dbfit.connect(database)
+    by_spec, by_flag = dbfit.load(con, "by_spec"), dbfit.load(con, "by_flag")
+    con.close()
+    assert by_spec.formula == by_flag.formula
+    assert "is_missing(ozone)" in by_spec.labels and json.loads(json.dumps(by_spec.stats))["missing_filled"]

@@ -28,7 +28,7 @@ from dbfit.expressions import builders as sb
 from dbfit.expressions import term_functions as tf
 from dbfit.expressions.formula import formula_pieces, parse_expression, parse_factor
 
-POLICIES = ("drop", "indicator", "level")
+NATIVE_DATES = ("duckdb", "postgres")
 NUMERIC = re.compile(
     r"^(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|U\w*INT|FLOAT|REAL|DOUBLE|DECIMAL.*|NUMERIC.*|INT\d*)$", re.I
 )
@@ -43,6 +43,7 @@ class Resolution:
     formula: str
     filled_rows: dict[str, int] = field(default_factory=dict)  # per filled(x, value) factor: NULLs filled
     source_columns_seen: list[str] | None = None  # the source's columns, when all_columns expanded them
+    renamed: dict[str, str] = field(default_factory=dict)  # x -> filled(x, v) or null_level(x)
 
 
 def resolve_formula(
@@ -67,6 +68,11 @@ def resolve_formula(
     ):
         return Resolution(formula=text)
     resolution = Resolution(formula=text)
+    dated = [call.text for call in flat if call.name in tf.DATE_FUNCTIONS]
+    if dated and engine.dialect not in NATIVE_DATES:
+        raise FormulaError(
+            f"date terms ({', '.join(dated)}) are fitted on duckdb and postgres; not yet on {engine.dialect}"
+        )
     if any(call is not None and call.name in tf.COLUMN_FUNCTIONS for call in flat):
         pieces, resolution.source_columns_seen = _expand_columns(
             engine, relation, target_text, pieces, option_expressions
@@ -86,6 +92,11 @@ def resolve_formula(
             if not any(f"is_missing({text})" == ":".join(factors) for text in complete)
         ]
         resolution.filled_rows = {k: v for k, v in resolution.filled_rows.items() if k not in complete}
+    for _, factors in pieces:
+        for factor in factors:
+            call = tf.read_call(factor)
+            if call is not None and call.name in ("filled", "null_level") and call.arguments[0] in new_fills:
+                resolution.renamed[call.arguments[0]] = factor
     resolution.formula = _joined(target_text, pieces)
     return resolution
 
@@ -248,7 +259,7 @@ def _policy_of(factor: str, kind: str, missing: Mapping[str, str] | str | None) 
 def _apply_missing(
     pieces: list[tuple[str, list[str]]], types: dict[str, str], missing: Mapping[str, str] | str | None
 ) -> tuple[list[tuple[str, list[str]]], list[str]]:
-    """Rewrite the factors ``missing=`` names; returns the pieces and the factors whose fill is still owed."""
+    """Rewrite the factors ``missing=`` asks for; returns the pieces and the factors rewritten."""
     if not missing:
         return pieces, []
     plain = {
@@ -293,7 +304,7 @@ def _apply_missing(
             if rewritten.get(f, "").startswith("filled(") and f not in indicated and sign == "+":
                 indicated.add(f)
                 out.append(("+", [f"is_missing({f})"]))
-    return out, sorted(f for f, r in rewritten.items() if r.startswith("filled("))
+    return out, sorted(rewritten)
 
 
 def _resolve_with_scan(
@@ -310,6 +321,7 @@ def _resolve_with_scan(
     each fill replaces; then the pieces with those values written in."""
     pending_dates: dict[str, exp.Expression] = {}
     filled_arguments: dict[str, exp.Expression] = {}
+    level_arguments: dict[str, exp.Expression] = {}
     required: list[exp.Expression] = [parse_expression(target_text, "the target")]
     required += [parse_expression(text, "option") for text in option_expressions if text is not None]
     for _, factors in pieces:
@@ -319,6 +331,8 @@ def _resolve_with_scan(
             call = tf.read_call(factor)
             if call is not None and call.name == "filled":
                 filled_arguments.setdefault(call.arguments[0], tf.argument_tree(call))
+            elif call is not None and call.name == "null_level":
+                level_arguments.setdefault(call.arguments[0], tf.argument_tree(call))
             elif call is not None and call.name == "is_missing":
                 continue
             elif call is not None and call.pending:
@@ -326,12 +340,10 @@ def _resolve_with_scan(
                 required.append(tf.argument_tree(call))
             else:
                 required.append(parse_factor(factor, f"term '{factor}'"))
-    if not pending_dates and not filled_arguments:
+    if not pending_dates and not filled_arguments and not level_arguments:
         return pieces
     w = sb.as_double(parse_expression(weights, "weights")) if weights is not None else exp.Literal.number(1)
-    aggregates: list[exp.Expression] = []
-    for node in pending_dates.values():
-        aggregates.append(exp.Min(this=node.copy()))
+    aggregates: list[exp.Expression] = [exp.Min(this=node.copy()) for node in pending_dates.values()]
     for node in filled_arguments.values():
         present = exp.Not(this=exp.Is(this=node.copy(), expression=exp.Null()))
         value = sb.as_double(node.copy())
@@ -339,6 +351,7 @@ def _resolve_with_scan(
             sb.agg_sum(exp.If(this=present.copy(), true=sb.mul(w.copy(), value), false=exp.Null()))
         )
         aggregates.append(sb.agg_sum(exp.If(this=present, true=w.copy(), false=exp.Null())))
+    for node in [*filled_arguments.values(), *level_arguments.values()]:
         missing_rows = exp.Is(this=node.copy(), expression=exp.Null())
         aggregates.append(
             sb.agg_sum(exp.If(this=missing_rows, true=exp.Literal.number(1), false=exp.Literal.number(0)))
@@ -356,8 +369,7 @@ def _resolve_with_scan(
             raise FitError(f"'{text}' has no value among the rows used: no reference date for elapsed()")
         values[f"date:{text}"] = tf.reference_text(earliest)
     for text in filled_arguments:
-        total, weight, nulls = row.pop(0), row.pop(0), row.pop(0)
-        resolution.filled_rows[text] = int(nulls or 0)
+        total, weight = row.pop(0), row.pop(0)
         if text in new_fills:
             if not weight:
                 raise FitError(f"'{text}' is NULL on every row used: it has no mean to fill with")
@@ -365,12 +377,14 @@ def _resolve_with_scan(
             if not math.isfinite(mean):
                 raise FitError(f"the mean of '{text}' is not finite; it cannot fill its NULLs")
             values[f"fill:{text}"] = repr(mean)
+    for text in [*filled_arguments, *level_arguments]:
+        resolution.filled_rows[text] = int(row.pop(0) or 0)
     return [(sign, [_with_values(f, values) for f in factors]) for sign, factors in pieces]
 
 
 def _unfilled(factor: str, complete: set[str]) -> str:
     call = tf.read_call(factor)
-    if call is not None and call.name == "filled" and call.arguments[0] in complete:
+    if call is not None and call.name in ("filled", "null_level") and call.arguments[0] in complete:
         return call.arguments[0]
     return factor
 

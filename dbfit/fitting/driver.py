@@ -194,7 +194,7 @@ def _fit(
         offset=options.offset,
         trials=options.trials,
         positive=options.positive,
-        reference=dict(options.reference or {}),
+        reference={resolution.renamed.get(k, k): v for k, v in (options.reference or {}).items()},
         by=by,
     )
     design.filled_rows, design.columns_at_fit = resolution.filled_rows, resolution.source_columns_seen
