@@ -105,7 +105,7 @@ def test_a_date_term_without_unit_or_function_is_refused(con, airquality):
         dbfit.fit(con, "temp > 80 ~ weekday(wind)", "airquality", progress=False)
 
 
-def test_postgres_scores_like_duckdb(con, airquality):
+def test_postgres_fits_and_scores_like_duckdb(con, airquality):
     from pg_server import find_binaries, running_server
 
     binaries = find_binaries()
@@ -124,7 +124,10 @@ def test_postgres_scores_like_duckdb(con, airquality):
             cursor.executemany("INSERT INTO airquality VALUES (%s, %s, %s)", rows)
             cursor.execute(dbfit.scoring_sql(model, "postgres") + " ORDER BY measured_on")
             scored = cursor.fetchall()
+        on_postgres = dbfit.fit(postgres, FORMULA + " + cyclic(measured_on, day_of_year)", "airquality")
     np.testing.assert_allclose([float(r[-1]) for r in scored], [r[-1] for r in duck], rtol=1e-12)
+    assert on_postgres.formula == model.formula  # the same reference date found on PostgreSQL
+    np.testing.assert_allclose(on_postgres.estimates, model.estimates, rtol=1e-9)
 
 
 def test_reference_date_survives_document_and_refit(con, airquality):

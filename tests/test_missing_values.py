@@ -163,3 +163,39 @@ def test_command_line_and_spec_file_take_missing(tmp_path):
     con.close()
     assert by_spec.formula == by_flag.formula
     assert "is_missing(ozone)" in by_spec.labels and json.loads(json.dumps(by_spec.stats))["missing_filled"]
+
+
+def test_postgres_fits_and_scores_the_filled_model_like_duckdb(con, airquality):
+    from pg_server import find_binaries, running_server
+
+    binaries = find_binaries()
+    if binaries is None:
+        pytest.skip("PostgreSQL server binaries (initdb, pg_ctl) are not installed")
+    import psycopg
+
+    formula = "temp > 80 ~ ozone + solar + wind"
+    model = dbfit.fit(con, formula, "airquality", missing="indicator")
+    duck = con.sql(dbfit.scoring_sql(model, "duckdb")).df()["probability"]
+    rows = [
+        tuple(None if pd.isna(v) else float(v) for v in row) for row in airquality.itertuples(index=False)
+    ]
+    with running_server(binaries) as keywords, psycopg.connect(**keywords, autocommit=True) as postgres:
+        with postgres.cursor() as cursor:
+            cursor.execute(
+                "CREATE TABLE airquality (ozone DOUBLE PRECISION, solar DOUBLE PRECISION, "
+                "wind DOUBLE PRECISION, temp DOUBLE PRECISION)"
+            )
+            cursor.executemany("INSERT INTO airquality VALUES (%s, %s, %s, %s)", rows)
+            cursor.execute(dbfit.scoring_sql(model, "postgres"))
+            scored = [float(r[-1]) for r in cursor.fetchall()]
+        on_postgres = dbfit.fit(postgres, formula, "airquality", missing="indicator")
+    np.testing.assert_allclose(scored, duck, rtol=1e-12)
+    assert on_postgres.stats["missing_filled"] == model.stats["missing_filled"] == {"ozone": 37, "solar": 7}
+    fills = [
+        float(part.split(",")[1].rstrip(")")) for part in on_postgres.formula.split(" + ") if "filled" in part
+    ]
+    model_fills = [
+        float(part.split(",")[1].rstrip(")")) for part in model.formula.split(" + ") if "filled" in part
+    ]
+    np.testing.assert_allclose(fills, model_fills, rtol=1e-13)
+    np.testing.assert_allclose(on_postgres.estimates, model.estimates, rtol=1e-9)
