@@ -199,3 +199,11 @@ def test_postgres_fits_and_scores_the_filled_model_like_duckdb(con, airquality):
     ]
     np.testing.assert_allclose(fills, model_fills, rtol=1e-13)
     np.testing.assert_allclose(on_postgres.estimates, model.estimates, rtol=1e-9)
+
+
+def test_report_sentence_names_the_filled_counts(con, airquality):
+    from dbfit.assessment.report import job_sentence
+
+    model = dbfit.fit(con, "temp > 80 ~ ozone + solar + wind", "airquality", missing="indicator")
+    sentence = job_sentence(model)
+    assert "NULLs filled in <code>ozone</code> on 37 rows, <code>solar</code> on 7 rows" in sentence
