@@ -22,7 +22,7 @@ from dbfit.expressions.dialects.date_parts import write_date_parts
 from dbfit.expressions.formula import parse_factor
 from dbfit.model.reading import from_json
 
-FORMULA = "temp > 80 ~ wind + elapsed(measured_on, day) + day_of_week(measured_on)"
+FORMULA = "temp > 80 ~ wind + elapsed(measured_on, day) + iso_weekday(measured_on)"
 
 
 def airquality_frame() -> pd.DataFrame:
@@ -54,7 +54,7 @@ def test_date_terms_match_statsmodels(con, airquality):
 
 def test_golden_sql_of_date_parts_per_dialect():
     tree = parse_factor("elapsed(t, hour, '2024-01-01')", "test")
-    weekday = parse_factor("day_of_week(t)", "test")
+    weekday = parse_factor("iso_weekday(t)", "test")
     cycle = parse_factor("cycle_cos(t, day_of_year)", "test")
     golden = {
         "duckdb": (
@@ -102,7 +102,7 @@ def test_a_date_term_without_unit_or_function_is_refused(con, airquality):
     with pytest.raises(FormulaError, match="asks for the hour of 'measured_on', a DATE"):
         dbfit.fit(con, "temp > 80 ~ hour_of_day(measured_on)", "airquality", progress=False)
     with pytest.raises(FormulaError, match="needs a DATE or TIMESTAMP, but 'wind' is DOUBLE"):
-        dbfit.fit(con, "temp > 80 ~ day_of_week(wind)", "airquality", progress=False)
+        dbfit.fit(con, "temp > 80 ~ iso_weekday(wind)", "airquality", progress=False)
 
 
 def test_postgres_fits_and_scores_like_duckdb(con, airquality):

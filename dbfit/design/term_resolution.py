@@ -170,7 +170,7 @@ def _expand_columns(
             raise FormulaError(
                 f"'{call.text}' would take columns that are neither numeric nor categorical: "
                 f"{', '.join(unusable)}; leave them out with all_columns_except(...) and enter dates through "
-                "elapsed(), day_of_week(), month_of_year(), hour_of_day() or cyclic()"
+                "elapsed(), iso_weekday(), month_of_year(), hour_of_day() or cyclic()"
             )
         if not chosen:
             raise FormulaError(f"'{call.text}' leaves no column of the source")

@@ -6,7 +6,7 @@ SQL tree that every scoring dialect can write; the call's text is the term's lab
 
 * dates and times (the argument a DATE or TIMESTAMP expression):
   ``elapsed(t, day|hour, 'since')`` the days or hours from ``since`` to ``t`` (a number);
-  ``day_of_week(t)`` the ISO day of the week 1 (Monday) .. 7, ``month_of_year(t)`` 1 .. 12 and
+  ``iso_weekday(t)`` the ISO day of the week 1 (Monday) .. 7, ``month_of_year(t)`` 1 .. 12 and
   ``hour_of_day(t)`` 0 .. 23, each a categorical;
   ``cycle_sin(t, hour|day_of_year)`` and ``cycle_cos(...)``: sine and cosine of the angle
   2 pi hour / 24 or 2 pi (day of year - 1) / 365.25, a cyclic encoding (common practice);
@@ -39,10 +39,10 @@ TAU = 2.0 * math.pi
 
 ELAPSED_UNITS = {"day": 86400.0, "hour": 3600.0}
 CYCLES = {"hour": ("HOUR", 0.0, 24.0), "day_of_year": ("DOY", 1.0, 365.25)}  # (part, offset, period)
-CALENDAR_PARTS = {"day_of_week": "ISODOW", "month_of_year": "MONTH", "hour_of_day": "HOUR"}
+CALENDAR_PARTS = {"iso_weekday": "ISODOW", "month_of_year": "MONTH", "hour_of_day": "HOUR"}
 DATE_FUNCTIONS = (
     "elapsed",
-    "day_of_week",
+    "iso_weekday",
     "month_of_year",
     "hour_of_day",
     "cycle_sin",
@@ -74,7 +74,7 @@ def date_alternatives(text: str) -> str:
     """What to write for a date or time term ``text``, for the message refusing it as it stands."""
     return (
         f"write elapsed({text}, day) or elapsed({text}, hour) (since the earliest date, or "
-        f"elapsed({text}, day, '2024-01-01')), day_of_week({text}), month_of_year({text}), hour_of_day({text}) "
+        f"elapsed({text}, day, '2024-01-01')), iso_weekday({text}), month_of_year({text}), hour_of_day({text}) "
         f"or cyclic({text}, hour) / cyclic({text}, day_of_year)"
     )
 
@@ -174,7 +174,7 @@ def factor_tree(call: Call) -> exp.Expression:
 
 ARITY = {
     "elapsed": (2, 3),
-    "day_of_week": (1, 1),
+    "iso_weekday": (1, 1),
     "month_of_year": (1, 1),
     "hour_of_day": (1, 1),
     "cycle_sin": (2, 2),
