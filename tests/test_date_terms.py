@@ -137,3 +137,13 @@ def test_reference_date_survives_document_and_refit(con, airquality):
     con.execute("DELETE FROM airquality WHERE measured_on < DATE '1973-06-01'")
     refitted = dbfit.fit(con, again.formula, "airquality", progress=False, weights="wind")
     assert "'1973-05-01'" in refitted.formula  # kept from the model, not the new earliest date
+
+
+def test_term_function_names_shadow_no_allowed_sql_function():
+    # each name was refused as plain SQL before it became a term function, so no formula changes meaning
+    from dbfit.expressions.formula import parse_expression
+    from dbfit.expressions.term_functions import NAMES
+
+    for name in sorted(NAMES):
+        with pytest.raises(FormulaError):
+            parse_expression(f"{name}(x)", "term")
