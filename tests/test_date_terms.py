@@ -147,3 +147,9 @@ def test_term_function_names_shadow_no_allowed_sql_function():
     for name in sorted(NAMES):
         with pytest.raises(FormulaError):
             parse_expression(f"{name}(x)", "term")
+
+
+def test_dialects_without_date_parts_refuse_date_terms(con, airquality):
+    model = dbfit.fit(con, FORMULA, "airquality", progress=False)
+    with pytest.raises(dbfit.DbfitError, match="cannot yet write them for tsql"):
+        dbfit.scoring_sql(model, "tsql")

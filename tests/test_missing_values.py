@@ -207,3 +207,36 @@ def test_report_sentence_names_the_filled_counts(con, airquality):
     model = dbfit.fit(con, "temp > 80 ~ ozone + solar + wind", "airquality", missing="indicator")
     sentence = job_sentence(model)
     assert "NULLs filled in <code>ozone</code> on 37 rows, <code>solar</code> on 7 rows" in sentence
+
+
+def test_golden_sql_of_fill_indicator_and_level_per_dialect():
+    from dbfit.expressions.formula import parse_factor
+
+    golden = {
+        "duckdb": (
+            "COALESCE(CAST(x AS DOUBLE), 2.5)",
+            "CASE WHEN x IS NULL THEN 1 ELSE 0 END",
+            "COALESCE(CAST(g AS TEXT), '(missing)')",
+        ),
+        "postgres": (
+            "COALESCE(CAST(x AS DOUBLE PRECISION), 2.5)",
+            "CASE WHEN x IS NULL THEN 1 ELSE 0 END",
+            "COALESCE(CAST(g AS VARCHAR), '(missing)')",
+        ),
+        "sqlite": (
+            "COALESCE(CAST(x AS REAL), 2.5)",
+            "CASE WHEN x IS NULL THEN 1 ELSE 0 END",
+            "COALESCE(CAST(g AS TEXT), '(missing)')",
+        ),
+    }
+    trees = [parse_factor(text, "test") for text in ("filled(x, 2.5)", "is_missing(x)", "null_level(g)")]
+    for dialect, expected in golden.items():
+        assert tuple(tree.sql(dialect=dialect) for tree in trees) == expected, dialect
+
+
+def test_a_boolean_has_no_null_level(con):
+    con.execute(
+        "CREATE TABLE flags AS SELECT * FROM (VALUES (1, true), (0, NULL), (1, false), (0, true)) t(y, f)"
+    )
+    with pytest.raises(FormulaError, match="needs text levels, but it is BOOLEAN"):
+        dbfit.fit(con, "y ~ f", "flags", missing={"f": "level"})

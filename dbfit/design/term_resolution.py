@@ -33,6 +33,7 @@ NUMERIC = re.compile(
     r"^(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|U\w*INT|FLOAT|REAL|DOUBLE|DECIMAL.*|NUMERIC.*|INT\d*)$", re.I
 )
 CATEGORICAL = re.compile(r"^(VARCHAR|BOOLEAN|ENUM.*)$", re.IGNORECASE)
+TEXT_LEVELS = re.compile(r"^(VARCHAR|ENUM.*)$", re.IGNORECASE)
 DATE_OR_TIME = re.compile(r"^(DATE|TIMESTAMP(_S|_MS|_NS)?|TIMESTAMP WITHOUT TIME ZONE)$", re.IGNORECASE)
 
 
@@ -250,7 +251,7 @@ def _policy_of(factor: str, kind: str, missing: Mapping[str, str] | str | None) 
     if isinstance(missing, str):
         wanted = {
             "indicator": "indicator" if NUMERIC.match(kind) else "drop",
-            "level": "level" if CATEGORICAL.match(kind) else "drop",
+            "level": "level" if TEXT_LEVELS.match(kind) else "drop",
         }
         return wanted.get(missing, "drop")
     return missing.get(factor, "drop")
@@ -294,6 +295,11 @@ def _apply_missing(
                 raise FormulaError(
                     f"missing='level' of '{factor}' needs a categorical term, but it is {kind}; "
                     "give a numeric one missing='indicator'"
+                )
+            if not TEXT_LEVELS.match(kind):
+                raise FormulaError(
+                    f"missing='level' of '{factor}' needs text levels, but it is BOOLEAN (written 1/0 in some "
+                    f"dialects); write it as text, e.g. CASE WHEN {factor} THEN 'yes' ELSE 'no' END"
                 )
             rewritten[factor] = f"null_level({factor})"
     out: list[tuple[str, list[str]]] = []
