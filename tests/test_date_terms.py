@@ -97,7 +97,9 @@ def test_duckdb_and_sqlite_score_alike(con, airquality):
 def test_a_date_term_without_unit_or_function_is_refused(con, airquality):
     with pytest.raises(FormulaError, match=r"'elapsed\(measured_on\)' has no unit"):
         dbfit.fit(con, "temp > 80 ~ elapsed(measured_on)", "airquality", progress=False)
-    with pytest.raises(FormulaError, match=r"'measured_on' is a DATE: write elapsed\(measured_on, day\)"):
+    with pytest.raises(
+        FormulaError, match=r"'measured_on' has SQL type DATE: write elapsed\(measured_on, day\)"
+    ):
         dbfit.fit(con, "temp > 80 ~ measured_on", "airquality", progress=False)
     with pytest.raises(FormulaError, match="asks for the hour of 'measured_on', a DATE"):
         dbfit.fit(con, "temp > 80 ~ hour_of_day(measured_on)", "airquality", progress=False)

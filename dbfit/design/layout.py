@@ -329,7 +329,7 @@ def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
         elif CATEGORICAL_TYPE.match(f.sql_type):
             f.kind = "categorical"
         elif DATE_TYPE.match(f.sql_type):
-            raise FormulaError(f"term '{f.text}' is a {f.sql_type}: {date_alternatives(f.text)}")
+            raise FormulaError(f"term '{f.text}' has SQL type {f.sql_type}: {date_alternatives(f.text)}")
         else:
             raise FormulaError(
                 f"term '{f.text}' has SQL type {f.sql_type}, which is neither numeric nor categorical "
