@@ -132,13 +132,19 @@ def test_postgres_fits_and_scores_like_duckdb(con, airquality):
     np.testing.assert_allclose(on_postgres.estimates, model.estimates, rtol=1e-9)
 
 
-def test_reference_date_survives_document_and_refit(con, airquality):
-    model = dbfit.fit(con, FORMULA, "airquality", progress=False, weights="wind")
+def test_reference_date_survives_document_store_and_refit(tmp_path):
+    con = dbfit.connect(str(tmp_path / "air.duckdb"))
+    load_frame(con, "airquality", airquality_frame())
+    con.execute("ALTER TABLE airquality ALTER measured_on TYPE DATE")
+    model = dbfit.fit(con, FORMULA, "airquality", progress=False, weights="wind", name="air")
     again = from_json(model.to_json())
-    assert again.formula == model.formula
+    assert again.formula == model.formula == dbfit.load(con, "air").formula
     con.execute("DELETE FROM airquality WHERE measured_on < DATE '1973-06-01'")
-    refitted = dbfit.fit(con, again.formula, "airquality", progress=False, weights="wind")
+    decision = dbfit.refit(con, "air")
+    refitted = dbfit.load(con, "air", version=decision["candidate_version"])
     assert "'1973-05-01'" in refitted.formula  # kept from the model, not the new earliest date
+    assert refitted.options["weights"] == "wind"
+    con.close()
 
 
 def test_term_function_names_shadow_no_allowed_sql_function():
