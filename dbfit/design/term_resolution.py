@@ -64,7 +64,7 @@ def resolve_formula(
     flat = [call for row in calls for call in row if call is not None]
     if (
         not missing
-        and not any(call.pending or call.name == "filled" for call in flat)
+        and not any(call.pending or call.name in ("filled", "null_level") for call in flat)
         and not any(call.name in tf.DATE_FUNCTIONS for call in flat)
     ):
         return Resolution(formula=text)
@@ -176,7 +176,20 @@ def _expand_columns(
         if not chosen:
             raise FormulaError(f"'{call.text}' leaves no column of the source")
         expanded.extend(("+", [_written(name)]) for name, _ in chosen)
-    return expanded, [name for name, _ in described]
+    return _without_removed(expanded), [name for name, _ in described]
+
+
+def _without_removed(pieces: list[tuple[str, list[str]]]) -> list[tuple[str, list[str]]]:
+    """``all_columns() - id``: the removed single columns leave the stored formula with their '-' pieces."""
+
+    def name(factors: list[str]) -> str:
+        return factors[0].strip('"').lower() if len(factors) == 1 else ""
+
+    added = {name(factors) for sign, factors in pieces if sign == "+"}
+    # a removal of a term that is not there stays, for the formula's own error
+    removed = {name(factors) for sign, factors in pieces if sign == "-" and name(factors) in added} - {""}
+    kept = [(sign, factors) for sign, factors in pieces if name(factors) not in removed]
+    return kept
 
 
 def _expand_cycles(pieces: list[tuple[str, list[str]]]) -> list[tuple[str, list[str]]]:
