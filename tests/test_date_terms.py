@@ -161,3 +161,25 @@ def test_dialects_without_date_parts_refuse_date_terms(con, airquality):
     model = dbfit.fit(con, FORMULA, "airquality", progress=False)
     with pytest.raises(dbfit.DbfitError, match="cannot yet write them for tsql"):
         dbfit.scoring_sql(model, "tsql")
+
+
+def test_timestamp_parts_against_python_datetime(con):
+    # expected values from Python's datetime arithmetic (common practice: hours = seconds / 3600)
+    from datetime import datetime
+
+    moments = [datetime(2024, 3, 9, 23, 30), datetime(2024, 3, 10, 2, 15), datetime(2024, 12, 31, 12, 0)]
+    con.execute("CREATE TABLE stamps (t TIMESTAMP)")
+    con.executemany("INSERT INTO stamps VALUES (?)", [(m,) for m in moments])
+    texts = ("elapsed(t, hour, '2024-01-01')", "hour_of_day(t)", "cycle_sin(t, hour)", "iso_weekday(t)")
+    select = ", ".join(parse_factor(text, "test").sql("duckdb") for text in texts)
+    rows = con.sql(f"SELECT {select} FROM stamps").fetchall()
+    for moment, (hours, hour, sine, weekday) in zip(moments, rows):
+        assert hours == pytest.approx((moment - datetime(2024, 1, 1)).total_seconds() / 3600, rel=1e-15)
+        assert (hour, weekday) == (str(moment.hour), str(moment.isoweekday()))
+        assert sine == pytest.approx(np.sin(2 * np.pi * moment.hour / 24), abs=1e-15)
+    con.execute(
+        "CREATE TABLE zoned AS SELECT TIMESTAMPTZ '2024-01-01 10:00:00+00' AS t, 1 AS y UNION ALL "
+        "SELECT TIMESTAMPTZ '2024-01-02 10:00:00+00', 0"
+    )
+    with pytest.raises(FormulaError, match="cast it to TIMESTAMP in the time zone you mean"):
+        dbfit.fit(con, "y ~ elapsed(t, day)", "zoned", progress=False)
