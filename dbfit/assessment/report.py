@@ -107,6 +107,10 @@ def job_sentence(model: Model) -> str:
     excluded = (
         f", after leaving out {stats['n_excluded']:,} with missing values" if stats["n_excluded"] else ""
     )
+    filled = stats.get("missing_filled") or {}
+    if filled:  # missing= kept these rows: their NULLs were filled (numeric) or made a level (categorical)
+        counts = ", ".join(f"<code>{escape(term)}</code> on {rows:,} rows" for term, rows in filled.items())
+        excluded += f"; NULLs filled in {counts}"
     split = model.split
     held = (
         (

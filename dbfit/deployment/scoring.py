@@ -41,6 +41,7 @@ from dbfit.errors import DbfitError
 from dbfit.expressions import builders as sb
 from dbfit.expressions import dialects
 from dbfit.expressions.dialects import Dialect
+from dbfit.expressions.dialects.date_parts import write_date_parts
 from dbfit.expressions.dialects.duckdb import DUCKDB
 from dbfit.expressions.source import source_relation
 
@@ -349,7 +350,7 @@ def scoring_sql(
         reasons=reasons,
         baseline=baseline,
     )
-    return query.sql(dialect=target.name)
+    return write_date_parts(query, target.name).sql(dialect=target.name)
 
 
 def _joined(query: exp.Select, joined: exp.Expression | None, join_on: exp.Expression | None) -> exp.Select:

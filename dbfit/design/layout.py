@@ -23,12 +23,14 @@ from dbfit.errors import FitError, FormulaError
 from dbfit.expressions import builders as sb
 from dbfit.expressions.columns import resolve_columns
 from dbfit.expressions.formula import Formula, parse_expression
+from dbfit.expressions.term_functions import date_alternatives
 
 NUMERIC_TYPE = re.compile(
     r"^(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|UTINYINT|USMALLINT|UINTEGER|UBIGINT|UHUGEINT|FLOAT|REAL|DOUBLE|DECIMAL.*|NUMERIC.*|INT\d*)$",
     re.IGNORECASE,
 )
 CATEGORICAL_TYPE = re.compile(r"^(VARCHAR|BOOLEAN|ENUM.*)$", re.IGNORECASE)
+DATE_TYPE = re.compile(r"^(DATE|TIMESTAMP.*)$", re.IGNORECASE)
 
 TARGET, WEIGHT, OFFSET, TRIALS, SEGMENT = "dbfit_y", "dbfit_w", "dbfit_o", "dbfit_n", "dbfit_seg"
 NAMED_TARGET = "dbfit_named_target"
@@ -103,6 +105,8 @@ class Design:
     saturated_loglik: float = 0.0
     rows_zero_trials: int = 0  # grouped rows with 0 trials: used, but they carry no information
     source_columns: list[str] = field(default_factory=list)  # columns used, as the source spells them
+    filled_rows: dict[str, int] = field(default_factory=dict)  # per filled(x, value) term: NULLs filled
+    columns_at_fit: list[str] | None = None  # the source's columns when all_columns() was expanded
 
     @property
     def rows_informative(self) -> int:
@@ -326,6 +330,8 @@ def _assign_types(engine: DuckDBEngine, design: Design, positive: Any) -> None:
             f.kind = "numeric"
         elif CATEGORICAL_TYPE.match(f.sql_type):
             f.kind = "categorical"
+        elif DATE_TYPE.match(f.sql_type):
+            raise FormulaError(f"term '{f.text}' has SQL type {f.sql_type}: {date_alternatives(f.text)}")
         else:
             raise FormulaError(
                 f"term '{f.text}' has SQL type {f.sql_type}, which is neither numeric nor categorical "

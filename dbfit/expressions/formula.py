@@ -17,6 +17,7 @@ from sqlglot.tokens import TokenType
 
 from dbfit.errors import FormulaError
 from dbfit.expressions.rules import check_expression
+from dbfit.expressions.term_functions import factor_tree, read_call
 
 DIALECT = "duckdb"
 
@@ -85,6 +86,14 @@ def parse_expression(text: str, what: str, where: str | None = None) -> exp.Expr
 
 def parse_formula(text: str) -> Formula:
     """Parse a formula ``target ~ terms``; raise :class:`FormulaError` naming the problem."""
+    target_text, rhs_tokens = _split_formula(text)
+    target = parse_expression(target_text, "the target")
+    intercept, terms = _parse_terms(text, rhs_tokens)
+    return Formula(text=text, target=target, target_text=target_text, terms=tuple(terms), intercept=intercept)
+
+
+def _split_formula(text: str) -> tuple[str, list]:
+    """The target's text and the tokens after the top-level ``~``, the formula's shape checked."""
     if not isinstance(text, str) or not text.strip():
         raise FormulaError("the formula is empty; write it as 'target ~ term + term'")
     try:
@@ -108,12 +117,7 @@ def parse_formula(text: str) -> Formula:
         raise FormulaError(f"formula {text!r} has an unclosed '(' or CASE")
     if tilde_at is None:
         raise FormulaError(f"formula {text!r} has no '~'; write it as 'target ~ term + term'")
-
-    target_text = text[: tilde_at.start].strip()
-    target = parse_expression(target_text, "the target")
-    rhs_tokens = [t for t in tokens if t.start > tilde_at.end]
-    intercept, terms = _parse_terms(text, rhs_tokens)
-    return Formula(text=text, target=target, target_text=target_text, terms=tuple(terms), intercept=intercept)
+    return text[: tilde_at.start].strip(), [t for t in tokens if t.start > tilde_at.end]
 
 
 def holds_top_level_tilde(text: object) -> bool:
@@ -141,9 +145,9 @@ def _depth_change(token_type: TokenType) -> int:
     return 0
 
 
-def _parse_terms(text: str, tokens: list) -> tuple[bool, list[Term]]:
-    """Split the right-hand side at top-level ``+`` and ``-``; each piece may hold top-level ``:``."""
-    pieces: list[tuple[str, list]] = []  # (sign, tokens of the piece)
+def _signed_pieces(text: str, tokens: list) -> list[tuple[str, list]]:
+    """Split the right-hand side at top-level ``+`` and ``-``: (sign, tokens of the piece)."""
+    pieces: list[tuple[str, list]] = []
     sign, current, depth = "+", [], 0
     for token in tokens:
         if depth == 0 and token.token_type in (TokenType.PLUS, TokenType.DASH):
@@ -163,7 +167,12 @@ def _parse_terms(text: str, tokens: list) -> tuple[bool, list[Term]]:
         raise FormulaError(
             f"formula {text!r} has no terms after '~' (write '~ 1' for an intercept-only model)"
         )
+    return pieces
 
+
+def _parse_terms(text: str, tokens: list) -> tuple[bool, list[Term]]:
+    """Split the right-hand side at top-level ``+`` and ``-``; each piece may hold top-level ``:``."""
+    pieces = _signed_pieces(text, tokens)
     intercept = True
     terms: list[Term] = []
     removed: list[Term] = []
@@ -186,7 +195,8 @@ def _parse_terms(text: str, tokens: list) -> tuple[bool, list[Term]]:
     return intercept, kept
 
 
-def _parse_term(text: str, tokens: list, position: int) -> Term:
+def _factor_groups(tokens: list) -> list[list]:
+    """The tokens of a piece split at its top-level ``:``."""
     groups: list[list] = [[]]
     depth = 0
     for token in tokens:
@@ -195,13 +205,36 @@ def _parse_term(text: str, tokens: list, position: int) -> Term:
             continue
         depth += _depth_change(token.token_type)
         groups[-1].append(token)
+    return groups
+
+
+def _parse_term(text: str, tokens: list, position: int) -> Term:
+    groups = _factor_groups(tokens)
     if any(not group for group in groups):
         raise FormulaError(f"formula {text!r} has an empty factor around ':'")
     texts = tuple(text[g[0].start : g[-1].end + 1].strip() for g in groups)
     if len(set(texts)) != len(texts):
         raise FormulaError(f"interaction '{':'.join(texts)}' repeats a factor")
-    factors = tuple(parse_expression(t, "term", f"term {position} of the formula") for t in texts)
+    factors = tuple(parse_factor(t, f"term {position} of the formula") for t in texts)
     return Term(factors=factors, texts=texts)
+
+
+def parse_factor(text: str, where: str) -> exp.Expression:
+    """One factor of a term: a term function of :mod:`dbfit.expressions.term_functions` (its plain SQL),
+    or any allowed scalar expression."""
+    call = read_call(text) if isinstance(text, str) else None
+    return factor_tree(call) if call is not None else parse_expression(text, "term", where)
+
+
+def formula_pieces(text: str) -> tuple[str, list[tuple[str, list[str]]]]:
+    """The target text and the right-hand side's pieces as written: (sign, factor texts), in order; the
+    intercept pieces '0' and '1' come as one-factor pieces. For rewriting a formula before it is parsed."""
+    target_text, rhs_tokens = _split_formula(text)
+    pieces: list[tuple[str, list[str]]] = []
+    for sign, piece in _signed_pieces(text, rhs_tokens):
+        groups = _factor_groups(piece)
+        pieces.append((sign, [text[g[0].start : g[-1].end + 1].strip() for g in groups if g]))
+    return target_text, pieces
 
 
 def _first_line(err: Exception) -> str:

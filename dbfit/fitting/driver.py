@@ -12,6 +12,7 @@ import duckdb
 import numpy as np
 
 from dbfit.design.layout import Design, build_design
+from dbfit.design.term_resolution import resolve_formula
 from dbfit.engines import engine_for
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.engines.progress import progress_settings
@@ -88,6 +89,7 @@ def fit(
     l1_share: float = 0.0,
     folds: int = 5,
     split_key: str | None = None,
+    missing: Mapping[str, str] | str | None = None,
 ) -> Model | SegmentedFit:
     """Fit a logistic regression of ``formula`` on ``source`` inside the database.
 
@@ -122,6 +124,9 @@ def fit(
     l1_share : share of the L1 part of the penalty, from 0 (ridge) to 1 (pure L1); default 0.
     folds : number of cross-validation folds, default 5.
     split_key : SQL expression whose hash assigns rows to folds (default: the row's used values).
+    missing : what a NULL in a term does: ``"drop"`` the row (default), ``"indicator"`` (a numeric term is
+        filled with its training mean and gains the term ``is_missing(x)``) or ``"level"`` (a categorical's
+        NULL is the level ``(missing)``); one policy for every term it fits, or ``{term: policy}``.
 
     References
     ----------
@@ -145,6 +150,7 @@ def fit(
         l1_share=l1_share,
         folds=folds,
         split_key=split_key,
+        missing=missing,
     )
     return fit_with(con, formula, source, chosen, progress)
 
@@ -180,6 +186,15 @@ def _fit(
 ) -> Model | SegmentedFit:
     special = options.variants()
     max_iter, tol, start, by = options.max_iter, options.tol, options.start, options.by
+    resolution = resolve_formula(
+        engine,
+        formula,
+        source_relation(source),
+        missing=options.missing,
+        option_expressions=(options.weights, options.offset, options.trials, by),
+        weights=options.weights,
+    )
+    formula = resolution.formula
     parsed = parse_formula(formula)
     design = build_design(
         engine,
@@ -189,9 +204,10 @@ def _fit(
         offset=options.offset,
         trials=options.trials,
         positive=options.positive,
-        reference=dict(options.reference or {}),
+        reference={resolution.renamed.get(k, k): v for k, v in (options.reference or {}).items()},
         by=by,
     )
+    design.filled_rows, design.columns_at_fit = resolution.filled_rows, resolution.source_columns_seen
     has_intercept = 1 if design.intercept else 0
     constant = [k + has_intercept for k, c in enumerate(design.columns) if c.constant]
     all_parameters = list(range(len(design.labels)))
@@ -570,6 +586,10 @@ def assemble_model(
     }
     if design.trials is not None:
         stats["rows_zero_trials"] = design.rows_zero_trials
+    if design.filled_rows:
+        stats["missing_filled"] = dict(design.filled_rows)
+    if design.columns_at_fit is not None:
+        stats["source_columns_at_fit"] = list(design.columns_at_fit)
     return Model(
         formula=formula,
         source=source,

@@ -9,6 +9,7 @@ cast in the database): :meth:`FitOptions.from_text` reads those.
 from __future__ import annotations
 
 import dataclasses
+import json
 import math
 import numbers
 from collections.abc import Mapping, Sequence
@@ -64,6 +65,7 @@ class FitOptions:
     l1_share: float = 0.0
     folds: int = 5
     split_key: str | None = None
+    missing: Mapping[str, str] | str | None = None
     robust_kind: str | None = dataclasses.field(default=None, compare=False)
     penalty_request: Any = dataclasses.field(default=None, compare=False)
 
@@ -85,6 +87,7 @@ class FitOptions:
             values[name] = _expression_text(name, values.get(name))
         values["reference"] = _reference(values.get("reference"))
         values["positive"] = _positive(values.get("positive"))
+        values["missing"] = _missing(values.get("missing"))
         values["max_iter"] = _whole(values["max_iter"], "max_iter", 1)
         values["tol"] = _real(values["tol"], "tol")
         if not values["tol"] > 0:
@@ -153,6 +156,11 @@ class FitOptions:
             "max_iter": self.max_iter,
             "tol": self.tol,
             "by": self.by,
+            **(
+                {"missing": self.missing if isinstance(self.missing, str) else dict(self.missing)}
+                if self.missing
+                else {}
+            ),
         }
 
     def _check_combinations(self) -> None:
@@ -203,6 +211,40 @@ def _reference(value: Any) -> dict[str, Any] | None:
             )
         if level is not None and not isinstance(level, (str, numbers.Real)):
             raise FitError(f"reference level {level!r} of '{term}' must be a single value (text or number)")
+    return dict(value)
+
+
+MISSING_POLICIES = ("drop", "indicator", "level")
+
+
+def _missing(value: Any) -> Mapping[str, str] | str | None:
+    """``missing=``: one policy for every term it fits, or a mapping of term to policy; SQL gives either as
+    text (a policy word, or a JSON object such as '{"distance_km": "indicator"}')."""
+    if value is None:
+        return None
+    if isinstance(value, str) and value.strip().startswith("{"):
+        try:
+            value = json.loads(value)
+        except json.JSONDecodeError as err:
+            raise FitError(f"missing := {value!r} is not a JSON object of term to policy: {err}") from None
+    if isinstance(value, str):
+        if value not in MISSING_POLICIES:
+            raise FitError(
+                f"missing must be one of {', '.join(MISSING_POLICIES)} or a mapping of term to "
+                f"policy (got {value!r})"
+            )
+        return value
+    if not isinstance(value, Mapping):
+        raise FitError(
+            "missing must be a policy ('drop', 'indicator' or 'level') or a mapping of term to policy, e.g. "
+            f"{{'distance_km': 'indicator'}} (got {type(value).__name__} {value!r})"
+        )
+    for term, policy in value.items():
+        if not isinstance(term, str) or policy not in MISSING_POLICIES:
+            raise FitError(
+                f"missing names {term!r} with policy {policy!r}: name a term as in the formula and one of "
+                f"{', '.join(MISSING_POLICIES)}"
+            )
     return dict(value)
 
 

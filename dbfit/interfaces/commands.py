@@ -48,6 +48,12 @@ def add_model_commands(command: Command) -> None:
     fit.add_argument(
         "--reference", action="append", metavar="TERM=LEVEL", help="reference level (repeatable)"
     )
+    fit.add_argument(
+        "--missing",
+        action="append",
+        metavar="POLICY|TERM=POLICY",
+        help="NULLs in terms: drop (default), indicator or level, for every term or per term (repeatable)",
+    )
     fit.add_argument("--max-iter", type=int, help="most Newton passes (default 50)")
     fit.add_argument("--tol", type=float, help="convergence tolerance (default 1e-10)")
     fit.add_argument("--firth", action="store_true", default=None, help="Firth's bias-reduced fit")
@@ -271,6 +277,15 @@ def _fit(args: argparse.Namespace) -> dict[str, Any]:
         if any(len(p) != 2 for p in pairs):
             raise UsageError("--reference takes TERM=LEVEL")
         reference = dict(pairs)
+    missing: Any = None
+    if args.missing:
+        pairs = [item.split("=", 1) for item in args.missing]
+        if len(pairs) == 1 and len(pairs[0]) == 1:
+            missing = pairs[0][0]
+        elif any(len(p) != 2 for p in pairs):
+            raise UsageError("--missing takes one POLICY, or TERM=POLICY (repeatable)")
+        else:
+            missing = dict(pairs)
     given = {
         k: getattr(args, k)
         for k in (
@@ -291,7 +306,9 @@ def _fit(args: argparse.Namespace) -> dict[str, Any]:
             "threshold",
         )
     }
-    settings = merge(read_spec(args.spec) if args.spec else {}, given | {"reference": reference})
+    settings = merge(
+        read_spec(args.spec) if args.spec else {}, given | {"reference": reference, "missing": missing}
+    )
     options = {k: settings[k] for k in FIT_OPTIONS if settings.get(k) is not None}
     split = None
     if settings.get("holdout_key"):

@@ -127,13 +127,13 @@ MACROS = {
         (
             'model, formula, source, weights := NULL, "offset" := NULL, trials := NULL, reference := NULL, '
             'positive := NULL, max_iter := 50, tol := 1e-10, robust := NULL, "cluster" := NULL, firth := false, '
-            'population_rate := NULL, shrinkage := NULL, l1_share := 0.0, "by" := NULL',
+            'population_rate := NULL, shrinkage := NULL, l1_share := 0.0, "by" := NULL, missing := NULL',
             _ROWS.format(
                 call='dbfit_sql_fit(model, formula, source, weights, "offset", trials, reference, '
                 "positive, max_iter::VARCHAR, tol::VARCHAR, "
                 "(SELECT dbfit_count.n FROM query(dbfit_sql_count(formula, source)) "
                 'AS dbfit_count), robust, "cluster", firth::VARCHAR, '
-                'population_rate::VARCHAR, shrinkage::VARCHAR, l1_share::VARCHAR, "by")'
+                'population_rate::VARCHAR, shrinkage::VARCHAR, l1_share::VARCHAR, "by", missing::VARCHAR)'
             ),
         )
     ],
@@ -265,6 +265,7 @@ class SqlFunctions:
         shrinkage,
         l1_share,
         by,
+        missing=None,
     ):
         model_name(model)
         formula, source, earlier = formula_and_source(formula, source)
@@ -283,6 +284,7 @@ class SqlFunctions:
             shrinkage=shrinkage,
             l1_share=l1_share,
             by=by,
+            missing=missing,
         )
         with self.second() as reader:
             fitted = _fit_on_second_connection(reader, source, formula, visible_rows, options)
@@ -441,7 +443,7 @@ class SqlFunctions:
             (
                 "dbfit_sql_fit",
                 self.fit_rows,
-                [V, V, V, V, V, V, reference_type, V, V, V, T("BIGINT"), V, V, V, V, V, V, V],
+                [V, V, V, V, V, V, reference_type, V, V, V, T("BIGINT"), V, V, V, V, V, V, V, V],
                 _rows_of(FIT_FIELDS),
             ),
             ("dbfit_sql_count", self.count_sql, [V, V], V),

@@ -13,9 +13,12 @@ import math
 from typing import Any
 
 import duckdb
+from sqlglot import exp
 
+from dbfit.engines import engine_for
 from dbfit.errors import GateRefusedError, StoreError
 from dbfit.expressions.names import model_name
+from dbfit.expressions.source import source_relation
 from dbfit.expressions.splits import Holdout, part_source
 from dbfit.fitting.options import OPTION_NAMES, FitOptions
 from dbfit.lifecycle import saving, training
@@ -24,8 +27,10 @@ from dbfit.lifecycle.gates import evaluate, gates_of
 from dbfit.model.fitted import Model
 from dbfit.store import model_store as store
 
-# every option of the current version but its start values (refit warm-starts) and by= (refused above)
-REUSED_OPTIONS = tuple(name for name in OPTION_NAMES if name not in ("start", "by"))
+# every option of the current version but its start values (refit warm-starts), by= (refused above) and
+# missing= (the stored formula already holds its fill values and levels: applied again to new data it could
+# fill terms the model never filled)
+REUSED_OPTIONS = tuple(name for name in OPTION_NAMES if name not in ("start", "by", "missing"))
 
 
 def refit(
@@ -106,6 +111,24 @@ def refit(
         "decision": decision,
         "reasons": reasons or [reason],
         "figures": figures,
+        **_column_notes(con, current, source),
+    }
+
+
+def _column_notes(con: duckdb.DuckDBPyConnection, current: Model, source: str) -> dict[str, Any]:
+    """A note when all_columns() chose the model's columns and the source has gained columns since."""
+    seen = current.stats.get("source_columns_at_fit")
+    if not seen:
+        return {}
+    now = [name for name, _ in engine_for(con).describe(exp.select("*").from_(source_relation(source)))]
+    gained = [name for name in now if name.lower() not in {s.lower() for s in seen}]
+    if not gained:
+        return {}
+    return {
+        "notes": [
+            f"the source has gained column(s) {', '.join(gained)} since the fit; all_columns() was expanded "
+            "then and the refit keeps the model's columns: fit anew to include them"
+        ]
     }
 
 

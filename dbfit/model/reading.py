@@ -13,7 +13,7 @@ import numpy as np
 from dbfit.design.layout import Design, DesignColumn, Factor
 from dbfit.errors import DbfitError, StoreError
 from dbfit.expressions.columns import resolve_columns
-from dbfit.expressions.formula import parse_expression, parse_formula
+from dbfit.expressions.formula import parse_expression, parse_factor, parse_formula
 from dbfit.expressions.source import source_relation
 from dbfit.model import inference
 from dbfit.model.document import FORMAT, FORMAT_VERSION
@@ -105,7 +105,7 @@ def _rebuild(document: dict[str, Any], name: str | None, version: int | None) ->
     factors = [
         Factor(
             text=f["expression"],
-            expression=parse_expression(f["expression"], "term", f"factor {i + 1} of the model document"),
+            expression=parse_factor(f["expression"], f"factor {i + 1} of the model document"),
             alias=f"dbfit_f{i}",
             sql_type=f["sql_type"],
             kind=f["kind"],
