@@ -18,11 +18,13 @@ from typing import Any
 
 from sqlglot import exp
 
+from dbfit.design.term_scan import resolve_term_calls
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError, FormulaError
 from dbfit.expressions import builders as sb
 from dbfit.expressions.columns import resolve_columns
 from dbfit.expressions.formula import Formula, parse_expression
+from dbfit.expressions.term_functions import BinsCall
 
 NUMERIC_TYPE = re.compile(
     r"^(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|UTINYINT|USMALLINT|UINTEGER|UBIGINT|UHUGEINT|FLOAT|REAL|DOUBLE|DECIMAL.*|NUMERIC.*|INT\d*)$",
@@ -189,8 +191,12 @@ def build_design(
 ) -> Design:
     """Type the expressions, run the profiling scan, and lay out the internal columns.
 
-    ``by`` is a segment expression: its NULL rows are left out like any other used column.
+    ``by`` is a segment expression: its NULL rows are left out like any other used column. Term functions
+    get their knots and edges first (:func:`dbfit.design.term_scan.resolve_term_calls`); ``design.formula``
+    is then the formula with them listed.
     """
+    formula = resolve_term_calls(engine, formula, relation, NUMERIC_TYPE)
+    reference = {**bins_references(formula), **(reference or {})}
     factors = [
         Factor(text=text, expression=_factor_expression(formula, text), alias=f"dbfit_f{i}")
         for i, text in enumerate(formula.factor_texts())
@@ -218,6 +224,15 @@ def build_design(
     _check_references(design, reference or {})
     _profile(engine, design, reference or {})
     return design
+
+
+def bins_references(formula: Formula) -> dict[str, Any]:
+    """The reference level (an interval label) of every bins term, by its factor text."""
+    return {
+        term.texts[0]: term.call.reference_label
+        for term in formula.terms
+        if isinstance(term.call, BinsCall)
+    }
 
 
 def _factor_expression(formula: Formula, text: str) -> exp.Expression:
@@ -599,9 +614,9 @@ def _layout_columns(
                 for text in term.texts:
                     i = index[text]
                     if design.factors[i].kind == "numeric":
-                        pieces.append(text)
+                        pieces.append(term.name_of(text))
                     elif i in levels:
-                        pieces.append(f"{text}={level_label(levels[i])}")
+                        pieces.append(f"{term.name_of(text)}={level_label(levels[i])}")
                 columns.append(
                     DesignColumn(
                         label=":".join(pieces),

@@ -17,6 +17,7 @@ from sqlglot.tokens import TokenType
 
 from dbfit.errors import FormulaError
 from dbfit.expressions.rules import check_expression
+from dbfit.expressions.term_functions import TermCall, recognise
 
 DIALECT = "duckdb"
 
@@ -30,10 +31,22 @@ class Term:
 
     factors: tuple[exp.Expression, ...]
     texts: tuple[str, ...]
+    # a term function (dbfit.expressions.term_functions): the call, and the column label of its factor
+    call: TermCall | None = None
+    names: tuple[str, ...] = ()
 
     @property
     def label(self) -> str:
-        return ":".join(self.texts)
+        return ":".join(self.names or self.texts)
+
+    def name_of(self, text: str) -> str:
+        """How a factor of this term reads in a column label (a term function's own label, else its text)."""
+        return self.names[self.texts.index(text)] if self.names else text
+
+    @property
+    def unresolved(self) -> bool:
+        """A term function whose knots or edges the fit has yet to compute."""
+        return self.call is not None and not self.call.resolved
 
 
 @dataclass(frozen=True)
@@ -113,7 +126,9 @@ def parse_formula(text: str) -> Formula:
     target = parse_expression(target_text, "the target")
     rhs_tokens = [t for t in tokens if t.start > tilde_at.end]
     intercept, terms = _parse_terms(text, rhs_tokens)
-    return Formula(text=text, target=target, target_text=target_text, terms=tuple(terms), intercept=intercept)
+    return Formula(
+        text=text, target=target, target_text=target_text, terms=_expanded(terms), intercept=intercept
+    )
 
 
 def holds_top_level_tilde(text: object) -> bool:
@@ -200,8 +215,28 @@ def _parse_term(text: str, tokens: list, position: int) -> Term:
     texts = tuple(text[g[0].start : g[-1].end + 1].strip() for g in groups)
     if len(set(texts)) != len(texts):
         raise FormulaError(f"interaction '{':'.join(texts)}' repeats a factor")
-    factors = tuple(parse_expression(t, "term", f"term {position} of the formula") for t in texts)
+    where = f"term {position} of the formula"
+    calls = [recognise(t, where) for t in texts]
+    if any(calls):
+        if len(texts) > 1:
+            raise FormulaError(f"term '{':'.join(texts)}': a spline or bins term cannot enter an interaction")
+        return Term(factors=(calls[0].argument,), texts=texts, call=calls[0])  # type: ignore[union-attr]
+    factors = tuple(parse_expression(t, "term", where) for t in texts)
     return Term(factors=factors, texts=texts)
+
+
+def _expanded(terms: list[Term]) -> tuple[Term, ...]:
+    """Term functions with known knots or edges become their columns: one term per spline basis column,
+    one categorical term per bins call."""
+    expanded: list[Term] = []
+    for term in terms:
+        call = term.call
+        if call is None or not call.resolved:
+            expanded.append(term)
+            continue
+        for name, node in call.columns():
+            expanded.append(Term(factors=(node,), texts=(node.sql(dialect=DIALECT),), call=call, names=(name,)))
+    return tuple(expanded)
 
 
 def _first_line(err: Exception) -> str:

@@ -182,6 +182,7 @@ def _fit(
         reference=dict(options.reference or {}),
         by=by,
     )
+    formula = design.formula.text  # term functions with their knots and edges listed: the model keeps them
     has_intercept = 1 if design.intercept else 0
     constant = [k + has_intercept for k, c in enumerate(design.columns) if c.constant]
     all_parameters = list(range(len(design.labels)))
