@@ -359,3 +359,19 @@ def _short_numbers(values: list[float]) -> list[str]:
         if len(set(shown)) == len(shown) and all(float(a) < float(b) for a, b in zip(shown, shown[1:])):
             return shown
     return [repr(v) for v in values]
+
+
+def spline_basis_values(call: SplineCall, x: Any) -> Any:
+    """The basis columns of ``call`` at the numbers ``x`` (numpy, shape len(x) x df): the same arithmetic as
+    :meth:`SplineCall.columns` writes in SQL, for curves drawn outside the database."""
+    import numpy as np
+
+    assert call.knots is not None
+    knots, x = call.knots, np.asarray(x, dtype=float)
+    width, last = knots[-1] - knots[0], len(knots) - 1
+
+    def d(j: int) -> Any:
+        cubes = [np.maximum((x - knots[k]) / width, 0.0) ** 3 for k in (j, last)]
+        return (cubes[0] - cubes[1]) / ((knots[last] - knots[j]) / width)
+
+    return np.column_stack([x] + [d(j) - d(last - 1) for j in range(last - 1)])

@@ -1,0 +1,67 @@
+"""The fitted curve of a spline term: log-odds against the variable, with a pointwise confidence band.
+
+The basis coefficients of ``spline(x, k)`` say little on their own; the curve does. On a grid of values of
+``x`` the linear predictor is evaluated at the baseline row of :func:`dbfit.deployment.scoring.baseline_values`
+(every other numeric column at its training mean, every categorical at its reference level), with the spline's
+columns at each grid value. Its standard error is sqrt(g' V g), g the gradient of the linear predictor in
+the estimates (the design row itself) and V the model's covariance: the delta method, as for the scoring
+standard error (Agresti 2013, Categorical Data Analysis, 3rd ed., Wiley, cited from memory). The band is
+the Wald interval of the log-odds at ``level``.
+"""
+
+from __future__ import annotations
+
+from statistics import NormalDist
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+
+from dbfit.deployment.scoring import baseline_values
+from dbfit.errors import DbfitError
+from dbfit.expressions.term_functions import SplineCall, spline_basis_values
+
+CURVE_COLUMNS = ("value", "log_odds", "standard_error", "low", "high")
+
+
+def spline_terms(model: Any) -> dict[str, SplineCall]:
+    """The spline terms of ``model`` by name (``spline(x)``)."""
+    found: dict[str, SplineCall] = {}
+    for term in model.design.formula.terms:
+        if isinstance(term.call, SplineCall):
+            found.setdefault(term.call.name, term.call)
+    return found
+
+
+def spline_curve(model: Any, term: str, *, points: int = 50, level: float = 0.95) -> pa.Table:
+    """``points`` grid values from the lower to the upper boundary knot of spline ``term`` (``spline(x)`` or
+    ``x``) with the log-odds, its standard error and the band (see the module docstring)."""
+    terms = spline_terms(model)
+    call = terms.get(term) or next((c for c in terms.values() if c.argument_text == term), None)
+    if call is None:
+        raise DbfitError(
+            f"'{term}' is not a spline term of this model (spline terms: {', '.join(terms) or 'none'})"
+        )
+    if not 0.0 < level < 1.0:
+        raise DbfitError(f"level must be between 0 and 1 (got {level})")
+    if not isinstance(points, int) or points < 2:
+        raise DbfitError(f"points must be a whole number >= 2 (got {points!r})")
+    assert call.knots is not None
+    design = model.design
+    grid = np.linspace(call.knots[0], call.knots[-1], points)
+    names = [f"{call.name}[{j + 1}]" for j in range(call.df)]
+    offset = 1 if design.intercept else 0
+    rows = np.tile(np.concatenate([[1.0] if design.intercept else [], baseline_values(design)]), (points, 1))
+    basis = spline_basis_values(call, grid)
+    for j, column in enumerate(design.columns):
+        if column.label in names:
+            rows[:, j + offset] = basis[:, names.index(column.label)]
+    estimated = ~np.isnan(np.asarray(model.estimates, dtype=float))
+    beta = np.asarray(model.estimates, dtype=float)[estimated]
+    covariance = np.asarray(model.covariance, dtype=float)[np.ix_(estimated, estimated)]
+    x = rows[:, estimated]
+    log_odds = x @ beta
+    se = np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", x, covariance, x), 0.0))
+    z = NormalDist().inv_cdf(0.5 + level / 2.0)
+    values = (grid, log_odds, se, log_odds - z * se, log_odds + z * se)
+    return pa.table({name: v for name, v in zip(CURVE_COLUMNS, values)})
