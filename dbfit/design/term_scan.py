@@ -84,3 +84,13 @@ def _check_numeric(engine: Any, terms: list[Term], relation: exp.Expression, num
                 f"term '{term.call.text}': '{term.call.argument_text}' has SQL type {sql_type}; a {kind} term "
                 "needs a numeric expression (a categorical enters the formula as it is)"
             )
+
+
+def with_quantiles_recomputed(text: str) -> str:
+    """The formula ``text`` with the knots and edges a fit computed at quantiles taken out, so that the next
+    fit computes them again (knots and edges the user listed stay)."""
+    for term in parse_formula(text).terms:
+        call = term.call
+        if call is not None and call.computed:
+            text = text.replace(call.text, call.unresolved_text())
+    return text

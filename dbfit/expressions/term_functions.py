@@ -65,6 +65,7 @@ class SplineCall:
     df: int
     boundary: tuple[float, float] = (0.0, 1.0)  # quantiles of the boundary knots
     knots: tuple[float, ...] | None = None
+    computed: bool = False  # knots at quantiles computed by a fit (recomputed on request)
 
     @property
     def name(self) -> str:
@@ -80,10 +81,18 @@ class SplineCall:
         return [low + (high - low) * j / self.df for j in range(self.df + 1)]
 
     def with_values(self, values: list[float]) -> SplineCall:
-        return replace(self, knots=tuple(values))
+        return replace(self, knots=tuple(values), computed=True)
+
+    def unresolved_text(self) -> str:
+        """The call asking for its knots at quantiles again (as written before a fit listed them)."""
+        boundary = f", boundary => {_number_list(self.boundary)}" if self.boundary != (0.0, 1.0) else ""
+        return f"spline({self.argument_text}, {self.df}{boundary})"
 
     def resolved_text(self) -> str:
-        return f"spline({self.argument_text}, knots => {_number_list(self.knots or ())})"
+        knots = f"knots => {_number_list(self.knots or ())}"
+        if not self.computed:
+            return f"spline({self.argument_text}, {knots})"
+        return f"{self.unresolved_text()[:-1]}, {knots})"
 
     def columns(self) -> list[tuple[str, exp.Expression]]:
         """(label, SQL expression) of each basis column: ``spline(x)[1]`` .. ``spline(x)[df]``."""
@@ -117,6 +126,7 @@ class BinsCall:
     reference: int = 1
     missing_bin: bool = False
     edges: tuple[float, ...] | None = None
+    computed: bool = False  # edges at quantiles computed by a fit (recomputed on request)
 
     @property
     def name(self) -> str:
@@ -130,13 +140,21 @@ class BinsCall:
         return [j / self.count for j in range(1, self.count)]
 
     def with_values(self, values: list[float]) -> BinsCall:
-        return replace(self, edges=tuple(values))
+        return replace(self, edges=tuple(values), computed=True)
 
-    def resolved_text(self) -> str:
-        extra = (f", reference => {self.reference}" if self.reference != 1 else "") + (
+    def _options_text(self) -> str:
+        return (f", reference => {self.reference}" if self.reference != 1 else "") + (
             ", missing => 'bin'" if self.missing_bin else ""
         )
-        return f"bins({self.argument_text}, edges => {_number_list(self.edges or ())}{extra})"
+
+    def unresolved_text(self) -> str:
+        """The call asking for its edges at quantiles again (as written before a fit listed them)."""
+        return f"bins({self.argument_text}, {self.count}{self._options_text()})"
+
+    def resolved_text(self) -> str:
+        edges = f"edges => {_number_list(self.edges or ())}"
+        count = f"{self.count}, " if self.computed else ""
+        return f"bins({self.argument_text}, {count}{edges}{self._options_text()})"
 
     def labels(self) -> list[str]:
         """The interval of each bin, with the edges written as short as keeps them apart."""
@@ -210,18 +228,20 @@ def _spline_call(
 ) -> SplineCall:
     _refuse_unknown(term, named, {"df", "knots", "boundary"}, len(rest), 1)
     df_node = rest[0] if rest else named.get("df")
+    knots = None
     if "knots" in named:
-        if df_node is not None or "boundary" in named:
-            raise FormulaError(f"{term}: give either the degrees of freedom or knots =>, not both")
         knots = _numbers(term, "knots", named["knots"])
         if len(knots) < 2:
             raise FormulaError(f"{term}: knots => needs at least the two boundary knots (got {len(knots)})")
         _increasing(term, "knots", knots)
-        return SplineCall(text, argument, argument_text, len(knots) - 1, knots=tuple(knots))
     if df_node is None:
-        raise FormulaError(
-            f"{term}: give the degrees of freedom, e.g. 'spline({argument_text}, 4)', or knots =>"
-        )
+        if knots is None:
+            raise FormulaError(
+                f"{term}: give the degrees of freedom, e.g. 'spline({argument_text}, 4)', or knots =>"
+            )
+        if "boundary" in named:
+            raise FormulaError(f"{term}: boundary => goes with the degrees of freedom, not with knots =>")
+        return SplineCall(text, argument, argument_text, len(knots) - 1, knots=tuple(knots))
     df = _whole(term, "the degrees of freedom", df_node)
     boundary = (0.0, 1.0)
     if "boundary" in named:
@@ -232,7 +252,19 @@ def _spline_call(
                 f"(got {low_high})"
             )
         boundary = (low_high[0], low_high[1])
-    return SplineCall(text, argument, argument_text, df, boundary=boundary)
+    if knots is not None and len(knots) != df + 1:
+        raise FormulaError(
+            f"{term}: {df} degrees of freedom take {df + 1} knots, but knots => lists {len(knots)}"
+        )
+    return SplineCall(
+        text,
+        argument,
+        argument_text,
+        df,
+        boundary=boundary,
+        knots=None if knots is None else tuple(knots),
+        computed=knots is not None,
+    )
 
 
 def _bins_call(
@@ -248,23 +280,35 @@ def _bins_call(
         )
     missing_bin = missing is not None and missing.name == "bin"
     count_node = rest[0] if rest else named.get("count")
+    edges = None
     if "edges" in named:
-        if count_node is not None:
-            raise FormulaError(f"{term}: give either the number of bins or edges =>, not both")
         edges = _numbers(term, "edges", named["edges"])
         if not edges:
             raise FormulaError(f"{term}: edges => needs at least one edge")
         _increasing(term, "edges", edges)
+    if count_node is None:
+        if edges is None:
+            raise FormulaError(
+                f"{term}: give the number of bins, e.g. 'bins({argument_text}, 5)', or edges =>"
+            )
         call = BinsCall(
             text, argument, argument_text, len(edges) + 1, missing_bin=missing_bin, edges=tuple(edges)
         )
     else:
-        if count_node is None:
-            raise FormulaError(
-                f"{term}: give the number of bins, e.g. 'bins({argument_text}, 5)', or edges =>"
-            )
         count = _whole(term, "the number of bins", count_node, least=2)
-        call = BinsCall(text, argument, argument_text, count, missing_bin=missing_bin)
+        if edges is not None and len(edges) != count - 1:
+            raise FormulaError(
+                f"{term}: {count} bins take {count - 1} edges, but edges => lists {len(edges)}"
+            )
+        call = BinsCall(
+            text,
+            argument,
+            argument_text,
+            count,
+            missing_bin=missing_bin,
+            edges=None if edges is None else tuple(edges),
+            computed=edges is not None,
+        )
     if "reference" in named:
         reference = _whole(term, "reference", named["reference"])
         if reference > call.count:
