@@ -397,12 +397,21 @@ def _number_list(values: Any) -> str:
 
 
 def _short_numbers(values: list[float]) -> list[str]:
-    """The values with the fewest significant digits (at least 3) that keep neighbours apart."""
+    """The values with the fewest significant digits (at least 3) that keep neighbours apart, written
+    without an exponent between 1e-4 and 1e15 (``20000``, ``3.46``, ``0.0123``)."""
     for digits in range(3, 18):
-        shown = [f"{v:.{digits}g}" for v in values]
+        shown = [_significant(v, digits) for v in values]
         if len(set(shown)) == len(shown) and all(float(a) < float(b) for a, b in zip(shown, shown[1:])):
             return shown
     return [repr(v) for v in values]
+
+
+def _significant(value: float, digits: int) -> str:
+    rounded = float(f"{value:.{digits}g}")
+    if rounded == 0 or 1e-4 <= abs(rounded) < 1e15:
+        text = f"{rounded:.{max(0, digits - 1 - math.floor(math.log10(abs(rounded or 1))))}f}"
+        return text.rstrip("0").rstrip(".") if "." in text else text
+    return f"{value:.{digits}g}"
 
 
 def spline_basis_values(call: SplineCall, x: Any) -> Any:
