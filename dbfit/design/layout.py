@@ -229,9 +229,7 @@ def build_design(
 def bins_references(formula: Formula) -> dict[str, Any]:
     """The reference level (an interval label) of every bins term, by its factor text."""
     return {
-        term.texts[0]: term.call.reference_label
-        for term in formula.terms
-        if isinstance(term.call, BinsCall)
+        term.texts[0]: term.call.reference_label for term in formula.terms if isinstance(term.call, BinsCall)
     }
 
 

@@ -235,7 +235,9 @@ def _expanded(terms: list[Term]) -> tuple[Term, ...]:
             expanded.append(term)
             continue
         for name, node in call.columns():
-            expanded.append(Term(factors=(node,), texts=(node.sql(dialect=DIALECT),), call=call, names=(name,)))
+            expanded.append(
+                Term(factors=(node,), texts=(node.sql(dialect=DIALECT),), call=call, names=(name,))
+            )
     return tuple(expanded)
 
 
