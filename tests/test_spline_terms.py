@@ -238,3 +238,21 @@ def test_postgresql_scoring_and_fit_of_a_spline(con, births):
         fitted_there = dbfit.fit(pg, "low ~ spline(lwt, 4) + age", "new_births", progress=False)
         wanted = np.quantile([r[2] for r in rows if r[2] is not None], [0, 0.25, 0.5, 0.75, 1])
         np.testing.assert_allclose(knots_of(fitted_there), wanted, rtol=1e-15)
+
+
+def test_a_spline_is_one_term_in_tests_and_reasons(con, births):
+    # reference: statsmodels' joint Wald test of the patsy cr() columns at the same knots (the statistic does
+    # not depend on how the spline space is parametrised) and the deviance of statsmodels' fit without it.
+    model = dbfit.fit(con, "low ~ spline(lwt, 3) + age", "births", tol=1e-14, progress=False)
+    reference = cr_reference(births, knots_of(model))
+    columns = [name for name in reference.params.index if name.startswith("cr(")]
+    wald = reference.wald_test(", ".join(f"{c} = 0" for c in columns), scalar=True)
+    without = smf.glm("low ~ age", births, family=sm.families.Binomial()).fit(tol=1e-14)
+    table = dbfit.term_tests(con, model, likelihood_ratio=True).to_pandas().set_index("term")
+    assert list(table.index) == ["spline(lwt)", "age"] and table.loc["spline(lwt)", "df"] == 3
+    np.testing.assert_allclose(table.loc["spline(lwt)", "wald_chi_square"], wald.statistic, rtol=1e-7)
+    np.testing.assert_allclose(
+        table.loc["spline(lwt)", "deviance_difference"], without.deviance - reference.deviance, rtol=1e-7
+    )
+    reasons = con.execute(f"SELECT DISTINCT reason_1 FROM ({dbfit.scoring_sql(model, reasons=1)})").fetchall()
+    assert {r[0] for r in reasons} <= {"spline(lwt)", "age"}

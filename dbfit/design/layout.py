@@ -618,7 +618,7 @@ def _layout_columns(
                 columns.append(
                     DesignColumn(
                         label=":".join(pieces),
-                        term=term.label,
+                        term=term.group,
                         numeric=numeric,
                         indicators=tuple(combination),
                         centre=centre,

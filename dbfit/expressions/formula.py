@@ -39,6 +39,11 @@ class Term:
     def label(self) -> str:
         return ":".join(self.names or self.texts)
 
+    @property
+    def group(self) -> str:
+        """The term its columns belong to: one spline term for all its basis columns, else the label."""
+        return self.call.name if self.call is not None else self.label
+
     def name_of(self, text: str) -> str:
         """How a factor of this term reads in a column label (a term function's own label, else its text)."""
         return self.names[self.texts.index(text)] if self.names else text
