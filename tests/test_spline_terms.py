@@ -256,3 +256,21 @@ def test_a_spline_is_one_term_in_tests_and_reasons(con, births):
     )
     reasons = con.execute(f"SELECT DISTINCT reason_1 FROM ({dbfit.scoring_sql(model, reasons=1)})").fetchall()
     assert {r[0] for r in reasons} <= {"spline(lwt)", "age"}
+
+
+def test_readme_example_runs_on_the_demo_database(demo_database):
+    # The README's spline and bins examples, as written, on `dbfit demo`'s database (20,000 rows here).
+    from conftest import readme_blocks
+
+    from dbfit.interfaces.sql_script import run_script
+
+    blocks = readme_blocks("## Smooth effects and bins")
+    (python,), (sql,) = blocks["python"], blocks["sql"]
+    names: dict = {}
+    exec(compile(python, "README.md", "exec"), names)
+    names["con"].close()
+    assert names["curve"].num_rows == 25 and names["model"].labels[4] == "spline(distance_km)[4]"
+    assert names["screen"].column("bin").to_pylist()[0] == "missing"
+    with dbfit.connect(demo_database) as con:
+        (result,) = run_script(con, sql)
+        assert len(result.rows) == 8
