@@ -233,3 +233,15 @@ def test_postgresql_scores_a_bins_term_as_duckdb_does(con, credit):
     ours = probabilities(con, model, "new_credit")
     assert np.isfinite(ours[-2]) and np.isnan(ours[-1])  # NULL income is its bin; NULL balance gives NULL
     np.testing.assert_allclose(theirs, ours, rtol=1e-12, atol=0, equal_nan=True)
+
+
+def test_drift_reads_a_bins_term_by_its_own_bins_and_a_spline_as_its_variable(con, credit):
+    # common practice: the population stability index of unchanged rows is 0; shifting income moves only it.
+    model = dbfit.fit(con, "defaulted ~ bins(income, 4) + spline(balance, 3)", "credit", progress=False)
+    dbfit.save(con, model, "shapes")
+    same = dbfit.drift(con, "shapes", "credit").to_pandas().set_index("variable")
+    assert sorted(same.index) == ["bins(income)", "score", "spline(balance)"]
+    assert (same.psi == 0).all() and same.loc["bins(income)", "kind"] == "categorical"
+    con.execute("CREATE TABLE richer AS SELECT defaulted, income * 1.5 AS income, balance FROM credit")
+    moved = dbfit.drift(con, "shapes", "richer").to_pandas().set_index("variable")
+    assert moved.loc["bins(income)", "psi"] > 0.1 and moved.loc["spline(balance)", "psi"] == 0
