@@ -274,3 +274,17 @@ def test_readme_example_runs_on_the_demo_database(demo_database):
     with dbfit.connect(demo_database) as con:
         (result,) = run_script(con, sql)
         assert len(result.rows) == 8
+
+
+def test_segments_and_the_sql_surface_share_the_knots_of_the_whole_source(con, births):
+    # reference: numpy quantiles of every row's lwt (the knots are computed once, before the segments).
+    wanted = list(np.quantile(births.lwt, [0, 1 / 3, 2 / 3, 1]))
+    segmented = dbfit.fit(con, "low ~ spline(lwt, 3) + age", "births", by="smoke", progress=False)
+    for model in segmented.models.values():
+        np.testing.assert_allclose(knots_of(model), wanted, rtol=1e-15)
+    dbfit.install(con)
+    rows = con.execute(
+        "SELECT term FROM dbfit.fit('by_sql', 'low ~ spline(lwt, 3) + age', 'births')"
+    ).fetchall()
+    assert [r[0] for r in rows] == ["intercept", "spline(lwt)[1]", "spline(lwt)[2]", "spline(lwt)[3]", "age"]
+    np.testing.assert_allclose(knots_of(dbfit.load(con, "by_sql")), wanted, rtol=1e-15)
