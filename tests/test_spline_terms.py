@@ -288,3 +288,23 @@ def test_segments_and_the_sql_surface_share_the_knots_of_the_whole_source(con, b
     ).fetchall()
     assert [r[0] for r in rows] == ["intercept", "spline(lwt)[1]", "spline(lwt)[2]", "spline(lwt)[3]", "age"]
     np.testing.assert_allclose(knots_of(dbfit.load(con, "by_sql")), wanted, rtol=1e-15)
+
+
+def test_every_dialect_reads_the_scoring_sql_and_sqlite_scores_as_duckdb(con, births):
+    # reference: the model's DuckDB scores; SQLite (Python's sqlite3) runs the SQLite scoring SQL.
+    import sqlite3
+
+    import sqlglot
+
+    from dbfit.expressions.dialects import supported
+
+    model = dbfit.fit(con, "low ~ spline(lwt, 3) + bins(age, 3) + age", "births", progress=False)
+    for dialect in supported():
+        sqlglot.parse_one(dbfit.scoring_sql(model, dialect, source="births"), read=dialect)
+    lite = sqlite3.connect(":memory:")
+    births.to_sql("births", lite, index=False)
+    sql = (
+        f"SELECT probability FROM ({dbfit.scoring_sql(model, 'sqlite', source='births')}) ORDER BY rownumber"
+    )
+    theirs = np.array(lite.execute(sql).fetchall(), dtype=float)[:, 0]
+    np.testing.assert_allclose(theirs, probabilities(con, model), rtol=1e-12, atol=0)
