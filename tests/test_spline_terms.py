@@ -308,3 +308,21 @@ def test_every_dialect_reads_the_scoring_sql_and_sqlite_scores_as_duckdb(con, bi
     )
     theirs = np.array(lite.execute(sql).fetchall(), dtype=float)[:, 0]
     np.testing.assert_allclose(theirs, probabilities(con, model), rtol=1e-12, atol=0)
+
+
+def test_summary_shows_the_curve_at_the_knots_not_the_basis(con, births):
+    # reference: statsmodels get_prediction of the patsy cr() fit at the knots (age at its mean).
+    from dbfit.deployment.scoring import baseline_values
+    from dbfit.model.spline_curves import training_baseline
+
+    model = dbfit.fit(con, "low ~ spline(lwt, 3) + age", "births", tol=1e-14, progress=False)
+    assert training_baseline(model.design) == baseline_values(model.design)
+    text = model.summary()
+    assert "spline(lwt)[1]" not in text and "spline(lwt): log-odds at the knots (3 df)" in text
+    knots = knots_of(model)
+    predicted = cr_reference(births, knots).get_prediction(
+        pd.DataFrame({"lwt": knots, "age": births.age.mean()}), which="linear"
+    )
+    shown = [line.split() for line in text.splitlines()[-4:]]
+    np.testing.assert_allclose([float(row[0]) for row in shown], knots)
+    np.testing.assert_allclose([float(row[1]) for row in shown], predicted.predicted, rtol=1e-4)

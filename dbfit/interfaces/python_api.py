@@ -17,7 +17,6 @@ from dbfit.assessment import metrics as assessment
 from dbfit.assessment.effects import OVERALL
 from dbfit.assessment.effects import marginal_effects as effects_of
 from dbfit.assessment.screening import bin_screening as screening_of
-from dbfit.assessment.spline_curves import spline_curve as curve_of
 from dbfit.deployment import scoring
 from dbfit.deployment import views as deploy
 from dbfit.deployment.segment_views import segment_scoring_query
@@ -35,6 +34,7 @@ from dbfit.lifecycle.drift import psi_table
 from dbfit.model import reading
 from dbfit.model.fitted import Model
 from dbfit.model.segmented import SegmentedFit
+from dbfit.model.spline_curves import spline_curve as curve_of
 from dbfit.store import model_store as store
 
 
@@ -288,7 +288,7 @@ def spline_curve(
 ) -> pa.Table:
     """The fitted curve of spline ``term`` (``spline(x)`` or ``x``): log-odds on a grid from the lower to the
     upper boundary knot with a pointwise ``level`` band (delta method), see
-    :mod:`dbfit.assessment.spline_curves`. ``con`` may be None for a :class:`Model` in hand (no query runs)."""
+    :mod:`dbfit.model.spline_curves`. ``con`` may be None for a :class:`Model` in hand (no query runs)."""
     resolved = model if isinstance(model, Model) else deploy.resolve_model(con, model, version)
     return curve_of(resolved, term, points=points, level=level)
 
