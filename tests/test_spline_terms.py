@@ -202,6 +202,8 @@ def test_curve_and_band_match_statsmodels_predictions(con, births):
         ("low ~ spline(lwt, 3, boundary => [0.9, 0.1])", r"boundary"),
         ("low ~ spline(read_text('x'), 3)", r"read_text.*not allowed"),
         ("low ~ smoothed(lwt, 3)", r"smoothed.*not allowed"),
+        ("low ~ ln(spline(lwt, 3))", r"spline.*not allowed"),  # a term function is a whole term, not a value
+        ("low ~ spline(lwt, 3) * 2", r"spline.*not allowed"),
     ],
 )
 def test_bad_spline_terms_are_refused_naming_the_term(con, births, formula, message):
