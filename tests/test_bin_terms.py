@@ -245,3 +245,20 @@ def test_drift_reads_a_bins_term_by_its_own_bins_and_a_spline_as_its_variable(co
     con.execute("CREATE TABLE richer AS SELECT defaulted, income * 1.5 AS income, balance FROM credit")
     moved = dbfit.drift(con, "shapes", "richer").to_pandas().set_index("variable")
     assert moved.loc["bins(income)", "psi"] > 0.1 and moved.loc["spline(balance)", "psi"] == 0
+
+
+def test_command_line_refit_recomputes_edges_on_request(tmp_path, credit):
+    # reference: numpy quantiles of the grown table's income (common practice: quantile_cont's definition).
+    from dbfit.interfaces.cli import main
+
+    path = str(tmp_path / "credit.duckdb")
+    with dbfit.connect(path) as con:
+        load_frame(con, "credit", credit)
+        dbfit.save(con, dbfit.fit(con, "defaulted ~ bins(income, 4)", "credit", progress=False), "by_income")
+        con.execute("INSERT INTO credit SELECT * REPLACE (income * 3 AS income) FROM credit")
+    assert main(["refit", "by_income", "--database", path, "--recompute-knots"]) in (0, 3)
+    with dbfit.connect(path) as con:
+        latest = max(v["version"] for v in dbfit.models(con) if v["model"] == "by_income")
+        edges = edges_of(dbfit.load(con, "by_income", version=latest))
+    both = np.concatenate([credit.income, credit.income * 3])
+    np.testing.assert_allclose(edges, np.quantile(both, [0.25, 0.5, 0.75]), rtol=1e-15)
