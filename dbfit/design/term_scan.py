@@ -2,7 +2,8 @@
 
 Each unresolved ``spline(x, k)`` or ``bins(x, k)`` (see :mod:`dbfit.expressions.term_functions`) asks for
 quantiles of its argument: ``quantile_cont`` in DuckDB, ``percentile_cont(...) WITHIN GROUP`` in PostgreSQL
-(sqlglot writes the one tree in each engine's spelling), over the rows whose target, term-function arguments
+(sqlglot writes the one tree in each engine's spelling), ``percentile(x, array(...))`` in Spark (exact, with
+the same linear interpolation), over the rows whose target, term-function arguments
 and other terms are not NULL, unweighted. The count of distinct values comes from the same scan, so a call
 asking for more knots or bins than the data has values is refused naming the term. The formula is then
 rewritten with the values listed (``spline(x, knots => [...])``), which is the formula the model keeps.
@@ -50,7 +51,10 @@ def quantile_scan(
     for call in calls:
         value = sb.as_double(call.argument.copy())
         quantiles = exp.Array(expressions=[sb.number(q) for q in call.quantiles()])
-        selected.append(exp.PercentileCont(this=value, expression=quantiles))
+        if getattr(engine, "dialect", "duckdb") == "spark":  # Spark's percentile_cont takes one fraction
+            selected.append(exp.Anonymous(this="percentile", expressions=[value, quantiles]))
+        else:
+            selected.append(exp.PercentileCont(this=value, expression=quantiles))
         selected.append(exp.Count(this=exp.Distinct(expressions=[value.copy()])))
     present = [formula.target] + [
         term.call.argument if term.call is not None else factor
