@@ -328,33 +328,3 @@ def test_summary_shows_the_curve_at_the_knots_not_the_basis(con, births):
     shown = [line.split() for line in text.splitlines()[-4:]]
     np.testing.assert_allclose([float(row[0]) for row in shown], knots)
     np.testing.assert_allclose([float(row[1]) for row in shown], predicted.predicted, rtol=1e-4)
-
-
-def test_spark_computes_the_same_knots_and_fit(con, births):
-    # reference: the DuckDB fit of the same rows (itself checked against patsy cr() above); Spark's
-    # percentile(x, array(...)) interpolates as quantile_cont does.
-    pytest.importorskip("pyspark")
-    import os
-    import shutil
-
-    if shutil.which("java") is None:
-        pytest.skip("no Java runtime for Spark")
-    os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
-    from pyspark.sql import SparkSession
-
-    session = (
-        SparkSession.builder.master("local[2]")
-        .appName("dbfit-spline-tests")
-        .config("spark.ui.enabled", "false")
-        .config("spark.sql.shuffle.partitions", "2")
-        .getOrCreate()
-    )
-    try:
-        session.createDataFrame(births).createOrReplaceTempView("births")
-        formula = "low ~ spline(lwt, 4) + bins(age, 3) + age"
-        on_spark = dbfit.fit(session, formula, "births", progress=False)
-    finally:
-        session.stop()
-    on_duckdb = dbfit.fit(con, formula, "births", progress=False)
-    assert on_spark.formula == on_duckdb.formula and on_spark.labels == on_duckdb.labels
-    np.testing.assert_allclose(on_spark.estimates, on_duckdb.estimates, rtol=1e-8)
