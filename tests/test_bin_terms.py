@@ -91,6 +91,16 @@ def test_quantile_bins_fit_as_statsmodels_on_numpy_cut_indicators(con, credit):
         f"bins(income)=[{shown[3]}, inf)",
     ]
     assert model.formula.startswith("defaulted ~ bins(income, 5, edges => [")
+    by_option = dbfit.fit(
+        con,
+        "defaulted ~ bins(income, 5) + balance / 1000",
+        "credit",
+        reference={"bins(income)": model.design.factors[0].reference},
+        tol=1e-14,
+        progress=False,
+    )
+    assert by_option.labels == model.labels
+    np.testing.assert_allclose(by_option.estimates, model.estimates, rtol=1e-12)
 
 
 def test_given_edges_null_as_a_bin_weights_and_the_store(con, credit):

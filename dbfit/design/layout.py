@@ -18,13 +18,12 @@ from typing import Any
 
 from sqlglot import exp
 
-from dbfit.design.term_scan import resolve_term_calls
+from dbfit.design.term_scan import resolve_term_calls, with_bins_references
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError, FormulaError
 from dbfit.expressions import builders as sb
 from dbfit.expressions.columns import resolve_columns
 from dbfit.expressions.formula import Formula, parse_expression
-from dbfit.expressions.term_functions import BinsCall
 
 NUMERIC_TYPE = re.compile(
     r"^(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|UTINYINT|USMALLINT|UINTEGER|UBIGINT|UHUGEINT|FLOAT|REAL|DOUBLE|DECIMAL.*|NUMERIC.*|INT\d*)$",
@@ -196,7 +195,7 @@ def build_design(
     is then the formula with them listed.
     """
     formula = resolve_term_calls(engine, formula, relation, NUMERIC_TYPE)
-    reference = {**bins_references(formula), **(reference or {})}
+    reference = with_bins_references(formula, reference or {})
     factors = [
         Factor(text=text, expression=_factor_expression(formula, text), alias=f"dbfit_f{i}")
         for i, text in enumerate(formula.factor_texts())
@@ -224,13 +223,6 @@ def build_design(
     _check_references(design, reference or {})
     _profile(engine, design, reference or {})
     return design
-
-
-def bins_references(formula: Formula) -> dict[str, Any]:
-    """The reference level (an interval label) of every bins term, by its factor text."""
-    return {
-        term.texts[0]: term.call.reference_label for term in formula.terms if isinstance(term.call, BinsCall)
-    }
 
 
 def _factor_expression(formula: Formula, text: str) -> exp.Expression:

@@ -19,7 +19,7 @@ from sqlglot import exp
 from dbfit.errors import FormulaError
 from dbfit.expressions import builders as sb
 from dbfit.expressions.formula import Formula, Term, parse_formula
-from dbfit.expressions.term_functions import SplineCall, TermCall, check_values
+from dbfit.expressions.term_functions import BinsCall, SplineCall, TermCall, check_values
 
 
 def resolve_term_calls(
@@ -98,3 +98,15 @@ def with_quantiles_recomputed(text: str) -> str:
         if call is not None and call.computed:
             text = text.replace(call.text, call.unresolved_text())
     return text
+
+
+def with_bins_references(formula: Formula, given: dict[str, Any]) -> dict[str, Any]:
+    """``given`` reference levels by factor text, with each bins term's own (``reference => j``) added and a
+    key naming a bins term as ``bins(x)`` moved to its factor's text."""
+    references: dict[str, Any] = {}
+    names: dict[str, str] = {}
+    for term in formula.terms:
+        if isinstance(term.call, BinsCall):
+            references[term.texts[0]] = term.call.reference_label
+            names[term.call.name] = term.texts[0]
+    return references | {names.get(key, key): value for key, value in given.items()}
