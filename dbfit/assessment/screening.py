@@ -1,6 +1,6 @@
 """Screening a candidate variable before it enters a model: weight of evidence and information value per bin.
 
-The variable is cut like a ``bins(x, k)`` term (:class:`dbfit.expressions.term_functions.BinsCall`: quantile
+The variable is cut like a ``bins(x, k)`` term (:class:`dbfit.expressions.basis_terms.BinsCall`: quantile
 edges from one scan in the database, or edges given); one grouped query then counts events (target 1) and
 non-events (target 0) per bin and computes, in SQL,
 
@@ -23,9 +23,9 @@ from sqlglot import exp
 from dbfit.design.term_scan import quantile_scan
 from dbfit.errors import FitError, FormulaError
 from dbfit.expressions import builders as sb
+from dbfit.expressions.basis_terms import BinsCall, check_values
 from dbfit.expressions.formula import Formula, parse_expression
 from dbfit.expressions.source import source_relation
-from dbfit.expressions.term_functions import BinsCall, check_values
 
 SCREENING_COLUMNS = ("bin", "position", "rows", "events", "non_events", "woe", "iv")
 

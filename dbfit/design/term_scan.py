@@ -1,6 +1,6 @@
 """Knots and bin edges of the formula's term functions, computed in the database in one scan.
 
-Each unresolved ``spline(x, k)`` or ``bins(x, k)`` (see :mod:`dbfit.expressions.term_functions`) asks for
+Each unresolved ``spline(x, k)`` or ``bins(x, k)`` (see :mod:`dbfit.expressions.basis_terms`) asks for
 quantiles of its argument: ``quantile_cont`` in DuckDB, ``percentile_cont(...) WITHIN GROUP`` in PostgreSQL
 (sqlglot writes the one tree in each engine's spelling), ``percentile(x, array(...))`` in Spark (exact, with
 the same linear interpolation), over the rows whose target, term-function arguments
@@ -18,8 +18,8 @@ from sqlglot import exp
 
 from dbfit.errors import FormulaError
 from dbfit.expressions import builders as sb
+from dbfit.expressions.basis_terms import BinsCall, SplineCall, TermCall, check_values
 from dbfit.expressions.formula import Formula, Term, parse_formula
-from dbfit.expressions.term_functions import BinsCall, SplineCall, TermCall, check_values
 
 
 def resolve_term_calls(

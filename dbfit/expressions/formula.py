@@ -16,8 +16,8 @@ from sqlglot.errors import SqlglotError
 from sqlglot.tokens import TokenType
 
 from dbfit.errors import FormulaError
+from dbfit.expressions.basis_terms import TermCall, recognise
 from dbfit.expressions.rules import check_expression
-from dbfit.expressions.term_functions import TermCall, recognise
 
 DIALECT = "duckdb"
 
@@ -31,7 +31,7 @@ class Term:
 
     factors: tuple[exp.Expression, ...]
     texts: tuple[str, ...]
-    # a term function (dbfit.expressions.term_functions): the call, and the column label of its factor
+    # a term function (dbfit.expressions.basis_terms): the call, and the column label of its factor
     call: TermCall | None = None
     names: tuple[str, ...] = ()
 

@@ -23,8 +23,8 @@ from dbfit.deployment.scoring import scoring_query
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import DbfitError, StoreError
 from dbfit.expressions import builders as sb
+from dbfit.expressions.basis_terms import SplineCall
 from dbfit.expressions.source import source_relation
-from dbfit.expressions.term_functions import SplineCall
 from dbfit.model.fitted import Model
 
 FLOOR = 1e-4  # common practice

@@ -19,7 +19,7 @@ import numpy as np
 import pyarrow as pa
 
 from dbfit.errors import DbfitError
-from dbfit.expressions.term_functions import SplineCall, spline_basis_values
+from dbfit.expressions.basis_terms import SplineCall, spline_basis_values
 
 CURVE_COLUMNS = ("value", "log_odds", "standard_error", "low", "high")
 
