@@ -20,6 +20,7 @@ from dbfit.interfaces.deprecated import attach as _attach_deprecated_methods
 from dbfit.interfaces.python_api import (
     assess,
     assessment_tables,
+    bin_screening,
     cross_validate,
     decisions,
     drift,
@@ -34,6 +35,7 @@ from dbfit.interfaces.python_api import (
     save,
     score,
     scoring_sql,
+    spline_curve,
     term_tests,
     write_report,
 )
@@ -61,6 +63,7 @@ __all__ = [
     "StoreError",
     "assess",
     "assessment_tables",
+    "bin_screening",
     "comparison_table",
     "connect",
     "cross_validate",
@@ -84,6 +87,7 @@ __all__ = [
     "save",
     "score",
     "scoring_sql",
+    "spline_curve",
     "set_gates",
     "term_tests",
     "with_robust_errors",

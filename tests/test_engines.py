@@ -149,6 +149,16 @@ def test_postgres_segments_equal_duckdb(postgres, duckdb_fit):
     assert store.execute("SELECT count(*) FROM dbfit_store.fingerprints").fetchone() == (0,)
 
 
+def test_spark_spline_and_bins_terms_equal_duckdb(spark, duckdb_fit):
+    # Reference: the same fit in DuckDB (checked against patsy's cr() in test_spline_terms); the knots and edges
+    # come from Spark's percentile(x, array(...)), which interpolates as DuckDB's quantile_cont does.
+    formula = "low ~ spline(lwt, 4) + bins(age, 3) + age"
+    on_duckdb = duckdb_fit(formula)
+    on_spark = dbfit.fit(spark, formula, "birthwt", progress=False)
+    assert on_spark.formula == on_duckdb.formula and on_spark.labels == on_duckdb.labels
+    assert_close(on_spark.estimates, on_duckdb.estimates, 1e-8, "estimates")
+
+
 def test_spark_segments_equal_duckdb(spark, duckdb_fit):
     # Reference: the same by= fit in DuckDB; on Spark the segments' sums come from one GROUP BY per pass.
     on_duckdb = duckdb_fit("low ~ age + lwt + smoke", by="race_name")

@@ -18,6 +18,7 @@ from typing import Any
 
 from sqlglot import exp
 
+from dbfit.design.term_scan import resolve_term_calls, with_bins_references
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError, FormulaError
 from dbfit.expressions import builders as sb
@@ -195,8 +196,12 @@ def build_design(
 ) -> Design:
     """Type the expressions, run the profiling scan, and lay out the internal columns.
 
-    ``by`` is a segment expression: its NULL rows are left out like any other used column.
+    ``by`` is a segment expression: its NULL rows are left out like any other used column. Term functions
+    get their knots and edges first (:func:`dbfit.design.term_scan.resolve_term_calls`); ``design.formula``
+    is then the formula with them listed.
     """
+    formula = resolve_term_calls(engine, formula, relation, NUMERIC_TYPE)
+    reference = with_bins_references(formula, reference or {})
     factors = [
         Factor(text=text, expression=_factor_expression(formula, text), alias=f"dbfit_f{i}")
         for i, text in enumerate(formula.factor_texts())
@@ -606,13 +611,13 @@ def _layout_columns(
                 for text in term.texts:
                     i = index[text]
                     if design.factors[i].kind == "numeric":
-                        pieces.append(text)
+                        pieces.append(term.name_of(text))
                     elif i in levels:
-                        pieces.append(f"{text}={level_label(levels[i])}")
+                        pieces.append(f"{term.name_of(text)}={level_label(levels[i])}")
                 columns.append(
                     DesignColumn(
                         label=":".join(pieces),
-                        term=term.label,
+                        term=term.group,
                         numeric=numeric,
                         indicators=tuple(combination),
                         centre=centre,

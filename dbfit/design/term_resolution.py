@@ -26,6 +26,7 @@ from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import FitError, FormulaError
 from dbfit.expressions import builders as sb
 from dbfit.expressions import term_functions as tf
+from dbfit.expressions.basis_terms import recognise
 from dbfit.expressions.formula import formula_pieces, parse_expression, parse_factor
 
 NATIVE_DATES = ("duckdb", "postgres")
@@ -277,7 +278,11 @@ def _apply_missing(
     if not missing:
         return pieces, []
     plain = {
-        f for _, factors in pieces if not _is_intercept(factors) for f in factors if tf.read_call(f) is None
+        f
+        for _, factors in pieces
+        if not _is_intercept(factors)
+        for f in factors
+        if tf.read_call(f) is None and recognise(f, f"term '{f}'") is None  # spline and bins keep their rows
     }
     if isinstance(missing, Mapping):
         resolved = {

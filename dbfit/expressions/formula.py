@@ -16,6 +16,7 @@ from sqlglot.errors import SqlglotError
 from sqlglot.tokens import TokenType
 
 from dbfit.errors import FormulaError
+from dbfit.expressions.basis_terms import TermCall, recognise
 from dbfit.expressions.rules import check_expression
 from dbfit.expressions.term_functions import factor_tree, read_call
 
@@ -31,10 +32,27 @@ class Term:
 
     factors: tuple[exp.Expression, ...]
     texts: tuple[str, ...]
+    # a term function (dbfit.expressions.basis_terms): the call, and the column label of its factor
+    call: TermCall | None = None
+    names: tuple[str, ...] = ()
 
     @property
     def label(self) -> str:
-        return ":".join(self.texts)
+        return ":".join(self.names or self.texts)
+
+    @property
+    def group(self) -> str:
+        """The term its columns belong to: one spline term for all its basis columns, else the label."""
+        return self.call.name if self.call is not None else self.label
+
+    def name_of(self, text: str) -> str:
+        """How a factor of this term reads in a column label (a term function's own label, else its text)."""
+        return self.names[self.texts.index(text)] if self.names else text
+
+    @property
+    def unresolved(self) -> bool:
+        """A term function whose knots or edges the fit has yet to compute."""
+        return self.call is not None and not self.call.resolved
 
 
 @dataclass(frozen=True)
@@ -89,7 +107,9 @@ def parse_formula(text: str) -> Formula:
     target_text, rhs_tokens = _split_formula(text)
     target = parse_expression(target_text, "the target")
     intercept, terms = _parse_terms(text, rhs_tokens)
-    return Formula(text=text, target=target, target_text=target_text, terms=tuple(terms), intercept=intercept)
+    return Formula(
+        text=text, target=target, target_text=target_text, terms=_expanded(terms), intercept=intercept
+    )
 
 
 def _split_formula(text: str) -> tuple[str, list]:
@@ -215,15 +235,25 @@ def _parse_term(text: str, tokens: list, position: int) -> Term:
     texts = tuple(text[g[0].start : g[-1].end + 1].strip() for g in groups)
     if len(set(texts)) != len(texts):
         raise FormulaError(f"interaction '{':'.join(texts)}' repeats a factor")
-    factors = tuple(parse_factor(t, f"term {position} of the formula") for t in texts)
+    where = f"term {position} of the formula"
+    calls = [recognise(t, where) for t in texts]
+    if any(calls):
+        if len(texts) > 1:
+            raise FormulaError(f"term '{':'.join(texts)}': a spline or bins term cannot enter an interaction")
+        return Term(factors=(calls[0].argument,), texts=texts, call=calls[0])  # type: ignore[union-attr]
+    factors = tuple(parse_factor(t, where) for t in texts)
     return Term(factors=factors, texts=texts)
 
 
 def parse_factor(text: str, where: str) -> exp.Expression:
-    """One factor of a term: a term function of :mod:`dbfit.expressions.term_functions` (its plain SQL),
-    or any allowed scalar expression."""
+    """One factor of a term: a date or missing-value term function of
+    :mod:`dbfit.expressions.term_functions` (its plain SQL), the argument of a spline or bins term of
+    :mod:`dbfit.expressions.basis_terms`, or any allowed scalar expression."""
     call = read_call(text) if isinstance(text, str) else None
-    return factor_tree(call) if call is not None else parse_expression(text, "term", where)
+    if call is not None:
+        return factor_tree(call)
+    basis = recognise(text, where) if isinstance(text, str) else None
+    return basis.argument if basis is not None else parse_expression(text, "term", where)
 
 
 def formula_pieces(text: str) -> tuple[str, list[tuple[str, list[str]]]]:
@@ -235,6 +265,22 @@ def formula_pieces(text: str) -> tuple[str, list[tuple[str, list[str]]]]:
         groups = _factor_groups(piece)
         pieces.append((sign, [text[g[0].start : g[-1].end + 1].strip() for g in groups if g]))
     return target_text, pieces
+
+
+def _expanded(terms: list[Term]) -> tuple[Term, ...]:
+    """Term functions with known knots or edges become their columns: one term per spline basis column,
+    one categorical term per bins call."""
+    expanded: list[Term] = []
+    for term in terms:
+        call = term.call
+        if call is None or not call.resolved:
+            expanded.append(term)
+            continue
+        for name, node in call.columns():
+            expanded.append(
+                Term(factors=(node,), texts=(node.sql(dialect=DIALECT),), call=call, names=(name,))
+            )
+    return tuple(expanded)
 
 
 def _first_line(err: Exception) -> str:

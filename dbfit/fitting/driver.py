@@ -208,6 +208,7 @@ def _fit(
         by=by,
     )
     design.filled_rows, design.columns_at_fit = resolution.filled_rows, resolution.source_columns_seen
+    formula = design.formula.text  # term functions with their knots and edges listed: the model keeps them
     has_intercept = 1 if design.intercept else 0
     constant = [k + has_intercept for k, c in enumerate(design.columns) if c.constant]
     all_parameters = list(range(len(design.labels)))

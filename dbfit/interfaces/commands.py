@@ -82,6 +82,11 @@ def add_model_commands(command: Command) -> None:
     refit.add_argument(
         "--cold", action="store_true", help="start from the intercept-only fit, not the current estimates"
     )
+    refit.add_argument(
+        "--recompute-knots",
+        action="store_true",
+        help="compute the quantile knots and bin edges of spline() and bins() terms again on the new rows",
+    )
 
     base("models", "list stored models and versions (the current one marked)", model=False)
     gates = base("gates", "show the promotion gates of a model, or set some with the options")
@@ -210,7 +215,12 @@ def _run(args: argparse.Namespace) -> tuple[dict[str, Any], int]:
     try:
         if args.command == "refit":
             result = dbfit.refit(
-                con, args.name, source=args.source, skip_unchanged=args.skip_unchanged, cold=args.cold
+                con,
+                args.name,
+                source=args.source,
+                skip_unchanged=args.skip_unchanged,
+                cold=args.cold,
+                recompute_knots=args.recompute_knots,
             )
             return result, REFUSED if result["decision"] == "refused" else OK
         if args.command == "models":

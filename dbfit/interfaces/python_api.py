@@ -16,6 +16,7 @@ from dbfit.assessment import groups, report
 from dbfit.assessment import metrics as assessment
 from dbfit.assessment.effects import OVERALL
 from dbfit.assessment.effects import marginal_effects as effects_of
+from dbfit.assessment.screening import bin_screening as screening_of
 from dbfit.deployment import scoring
 from dbfit.deployment import views as deploy
 from dbfit.deployment.segment_views import segment_scoring_query
@@ -33,6 +34,7 @@ from dbfit.lifecycle.drift import psi_table
 from dbfit.model import reading
 from dbfit.model.fitted import Model
 from dbfit.model.segmented import SegmentedFit
+from dbfit.model.spline_curves import spline_curve as curve_of
 from dbfit.store import model_store as store
 
 
@@ -273,6 +275,40 @@ def term_tests(
     (column ``refit_scans`` and metadata ``dbfit_scans`` say what it cost)."""
     resolved = deploy.resolve_model(con, model, version)
     return tests_of(DuckDBEngine(con), resolved, likelihood_ratio=likelihood_ratio)
+
+
+def spline_curve(
+    con: duckdb.DuckDBPyConnection | None,
+    model: str | Model,
+    term: str,
+    *,
+    points: int = 50,
+    level: float = 0.95,
+    version: int | None = None,
+) -> pa.Table:
+    """The fitted curve of spline ``term`` (``spline(x)`` or ``x``): log-odds on a grid from the lower to the
+    upper boundary knot with a pointwise ``level`` band (delta method), see
+    :mod:`dbfit.model.spline_curves`. ``con`` may be None for a :class:`Model` in hand (no query runs)."""
+    resolved = model if isinstance(model, Model) else deploy.resolve_model(con, model, version)
+    return curve_of(resolved, term, points=points, level=level)
+
+
+def bin_screening(
+    con: duckdb.DuckDBPyConnection,
+    source: str,
+    target: str,
+    variable: str,
+    *,
+    bins: int = 10,
+    edges: list[float] | None = None,
+    missing_bin: bool = False,
+) -> pa.Table:
+    """Weight of evidence and information value of ``variable`` against the 0/1 ``target`` per bin (``bins``
+    quantile bins from one scan, or at ``edges``), see :mod:`dbfit.assessment.screening`; the total
+    information value is the sum of the ``iv`` column."""
+    return screening_of(
+        DuckDBEngine(con), source, target, variable, bins=bins, edges=edges, missing_bin=missing_bin
+    )
 
 
 @contextmanager

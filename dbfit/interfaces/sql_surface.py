@@ -19,6 +19,7 @@ from sqlglot import exp
 from dbfit.assessment import metrics as assessment
 from dbfit.assessment.effects import EFFECT_COLUMNS, marginal_effects
 from dbfit.assessment.groups import GROUP_COLUMNS, MIN_GROUP_ROWS, assess_groups
+from dbfit.assessment.screening import bin_screening
 from dbfit.deployment.scoring import check_reasons
 from dbfit.deployment.segment_views import publish_segments
 from dbfit.deployment.views import build_scoring, check_score_columns, publish
@@ -91,6 +92,15 @@ CALIBRATION_COLUMNS = (
     "lowest_score",
     "highest_score",
 )
+SCREENING_FIELDS = {
+    "bin": T("VARCHAR"),
+    "position": T("INTEGER"),
+    "rows": T("BIGINT"),
+    "events": T("DOUBLE"),
+    "non_events": T("DOUBLE"),
+    "woe": T("DOUBLE"),
+    "iv": T("DOUBLE"),
+}
 DRIFT_FIELDS = {
     "variable": T("VARCHAR"),
     "kind": T("VARCHAR"),
@@ -198,6 +208,12 @@ MACROS = {
     ],
     "gains": [("model, source", _ROWS.format(call="dbfit_sql_gains(model, source, '0.5', 'gains')"))],
     "drift": [("model, source", _ROWS.format(call="dbfit_sql_drift(model, source)"))],
+    "bin_screening": [
+        (
+            "source, target, variable, bins := 10, edges := NULL, missing_bin := false",
+            _ROWS.format(call="dbfit_sql_bin_screening(source, target, variable, bins, edges, missing_bin)"),
+        )
+    ],
     "marginal_effects": [
         (
             "model, source := NULL, \"at\" := 'overall', at_values := NULL, variables := NULL",
@@ -420,6 +436,19 @@ class SqlFunctions:
         with self.second() as reader:
             return psi_table(reader, store.load_model(reader, model, None), source).to_pylist()
 
+    def screening_rows(self, source, target, variable, bins, edges, missing_bin):
+        with self.second() as reader:
+            table = bin_screening(
+                DuckDBEngine(reader),
+                source,
+                target,
+                variable,
+                bins=10 if bins is None else int(bins),
+                edges=None if edges is None else [float(e) for e in edges],
+                missing_bin=bool(missing_bin),
+            )
+            return table.to_pylist()
+
     def effect_rows(self, model, source, at, at_values, variables):
         with self.second() as reader:
             fitted = store.load_model(reader, model, None)
@@ -495,6 +524,12 @@ class SqlFunctions:
                 _rows_of(GROUP_FIELDS),
             ),
             ("dbfit_sql_drift", self.drift_rows, [V, V], _rows_of(DRIFT_FIELDS)),
+            (
+                "dbfit_sql_bin_screening",
+                self.screening_rows,
+                [V, V, V, I, duckdb.list_type(D), B],
+                _rows_of(SCREENING_FIELDS),
+            ),
             (
                 "dbfit_sql_effects",
                 self.effect_rows,

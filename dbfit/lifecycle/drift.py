@@ -23,6 +23,7 @@ from dbfit.deployment.scoring import scoring_query
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import DbfitError, StoreError
 from dbfit.expressions import builders as sb
+from dbfit.expressions.basis_terms import SplineCall
 from dbfit.expressions.source import source_relation
 from dbfit.model.fitted import Model
 
@@ -53,8 +54,15 @@ def _variables(model: Model) -> list[tuple[str, str, exp.Expression]]:
     """(name, kind, expression over the scored rows) of the score and of each predictor."""
     score = exp.column("linear_predictor", table=SCORED, quoted=True)
     found = [(SCORE, "score", score)]
+    # a spline's basis columns drift as its one variable; a bins term as its own bins (its levels)
+    calls = {term.texts[0]: term.call for term in model.design.formula.terms if term.call is not None}
     for factor in model.design.factors:
-        found.append((factor.text, factor.kind, factor.expression.copy()))
+        call = calls.get(factor.text)
+        if isinstance(call, SplineCall):
+            if call.name not in [name for name, _, _ in found]:
+                found.append((call.name, "numeric", sb.as_double(call.argument.copy())))
+            continue
+        found.append((call.name if call is not None else factor.text, factor.kind, factor.expression.copy()))
     return found
 
 

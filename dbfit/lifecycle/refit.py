@@ -15,6 +15,7 @@ from typing import Any
 import duckdb
 from sqlglot import exp
 
+from dbfit.design.term_scan import with_quantiles_recomputed
 from dbfit.engines import engine_for
 from dbfit.errors import GateRefusedError, StoreError
 from dbfit.expressions.names import model_name
@@ -41,9 +42,12 @@ def refit(
     skip_unchanged: bool = False,
     cold: bool = False,
     progress: bool = False,
+    recompute_knots: bool = False,
 ) -> dict[str, Any]:
     """Refit ``name`` and decide on promotion; returns the decision. ``source`` overrides the stored source;
-    ``cold=True`` starts from the intercept-only fit instead of the current estimates."""
+    ``cold=True`` starts from the intercept-only fit instead of the current estimates. The knots and bin
+    edges of spline and bins terms are those of the current version unless ``recompute_knots=True``, which
+    computes those taken at quantiles again on the new rows (and starts cold, as the columns change)."""
     name = model_name(name)
     current = store.load_model(con, name)
     source = source if source is not None else origin_source(current.options, current.source)
@@ -77,13 +81,13 @@ def refit(
     holdout = Holdout(split["key"], split["share"]) if split else None
     start = (
         None
-        if cold
+        if cold or recompute_knots
         else {label: float(v) for label, v in zip(current.labels, current.estimates) if math.isfinite(v)}
     )
     chosen = FitOptions.of(start=start, **options)
     candidate = training.fit_and_store(
         con,
-        current.formula,
+        with_quantiles_recomputed(current.formula) if recompute_knots else current.formula,
         source,
         chosen,
         split=holdout,

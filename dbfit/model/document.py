@@ -1,7 +1,9 @@
 """The model document: a fitted model as plain JSON, to store it or move it between databases.
 
 Format ``dbfit-model`` version 1 (our own; documented in README.md). Top-level keys:
-``format``, ``format_version``, ``formula``, ``source`` (the whole source, also for a holdout fit),
+``format``, ``format_version``, ``formula`` (as fitted: a spline or bins term lists its knots or edges there,
+``spline(x, 4, knots => [...])``, and each of its columns is a factor whose expression is the plain-SQL basis
+or bin CASE, see :mod:`dbfit.expressions.basis_terms`), ``source`` (the whole source, also for a holdout fit),
 ``options``, ``intercept``, ``coding`` (``marginal``: indicators follow the marginality rule of
 :func:`dbfit.design.layout.marginal_codings`; absent in older documents, whose categoricals were all coded against
 their reference level), ``offset``, ``factors`` (expression text, kind, SQL type, levels, reference level;

@@ -15,6 +15,7 @@ from dbfit.design.layout import Design
 from dbfit.errors import DbfitError, UsageError
 from dbfit.expressions.splits import Holdout, part_source
 from dbfit.model import document
+from dbfit.model.spline_curves import spline_curve_lines, spline_terms
 
 ROW_CHOICES = ("held_out", "training", "all")
 
@@ -155,7 +156,14 @@ class Model:
         lines.append(
             f"  {'term':<{width}}  {'log-odds':>11} {'std.err':>10} {'z':>8} {'p':>9}   {'odds x':>9}  [95% interval]"
         )
+        splines = spline_terms(self)
+        basis = {f"{name}[{j + 1}]": name for name, call in splines.items() for j in range(call.df)}
         for row in self.coefficients.to_pylist():
+            if row["term"] in basis:
+                name = basis[row["term"]]
+                if row["term"] == f"{name}[1]":
+                    lines.append(f"  {name:<{width}}  {'a curve: see the spline curves below':>40}")
+                continue
             if row["estimate"] is None:
                 lines.append(f"  {row['term']:<{width}}  {'aliased: no estimate':>40}")
                 continue
@@ -171,6 +179,8 @@ class Model:
                 f"  {row['term']:<{width}}  {row['estimate']:>11.5g} {row['std_error']:>10.4g} {row['wald_z']:>8.3g}"
                 f" {_p_text(row['p_value']):>9}   {row['odds_ratio']:>9.4g}  [{row['odds_ratio_low']:.4g}, {row['odds_ratio_high']:.4g}]"
             )
+        for name in splines:
+            lines += ["", *spline_curve_lines(self, name)]
         if self.warnings:
             lines.append("")
             lines.append("  warnings")

@@ -38,13 +38,13 @@ def term_columns(model: Model) -> list[TermColumns]:
     offset = 1 if model.design.intercept else 0
     estimated = np.isfinite(np.asarray(model.estimates, dtype=float))
     terms: list[TermColumns] = []
-    for term in model.design.formula.terms:
+    for label in dict.fromkeys(term.group for term in model.design.formula.terms):  # a spline's columns: one
         parameters = tuple(
             j + offset
             for j, column in enumerate(model.design.columns)
-            if column.term == term.label and estimated[j + offset]
+            if column.term == label and estimated[j + offset]
         )
-        terms.append(TermColumns(term.label, parameters))
+        terms.append(TermColumns(label, parameters))
     return terms
 
 
