@@ -291,7 +291,7 @@ def _coefficient_row(row: dict) -> str:
         number(row["estimate"]),
         number(row["std_error"]),
         number(row["wald_z"], 3),
-        p_value(row["p_value"]),
+        escape(p_value(row["p_value"])),
         number(row["odds_ratio"]),
         interval,
     ]
@@ -332,7 +332,7 @@ COUNT_METRICS = ("rows", "positives", "hosmer_lemeshow_df")
 def _metric_cell(metric: str, value: float | None) -> str:
     if value is not None and metric in COUNT_METRICS:
         return count(value)
-    return p_value(value) if metric.endswith("_p") else number(value)
+    return escape(p_value(value)) if metric.endswith("_p") else number(value)
 
 
 def _metric_notes(metrics: pa.Table) -> dict[str, str | None]:

@@ -60,7 +60,8 @@ section h3 { font-size:14px; margin:16px 0 6px; }
 table.identity { width:auto; }
 table.identity th { text-align:left; font-size:13px; border-bottom:1px solid #ece9e1; padding-right:28px; }
 table.identity td { text-align:left; }
-table.data th:last-child, table.data td.values { text-align:left; }
+table.data th:nth-child(-n+3), table.data td:nth-child(-n+3), table.data th:last-child,
+  table.data td.values { text-align:left; }
 table.confusion { width:auto; min-width:60%; }
 table.confusion tbody th { text-align:left; border-bottom:1px solid #ece9e1; }
 table.confusion td span { display:block; font-size:12px; color:var(--muted); }
