@@ -452,6 +452,78 @@ def _assessment_section(assessment: dict[str, pa.Table]) -> str:
     )
 
 
+def _note_of(table: pa.Table) -> str | None:
+    made = table.schema.metadata or {}
+    return made[b"dbfit_note"].decode() if b"dbfit_note" in made else None
+
+
+def _term_tests_section(tests: pa.Table) -> str:
+    """The joint Wald test of each formula term (all its columns at once), and the likelihood-ratio test from
+    a refit without the term when it was asked for."""
+    note = _note_of(tests)
+    if note is not None:
+        return f'<section class="term-tests"><h2>Tests per term</h2><p class="hint">Not computed: {escape(note)}</p></section>'
+    ratio = "lr_p_value" in tests.column_names
+    head = "<th>term</th><th>df</th><th>Wald chi-square</th><th>p</th>"
+    if ratio:
+        head += "<th>deviance difference</th><th>p (likelihood ratio)</th><th>note</th>"
+    body = []
+    for row in tests.to_pylist():
+        cells = [count(row["df"]), number(row["wald_chi_square"]), escape(p_value(row["wald_p_value"]))]
+        if ratio:
+            cells += [number(row["deviance_difference"]), escape(p_value(row["lr_p_value"]))]
+        extra = f'<td class="note">{escape(row.get("note") or "")}</td>' if ratio else ""
+        body.append(
+            f"<tr><td><code>{escape(row['term'])}</code></td>{''.join(f'<td>{c}</td>' for c in cells)}{extra}</tr>"
+        )
+    made = tests.schema.metadata or {}
+    scans = made.get(b"dbfit_scans", b"0").decode()
+    how = (
+        f"the likelihood-ratio tests refit the model without each term, warm-started ({escape(scans)} scans)"
+        if ratio
+        else "no likelihood-ratio test was asked for (it refits the model once per term)"
+    )
+    return (
+        '<section class="term-tests"><h2>Tests per term</h2><table class="term-tests"><thead><tr>'
+        f'{head}</tr></thead><tbody>{"".join(body)}</tbody></table><p class="hint">Each row tests all '
+        "columns of one formula term at once (a categorical's levels, an interaction's products): the Wald "
+        f"test from the estimates' covariance, no scan; {how}.</p></section>"
+    )
+
+
+def _effects_section(effects: pa.Table) -> str:
+    """Average marginal effects on the probability with their delta-method standard errors."""
+    note = _note_of(effects)
+    if note is not None:
+        return f'<section class="effects"><h2>Effects on the probability</h2><p class="hint">Not computed: {escape(note)}</p></section>'
+    body = []
+    for row in effects.to_pylist():
+        what = (
+            f"<code>{escape(row['term'])}</code> = <code>{escape(row['level'])}</code> against "
+            f"<code>{escape(row['reference'])}</code>"
+            if row["level"] is not None
+            else f"<code>{escape(row['term'])}</code>, per unit"
+        )
+        interval = (
+            f"{number(row['ci_low'])} to {number(row['ci_high'])}"
+            if row["std_error"] is not None
+            else "\u2013"
+        )
+        cells = [number(row["effect"]), number(row["std_error"]), escape(p_value(row["p_value"])), interval]
+        body.append(f"<tr><td>{what}</td>{''.join(f'<td>{c}</td>' for c in cells)}</tr>")
+    made = {k.decode(): v.decode() for k, v in (effects.schema.metadata or {}).items()}
+    where = escape(made.get("dbfit_at", "average over the rows"))
+    rows = escape(made.get("dbfit_rows", "the rows"))
+    return (
+        '<section class="effects"><h2>Effects on the probability</h2><table class="effects"><thead><tr>'
+        "<th>effect of</th><th>change in probability</th><th>std. error</th><th>p</th><th>95% interval</th>"
+        f'</tr></thead><tbody>{"".join(body)}</tbody></table><p class="hint">Average marginal effects '
+        f"({where}; over {rows}): for a numeric term the mean over rows of the derivative of the probability "
+        "per unit, for a level of a categorical the mean change in probability from the reference level, "
+        "every other variable as observed. Standard errors by the delta method.</p></section>"
+    )
+
+
 def _drift_section(drift: pa.Table) -> str:
     """Population stability per variable between the training snapshot and the new source."""
     made = {k.decode(): v.decode() for k, v in (drift.schema.metadata or {}).items()}
@@ -545,7 +617,7 @@ def _groups_section(groups: pa.Table) -> str:
 def render_report(model: Model, assessment: dict[str, pa.Table] | None = None) -> str:
     """The report page as one HTML string; ``assessment`` as made by :func:`report_tables` (its optional
     tables, when present, add their sections: ``confusion``, ``calibration_line``, ``split_metrics``,
-    ``data_summary`` with ``data_levels``, ``groups``, ``drift``)."""
+    ``data_summary`` with ``data_levels``, ``term_tests``, ``effects``, ``groups``, ``drift``)."""
     from dbfit import __version__
 
     parts = [
@@ -557,6 +629,10 @@ def render_report(model: Model, assessment: dict[str, pa.Table] | None = None) -
     if assessment is not None and "data_summary" in assessment:
         parts.append(_data_section(assessment["data_summary"], assessment["data_levels"]))
     parts += [_statistics_section(model), _coefficients_section(model.coefficients)]
+    if assessment is not None and "term_tests" in assessment:
+        parts.append(_term_tests_section(assessment["term_tests"]))
+    if assessment is not None and "effects" in assessment:
+        parts.append(_effects_section(assessment["effects"]))
     if assessment is not None:
         parts.append(_assessment_section(assessment))
         if "groups" in assessment:

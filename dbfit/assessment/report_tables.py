@@ -191,9 +191,10 @@ def report_tables(
         {b"dbfit_threshold": repr(float(threshold)).encode()}
     )
     tables["calibration_line"] = calibration_line(engine, model, source)
-    if not model.source_is_data:
-        summary = data_summary(engine, model)
-        tables["data_summary"], tables["data_levels"] = summary["summary"], summary["levels"]
+    if model.source_is_data:  # a model read from a document: its training rows are not a query to run
+        return tables
+    summary = data_summary(engine, model)
+    tables["data_summary"], tables["data_levels"] = summary["summary"], summary["levels"]
     if model.split is not None:
         tables["split_metrics"] = split_metrics(engine, model, threshold, {rows_note: tables["metrics"]})
     return tables
