@@ -27,6 +27,7 @@ from dbfit.interfaces.python_api import (
     fit,
     from_json,
     load,
+    marginal_effects,
     models,
     population_stability,
     promote,
@@ -34,6 +35,7 @@ from dbfit.interfaces.python_api import (
     save,
     score,
     scoring_sql,
+    term_tests,
     write_report,
 )
 from dbfit.lifecycle.gates import Gates, gates_of, set_gates
@@ -72,6 +74,7 @@ __all__ = [
     "install",
     "likelihood_ratio_test",
     "load",
+    "marginal_effects",
     "models",
     "population_stability",
     "prior_corrected",
@@ -84,6 +87,7 @@ __all__ = [
     "score",
     "scoring_sql",
     "set_gates",
+    "term_tests",
     "with_robust_errors",
     "write_report",
 ]

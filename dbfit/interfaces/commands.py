@@ -1,5 +1,5 @@
 """The model subcommands of the ``dbfit`` command line: fit, refit, models, gates, promote, decisions, publish,
-assess, drift and report. Each prints plain lines, or with ``--json`` exactly one JSON object on stdout."""
+assess, drift, effects, term-tests and report. Each prints plain lines, or with ``--json`` exactly one JSON object on stdout."""
 
 from __future__ import annotations
 
@@ -135,6 +135,26 @@ def add_model_commands(command: Command) -> None:
     drift.add_argument("--source", required=True, help="the new rows")
     drift.add_argument("--version", type=int, help="stored version (default: the current one)")
 
+    effects = base("effects", "effects of each factor on the probability, with delta-method standard errors")
+    effects.add_argument("--source", help="rows to average over (default: the rows the model was fitted on)")
+    effects.add_argument(
+        "--at", choices=["overall", "means"], default="overall", help="average over rows, or at their means"
+    )
+    effects.add_argument(
+        "--at-value",
+        action="append",
+        metavar="FACTOR=VALUE",
+        help="a point's value (repeatable; others at means)",
+    )
+    effects.add_argument("--variable", action="append", help="take effects of this factor only (repeatable)")
+    effects.add_argument("--version", type=int, help="stored version (default: the current one)")
+
+    tests = base("term-tests", "joint Wald test per formula term (and, on request, likelihood-ratio tests)")
+    tests.add_argument(
+        "--likelihood-ratio", action="store_true", help="also refit without each term (costs scans)"
+    )
+    tests.add_argument("--version", type=int, help="stored version (default: the current one)")
+
     report = base("report", "write the HTML report of a model")
     report.add_argument("--output", required=True, help="HTML file to write")
     report.add_argument("--source", help="rows to assess in the report (default: as for assess)")
@@ -213,6 +233,14 @@ def _run(args: argparse.Namespace) -> tuple[dict[str, Any], int]:
                 "variables": table.to_pylist(),
                 "bands": "common practice: PSI below 0.1 stable, 0.1-0.25 some shift, above 0.25 large shift",
             }, OK
+        if args.command == "effects":
+            return _effects(con, args), OK
+        if args.command == "term-tests":
+            table = dbfit.term_tests(
+                con, args.name, likelihood_ratio=args.likelihood_ratio, version=args.version
+            )
+            scans = int(table.schema.metadata[b"dbfit_scans"])
+            return {"model": args.name, "scans": scans, "terms": table.to_pylist()}, OK
         if args.command == "report":
             return _report(con, args), OK
         raise UsageError(f"unknown command {args.command}")
@@ -348,6 +376,28 @@ def _gates(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[str
         settings["require_converged"] = args.require_converged == "yes"
     gates = dbfit.set_gates(con, args.name, **settings) if settings else dbfit.gates_of(con, args.name)
     return {"model": args.name, "gates": dataclasses.asdict(gates)}
+
+
+def _effects(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[str, Any]:
+    import dbfit
+
+    at: Any = args.at
+    if args.at_value:
+        pairs = [item.split("=", 1) for item in args.at_value]
+        if any(len(p) != 2 for p in pairs):
+            raise UsageError("--at-value takes FACTOR=VALUE")
+        at = dict(pairs)
+    table = dbfit.marginal_effects(
+        con, args.name, args.source, at=at, variables=args.variable, version=args.version
+    )
+    metadata = {k.decode(): v.decode() for k, v in (table.schema.metadata or {}).items()}
+    return {
+        "model": args.name,
+        "at": metadata["dbfit_at"],
+        "rows": metadata["dbfit_rows"],
+        "scans": int(metadata["dbfit_scans"]),
+        "effects": table.to_pylist(),
+    }
 
 
 def _report(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[str, Any]:

@@ -11,6 +11,8 @@ import pyarrow as pa
 
 from dbfit.assessment import groups, report, report_tables
 from dbfit.assessment import metrics as assessment
+from dbfit.assessment.effects import OVERALL
+from dbfit.assessment.effects import marginal_effects as effects_of
 from dbfit.deployment import scoring
 from dbfit.deployment import views as deploy
 from dbfit.deployment.segment_views import segment_scoring_query
@@ -19,6 +21,7 @@ from dbfit.errors import DbfitError, FitError, StoreError
 from dbfit.expressions.names import model_name
 from dbfit.expressions.splits import Holdout, KFold, part_source
 from dbfit.fitting import driver as fitting
+from dbfit.fitting.likelihood_ratio_terms import term_tests as tests_of
 from dbfit.fitting.options import FitOptions
 from dbfit.interfaces.old_spellings import version_by_keyword, warn_renamed
 from dbfit.lifecycle import refit as refitting
@@ -252,6 +255,40 @@ def score(
     except duckdb.Error as err:
         raise translate_error(err) from None
     return table.replace_schema_metadata({**(table.schema.metadata or {}), b"dbfit_rows": note.encode()})
+
+
+def marginal_effects(
+    con: duckdb.DuckDBPyConnection,
+    model: str | Model,
+    source: str | None = None,
+    *,
+    at: str | dict[str, Any] = OVERALL,
+    variables: list[str] | None = None,
+    version: int | None = None,
+) -> pa.Table:
+    """Effects of the model's factors on the probability with delta-method standard errors (one row per
+    numeric factor and per non-reference level of each categorical), see :mod:`dbfit.assessment.effects`.
+
+    ``at``: ``"overall"`` (average marginal effects over the fitted rows, or the rows of ``source``; one
+    scan), ``"means"`` (at their means; one scan) or ``{factor: value}`` (that point, other factors at their
+    means). ``variables``: the factors to take effects of (default: all).
+    """
+    resolved = deploy.resolve_model(con, model, version)
+    return effects_of(DuckDBEngine(con), resolved, source, at=at, variables=variables)
+
+
+def term_tests(
+    con: duckdb.DuckDBPyConnection,
+    model: str | Model,
+    *,
+    likelihood_ratio: bool = False,
+    version: int | None = None,
+) -> pa.Table:
+    """One row per formula term: df, joint Wald chi-square and p-value (from the covariance, no scan); with
+    ``likelihood_ratio=True`` also the likelihood-ratio test from a warm-started refit without each term
+    (column ``refit_scans`` and metadata ``dbfit_scans`` say what it cost)."""
+    resolved = deploy.resolve_model(con, model, version)
+    return tests_of(DuckDBEngine(con), resolved, likelihood_ratio=likelihood_ratio)
 
 
 def models(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:

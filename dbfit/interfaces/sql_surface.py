@@ -16,6 +16,7 @@ import duckdb
 from sqlglot import exp
 
 from dbfit.assessment import metrics as assessment
+from dbfit.assessment.effects import EFFECT_COLUMNS, marginal_effects
 from dbfit.assessment.groups import GROUP_COLUMNS, MIN_GROUP_ROWS, assess_groups
 from dbfit.deployment.segment_views import publish_segments
 from dbfit.deployment.views import build_scoring, check_score_columns, publish
@@ -25,6 +26,7 @@ from dbfit.expressions.formula import holds_top_level_tilde
 from dbfit.expressions.names import model_name
 from dbfit.expressions.source import source_relation
 from dbfit.fitting import driver as fitting
+from dbfit.fitting.likelihood_ratio_terms import LR_COLUMNS, term_tests
 from dbfit.fitting.options import FitOptions
 from dbfit.lifecycle import saving
 from dbfit.lifecycle.drift import psi_table
@@ -95,6 +97,16 @@ DRIFT_FIELDS = {
     "new_rows": T("BIGINT"),
     "psi": T("DOUBLE"),
     "reading": T("VARCHAR"),
+}
+EFFECT_FIELDS = {c: T("VARCHAR") for c in EFFECT_COLUMNS[:4]} | {c: T("DOUBLE") for c in EFFECT_COLUMNS[4:]}
+TERM_TEST_FIELDS = {
+    "term": T("VARCHAR"),
+    "df": T("BIGINT"),
+    "wald_chi_square": T("DOUBLE"),
+    "wald_p_value": T("DOUBLE"),
+    **{c: T("DOUBLE") for c in list(LR_COLUMNS)[:2]},
+    "refit_scans": T("BIGINT"),
+    "note": T("VARCHAR"),
 }
 GAINS_COLUMNS = ("share_of_rows", "share_of_positives", "lift", "cumulative_lift")
 GROUP_FIELDS = {
@@ -178,6 +190,18 @@ MACROS = {
     ],
     "gains": [("model, source", _ROWS.format(call="dbfit_sql_gains(model, source, '0.5', 'gains')"))],
     "drift": [("model, source", _ROWS.format(call="dbfit_sql_drift(model, source)"))],
+    "marginal_effects": [
+        (
+            "model, source := NULL, \"at\" := 'overall', at_values := NULL, variables := NULL",
+            _ROWS.format(call='dbfit_sql_effects(model, source, "at", at_values, variables)'),
+        )
+    ],
+    "term_tests": [
+        (
+            "model, likelihood_ratio := false",
+            _ROWS.format(call="dbfit_sql_term_tests(model, likelihood_ratio)"),
+        )
+    ],
     "drop_model": [
         ("model", _ROWS.format(call="dbfit_sql_drop(model, NULL)")),
         ("model, version", _ROWS.format(call="dbfit_sql_drop(model, version)")),
@@ -368,6 +392,21 @@ class SqlFunctions:
         with self.second() as reader:
             return psi_table(reader, store.load_model(reader, model, None), source).to_pylist()
 
+    def effect_rows(self, model, source, at, at_values, variables):
+        with self.second() as reader:
+            fitted = store.load_model(reader, model, None)
+            chosen = dict(at_values) if at_values is not None else (at or "overall")
+            table = marginal_effects(DuckDBEngine(reader), fitted, source, at=chosen, variables=variables)
+            return table.to_pylist()
+
+    def term_test_rows(self, model, likelihood_ratio):
+        with self.second() as reader:
+            fitted = store.load_model(reader, model, None)
+            rows = term_tests(
+                DuckDBEngine(reader), fitted, likelihood_ratio=bool(likelihood_ratio)
+            ).to_pylist()
+        return [{name: row.get(name) for name in TERM_TEST_FIELDS} for row in rows]
+
     def signatures(self) -> list[tuple[str, Callable[..., Any], list[Any], Any]]:
         """Each SQL function: its name, the method, its parameter types and its return type."""
         V, I, D, B = T("VARCHAR"), T("INTEGER"), T("DOUBLE"), T("BOOLEAN")
@@ -428,6 +467,13 @@ class SqlFunctions:
                 _rows_of(GROUP_FIELDS),
             ),
             ("dbfit_sql_drift", self.drift_rows, [V, V], _rows_of(DRIFT_FIELDS)),
+            (
+                "dbfit_sql_effects",
+                self.effect_rows,
+                [V, V, V, duckdb.map_type(V, V), duckdb.list_type(V)],
+                _rows_of(EFFECT_FIELDS),
+            ),
+            ("dbfit_sql_term_tests", self.term_test_rows, [V, B], _rows_of(TERM_TEST_FIELDS)),
         ]
         return functions
 
