@@ -22,7 +22,7 @@ from sqlglot import exp
 import dbfit
 from dbfit.assessment import metrics as assess
 from dbfit.assessment.report import render_report, write_report
-from dbfit.assessment.report_format import number, share
+from dbfit.assessment.report_format import number, p_value, share
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.errors import DbfitError
 
@@ -603,3 +603,45 @@ def test_the_full_report_loads_in_chromium_with_every_chart_drawn(con, tmp_path)
     assert len(charts["group-rates"]["points"]) == 3 * tables["groups"].num_rows
     png = screenshot(path, tmp_path / "full.png", width=1100, height=4200)
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_tests_per_term_and_effects_on_the_probability_match_statsmodels(spector):
+    # statsmodels' Logit on the spector grades: a one-column term's Wald chi-square is its z squared, and
+    # get_margeff(at="overall") gives the average marginal effects with delta-method standard errors
+    model = dbfit.fit(spector, FORMULA, "spector", name="grades", progress=False)
+    tables = dbfit.report_assessment(spector, "grades", likelihood_ratio=True)
+    frame = sm.datasets.spector.load_pandas().data
+    reference = sm.Logit(frame["GRADE"], sm.add_constant(frame[["GPA", "TUCE", "PSI"]])).fit(disp=0)
+    margins = reference.get_margeff(at="overall")
+    page = render_report(model, tables)
+    tests = page_text(section(page, "term-tests"))
+    effects = page_text(section(page, "effects"))
+    for k, term in enumerate(("GPA", "TUCE", "PSI")):
+        chi_square = (reference.params[term] / reference.bse[term]) ** 2
+        row = tables["term_tests"].to_pylist()[k]
+        assert row["term"] == term and row["wald_chi_square"] == pytest.approx(chi_square, rel=1e-6)
+        reduced = sm.Logit(
+            frame["GRADE"], sm.add_constant(frame[[c for c in ("GPA", "TUCE", "PSI") if c != term]])
+        ).fit(disp=0)
+        assert row["deviance_difference"] == pytest.approx(2 * (reference.llf - reduced.llf), rel=1e-6)
+        assert f"{term} 1 {number(row['wald_chi_square'])} {p_value(row['wald_p_value'])}" in tests
+        effect = tables["effects"].to_pylist()[k]
+        assert effect["effect"] == pytest.approx(margins.margeff[k], abs=1e-6)
+        assert effect["std_error"] == pytest.approx(margins.margeff_se[k], abs=1e-6)
+        assert f"{term} per unit {number(effect['effect'])} {number(effect['std_error'])}" in effects
+    assert "refit the model without each term" in tests
+    plain = section(render_report(model, dbfit.report_assessment(spector, "grades")), "term-tests")
+    assert "deviance difference" not in plain and "no likelihood-ratio test was asked for" in page_text(plain)
+
+
+def test_sections_say_why_a_model_has_no_effects_or_term_tests(spector):
+    shared = dbfit.fit(spector, "GRADE ~ GPA + power(GPA, 2) + PSI", "spector", progress=False)
+    tables = dbfit.report_assessment(spector, shared)
+    assert tables["effects"].num_rows == 0 and tables["term_tests"].num_rows == 3
+    text = page_text(section(render_report(shared, tables), "effects"))
+    assert text.startswith("Effects on the probability Not computed:") and "GPA" in text
+    intercept_only = dbfit.fit(spector, "GRADE ~ 1", "spector", progress=False)
+    text = page_text(
+        section(render_report(intercept_only, dbfit.report_assessment(spector, intercept_only)), "term-tests")
+    )
+    assert "Not computed: the model has no formula terms to test (intercept only)" in text

@@ -502,7 +502,7 @@ def _effects_section(effects: pa.Table) -> str:
             f"<code>{escape(row['term'])}</code> = <code>{escape(row['level'])}</code> against "
             f"<code>{escape(row['reference'])}</code>"
             if row["level"] is not None
-            else f"<code>{escape(row['term'])}</code>, per unit"
+            else f"<code>{escape(row['term'])}</code> per unit"
         )
         interval = (
             f"{number(row['ci_low'])} to {number(row['ci_high'])}"

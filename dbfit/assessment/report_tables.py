@@ -6,6 +6,9 @@
 * ``calibration_line``: the logistic fit of the outcome on the linear predictor over the assessed rows (slope
   and intercept; Cox 1958, Biometrika 45(3/4), 562-565), by the Newton passes of the assessment by group.
 * ``split_metrics``: the metrics of the training rows and of the held-out rows side by side.
+* ``term_tests`` and ``effects``: the tests per term (:mod:`dbfit.fitting.likelihood_ratio_terms`) and the
+  average marginal effects over the fitted rows (:mod:`dbfit.assessment.effects`); a table without rows whose
+  schema metadata ``dbfit_note`` says why, when the model has none.
 
 ``report_tables`` gathers these with :func:`dbfit.assessment.metrics.assessment_tables`; the layers above add
 what they own (drift against the training snapshot) before the page is rendered.
@@ -13,6 +16,7 @@ what they own (drift against the training snapshot) before the page is rendered.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from typing import TYPE_CHECKING, Any
 
 import pyarrow as pa
@@ -20,8 +24,11 @@ from sqlglot import exp
 
 from dbfit.assessment import groups as by_group
 from dbfit.assessment import metrics as assessment
+from dbfit.assessment.effects import marginal_effects
 from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.errors import DbfitError
 from dbfit.expressions.source import source_relation
+from dbfit.fitting.likelihood_ratio_terms import term_tests
 
 if TYPE_CHECKING:
     from dbfit.model.fitted import Model
@@ -181,20 +188,34 @@ def report_tables(
     source: str,
     rows_note: str,
     threshold: float = 0.5,
+    likelihood_ratio: bool = False,
 ) -> dict[str, pa.Table]:
     """Every table the report shows about ``model`` on the rows of ``source`` (``rows_note`` says which),
     except those of higher layers: the assessment tables, the calibration line, the data summary of the
-    training rows, and for a holdout model the training and held-out metrics side by side."""
+    training rows, the tests per term (with ``likelihood_ratio`` also by refits) and the average marginal
+    effects, and for a holdout model the training and held-out metrics side by side."""
     scored = assessment.scored_relation(model, source)
     tables = assessment.assessment_tables(engine, scored, threshold, rows_note=rows_note)
     tables["confusion"] = tables["confusion"].replace_schema_metadata(
         {b"dbfit_threshold": repr(float(threshold)).encode()}
     )
     tables["calibration_line"] = calibration_line(engine, model, source)
+    tables["term_tests"] = _or_note(lambda: term_tests(engine, model, likelihood_ratio=likelihood_ratio))
     if model.source_is_data:  # a model read from a document: its training rows are not a query to run
         return tables
+    tables["effects"] = _or_note(lambda: marginal_effects(engine, model))
     summary = data_summary(engine, model)
     tables["data_summary"], tables["data_levels"] = summary["summary"], summary["levels"]
     if model.split is not None:
         tables["split_metrics"] = split_metrics(engine, model, threshold, {rows_note: tables["metrics"]})
     return tables
+
+
+def _or_note(make: Callable[[], pa.Table]) -> pa.Table:
+    """The table ``make`` returns, or when dbfit refuses it an empty table whose metadata says why."""
+    try:
+        return make()
+    except DbfitError as err:
+        return pa.table({"term": pa.array([], type=pa.string())}).replace_schema_metadata(
+            {b"dbfit_note": str(err).encode()}
+        )

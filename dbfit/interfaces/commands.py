@@ -165,6 +165,11 @@ def add_model_commands(command: Command) -> None:
     report.add_argument(
         "--threshold", type=float, default=0.5, help="probability cut-off (default %(default)s)"
     )
+    report.add_argument(
+        "--likelihood-ratio",
+        action="store_true",
+        help="also the likelihood-ratio test per term (one warm-started refit per term)",
+    )
 
 
 def run_model_command(args: argparse.Namespace) -> int:
@@ -418,6 +423,7 @@ def _report(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[st
             threshold=args.threshold,
             by=args.by,
             reference=args.reference,
+            likelihood_ratio=args.likelihood_ratio,
         )
     path = write_report(model, args.output, assessment=tables)
     rows = (

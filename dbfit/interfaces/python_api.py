@@ -152,13 +152,17 @@ def report_assessment(
     version: int | None = None,
     by: str | None = None,
     reference: Any = None,
+    likelihood_ratio: bool = False,
 ) -> dict[str, pa.Table]:
     """Every table of the report (see :func:`dbfit.assessment.report_tables.report_tables`; rows as
     ``assess``), with ``by`` the assessment by group, and with a ``source`` of new rows the drift of a stored
-    model against its training snapshot (an empty ``drift`` table says why when there is none)."""
+    model against its training snapshot (an empty ``drift`` table says why when there is none);
+    ``likelihood_ratio`` adds the likelihood-ratio test per term (one warm-started refit per term)."""
     resolved = deploy.resolve_model(con, model, version)
     text, note = resolved.assessed_rows(source, rows)
-    tables = report_tables.report_tables(DuckDBEngine(con), resolved, text, note, threshold)
+    tables = report_tables.report_tables(
+        DuckDBEngine(con), resolved, text, note, threshold, likelihood_ratio=likelihood_ratio
+    )
     if by is not None:
         tables["groups"] = assess(
             con, resolved, source, rows=rows, threshold=threshold, by=by, reference=reference
