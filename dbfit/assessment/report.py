@@ -512,13 +512,12 @@ def _effects_section(effects: pa.Table) -> str:
         cells = [number(row["effect"]), number(row["std_error"]), escape(p_value(row["p_value"])), interval]
         body.append(f"<tr><td>{what}</td>{''.join(f'<td>{c}</td>' for c in cells)}</tr>")
     made = {k.decode(): v.decode() for k, v in (effects.schema.metadata or {}).items()}
-    where = escape(made.get("dbfit_at", "average over the rows"))
     rows = escape(made.get("dbfit_rows", "the rows"))
     return (
         '<section class="effects"><h2>Effects on the probability</h2><table class="effects"><thead><tr>'
         "<th>effect of</th><th>change in probability</th><th>std. error</th><th>p</th><th>95% interval</th>"
         f'</tr></thead><tbody>{"".join(body)}</tbody></table><p class="hint">Average marginal effects '
-        f"({where}; over {rows}): for a numeric term the mean over rows of the derivative of the probability "
+        f"(over {rows}): for a numeric term the mean over rows of the derivative of the probability "
         "per unit, for a level of a categorical the mean change in probability from the reference level, "
         "every other variable as observed. Standard errors by the delta method.</p></section>"
     )
