@@ -645,3 +645,13 @@ def test_sections_say_why_a_model_has_no_effects_or_term_tests(spector):
         section(render_report(intercept_only, dbfit.report_assessment(spector, intercept_only)), "term-tests")
     )
     assert "Not computed: the model has no formula terms to test (intercept only)" in text
+
+
+def test_rows_of_one_class_get_no_calibration_line(spector):
+    model = dbfit.fit(spector, FORMULA, "spector", name="grades", progress=False)
+    tables = dbfit.report_assessment(spector, "grades", "SELECT * FROM spector WHERE GRADE = 0")
+    assert tables["calibration_line"].to_pylist() == [
+        {"slope": None, "intercept": None, "passes": 0, "note": "undefined: the rows hold only one class"}
+    ]
+    text = page_text(render_report(model, tables))
+    assert "calibration slope \u2013 undefined: the rows hold only one class" in text

@@ -149,7 +149,10 @@ def calibration_line(engine: DuckDBEngine, model: Model, source: str) -> pa.Tabl
     the Newton passes (scans) it took, and a note when there is no fit."""
     scored = assessment.scored_relation(model, source, by=exp.Literal.string(ALL_ROWS))
     fits, passes = by_group.calibration_fits(engine, scored, [ALL_ROWS])
-    slope, intercept, note = fits[ALL_ROWS]
+    return _line(*fits[ALL_ROWS], passes)
+
+
+def _line(slope: float | None, intercept: float | None, note: str | None, passes: int) -> pa.Table:
     return pa.table(
         {
             "slope": pa.array([slope], type=pa.float64()),
@@ -158,6 +161,10 @@ def calibration_line(engine: DuckDBEngine, model: Model, source: str) -> pa.Tabl
             "note": pa.array([note], type=pa.string()),
         }
     )
+
+
+def _no_line(note: str) -> pa.Table:
+    return _line(None, None, note, 0)
 
 
 def split_metrics(
@@ -199,7 +206,11 @@ def report_tables(
     tables["confusion"] = tables["confusion"].replace_schema_metadata(
         {b"dbfit_threshold": repr(float(threshold)).encode()}
     )
-    tables["calibration_line"] = calibration_line(engine, model, source)
+    values = dict(zip(tables["metrics"]["metric"].to_pylist(), tables["metrics"]["value"].to_pylist()))
+    if 0 < values["positives"] < values["rows"]:
+        tables["calibration_line"] = calibration_line(engine, model, source)
+    else:
+        tables["calibration_line"] = _no_line("undefined: the rows hold only one class")
     tables["term_tests"] = _or_note(lambda: term_tests(engine, model, likelihood_ratio=likelihood_ratio))
     if model.source_is_data:  # a model read from a document: its training rows are not a query to run
         return tables
