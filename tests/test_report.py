@@ -456,6 +456,15 @@ def test_data_summary_of_a_categorical_shows_its_largest_levels(spector):
     assert [r["rows"] for r in levels] == sorted(counts.tolist(), reverse=True)
     text = page_text(section(render_report(model, tables), "data"))
     assert f"{frame.nunique() - 6} more levels" in text
+    assert "TUCE" not in text  # only the formula's variables
+    spector.execute("CREATE TABLE spector_int AS SELECT *, TUCE::INTEGER AS tuce_int FROM spector")
+    whole = dbfit.fit(spector, "GRADE ~ tuce_int", "spector_int", progress=False)
+    text = page_text(section(render_report(whole, dbfit.report_assessment(spector, whole)), "data"))
+    tuce = sm.datasets.spector.load_pandas().data["TUCE"]
+    assert (
+        f"tuce_int predictor numeric (integer) 0 {number(tuce.mean())} {tuce.min():.0f} to {tuce.max():.0f}"
+        in text
+    )
 
 
 def test_confusion_matrix_equals_scikit_learn_on_the_scored_rows(stored_holdout):

@@ -207,6 +207,18 @@ def _identity_section(model: Model, assessment: dict[str, pa.Table] | None) -> s
 
 
 LEVELS_SHOWN = 6
+WHOLE_NUMBER_TYPES = {
+    "TINYINT",
+    "SMALLINT",
+    "INTEGER",
+    "BIGINT",
+    "HUGEINT",
+    "UTINYINT",
+    "USMALLINT",
+    "UINTEGER",
+    "UBIGINT",
+    "UHUGEINT",
+}
 
 
 def _levels_text(levels: list[dict], present: int) -> str:
@@ -232,7 +244,8 @@ def _data_section(summary: pa.Table, levels: pa.Table) -> str:
             values = _levels_text(by_variable.get(row["variable"], []), row["rows"] - row["nulls"])
             mean = "\u2013"
         else:
-            values = f"{number(row['minimum'])} to {number(row['maximum'])}"
+            whole = count if row["sql_type"].upper() in WHOLE_NUMBER_TYPES else number
+            values = f"{whole(row['minimum'])} to {whole(row['maximum'])}"
             mean = number(row["mean"])
         body.append(
             f"<tr><td><code>{escape(row['variable'])}</code></td><td>{escape(row['role'])}</td>"
