@@ -74,9 +74,14 @@ class Metrics:
 
 
 def metrics(
-    engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5, rows_note: str | None = None
+    engine: DuckDBEngine,
+    scored: exp.Expression,
+    threshold: float = 0.5,
+    rows_note: str | None = None,
+    calibration: pa.Table | None = None,
 ) -> Metrics:
-    """Every metric of the assessment from two scans of the scored rows; ``rows_note`` says which rows."""
+    """Every metric of the assessment from three scans of the scored rows (two when the ``calibration`` table
+    of the same rows is given); ``rows_note`` says which rows."""
     threshold = check_threshold(threshold)
     point = parse_one(
         f"""SELECT count(*) AS n, sum(y) AS positives,
@@ -141,7 +146,7 @@ def metrics(
     rank_sum, ks = engine.fetch(ranks)[0]
     values["auc"] = (float(rank_sum) - positives * (positives + 1) / 2.0) / (positives * negatives)
     values["ks_statistic"] = float(ks)
-    statistic, df = hosmer_lemeshow(engine, scored)
+    statistic, df = hosmer_lemeshow(engine, scored, calibration=calibration)
     values["hosmer_lemeshow"], values["hosmer_lemeshow_df"] = statistic, float(df)
     values["hosmer_lemeshow_p"] = chi_square_tail(statistic, df) if df > 0 else None
     if df <= 0:
@@ -210,9 +215,14 @@ def wilson_interval(successes: float, n: float, z: float = Z_95) -> tuple[float,
     return centre - half, centre + half
 
 
-def hosmer_lemeshow(engine: DuckDBEngine, scored: exp.Expression, groups: int = GROUPS) -> tuple[float, int]:
-    """Sum over groups of (O - E)^2 / (E (1 - E / n)), on (number of groups - 2) degrees of freedom."""
-    table = calibration_table(engine, scored, groups).to_pydict()
+def hosmer_lemeshow(
+    engine: DuckDBEngine, scored: exp.Expression, groups: int = GROUPS, calibration: pa.Table | None = None
+) -> tuple[float, int]:
+    """Sum over groups of (O - E)^2 / (E (1 - E / n)), on (number of groups - 2) degrees of freedom; from the
+    ``calibration`` table of the rows when given, else from a scan."""
+    table = (
+        calibration if calibration is not None else calibration_table(engine, scored, groups)
+    ).to_pydict()
     statistic = 0.0
     for n, rate, mean in zip(table["rows"], table["observed_rate"], table["mean_predicted"]):
         expected, observed = mean * n, rate * n
@@ -289,9 +299,13 @@ def curve_points(
     return pa.table(out)
 
 
-def gains_table(engine: DuckDBEngine, scored: exp.Expression, groups: int = GROUPS) -> pa.Table:
-    """Cumulative gains and lift by group, from the highest scores down."""
-    calibration = calibration_table(engine, scored, groups).to_pydict()
+def gains_table(
+    engine: DuckDBEngine, scored: exp.Expression, groups: int = GROUPS, calibration: pa.Table | None = None
+) -> pa.Table:
+    """Cumulative gains and lift by group, from the highest scores down (from ``calibration`` when given)."""
+    calibration = (
+        calibration if calibration is not None else calibration_table(engine, scored, groups)
+    ).to_pydict()
     order = list(range(len(calibration["group"])))[::-1]
     total_rows = sum(calibration["rows"])
     total_positive = sum(r * n for r, n in zip(calibration["observed_rate"], calibration["rows"]))
@@ -359,11 +373,13 @@ def scored_relation(model, source: str | None, by: exp.Expression | None = None)
 def assessment_tables(
     engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5, rows_note: str | None = None
 ) -> dict[str, pa.Table]:
-    """Every table of the assessment: metrics, confusion, the cut-off curve, calibration and gains."""
+    """Every table of the assessment: metrics, confusion, the cut-off curve, calibration and gains (five scans:
+    the calibration groups are computed once, for the Hosmer-Lemeshow test, the plot and the gains)."""
+    calibration = calibration_table(engine, scored)
     return {
-        "metrics": metrics(engine, scored, threshold, rows_note).table(),
+        "metrics": metrics(engine, scored, threshold, rows_note, calibration).table(),
         "confusion": confusion_table(engine, scored, threshold),
         "curve": curve_points(engine, scored),
-        "calibration": calibration_table(engine, scored),
-        "gains": gains_table(engine, scored),
+        "calibration": calibration,
+        "gains": gains_table(engine, scored, calibration=calibration),
     }

@@ -10,6 +10,7 @@ from html import escape
 
 import pyarrow as pa
 
+from dbfit.assessment.report_format import count, number
 from dbfit.assessment.svg import MARGIN_BOTTOM, MARGIN_TOP, Chart, num
 
 ODDS_FLOOR, ODDS_CEILING = 1e-3, 1e3  # odds ratios beyond these are drawn at the edge, marked as cut off
@@ -87,8 +88,8 @@ def forest_plot(coefficients: pa.Table) -> str | None:
                     f'<text class="cut-off" x="{num(chart.x(limit))}" y="{y}" text-anchor="middle">'
                     f"{mark}<title>cut off: the value lies beyond the axis</title></text>"
                 )
-        tip = f"{row['term']}: odds ratio {odds:.4g}"
-        tip += f" [{low:.4g}, {high:.4g}]" if has_interval else " (penalised: no interval)"
+        tip = f"{row['term']}: odds ratio {number(odds)}"
+        tip += f" [{number(low)}, {number(high)}]" if has_interval else " (penalised: no interval)"
         chart.point(odds, middle, "estimate" if has_interval else "estimate penalised", tip, radius=4.5)
     return chart.svg(y_ticks=False)
 
@@ -146,7 +147,7 @@ def calibration_plot(calibration: pa.Table) -> str:
             row["mean_predicted"],
             row["observed_rate"],
             "estimate",
-            f"group {row['group']}: {row['rows']} rows, predicted {row['mean_predicted']:.3f}, "
+            f"group {row['group']}: {count(row['rows'])} rows, predicted {row['mean_predicted']:.3f}, "
             f"observed {row['observed_rate']:.3f} [{row['wilson_low']:.3f}, {row['wilson_high']:.3f}]",
         )
     return chart.svg()
@@ -219,5 +220,5 @@ def group_rates_plot(groups: pa.Table) -> str:
                 "rates withheld</text>"
             )
         for key, css, title in marks:
-            chart.point(row[key], middle, css, f"{name}: {title} {row[key]:.4g}", radius=4.5)
+            chart.point(row[key], middle, css, f"{name}: {title} {number(row[key])}", radius=4.5)
     return chart.svg(y_ticks=False)

@@ -55,6 +55,19 @@ svg .step { fill:var(--accent-soft); stroke:#fff; }
 svg .aliased-note { font-size:12px; fill:var(--warm); font-style:italic; }
 svg .cut-off { font-size:11px; fill:var(--warm); }
 svg .badge { font-size:14px; font-weight:650; fill:var(--accent); }
+section h3 { font-size:14px; margin:16px 0 6px; }
+.warnings h3 { color:var(--warm); margin:8px 0 4px; }
+table.identity { width:auto; }
+table.identity th { text-align:left; font-size:13px; border-bottom:1px solid #ece9e1; padding-right:28px; }
+table.identity td { text-align:left; }
+table.data th:nth-child(-n+3), table.data td:nth-child(-n+3), table.data th:last-child,
+  table.data td.values { text-align:left; }
+table.confusion { width:auto; min-width:60%; }
+table.confusion tbody th { text-align:left; border-bottom:1px solid #ece9e1; }
+table.confusion td span { display:block; font-size:12px; color:var(--muted); }
+table.confusion td.hit { background:var(--accent-soft); }
+table.confusion td.miss { background:var(--warm-soft); }
+tr.shifted td { color:var(--warm); font-weight:600; }
 .cautions { font-size:13px; color:var(--muted); background:transparent; }
 footer { font-size:12px; color:var(--muted); text-align:center; }
 """

@@ -9,6 +9,8 @@ import math
 from dataclasses import dataclass, field
 from html import escape
 
+from dbfit.assessment.report_format import power_of_ten
+
 WIDTH, HEIGHT = 460, 300
 MARGIN_LEFT, MARGIN_RIGHT, MARGIN_TOP, MARGIN_BOTTOM = 58, 18, 16, 46
 
@@ -73,7 +75,7 @@ def tick_label(value: float) -> str:
     if value == 0:
         return "0"
     if abs(value) >= 1e4 or abs(value) < 1e-3:
-        return f"{value:.0e}".replace("e+0", "e").replace("e-0", "e-")
+        return power_of_ten(value, 1)
     return f"{value:g}"
 
 

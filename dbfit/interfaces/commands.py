@@ -179,6 +179,14 @@ def add_model_commands(command: Command) -> None:
     report.add_argument("--version", type=int, help="stored version (default: the current one)")
     report.add_argument("--by", help="also assess by group: a SQL expression (as assess --by)")
     report.add_argument("--reference", help="with --by: the reference group (default: the largest)")
+    report.add_argument(
+        "--threshold", type=float, default=0.5, help="probability cut-off (default %(default)s)"
+    )
+    report.add_argument(
+        "--likelihood-ratio",
+        action="store_true",
+        help="also the likelihood-ratio test per term (one warm-started refit per term)",
+    )
 
 
 def run_model_command(args: argparse.Namespace) -> int:
@@ -441,13 +449,22 @@ def _effects(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[s
 def _report(con: duckdb.DuckDBPyConnection, args: argparse.Namespace) -> dict[str, Any]:
     import dbfit
     from dbfit.assessment.report import write_report
+    from dbfit.interfaces.python_api import report_assessment
 
     model = dbfit.load(con, args.name, version=args.version)
-    # Assessed on --source, else on the held-out rows of a holdout fit, else on the rows it was fitted on.
+    # Assessed on --source (with drift against the training rows), else on the held-out rows of a holdout
+    # fit, else on the rows it was fitted on.
     tables = None
     if model.design.trials is None:
-        tables = dbfit.assessment_tables(
-            con, model, args.source, rows=args.rows, by=args.by, reference=args.reference
+        tables = report_assessment(
+            con,
+            model,
+            args.source,
+            rows=args.rows,
+            threshold=args.threshold,
+            by=args.by,
+            reference=args.reference,
+            likelihood_ratio=args.likelihood_ratio,
         )
     path = write_report(model, args.output, assessment=tables)
     rows = (

@@ -12,7 +12,7 @@ import duckdb
 import numpy as np
 import pyarrow as pa
 
-from dbfit.assessment import groups, report
+from dbfit.assessment import groups, report, report_tables
 from dbfit.assessment import metrics as assessment
 from dbfit.assessment.effects import OVERALL
 from dbfit.assessment.effects import marginal_effects as effects_of
@@ -21,7 +21,7 @@ from dbfit.deployment import scoring
 from dbfit.deployment import views as deploy
 from dbfit.deployment.segment_views import segment_scoring_query
 from dbfit.engines.duckdb_engine import DuckDBEngine, translate_error
-from dbfit.errors import FitError, SourceError, StoreError
+from dbfit.errors import DbfitError, FitError, SourceError, StoreError
 from dbfit.expressions.names import model_name
 from dbfit.expressions.splits import Holdout, KFold, part_source
 from dbfit.fitting import driver as fitting
@@ -145,6 +145,44 @@ def assessment_tables(
             by=by,
             reference=reference,
             min_rows=min_rows,
+        )
+    return tables
+
+
+def report_assessment(
+    con: duckdb.DuckDBPyConnection,
+    model: str | Model,
+    source: str | None = None,
+    *,
+    rows: str | None = None,
+    threshold: float = 0.5,
+    version: int | None = None,
+    by: str | None = None,
+    reference: Any = None,
+    likelihood_ratio: bool = False,
+) -> dict[str, pa.Table]:
+    """Every table of the report (see :func:`dbfit.assessment.report_tables.report_tables`; rows as
+    ``assess``), with ``by`` the assessment by group, and with a ``source`` of new rows the drift of a stored
+    model against its training snapshot (an empty ``drift`` table says why when there is none);
+    ``likelihood_ratio`` adds the likelihood-ratio test per term (one warm-started refit per term)."""
+    resolved = deploy.resolve_model(con, model, version)
+    text, note = resolved.assessed_rows(source, rows)
+    tables = report_tables.report_tables(
+        DuckDBEngine(con), resolved, text, note, threshold, likelihood_ratio=likelihood_ratio
+    )
+    if by is not None:
+        tables["groups"] = assess(
+            con, resolved, source, rows=rows, threshold=threshold, by=by, reference=reference
+        )
+    if source is not None:
+        try:
+            drift_table = psi_table(con, resolved, source)
+        except DbfitError as err:
+            drift_table = pa.table({"variable": pa.array([], type=pa.string())}).replace_schema_metadata(
+                {b"dbfit_note": str(err).encode()}
+            )
+        tables["drift"] = drift_table.replace_schema_metadata(
+            {**(drift_table.schema.metadata or {}), b"dbfit_source": source.encode()}
         )
     return tables
 
