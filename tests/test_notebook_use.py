@@ -201,3 +201,14 @@ def test_readme_example_runs_on_the_demo_database(demo_database):
     names["con"].close()
     assert names["scored"].num_rows == 1000 and "reason_2" in names["scored"].column_names
     assert "<table>" in names["model"]._repr_html_()
+
+
+def test_connecting_twice_to_one_file_names_the_open_connection(tmp_path):
+    path = str(tmp_path / "twice.duckdb")
+    first = dbfit.connect(path)
+    first.execute("CREATE TABLE kept AS SELECT 1 AS x")
+    with pytest.raises(dbfit.StoreError, match="already open through dbfit in this process"):
+        dbfit.connect(path)
+    assert first.execute("SELECT x FROM kept").fetchall() == [(1,)]  # the first connection still works
+    first.close()
+    dbfit.connect(path).close()  # once closed, the file opens again

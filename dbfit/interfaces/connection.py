@@ -26,7 +26,16 @@ def connect(database: str = ":memory:", **config: Any) -> Any:
         con = duckdb.connect(database, read_only=read_only, config=config)
     except duckdb.IOException as err:
         raise _lock_error(database, err) from None
-    return install(con)
+    try:
+        return install(con)
+    except duckdb.CatalogException as err:
+        if "already exists" not in str(err):
+            raise
+        con.close()
+        raise StoreError(
+            f"'{database}' is already open through dbfit in this process (an earlier dbfit.connect of the same "
+            "file, for example in a notebook cell run twice): use that connection, or close it first"
+        ) from None
 
 
 def connect_existing(database: str, **config: Any) -> Any:
