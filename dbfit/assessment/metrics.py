@@ -17,7 +17,7 @@ from statistics import NormalDist
 import pyarrow as pa
 from sqlglot import exp, parse_one
 
-from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.engines.base import Engine
 from dbfit.errors import FitError
 
 GROUPS = 10
@@ -74,7 +74,7 @@ class Metrics:
 
 
 def metrics(
-    engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5, rows_note: str | None = None
+    engine: Engine, scored: exp.Expression, threshold: float = 0.5, rows_note: str | None = None
 ) -> Metrics:
     """Every metric of the assessment from two scans of the scored rows; ``rows_note`` says which rows."""
     threshold = check_threshold(threshold)
@@ -165,7 +165,7 @@ def probability_groups(scored: exp.Expression, groups: int = GROUPS) -> exp.Sele
     ).from_(_by_score(scored).subquery("dbfit_by_score"))
 
 
-def calibration_table(engine: DuckDBEngine, scored: exp.Expression, groups: int = GROUPS) -> pa.Table:
+def calibration_table(engine: Engine, scored: exp.Expression, groups: int = GROUPS) -> pa.Table:
     """Per probability group: rows, mean predicted, observed rate and its 95 % Wilson interval."""
     query = parse_one(
         """SELECT grp, sum(c) AS n, sum(c1) AS observed, sum(c * p) AS expected, min(p) AS low, max(p) AS high
@@ -183,7 +183,8 @@ def calibration_table(engine: DuckDBEngine, scored: exp.Expression, groups: int 
         "lowest_score": [],
         "highest_score": [],
     }
-    for grp, n, observed, expected, low, high in rows:
+    for grp, whole, observed, expected, low, high in rows:
+        n = int(whole)  # PostgreSQL's sum of counts is NUMERIC
         rate = float(observed) / n
         wilson_low, wilson_high = wilson_interval(float(observed), float(n))
         for key, value in zip(
@@ -210,7 +211,7 @@ def wilson_interval(successes: float, n: float, z: float = Z_95) -> tuple[float,
     return centre - half, centre + half
 
 
-def hosmer_lemeshow(engine: DuckDBEngine, scored: exp.Expression, groups: int = GROUPS) -> tuple[float, int]:
+def hosmer_lemeshow(engine: Engine, scored: exp.Expression, groups: int = GROUPS) -> tuple[float, int]:
     """Sum over groups of (O - E)^2 / (E (1 - E / n)), on (number of groups - 2) degrees of freedom."""
     table = calibration_table(engine, scored, groups).to_pydict()
     statistic = 0.0
@@ -222,12 +223,12 @@ def hosmer_lemeshow(engine: DuckDBEngine, scored: exp.Expression, groups: int = 
     return statistic, len(table["rows"]) - 2
 
 
-def confusion_table(engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5) -> pa.Table:
+def confusion_table(engine: Engine, scored: exp.Expression, threshold: float = 0.5) -> pa.Table:
     """Counts of actual by predicted class at ``threshold`` (predicted positive when p >= threshold)."""
     threshold = check_threshold(threshold)
     query = parse_one(
         f"""SELECT y::INTEGER AS actual, (p >= {threshold!r})::INTEGER AS predicted, count(*) AS n
-            FROM dbfit_scored GROUP BY ALL ORDER BY actual, predicted""",
+            FROM dbfit_scored GROUP BY 1, 2 ORDER BY actual, predicted""",
         read="duckdb",
     )
     query = query.from_(scored.copy())
@@ -242,15 +243,13 @@ def confusion_table(engine: DuckDBEngine, scored: exp.Expression, threshold: flo
     )
 
 
-def curve_points(
-    engine: DuckDBEngine, scored: exp.Expression, max_points: int = MAX_CURVE_POINTS
-) -> pa.Table:
+def curve_points(engine: Engine, scored: exp.Expression, max_points: int = MAX_CURVE_POINTS) -> pa.Table:
     """Cut-offs at distinct scores (thinned to at most about ``max_points``) with the rates at each.
 
     Each row: threshold, true and false positive rate (ROC), precision, recall, specificity, share flagged.
     """
     query = parse_one(
-        """SELECT p, tp, fp, sum(c1) OVER () AS P, sum(c) OVER () AS N_all,
+        """SELECT p, tp, fp, sum(c1) OVER () AS positives_all, sum(c) OVER () AS N_all,
                    row_number() OVER (ORDER BY p DESC) AS k, count(*) OVER () AS m
             FROM dbfit_by_score""",
         read="duckdb",
@@ -270,7 +269,8 @@ def curve_points(
         "specificity": [1.0],
         "share_flagged": [0.0],
     }
-    for p, tp, fp, positives, total, _, _ in rows:
+    for p, tp, fp, positives, whole, _, _ in rows:
+        total = int(whole)  # PostgreSQL's sum of counts is NUMERIC
         negatives = total - positives
         tpr, fpr = float(tp) / positives if positives else None, float(fp) / negatives if negatives else None
         for key, value in zip(
@@ -289,7 +289,7 @@ def curve_points(
     return pa.table(out)
 
 
-def gains_table(engine: DuckDBEngine, scored: exp.Expression, groups: int = GROUPS) -> pa.Table:
+def gains_table(engine: Engine, scored: exp.Expression, groups: int = GROUPS) -> pa.Table:
     """Cumulative gains and lift by group, from the highest scores down."""
     calibration = calibration_table(engine, scored, groups).to_pydict()
     order = list(range(len(calibration["group"])))[::-1]
@@ -357,7 +357,7 @@ def scored_relation(model, source: str | None, by: exp.Expression | None = None)
 
 
 def assessment_tables(
-    engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5, rows_note: str | None = None
+    engine: Engine, scored: exp.Expression, threshold: float = 0.5, rows_note: str | None = None
 ) -> dict[str, pa.Table]:
     """Every table of the assessment: metrics, confusion, the cut-off curve, calibration and gains."""
     return {
