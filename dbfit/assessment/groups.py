@@ -116,7 +116,7 @@ def assess_groups(
     threshold = check_threshold(threshold)
     if isinstance(min_rows, bool) or not isinstance(min_rows, int) or min_rows < 1:
         raise FitError(f"min_rows must be a whole number of at least 1 (got {min_rows!r})")
-    scored = scored_relation(model, source, by=group_expression(by))
+    scored = scored_relation(model, source, by=group_expression(by), engine=engine)
     scans_before = engine.scans
     groups = _group_sums(engine, scored, threshold)
     if not groups:

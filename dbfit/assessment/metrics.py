@@ -19,6 +19,7 @@ from sqlglot import exp, parse_one
 
 from dbfit.engines.base import Engine
 from dbfit.errors import FitError
+from dbfit.expressions import builders as sb
 
 GROUPS = 10
 MAX_CURVE_POINTS = 1000
@@ -316,12 +317,15 @@ def gains_table(engine: Engine, scored: exp.Expression, groups: int = GROUPS) ->
     return pa.table(out)
 
 
-def scored_relation(model, source: str | None, by: exp.Expression | None = None) -> exp.Expression:
+def scored_relation(
+    model, source: str | None, by: exp.Expression | None = None, *, engine: Engine | None = None
+) -> exp.Expression:
     """The rows of ``source`` (default: all rows of the model's source) as (y, p), complete rows only.
 
     ``model`` is a :class:`dbfit.Model`; the scoring query is the one a published view runs. With ``by`` (a
     checked expression tree over the source's columns) also the linear predictor ``eta`` and the group ``g``,
-    the text of ``by``'s value (NULL stays NULL).
+    the text of ``by``'s value (NULL stays NULL). ``engine``, when given, is asked the target's type (no scan):
+    PostgreSQL casts no boolean to DOUBLE, so a boolean target is written as a CASE there and everywhere.
     """
     from dbfit.deployment.scoring import scoring_query
     from dbfit.expressions.source import source_relation
@@ -330,10 +334,14 @@ def scored_relation(model, source: str | None, by: exp.Expression | None = None)
     if design.trials is not None:
         raise FitError("assessment needs a 0/1 target; this model counts successes out of trials")
     target = design.formula.target.copy()
+    relation = source_relation(model.source_or_own(source))
     if design.positive is not None:
-        target = exp.EQ(this=exp.Paren(this=target), expression=exp.Literal.string(design.positive))
-    scored = scoring_query(model, source_relation(model.source_or_own(source)))
-    y = exp.Cast(this=target, to=exp.DataType.build("DOUBLE"))
+        y = sb.truth_as_double(exp.EQ(this=sb.paren(target), expression=exp.Literal.string(design.positive)))
+    elif engine is not None and _is_boolean(engine, target, relation):
+        y = sb.truth_as_double(target)
+    else:
+        y = sb.as_double(target)
+    scored = scoring_query(model, relation)
     rows = exp.select(
         exp.alias_(y, "y", quoted=True), exp.alias_(exp.column("probability", quoted=True), "p", quoted=True)
     )
@@ -354,6 +362,12 @@ def scored_relation(model, source: str | None, by: exp.Expression | None = None)
         )
     )
     return complete.subquery("dbfit_scored")
+
+
+def _is_boolean(engine: Engine, target: exp.Expression, relation: exp.Expression) -> bool:
+    """Whether ``target`` is a boolean over ``relation``, as the engine types it (described, not read)."""
+    probe = exp.select(exp.alias_(target.copy(), "dbfit_target", quoted=True)).from_(relation.copy())
+    return engine.describe(probe)[0][1].upper() == "BOOLEAN"
 
 
 def assessment_tables(

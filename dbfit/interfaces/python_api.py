@@ -132,8 +132,9 @@ def assessment_tables(
     ``by`` also ``groups``, the table of ``assess(..., by=by)``."""
     resolved = deploy.resolve_model(con, model, version)
     text, note = resolved.assessed_rows(source, rows)
-    scored = assessment.scored_relation(resolved, text)
-    tables = assessment.assessment_tables(engine_for(con), scored, threshold, rows_note=note)
+    engine = engine_for(con)
+    scored = assessment.scored_relation(resolved, text, engine=engine)
+    tables = assessment.assessment_tables(engine, scored, threshold, rows_note=note)
     if by is not None:
         tables["groups"] = assess(
             con,

@@ -72,6 +72,6 @@ def assess(
     """
     resolved = deploy.resolve_model(con, model, version)
     text, note = resolved.assessed_rows(source, rows)
-    return assessment.metrics(
-        engine_for(con), assessment.scored_relation(resolved, text), threshold, rows_note=note
-    ).table()
+    engine = engine_for(con)
+    scored = assessment.scored_relation(resolved, text, engine=engine)
+    return assessment.metrics(engine, scored, threshold, rows_note=note).table()
