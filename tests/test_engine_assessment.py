@@ -194,3 +194,23 @@ def test_segment_fingerprints_equal_each_segments_own(other):
 def test_a_data_frame_source_on_another_engine_is_refused_by_name(other, model, birthwt):
     with pytest.raises(dbfit.SourceError, match="DuckDB connection only"):
         dbfit.assess(other, model, birthwt)
+
+
+def test_a_source_without_the_models_columns_is_named(other, model):
+    with pytest.raises(dbfit.FormulaError, match="unknown column"):
+        dbfit.assess(other, model, "SELECT low, age FROM birthwt")
+    with pytest.raises(dbfit.FormulaError, match="unknown column"):
+        dbfit.drift(other, model, "SELECT low, age FROM birthwt")
+
+
+def test_assess_inside_an_open_postgres_transaction_leaves_it_open_with_its_rows(pg_con, duckdb_con, model):
+    # dbfit's queries run in savepoints of their own: the caller's uncommitted row stays, the transaction open.
+    with pg_con.transaction():
+        pg_con.execute("CREATE TEMP TABLE pending AS SELECT * FROM birthwt")
+        on_postgres = dbfit.assess(pg_con, model, "pending")
+        with pytest.raises(dbfit.FormulaError):
+            dbfit.assess(pg_con, model, "SELECT low FROM pending")
+        assert pg_con.execute("SELECT count(*) FROM pending").fetchone() == (189,)
+    figures = ["metric", "value"]  # the note of "rows" names the source
+    on_duckdb = dbfit.assess(duckdb_con, model).select(figures)
+    assert_tables_equal(on_postgres.select(figures), on_duckdb, "assess inside a transaction")
