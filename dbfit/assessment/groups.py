@@ -23,7 +23,7 @@ import pyarrow as pa
 from sqlglot import exp, parse_one
 
 from dbfit.assessment.metrics import check_threshold, scored_relation
-from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.engines.base import Engine
 from dbfit.errors import FitError
 from dbfit.expressions import builders as sb
 from dbfit.expressions.formula import parse_expression
@@ -94,7 +94,7 @@ def group_expression(by: str) -> exp.Expression:
 
 
 def assess_groups(
-    engine: DuckDBEngine,
+    engine: Engine,
     model: Any,
     source: str,
     by: str,
@@ -116,7 +116,7 @@ def assess_groups(
     threshold = check_threshold(threshold)
     if isinstance(min_rows, bool) or not isinstance(min_rows, int) or min_rows < 1:
         raise FitError(f"min_rows must be a whole number of at least 1 (got {min_rows!r})")
-    scored = scored_relation(model, source, by=group_expression(by))
+    scored = scored_relation(model, source, by=group_expression(by), engine=engine)
     scans_before = engine.scans
     groups = _group_sums(engine, scored, threshold)
     if not groups:
@@ -156,7 +156,7 @@ def assess_groups(
     return GroupAssessment(table, chosen, engine.scans - scans_before, passes, notes)
 
 
-def _group_sums(engine: DuckDBEngine, scored: exp.Expression, threshold: float) -> dict[str | None, dict]:
+def _group_sums(engine: Engine, scored: exp.Expression, threshold: float) -> dict[str | None, dict]:
     by_score = parse_one(_BY_GROUP_AND_SCORE, read="duckdb").from_(scored.copy())
     ranked = parse_one(_RANKED, read="duckdb").from_(by_score.subquery("dbfit_by_score"))
     per_group = parse_one(_PER_GROUP.replace("{t}", repr(threshold)), read="duckdb")
@@ -204,7 +204,7 @@ def _figures(group: str | None, sums: dict[str, Any], min_rows: int) -> dict[str
 
 
 def calibration_fits(
-    engine: DuckDBEngine, scored: exp.Expression, groups: list[str | None]
+    engine: Engine, scored: exp.Expression, groups: list[str | None]
 ) -> tuple[dict[str | None, tuple[float | None, float | None, str | None]], int]:
     """Per group, the logistic fit of y on the linear predictor: (slope, intercept, note), and the passes run.
 
@@ -215,7 +215,7 @@ def calibration_fits(
     """
     if not groups:
         return {}, 0
-    template = _calibration_pass(scored)
+    template = _calibration_pass(engine, scored)
     current = {g: np.array([0.0, 1.0]) for g in groups}
     accepted: dict[str | None, np.ndarray] = {}
     best = {g: -math.inf for g in groups}
@@ -253,7 +253,7 @@ def calibration_fits(
     return done, passes
 
 
-def _calibration_pass(scored: exp.Expression) -> sb.ValuesTemplate:
+def _calibration_pass(engine: Engine, scored: exp.Expression) -> sb.ValuesTemplate:
     """The grouped query of one Newton pass around a placeholder for the VALUES list (g, a, b)."""
     a, b = exp.column("a", table="dbfit_cal"), exp.column("b", table="dbfit_cal")
     eta, y = exp.column("eta", table="dbfit_rows"), exp.column("y", table="dbfit_rows")
@@ -281,8 +281,8 @@ def _calibration_pass(scored: exp.Expression) -> sb.ValuesTemplate:
         )
         .group_by(group.copy())
     )
-    placeholder = sb.ValuesTemplate.placeholder("dbfit_cal").sql("duckdb")
-    return sb.ValuesTemplate(query.sql("duckdb"), placeholder, "dbfit_cal", ["g", "a", "b"], "duckdb")
+    placeholder = engine.sql(sb.ValuesTemplate.placeholder("dbfit_cal"))
+    return sb.ValuesTemplate(engine.sql(query), placeholder, "dbfit_cal", ["g", "a", "b"], engine.dialect)
 
 
 def _pass_sums(sums: list[Any]) -> tuple[float, np.ndarray, np.ndarray]:

@@ -17,8 +17,9 @@ from statistics import NormalDist
 import pyarrow as pa
 from sqlglot import exp, parse_one
 
-from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.engines.base import Engine
 from dbfit.errors import FitError
+from dbfit.expressions import builders as sb
 
 GROUPS = 10
 MAX_CURVE_POINTS = 1000
@@ -74,7 +75,7 @@ class Metrics:
 
 
 def metrics(
-    engine: DuckDBEngine,
+    engine: Engine,
     scored: exp.Expression,
     threshold: float = 0.5,
     rows_note: str | None = None,
@@ -170,7 +171,7 @@ def probability_groups(scored: exp.Expression, groups: int = GROUPS) -> exp.Sele
     ).from_(_by_score(scored).subquery("dbfit_by_score"))
 
 
-def calibration_table(engine: DuckDBEngine, scored: exp.Expression, groups: int = GROUPS) -> pa.Table:
+def calibration_table(engine: Engine, scored: exp.Expression, groups: int = GROUPS) -> pa.Table:
     """Per probability group: rows, mean predicted, observed rate and its 95 % Wilson interval."""
     query = parse_one(
         """SELECT grp, sum(c) AS n, sum(c1) AS observed, sum(c * p) AS expected, min(p) AS low, max(p) AS high
@@ -188,7 +189,8 @@ def calibration_table(engine: DuckDBEngine, scored: exp.Expression, groups: int 
         "lowest_score": [],
         "highest_score": [],
     }
-    for grp, n, observed, expected, low, high in rows:
+    for grp, whole, observed, expected, low, high in rows:
+        n = int(whole)  # PostgreSQL's sum of counts is NUMERIC
         rate = float(observed) / n
         wilson_low, wilson_high = wilson_interval(float(observed), float(n))
         for key, value in zip(
@@ -216,7 +218,7 @@ def wilson_interval(successes: float, n: float, z: float = Z_95) -> tuple[float,
 
 
 def hosmer_lemeshow(
-    engine: DuckDBEngine, scored: exp.Expression, groups: int = GROUPS, calibration: pa.Table | None = None
+    engine: Engine, scored: exp.Expression, groups: int = GROUPS, calibration: pa.Table | None = None
 ) -> tuple[float, int]:
     """Sum over groups of (O - E)^2 / (E (1 - E / n)), on (number of groups - 2) degrees of freedom; from the
     ``calibration`` table of the rows when given, else from a scan."""
@@ -232,12 +234,12 @@ def hosmer_lemeshow(
     return statistic, len(table["rows"]) - 2
 
 
-def confusion_table(engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5) -> pa.Table:
+def confusion_table(engine: Engine, scored: exp.Expression, threshold: float = 0.5) -> pa.Table:
     """Counts of actual by predicted class at ``threshold`` (predicted positive when p >= threshold)."""
     threshold = check_threshold(threshold)
     query = parse_one(
         f"""SELECT y::INTEGER AS actual, (p >= {threshold!r})::INTEGER AS predicted, count(*) AS n
-            FROM dbfit_scored GROUP BY ALL ORDER BY actual, predicted""",
+            FROM dbfit_scored GROUP BY 1, 2 ORDER BY actual, predicted""",
         read="duckdb",
     )
     query = query.from_(scored.copy())
@@ -252,15 +254,13 @@ def confusion_table(engine: DuckDBEngine, scored: exp.Expression, threshold: flo
     )
 
 
-def curve_points(
-    engine: DuckDBEngine, scored: exp.Expression, max_points: int = MAX_CURVE_POINTS
-) -> pa.Table:
+def curve_points(engine: Engine, scored: exp.Expression, max_points: int = MAX_CURVE_POINTS) -> pa.Table:
     """Cut-offs at distinct scores (thinned to at most about ``max_points``) with the rates at each.
 
     Each row: threshold, true and false positive rate (ROC), precision, recall, specificity, share flagged.
     """
     query = parse_one(
-        """SELECT p, tp, fp, sum(c1) OVER () AS P, sum(c) OVER () AS N_all,
+        """SELECT p, tp, fp, sum(c1) OVER () AS positives_all, sum(c) OVER () AS N_all,
                    row_number() OVER (ORDER BY p DESC) AS k, count(*) OVER () AS m
             FROM dbfit_by_score""",
         read="duckdb",
@@ -280,7 +280,8 @@ def curve_points(
         "specificity": [1.0],
         "share_flagged": [0.0],
     }
-    for p, tp, fp, positives, total, _, _ in rows:
+    for p, tp, fp, positives, whole, _, _ in rows:
+        total = int(whole)  # PostgreSQL's sum of counts is NUMERIC
         negatives = total - positives
         tpr, fpr = float(tp) / positives if positives else None, float(fp) / negatives if negatives else None
         for key, value in zip(
@@ -300,7 +301,7 @@ def curve_points(
 
 
 def gains_table(
-    engine: DuckDBEngine, scored: exp.Expression, groups: int = GROUPS, calibration: pa.Table | None = None
+    engine: Engine, scored: exp.Expression, groups: int = GROUPS, calibration: pa.Table | None = None
 ) -> pa.Table:
     """Cumulative gains and lift by group, from the highest scores down (from ``calibration`` when given)."""
     calibration = (
@@ -330,12 +331,15 @@ def gains_table(
     return pa.table(out)
 
 
-def scored_relation(model, source: str | None, by: exp.Expression | None = None) -> exp.Expression:
+def scored_relation(
+    model, source: str | None, by: exp.Expression | None = None, *, engine: Engine | None = None
+) -> exp.Expression:
     """The rows of ``source`` (default: all rows of the model's source) as (y, p), complete rows only.
 
     ``model`` is a :class:`dbfit.Model`; the scoring query is the one a published view runs. With ``by`` (a
     checked expression tree over the source's columns) also the linear predictor ``eta`` and the group ``g``,
-    the text of ``by``'s value (NULL stays NULL).
+    the text of ``by``'s value (NULL stays NULL). ``engine``, when given, is asked the target's type (no scan):
+    PostgreSQL casts no boolean to DOUBLE, so a boolean target is written as a CASE there and everywhere.
     """
     from dbfit.deployment.scoring import scoring_query
     from dbfit.expressions.source import source_relation
@@ -344,10 +348,14 @@ def scored_relation(model, source: str | None, by: exp.Expression | None = None)
     if design.trials is not None:
         raise FitError("assessment needs a 0/1 target; this model counts successes out of trials")
     target = design.formula.target.copy()
+    relation = source_relation(model.source_or_own(source))
     if design.positive is not None:
-        target = exp.EQ(this=exp.Paren(this=target), expression=exp.Literal.string(design.positive))
-    scored = scoring_query(model, source_relation(model.source_or_own(source)))
-    y = exp.Cast(this=target, to=exp.DataType.build("DOUBLE"))
+        y = sb.truth_as_double(exp.EQ(this=sb.paren(target), expression=exp.Literal.string(design.positive)))
+    elif engine is not None and _is_boolean(engine, target, relation):
+        y = sb.truth_as_double(target)
+    else:
+        y = sb.as_double(target)
+    scored = scoring_query(model, relation)
     rows = exp.select(
         exp.alias_(y, "y", quoted=True), exp.alias_(exp.column("probability", quoted=True), "p", quoted=True)
     )
@@ -370,8 +378,14 @@ def scored_relation(model, source: str | None, by: exp.Expression | None = None)
     return complete.subquery("dbfit_scored")
 
 
+def _is_boolean(engine: Engine, target: exp.Expression, relation: exp.Expression) -> bool:
+    """Whether ``target`` is a boolean over ``relation``, as the engine types it (described, not read)."""
+    probe = exp.select(exp.alias_(target.copy(), "dbfit_target", quoted=True)).from_(relation.copy())
+    return engine.describe(probe)[0][1].upper() == "BOOLEAN"
+
+
 def assessment_tables(
-    engine: DuckDBEngine, scored: exp.Expression, threshold: float = 0.5, rows_note: str | None = None
+    engine: Engine, scored: exp.Expression, threshold: float = 0.5, rows_note: str | None = None
 ) -> dict[str, pa.Table]:
     """Every table of the assessment: metrics, confusion, the cut-off curve, calibration and gains (five scans:
     the calibration groups are computed once, for the Hosmer-Lemeshow test, the plot and the gains)."""

@@ -20,6 +20,7 @@ from dbfit.assessment.screening import bin_screening as screening_of
 from dbfit.deployment import scoring
 from dbfit.deployment import views as deploy
 from dbfit.deployment.segment_views import segment_scoring_query
+from dbfit.engines import engine_for
 from dbfit.engines.duckdb_engine import DuckDBEngine, translate_error
 from dbfit.errors import DbfitError, FitError, SourceError, StoreError
 from dbfit.expressions.names import model_name
@@ -106,7 +107,7 @@ def assess(
         resolved = deploy.resolve_model(con, model, version)
         assessed, note = resolved.assessed_rows(text, rows)
         return groups.assess_groups(
-            DuckDBEngine(con),
+            engine_for(con),
             resolved,
             assessed,
             by,
@@ -133,8 +134,9 @@ def assessment_tables(
     ``by`` also ``groups``, the table of ``assess(..., by=by)``."""
     resolved = deploy.resolve_model(con, model, version)
     text, note = resolved.assessed_rows(source, rows)
-    scored = assessment.scored_relation(resolved, text)
-    tables = assessment.assessment_tables(DuckDBEngine(con), scored, threshold, rows_note=note)
+    engine = engine_for(con)
+    scored = assessment.scored_relation(resolved, text, engine=engine)
+    tables = assessment.assessment_tables(engine, scored, threshold, rows_note=note)
     if by is not None:
         tables["groups"] = assess(
             con,
@@ -362,6 +364,11 @@ def frame_source(con: duckdb.DuckDBPyConnection, source: Any) -> Iterator[Any]:
         raise SourceError(
             "a pyarrow RecordBatchReader can be read once, and dbfit reads its source several times: "
             "pass a pyarrow Table (reader.read_all()) instead"
+        )
+    if not isinstance(con, duckdb.DuckDBPyConnection):
+        raise SourceError(
+            f"a {package} {type(source).__name__} can be a source on a DuckDB connection only; on "
+            f"{type(con).__name__} give a table name or a SELECT"
         )
     name = f"dbfit_frame_{uuid.uuid4().hex[:12]}"
     try:

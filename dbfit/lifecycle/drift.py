@@ -20,7 +20,8 @@ import pyarrow as pa
 from sqlglot import exp
 
 from dbfit.deployment.scoring import scoring_query
-from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.engines import engine_for
+from dbfit.engines.base import Engine
 from dbfit.errors import DbfitError, StoreError
 from dbfit.expressions import builders as sb
 from dbfit.expressions.basis_terms import SplineCall
@@ -82,7 +83,7 @@ def _bin_number(value: exp.Expression, edges: list[float]) -> exp.Expression:
 
 
 def _numeric_counts(
-    engine: DuckDBEngine,
+    engine: Engine,
     scored: exp.Expression,
     variables: list[tuple[str, exp.Expression]],
     edges: dict[str, list[float]],
@@ -114,7 +115,7 @@ def _numeric_counts(
 
 
 def _level_counts(
-    engine: DuckDBEngine, scored: exp.Expression, variables: list[tuple[str, exp.Expression]]
+    engine: Engine, scored: exp.Expression, variables: list[tuple[str, exp.Expression]]
 ) -> dict[str, dict[str, int]]:
     """One scan (GROUPING SETS): rows per level (as JSON text of the value) of each categorical, NULLs left out."""
     if not variables:
@@ -143,7 +144,7 @@ def _plain(value: Any) -> Any:
 
 def training_snapshot(con: Any, model: Model) -> dict[str, list[Any]]:
     """The ``drift_bins`` rows (column-wise) of ``model`` on its training rows: edges, levels and shares."""
-    engine = DuckDBEngine(con)
+    engine = engine_for(con)
     scored = _scored(model, model.rows_source("training"))
     variables = _variables(model)
     numeric = [(name, value) for name, kind, value in variables if kind != "categorical"]
@@ -208,7 +209,24 @@ def _check_new_rows(source: str, rows: dict[str, int]) -> None:
 
 
 def psi_table(con: Any, model: Model, source: str) -> pa.Table:
-    """One row per variable: kind, bins, training and new rows, PSI and its reading (common-practice bands)."""
+    """One row per variable: kind, bins, training and new rows, PSI and its reading (common-practice bands).
+
+    On DuckDB the training snapshot is the one stored with the model's version. PostgreSQL and Spark hold no
+    store of dbfit's here: the snapshot is taken from the model's training rows on that engine, in the same
+    query forms, so it equals the one DuckDB would store for the same rows.
+    """
+    engine = engine_for(con)
+    if engine.dialect == "duckdb":
+        stored = _stored_snapshot(con, model)
+    else:
+        snapshot = training_snapshot(engine, model)
+        rows = [dict(zip(snapshot, values)) for values in zip(*snapshot.values())]
+        stored = sorted(rows, key=lambda row: (row["variable"], row["position"]))  # as the store orders them
+    return _psi_against(engine, model, source, stored)
+
+
+def _stored_snapshot(con: Any, model: Model) -> list[dict[str, Any]]:
+    """The ``drift_bins`` rows stored with the model's version, ordered by variable and position."""
     from dbfit.store.model_store import version_table
 
     if model.name is None or model.version is None:
@@ -226,7 +244,11 @@ def psi_table(con: Any, model: Model, source: str) -> pa.Table:
             f"model '{model.name}' version {model.version} has no training snapshot (saved by an older "
             "dbfit, or its source was unreadable at save time): refit it to record one"
         )
-    engine = DuckDBEngine(con)
+    return stored
+
+
+def _psi_against(engine: Engine, model: Model, source: str, stored: list[dict[str, Any]]) -> pa.Table:
+    """The PSI table of the new rows of ``source`` against the snapshot rows ``stored``."""
     scored = _scored(model, source)
     by_variable: dict[str, list[dict[str, Any]]] = {}
     for row in stored:

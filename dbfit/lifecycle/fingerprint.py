@@ -10,7 +10,7 @@ from typing import Any
 
 from sqlglot import exp
 
-from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.engines import engine_for
 from dbfit.expressions.source import source_relation
 
 ROW = "dbfit_row"
@@ -19,9 +19,9 @@ ROW = "dbfit_row"
 def fingerprint(con: Any, source: str) -> dict[str, Any]:
     """``{"source", "source_rows", "checksum"}`` of ``source``; the checksum as text (it exceeds 64 bits)."""
     relation, row_hash = _hashed_rows(source)
-    rows, checksum = DuckDBEngine(con).fetch(
-        exp.select(exp.Count(this=exp.Star()), row_hash).from_(relation)
-    )[0]
+    rows, checksum = engine_for(con).fetch(exp.select(exp.Count(this=exp.Star()), row_hash).from_(relation))[
+        0
+    ]
     return _fingerprint_of(source, rows, checksum)
 
 
@@ -35,7 +35,7 @@ def segment_fingerprints(
     query = exp.select(exp.alias_(by.copy(), "dbfit_seg", quoted=True), exp.Count(this=exp.Star()), row_hash)
     found = {
         value: (rows, checksum)
-        for value, rows, checksum in DuckDBEngine(con).fetch(query.from_(relation).group_by(key))
+        for value, rows, checksum in engine_for(con).fetch(query.from_(relation).group_by(key))
     }
     return {value: _fingerprint_of(text, *found.get(value, (0, None))) for value, text in sources.items()}
 

@@ -7,7 +7,7 @@ import pyarrow as pa
 
 from dbfit.assessment import metrics as assessment
 from dbfit.deployment import views as deploy
-from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.engines import engine_for
 from dbfit.errors import FitError
 from dbfit.expressions.names import model_name
 from dbfit.expressions.splits import Holdout, part_source
@@ -72,6 +72,6 @@ def assess(
     """
     resolved = deploy.resolve_model(con, model, version)
     text, note = resolved.assessed_rows(source, rows)
-    return assessment.metrics(
-        DuckDBEngine(con), assessment.scored_relation(resolved, text), threshold, rows_note=note
-    ).table()
+    engine = engine_for(con)
+    scored = assessment.scored_relation(resolved, text, engine=engine)
+    return assessment.metrics(engine, scored, threshold, rows_note=note).table()

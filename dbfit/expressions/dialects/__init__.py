@@ -28,6 +28,14 @@ class FittingForms:
     finite_test: Literal["isfinite", "not_in", "isnan"]  # isfinite(x); "not_in": x NOT IN (+-Infinity, NaN)
     sorted_levels: Literal["array_agg", "collect_set"]  # the sorted list of a column's distinct values
     fences_subqueries: bool  # each subquery gets OFFSET 0, so the planner computes it once
+    # Exact quantiles with linear interpolation between order statistics (Hyndman and Fan 1996, definition 7):
+    # quantile_cont(x, [q, ...]); "percentile_cont": percentile_cont(ARRAY[q, ...]) WITHIN GROUP (ORDER BY x);
+    # "percentile": percentile(x, array(q, ...)). All three give the same numbers.
+    quantiles: Literal["quantile_cont", "percentile_cont", "percentile"] = "quantile_cont"
+    # A 64-bit hash of a whole row, summed exactly for the source's fingerprint: DuckDB's hash(row);
+    # "md5_text": the first 16 hex digits of md5 of the row's text as a BIGINT; "xxhash64_text": xxhash64 of
+    # the row's text. Each engine's checksum differs from the others' but is stable on that engine.
+    row_hash: Literal["hash", "md5_text", "xxhash64_text"] = "hash"
 
 
 @dataclass(frozen=True)

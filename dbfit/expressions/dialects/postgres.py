@@ -8,13 +8,19 @@ from dbfit.expressions.dialects import DOUBLE_EXP_LIMIT, Dialect, FittingForms
 # (exp(-745.2)), measured on PostgreSQL 15; DOUBLE_EXP_LIMIT keeps every argument inside both bounds.
 # isfinite exists for dates and timestamps only; PostgreSQL orders NaN equal to itself, so NOT IN finds it.
 # The planner inlines a subquery's expressions into every aggregate above it; OFFSET 0 fences each one.
-# No SQL function raises an error with a message, so unseen='error' is refused.
+# No SQL function raises an error with a message, so unseen='error' is refused. No quantile_cont: the
+# ordered-set aggregate percentile_cont (the same interpolation); no hash of a row: md5 of its text.
 POSTGRES = Dialect(
     name="postgres",
     exp_limit=DOUBLE_EXP_LIMIT,
     raise_function=None,
     has_booleans=True,
     fitting=FittingForms(
-        clamps_exp=True, finite_test="not_in", sorted_levels="array_agg", fences_subqueries=True
+        clamps_exp=True,
+        finite_test="not_in",
+        sorted_levels="array_agg",
+        fences_subqueries=True,
+        quantiles="percentile_cont",
+        row_hash="md5_text",
     ),
 )

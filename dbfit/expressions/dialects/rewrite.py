@@ -38,6 +38,10 @@ def _rewrite(node: exp.Expression, forms: FittingForms, limit: float) -> exp.Exp
     is_isfinite = isinstance(node, exp.Anonymous) and node.name.lower() == "isfinite"
     if is_isfinite and forms.finite_test != "isfinite":
         return _finite(node.expressions[0], forms.finite_test)
+    if isinstance(node, exp.Anonymous) and node.name.lower() == "quantile_cont":
+        return _quantiles(node, forms.quantiles)
+    if isinstance(node, exp.Cast) and _is_row_hash(node.this) and forms.row_hash != "hash":
+        return _row_hash(node.this.expressions[0], forms.row_hash)
     levels = isinstance(node, exp.ArrayAgg) and isinstance(node.this, exp.Order)
     if levels and forms.sorted_levels == "collect_set":
         distinct = node.this.this
@@ -72,3 +76,40 @@ def _finite(value: exp.Expression, test: str) -> exp.Expression:
         exp.Not(this=exp.In(this=value.copy(), expressions=infinite)),
         exp.Not(this=exp.Anonymous(this="isnan", expressions=[value.copy()])),
     )
+
+
+def _quantiles(node: exp.Anonymous, form: str) -> exp.Expression:
+    """quantile_cont(value, [q, ...]) in the engine's exact form (the same interpolation, an array back)."""
+    value, fractions = node.expressions[0], node.expressions[1]
+    if form == "percentile_cont":
+        return exp.WithinGroup(
+            this=exp.PercentileCont(this=fractions.copy()),
+            expression=exp.Order(expressions=[exp.Ordered(this=value.copy())]),
+        )
+    if form == "percentile":
+        return exp.Anonymous(this="percentile", expressions=[value.copy(), fractions.copy()])
+    return node
+
+
+def _is_row_hash(node: exp.Expression) -> bool:
+    return isinstance(node, exp.Anonymous) and node.name.lower() == "hash" and len(node.expressions) == 1
+
+
+def _row_hash(row: exp.Expression, form: str) -> exp.Expression:
+    """A 64-bit hash of the whole row ``row`` (a table alias) as an exact integer, without DuckDB's hash."""
+    if form == "md5_text":
+        text = exp.Cast(this=row.copy(), to=exp.DataType.build("TEXT"))
+        digits = exp.Substring(
+            this=exp.MD5(this=text), start=exp.Literal.number(1), length=exp.Literal.number(16)
+        )
+        bits = exp.Cast(
+            this=exp.DPipe(this=exp.Literal.string("x"), expression=digits),
+            to=exp.DataType.build("BIT(64)", dialect="postgres"),
+        )
+        return exp.Cast(this=bits, to=exp.DataType.build("BIGINT"))
+    # Spark: the row's columns as one struct, as text (NULLs written where they stand), hashed.
+    text = exp.Cast(
+        this=exp.Anonymous(this="struct", expressions=[exp.Star()]), to=exp.DataType.build("STRING")
+    )
+    hashed = exp.Anonymous(this="xxhash64", expressions=[text])
+    return exp.Cast(this=hashed, to=exp.DataType.build("DECIMAL(38, 0)"))

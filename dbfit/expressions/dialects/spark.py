@@ -5,13 +5,20 @@ from __future__ import annotations
 from dbfit.expressions.dialects import DOUBLE_EXP_LIMIT, Dialect, FittingForms
 
 # Spark's exp returns 0 or Infinity out of range; its arguments are clamped all the same, so an exp() in a
-# formula gives the same finite numbers as on PostgreSQL.
+# formula gives the same finite numbers as on PostgreSQL. No quantile_cont: percentile (exact, the same
+# interpolation); the row hash is xxhash64 of the row's text (hashing the columns themselves skips NULLs, so
+# (NULL, 1) and (1, NULL) would hash alike).
 SPARK = Dialect(
     name="spark",
     exp_limit=DOUBLE_EXP_LIMIT,
     raise_function="raise_error",
     has_booleans=True,
     fitting=FittingForms(
-        clamps_exp=True, finite_test="isnan", sorted_levels="collect_set", fences_subqueries=False
+        clamps_exp=True,
+        finite_test="isnan",
+        sorted_levels="collect_set",
+        fences_subqueries=False,
+        quantiles="percentile",
+        row_hash="xxhash64_text",
     ),
 )
