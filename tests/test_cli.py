@@ -7,7 +7,9 @@ import subprocess
 import sys
 
 import duckdb
+import pytest
 
+import dbfit
 from dbfit.interfaces.demo import TRUE_COEFFICIENTS
 
 
@@ -25,6 +27,14 @@ def test_demo_fits_the_invented_scenario_close_to_the_truth(tmp_path):
     con = duckdb.connect(str(database), read_only=True)
     assert con.execute("SELECT count(*) FROM deliveries").fetchall()[0][0] == 60000
     con.close()
+    stored = dbfit.connect(str(database), read_only=True)
+    smooth, straight = (dbfit.load(stored, name) for name in ("demo_late_smooth", "demo_late"))
+    stored.close()
+    assert "spline(distance_km)[4]" in smooth.labels and "bins(dispatch_hour)=" in " ".join(smooth.labels)
+    aics = re.search(r"AIC ([0-9,.]+) against ([0-9,.]+) for the straight terms", done.stdout).groups()
+    assert [float(a.replace(",", "")) for a in aics] == pytest.approx(
+        [smooth.stats["aic"], straight.stats["aic"]], abs=0.06
+    )
     assert done.stderr == ""  # --quiet prints no progress
     assert len(TRUE_COEFFICIENTS) == 11
 
