@@ -28,6 +28,7 @@ from dbfit.model.fitted import Model
 from dbfit.model.segmented import SegmentedFit, plain_value
 from dbfit.solver.information import PassResult
 from dbfit.solver.newton import Deviance, IterationReport, NewtonResult, NewtonRules, NewtonRun, Steps
+from dbfit.solver.tolerances import UNCONFIRMED_STEP
 
 
 def fit_segments(
@@ -68,7 +69,13 @@ def fit_segments(
         value: NewtonRun(
             Deviance(part.saturated_loglik),
             _segment_start(part, fitted, pooled, design),
-            NewtonRules(max_passes=max_iter, tol=tol, protected=protected, weight_total=part.trial_sum),
+            NewtonRules(
+                max_passes=max_iter,
+                tol=tol,
+                protected=protected,
+                weight_total=part.trial_sum,
+                confirm_above=UNCONFIRMED_STEP,
+            ),
         ).steps()
         for value, part in segments.items()
     }

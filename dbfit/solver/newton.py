@@ -16,7 +16,8 @@ The solver only ever sees p x p numbers. A pass runs these steps, in this order,
 5. convergence (:meth:`NewtonRun.converged`): a small relative change of the objective with a small step, or
    a negligible step; a run that diverges under separation stops (Albert and Anderson 1984);
 6. finish (:meth:`NewtonRun.finish`): the converged step is confirmed by one more scan at the estimate (so
-   the information, log-likelihood and covariance returned are those of the estimate returned) and, for
+   the information, log-likelihood and covariance returned are those of the estimate returned; a run may
+   skip it when the step is too small to move them, ``NewtonRules.confirm_above``) and, for
    Firth's fit, polished with plain steps until negligible; the separation check of the converged fit.
 
 What differs between the fits is the :class:`Objective` (what a pass evaluates and how a step is found)
@@ -126,6 +127,7 @@ class NewtonRules:
     step_tolerance: float = STEP_TOLERANCE
     step_floor: float = STEP_FLOOR  # a step below this is convergence on its own
     confirm: bool = True  # scan once more at the converged estimate
+    confirm_above: float = 0.0  # ... unless the converged step is no larger than this
     polish_below: float | None = None  # after confirming, plain steps until one is below this (Firth)
     stop_on_rise: bool = False  # a rise ends the run at the last accepted point instead of halving
     protected: int = 0  # leading parameters never aliased (the intercept)
@@ -261,7 +263,7 @@ class NewtonRun:
         step then only added rounding); under ``polish_below``, plain steps until one is that small."""
         self.converged = True
         self.beta = self.beta + step
-        if not self.rules.confirm:
+        if not self.rules.confirm or (step.size == 0 or np.max(np.abs(step)) <= self.rules.confirm_above):
             return
         scan = yield self.beta, self.active  # not a pass: it only measures the estimate
         value = self.objective.value(self.beta, scan)
