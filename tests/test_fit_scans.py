@@ -104,3 +104,33 @@ def test_fitting_imports_no_pandas():
     )
     assert done.returncode == 0, done.stderr[-3000:]
     assert done.stdout.strip() == "False"
+
+
+BY_SEGMENT = "target ~ mean_radius + mean_texture + worst_smoothness"
+
+
+def _segment_fit(con, monkeypatch, sample_start_rows: int):
+    import dbfit.fitting.driver as driver
+
+    monkeypatch.setattr(driver, "SAMPLE_START_ROWS", sample_start_rows)
+    monkeypatch.setattr(driver, "SAMPLE_ROWS", 10**6)  # the whole table: the sample fit is the pooled fit
+    return dbfit.fit(con, BY_SEGMENT, "cancer", by="mean_radius * 1000 % 3 < 1", progress=False)
+
+
+def test_segments_start_from_the_pooled_fit_of_a_sample_and_need_fewer_grouped_passes(con, monkeypatch):
+    # Reference: statsmodels GLM Binomial within each segment. From the pooled estimates (the segment's
+    # intercept moved by its logit of the success rate) each segment is nearer its own estimates than from its
+    # intercept alone; the grouped passes fall and the estimates stay those of the intercept-only start.
+    _cancer(con)
+    from_intercept = _segment_fit(con, monkeypatch, 10**9)
+    from_pooled = _segment_fit(con, monkeypatch, 1)
+    assert from_pooled.passes < from_intercept.passes
+    frame = load_breast_cancer(as_frame=True).frame
+    segment = (frame["mean radius"] * 1000 % 3) < 1
+    for value, model in from_pooled.models.items():
+        other = from_intercept.models[value]
+        assert_close(model.estimates, other.estimates, 1e-10, f"segment {value} estimates")
+        assert_close(model.covariance, other.covariance, 1e-10, f"segment {value} covariance")
+        rows = frame[segment == value]
+        reference = sm.GLM(rows["target"], sm.add_constant(rows[PREDICTORS]), family=sm.families.Binomial())
+        assert_close(model.estimates, reference.fit(tol=1e-12).params.values, 1e-8, f"segment {value}")

@@ -218,11 +218,15 @@ def _fit(
     if by is not None:
         if start is not None:
             raise FitError("start= cannot be combined with by=: every segment starts from its own intercept")
+        pooled = None
+        if design.rows_used >= SAMPLE_START_ROWS and engine.dialect == "duckdb":
+            pooled = sample_fit(engine, design, fitted, max_iter, tol, None)
         return fit_segments(
             engine,
             design,
             fitted,
             constant,
+            pooled=pooled[0] if pooled is not None else None,
             max_iter=max_iter,
             tol=tol,
             reporter=reporter,
@@ -337,10 +341,34 @@ def _sample_start(
     full data (a chord method) close in on the answer, and one full Newton pass confirms it. Returns the
     start and the last deviance.
     """
+    fitted_sample = sample_fit(engine, design, fitted, max_iter, tol, reporter)
+    if fitted_sample is None:
+        return default_start, np.inf
+    sample, sample_rows = fitted_sample
+    start = np.zeros(len(fitted))
+    start[sample.active] = sample.beta
+    if sample.aliased:
+        return start, np.inf
+    scaled = sample.last.gram.scaled(design.rows_used / sample_rows)
+    return refine_with_fixed_information(
+        full_pass, fitted, start, scaled, design.saturated_loglik, reporter, tol
+    )
+
+
+def sample_fit(
+    engine: DuckDBEngine,
+    design: Design,
+    fitted: list[int],
+    max_iter: int,
+    tol: float,
+    reporter: Callable[[IterationReport], None] | None,
+) -> tuple[NewtonResult, int] | None:
+    """The Newton fit in numpy of SAMPLE_ROWS complete rows (the default start, tolerance SAMPLE_TOL) and the
+    rows it had; None when the sample is too small or its fit did not converge."""
     rows, reads_all = sampled_rows(design, SAMPLE_ROWS, SAMPLE_SEED)
     sample_rows = SampleArrays.fetch(engine, design, fitted, rows, scan=reads_all)
     if sample_rows.rows <= len(fitted):
-        return default_start, np.inf
+        return None
 
     def sample_report(item: IterationReport) -> None:
         item.phase = f"sample of {SAMPLE_ROWS:,} rows"
@@ -353,19 +381,12 @@ def _sample_start(
         report=sample_report if reporter else None,
     )
     sample = solve(
-        NewtonRun(Deviance(0.0), default_start, rules),
+        NewtonRun(Deviance(0.0), start_values(design, None, fitted), rules),
         lambda beta, active: sample_rows.statistics(active, beta),
     )
     if not sample.converged or sample.separation:
-        return default_start, np.inf
-    start = np.zeros(len(fitted))
-    start[sample.active] = sample.beta
-    if sample.aliased:
-        return start, np.inf
-    scaled = sample.last.gram.scaled(design.rows_used / sample_rows.rows)
-    return refine_with_fixed_information(
-        full_pass, fitted, start, scaled, design.saturated_loglik, reporter, tol
-    )
+        return None
+    return sample, sample_rows.rows
 
 
 def refine_with_fixed_information(

@@ -16,7 +16,8 @@ The solver only ever sees p x p numbers. A pass runs these steps, in this order,
 5. convergence (:meth:`NewtonRun.converged`): a small relative change of the objective with a small step, or
    a negligible step; a run that diverges under separation stops (Albert and Anderson 1984);
 6. finish (:meth:`NewtonRun.finish`): the converged step is confirmed by one more scan at the estimate (so
-   the information, log-likelihood and covariance returned are those of the estimate returned) and, for
+   the information, log-likelihood and covariance returned are those of the estimate returned; a run may
+   skip it when the step is too small to move them, ``NewtonRules.confirm_above``) and, for
    Firth's fit, polished with plain steps until negligible; the separation check of the converged fit.
 
 What differs between the fits is the :class:`Objective` (what a pass evaluates and how a step is found)
@@ -126,6 +127,7 @@ class NewtonRules:
     step_tolerance: float = STEP_TOLERANCE
     step_floor: float = STEP_FLOOR  # a step below this is convergence on its own
     confirm: bool = True  # scan once more at the converged estimate
+    confirm_above: float = 0.0  # ... unless the converged step is no larger than this
     polish_below: float | None = None  # after confirming, plain steps until one is below this (Firth)
     stop_on_rise: bool = False  # a rise ends the run at the last accepted point instead of halving
     protected: int = 0  # leading parameters never aliased (the intercept)
@@ -261,7 +263,7 @@ class NewtonRun:
         step then only added rounding); under ``polish_below``, plain steps until one is that small."""
         self.converged = True
         self.beta = self.beta + step
-        if not self.rules.confirm:
+        if not self.rules.confirm or (step.size == 0 or np.max(np.abs(step)) <= self.rules.confirm_above):
             return
         scan = yield self.beta, self.active  # not a pass: it only measures the estimate
         value = self.objective.value(self.beta, scan)
@@ -392,6 +394,8 @@ def aliased_columns(gram: Information, protected: int = 0) -> list[int]:
     """
     matrix = gram.aliasing_matrix()
     diagonal = np.diag(matrix).copy()
+    if _clearly_full_rank(matrix, diagonal):
+        return []
     keep: list[int] = []
     aliased: list[int] = []
     for j in range(matrix.shape[0]):
@@ -411,6 +415,20 @@ def aliased_columns(gram: Information, protected: int = 0) -> list[int]:
         else:
             keep.append(j)
     return aliased
+
+
+def _clearly_full_rank(matrix: np.ndarray, diagonal: np.ndarray) -> bool:
+    """Whether no column is aliased, from one Cholesky factorisation: the square of its j-th pivot is the
+    residual the sequential check computes for column j with every earlier column kept (Golub and Van Loan
+    2013, Matrix Computations, 4th ed., section 4.2). Pivots within a factor of two of the tolerance go to
+    the sequential check, so the two never decide differently through rounding."""
+    if not matrix.size or not np.all(diagonal > 0):
+        return False
+    try:
+        pivots = np.diag(np.linalg.cholesky(matrix))
+    except np.linalg.LinAlgError:
+        return False
+    return bool(np.all(pivots * pivots > 2.0 * ALIAS_TOLERANCE * diagonal))
 
 
 def _rose(value: float, reference: float) -> bool:
