@@ -134,3 +134,12 @@ def test_spark_scenario_agrees_with_duckdb(tmp_path):
     done, records = run_cli(tmp_path / "s.json", *arguments)
     gaps = [r["max_abs_difference"] for r in records if "max_abs_difference" in r]
     assert len(gaps) == 2 and max(gaps) < 1e-9, done.stdout  # pooled and per segment, Spark vs DuckDB
+
+
+def test_a_worker_reports_its_own_peak_memory_not_its_parents():
+    # A parent holding 400 MB starts a worker that holds little: the worker's peak must be its own.
+    held = b"\x01" * (400 * 2**20)  # written, so resident
+    code = "from dbfit.interfaces.bench import peak_rss_mb; print(peak_rss_mb())"
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert float(done.stdout) < 300, done.stdout
+    assert len(held) == 400 * 2**20

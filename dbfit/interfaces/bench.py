@@ -347,8 +347,22 @@ def _worker(task: dict[str, Any]) -> dict[str, Any]:
         result = WORKERS[task["kind"]](task)
     except MemoryError:
         result = {"status": "did not fit"}
-    result["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+    result["peak_rss_mb"] = peak_rss_mb()
     return result
+
+
+def peak_rss_mb() -> float:
+    """This process's own peak resident memory: VmHWM of /proc/self/status, which starts afresh with the new
+    program. ``ru_maxrss`` (the fallback off Linux) keeps the high-water mark of the process that started it
+    across fork and exec, so a small worker of a large parent reports the parent's peak."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as status:
+            for line in status:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024.0
+    except OSError:
+        pass
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
 OUT_OF_MEMORY_SIGNS = (
