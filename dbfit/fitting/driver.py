@@ -466,11 +466,12 @@ def statistics_pass(engine: DuckDBEngine, design: Design) -> StatisticsPass:
     STREAMED_MIN_COLUMNS columns, "streamed": the design's rows through numpy (:mod:`dbfit.fitting.streamed`);
     else "dense", the SQL sums (always on PostgreSQL and Spark, where the rows would cross the network).
     """
-    if cell_factors(design) and len(numeric_parts(design)) < STREAMED_MIN_COLUMNS:
-        return StatisticsPass(engine, design)
+    cells = cell_factors(design)  # the rule costs every subset of the factors: decided once, handed on
+    if cells and len(numeric_parts(design)) < STREAMED_MIN_COLUMNS:
+        return StatisticsPass(engine, design, cells=cells)
     if engine.dialect == "duckdb" and fitted_columns(design) >= STREAMED_MIN_COLUMNS:
-        return StreamedStatisticsPass(engine, design)
-    return StatisticsPass(engine, design)
+        return StreamedStatisticsPass(engine, design, cells=cells)
+    return StatisticsPass(engine, design, cells=cells)
 
 
 def numeric_parts(design: Design) -> set[tuple[int, ...]]:

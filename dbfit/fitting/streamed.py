@@ -150,8 +150,14 @@ class StreamedStatisticsPass(StatisticsPass):
     of columns serves every Newton step.
     """
 
-    def __init__(self, engine: DuckDBEngine, design: Design, rows: exp.Expression | None = None) -> None:
-        super().__init__(engine, design, rows)
+    def __init__(
+        self,
+        engine: DuckDBEngine,
+        design: Design,
+        rows: exp.Expression | None = None,
+        cells: tuple[int, ...] | None = None,
+    ) -> None:
+        super().__init__(engine, design, rows, cells)  # cells serve its score-only passes, which stay in SQL
         self.path = "streamed"
         self._queries: dict[tuple[tuple[int, ...], bool], str] = {}
 
