@@ -10,6 +10,7 @@ import io
 import threading
 from html.parser import HTMLParser
 
+import duckdb
 import numpy as np
 import pyarrow as pa
 import pytest
@@ -207,8 +208,19 @@ def test_connecting_twice_to_one_file_names_the_open_connection(tmp_path):
     path = str(tmp_path / "twice.duckdb")
     first = dbfit.connect(path)
     first.execute("CREATE TABLE kept AS SELECT 1 AS x")
-    with pytest.raises(dbfit.StoreError, match="already open through dbfit in this process"):
+    with pytest.raises(dbfit.StoreError, match="already open through dbfit"):
         dbfit.connect(path)
     assert first.execute("SELECT x FROM kept").fetchall() == [(1,)]  # the first connection still works
     first.close()
     dbfit.connect(path).close()  # once closed, the file opens again
+
+
+def test_installing_on_a_second_connection_to_an_open_file_names_it(tmp_path):
+    path = str(tmp_path / "again.duckdb")
+    first = dbfit.connect(path)
+    second = duckdb.connect(path)  # the same database instance, opened by the caller
+    with pytest.raises(dbfit.StoreError, match="already installed on this database"):
+        dbfit.install(second)
+    assert second.execute("SELECT 1").fetchall() == [(1,)]  # the caller's connection stays open and usable
+    second.close()
+    first.close()

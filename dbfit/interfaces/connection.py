@@ -28,14 +28,9 @@ def connect(database: str = ":memory:", **config: Any) -> Any:
         raise _lock_error(database, err) from None
     try:
         return install(con)
-    except duckdb.CatalogException as err:
-        if "already exists" not in str(err):
-            raise
+    except StoreError:
         con.close()
-        raise StoreError(
-            f"'{database}' is already open through dbfit in this process (an earlier dbfit.connect of the same "
-            "file, for example in a notebook cell run twice): use that connection, or close it first"
-        ) from None
+        raise
 
 
 def connect_existing(database: str, **config: Any) -> Any:
@@ -66,7 +61,16 @@ def install(con: duckdb.DuckDBPyConnection) -> duckdb.DuckDBPyConnection:
     """Install dbfit on an existing connection (the ``dbfit.`` SQL functions) and return it."""
     from dbfit.interfaces.sql_surface import register
 
-    register(con)
+    try:
+        register(con)
+    except duckdb.CatalogException as err:
+        if "already exists" not in str(err):
+            raise
+        raise StoreError(
+            "dbfit is already installed on this database in this process: it is already open through dbfit "
+            "(an earlier dbfit.connect or dbfit.install of the same file, for example in a notebook cell run "
+            "twice); use that connection, or close it first"
+        ) from None
     return con
 
 
