@@ -34,6 +34,15 @@ class Engine:
             self.scans += 1
         return self._run(self.sql(query))
 
+    def fetch_columns(self, query: exp.Expression, *, scan: bool = True) -> dict[str, Any]:
+        """Run ``query`` and return its columns as lists by name (for small results, such as a sample)."""
+        names = [name for name, _ in self.describe(query)]
+        rows = self.fetch(query, scan=scan)
+        return {name: [row[k] for row in rows] for k, name in enumerate(names)}
+
+    def describe(self, query: exp.Expression) -> list[tuple[str, str]]:
+        raise NotImplementedError
+
     def fetch_sql(self, sql: str, parameters: list[Any], *, scan: bool = True) -> list[tuple[Any, ...]]:
         """Run SQL that dbfit generated from a tree, with ``?`` parameters where the engine takes them."""
         if parameters and not self.parameters:

@@ -60,11 +60,23 @@ class BlockedStatisticsPass:
         columns = [k - offset for k in dense if not (design.intercept and k == 0)]
         level_values = [design.columns[k - offset].indicators[0][1] for k in parameters[len(dense) :]]
         level_beta = dict(zip(level_values, beta[len(dense) :]))
-        template = self._template(tuple(columns), intercept)
         factor = design.factors[self.factor]
         rows = [(v, factor.level_literal(v), [float(level_beta.get(v, 0.0))]) for v in factor.levels]
-        sql = template.render(rows)
-        fetched = self.engine.fetch_sql(sql, [float(b) for b in beta[: len(dense)]], scan=self.rows is None)
+        if self.engine.parameters:
+            sql = self._template(tuple(columns), intercept).render(rows)
+            fetched = self.engine.fetch_sql(
+                sql, [float(b) for b in beta[: len(dense)]], scan=self.rows is None
+            )
+        else:  # numbers written as literals: the dense coefficients in the tree, the levels' in a VALUES tree
+            query = statistics_query(
+                design,
+                columns,
+                intercept,
+                np.asarray(beta[: len(dense)], dtype=float),
+                self.rows,
+                level_join=(self.alias, level_coefficients(self.alias, rows)),
+            )
+            fetched = self.engine.fetch(query, scan=self.rows is None)
         groups = unpack_groups(
             query_plan(design, columns, intercept, level_join=True), fetched, separate=True
         )
@@ -104,6 +116,23 @@ class BlockedStatisticsPass:
                 self.engine.dialect,
             )
         return self._templates[key]
+
+
+def level_coefficients(alias: str, rows: list[tuple[Any, exp.Expression, list[float]]]) -> exp.Values:
+    """VALUES (level, g) AS dbfit_coef(alias, g): each level's coefficient as a literal, for engines whose
+    queries take no parameters (the relation :class:`dbfit.expressions.builders.ValuesTemplate` writes)."""
+    double = exp.DataType.build("DOUBLE")
+    tuples = [
+        exp.Tuple(expressions=[literal.copy(), exp.Cast(this=sb.number(numbers[0]), to=double.copy())])
+        for _, literal, numbers in rows
+    ]
+    return exp.Values(
+        expressions=tuples,
+        alias=exp.TableAlias(
+            this=exp.to_identifier("dbfit_coef"),
+            columns=[exp.to_identifier(alias, quoted=True), exp.to_identifier("g", quoted=True)],
+        ),
+    )
 
 
 def _assemble_blocks(

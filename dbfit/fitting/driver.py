@@ -16,7 +16,8 @@ from dbfit.design.term_resolution import resolve_formula
 from dbfit.engines import engine_for
 from dbfit.engines.duckdb_engine import DuckDBEngine
 from dbfit.engines.progress import progress_settings
-from dbfit.errors import FitError
+from dbfit.errors import DbfitError, FitError
+from dbfit.expressions.dialects import dialect
 from dbfit.expressions.formula import parse_formula
 from dbfit.expressions.source import source_relation
 from dbfit.fitting import firth as bias_reduction
@@ -219,7 +220,7 @@ def _fit(
         if start is not None:
             raise FitError("start= cannot be combined with by=: every segment starts from its own intercept")
         pooled = None
-        if design.rows_used >= SAMPLE_START_ROWS and engine.dialect == "duckdb":
+        if design.rows_used >= SAMPLE_START_ROWS:
             pooled = sample_fit(engine, design, fitted, max_iter, tol, None)
         return fit_segments(
             engine,
@@ -236,7 +237,7 @@ def _fit(
             options=recorded,
         )
 
-    factor = blocked_factor(design) if engine.parameters else None
+    factor = blocked_factor(design)
     if factor is not None and not (special.plain and special.robust_kind is None):  # prior correction is fine
         raise FitError(
             f"'{design.factors[factor].text}' has {len(design.factors[factor].levels)} levels: firth, shrinkage and "
@@ -254,12 +255,7 @@ def _fit(
         check_design_width(engine, design, special.plain and special.robust_kind is None)
         full_pass = statistics_pass(engine, design)
         statistics_path = full_pass.path
-        if (
-            start is None
-            and design.rows_used >= SAMPLE_START_ROWS
-            and special.plain
-            and engine.dialect == "duckdb"
-        ):
+        if start is None and design.rows_used >= SAMPLE_START_ROWS and special.plain:
             beta_start, start_deviance = _sample_start(
                 engine, design, full_pass, fitted, default_start, max_iter, tol, reporter
             )
@@ -314,9 +310,7 @@ def _fit(
     if special.penalty_request is not None:
         model = penalised.annotate(model, path, special.penalty_request)
     if special.robust_kind is not None:
-        model = robust_errors.with_robust_errors(
-            engine.connection, model, special.robust_kind, special.cluster
-        )
+        model = robust_errors.with_robust_errors(engine, model, special.robust_kind, special.cluster)
     if special.population_rate is not None:
         model = prior_correction.prior_corrected(model, special.population_rate)
     model.stats["statistics_path"] = statistics_path
@@ -336,10 +330,10 @@ def _sample_start(
     """Fit a sample of the complete rows in memory, and start from its estimates.
 
     The sample (see :func:`dbfit.fitting.sample_fit.sampled_rows`: a system sample of a table's row blocks,
-    otherwise a reservoir sample in one scan) is fetched once as its standardised design, and its Newton
-    passes run in numpy. From its estimates, score-only scans with the sample's information scaled to the
-    full data (a chord method) close in on the answer, and one full Newton pass confirms it. Returns the
-    start and the last deviance.
+    otherwise a reservoir or row-hash sample in one scan, as the engine's dialect has) is fetched once as its
+    standardised design, and its Newton passes run in numpy. From its estimates, score-only scans with the
+    sample's information scaled to the full data (a chord method) close in on the answer, and one full Newton
+    pass confirms it. Returns the start and the last deviance.
     """
     fitted_sample = sample_fit(engine, design, fitted, max_iter, tol, reporter)
     if fitted_sample is None:
@@ -365,8 +359,16 @@ def sample_fit(
 ) -> tuple[NewtonResult, int] | None:
     """The Newton fit in numpy of SAMPLE_ROWS complete rows (the default start, tolerance SAMPLE_TOL) and the
     rows it had; None when the sample is too small or its fit did not converge."""
-    rows, reads_all = sampled_rows(design, SAMPLE_ROWS, SAMPLE_SEED)
-    sample_rows = SampleArrays.fetch(engine, design, fitted, rows, scan=reads_all)
+    form = dialect(engine.dialect).fitting.sample
+    rows, reads_all = sampled_rows(design, SAMPLE_ROWS, SAMPLE_SEED, form)
+    try:
+        sample_rows = SampleArrays.fetch(engine, design, fitted, rows, scan=reads_all)
+    except DbfitError:
+        if reads_all or form != "system_hash":
+            raise
+        # PostgreSQL samples the blocks of tables only: a view's rows are sampled by their hash instead.
+        rows, reads_all = sampled_rows(design, SAMPLE_ROWS, SAMPLE_SEED, "hash")
+        sample_rows = SampleArrays.fetch(engine, design, fitted, rows, scan=reads_all)
     if sample_rows.rows <= len(fitted):
         return None
 

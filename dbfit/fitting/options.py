@@ -173,10 +173,11 @@ class FitOptions:
 
     def check_engine(self, dialect: str) -> None:
         """Refuse what only DuckDB can fit."""
-        if dialect != "duckdb" and (self.trials is not None or not self.variants().ordinary):
+        beyond_robust = not self.variants().plain or self.population_rate is not None
+        if dialect != "duckdb" and (self.trials is not None or beyond_robust):
             raise FitError(
-                f"on {dialect}, dbfit fits plain models (weights, offset and by= allowed); trials, "
-                "firth, shrinkage, robust and population_rate need DuckDB for now"
+                f"on {dialect}, dbfit fits plain models (weights, offset, robust and by= allowed); "
+                "trials, firth, shrinkage and population_rate need DuckDB for now"
             )
 
 

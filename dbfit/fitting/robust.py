@@ -12,13 +12,14 @@ row's score, they do not replicate rows.
 from __future__ import annotations
 
 import dataclasses
+from typing import Any
 
-import duckdb
 import numpy as np
 from sqlglot import exp
 
 from dbfit.design.layout import Design
-from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.engines import engine_for
+from dbfit.engines.base import Engine
 from dbfit.errors import FitError
 from dbfit.expressions import builders as sb
 from dbfit.expressions.formula import parse_expression
@@ -93,7 +94,7 @@ def _aliased_select(values: list[exp.Expression]) -> exp.Select:
 
 
 def sandwich_parts(
-    engine: DuckDBEngine, design: Design, parameters: list[int], beta: np.ndarray, cluster_text: str | None
+    engine: Engine, design: Design, parameters: list[int], beta: np.ndarray, cluster_text: str | None
 ) -> SandwichParts:
     cluster = parse_expression(cluster_text, "cluster") if cluster_text is not None else None
     row = engine.fetch(sandwich_query(design, parameters, beta, cluster))[0]
@@ -135,18 +136,20 @@ def describe(kind: str, cluster: str | None, clusters: int) -> str:
 
 
 def with_robust_errors(
-    con: duckdb.DuckDBPyConnection, model: Model, robust: str | None = None, cluster: str | None = None
+    con: Any, model: Model, robust: str | None = None, cluster: str | None = None
 ) -> Model:
     """A copy of ``model`` with sandwich standard errors (HC0, HC1 or cluster-robust by ``cluster``).
 
-    Runs one aggregate scan at the model's estimates; the estimates themselves do not change.
+    Runs one aggregate scan at the model's estimates on ``con`` (a DuckDB or psycopg connection or a
+    SparkSession holding the model's source); the estimates themselves do not change.
     """
     kind = choose_kind(robust, cluster)
     if kind is None:
         raise FitError("give robust='HC0', 'HC1' or 'cluster' (with cluster=<SQL expression>)")
     if model.options.get("shrinkage") is not None:
         raise FitError("sandwich standard errors are not defined for a penalised fit")
-    engine = DuckDBEngine(con)
+    engine = engine_for(con)
+    scans_before = engine.scans
     design = model.design
     active = [k for k in range(len(model.labels)) if np.isfinite(model.estimates[k])]
     transform = inference.original_scale_map(design, active)
@@ -156,7 +159,7 @@ def with_robust_errors(
     covariance = np.full_like(model.covariance, np.nan)
     covariance[np.ix_(active, active)] = transform @ internal @ transform.T
     stats = dict(model.stats)
-    stats["scans"] = stats.get("scans", 0) + engine.scans
+    stats["scans"] = stats.get("scans", 0) + engine.scans - scans_before
     stats["covariance"] = kind
     if kind == "cluster":
         stats["clusters"] = parts.clusters

@@ -16,7 +16,7 @@ import numpy as np
 from sqlglot import exp
 
 from dbfit.design.layout import Design
-from dbfit.engines.duckdb_engine import DuckDBEngine
+from dbfit.engines.base import Engine
 from dbfit.expressions import builders as sb
 from dbfit.fitting.rowterms import ONE, carried_columns, z_columns
 from dbfit.fitting.statistics import EXTREME_ETA
@@ -25,22 +25,29 @@ from dbfit.solver.information import PassResult
 CARRIED = ("off", "y", "pw", "n")
 
 
-def sampled_rows(design: Design, rows: int, seed: int) -> tuple[exp.Select, bool]:
+HASH_RANGE = 1_000_000  # a row-hash sample keeps the rows whose hash modulo this is below share * HASH_RANGE
+
+
+def sampled_rows(design: Design, rows: int, seed: int, form: str) -> tuple[exp.Select, bool]:
     """About ``rows`` of the complete rows, and whether drawing them reads every row of the source.
 
-    Of a table: a repeatable system sample of its row blocks, which reads only those blocks. Of any other
-    source: a reservoir sample of the complete rows (one scan).
+    ``form`` is the engine dialect's ``FittingForms.sample``. Of a table, where the engine samples row
+    blocks: a repeatable system sample of them, which reads only those blocks. Of any other source: a
+    reservoir sample of the complete rows, or where the engine has none, the rows whose row hash falls in
+    the share wanted of its range (deterministic without a seed); either reads every row once.
     """
-    if isinstance(design.relation, exp.Table) and not design.relation.args.get("sample"):
-        share = min(100.0, 100.0 * rows / max(design.rows_total, 1))
+    percent = min(100.0, 100.0 * rows / max(design.rows_total, 1))
+    if form != "hash" and isinstance(design.relation, exp.Table) and not design.relation.args.get("sample"):
         sampled = design.relation.copy()
         sampled.set(
             "sample",
             exp.TableSample(
-                method=exp.var("SYSTEM"), percent=sb.number(round(share, 6)), seed=exp.Literal.number(seed)
+                method=exp.var("SYSTEM"), percent=sb.number(round(percent, 6)), seed=exp.Literal.number(seed)
             ),
         )
         return replace(design, relation=sampled).base_query(), False
+    if form != "system_reservoir":
+        return hashed_sample(design, percent / 100.0), True
     reservoir = exp.select("*").from_(design.base_query().subquery("dbfit_complete"))
     reservoir.set(
         "sample",
@@ -49,6 +56,27 @@ def sampled_rows(design: Design, rows: int, seed: int) -> tuple[exp.Select, bool
         ),
     )
     return reservoir, True
+
+
+def hashed_sample(design: Design, share: float) -> exp.Select:
+    """The complete rows whose row hash modulo HASH_RANGE is below ``share`` of it.
+
+    The hash is written as DuckDB's ``hash`` of the whole row, which each engine's dialect rewrites in its own
+    row-hash form (:func:`dbfit.expressions.dialects.rewrite.adapt`).
+    """
+    row_hash = exp.Cast(
+        this=exp.Anonymous(this="hash", expressions=[exp.column("dbfit_complete", quoted=True)]),
+        to=exp.DataType.build("HUGEINT"),
+    )
+    whole = exp.Literal.number(HASH_RANGE)
+    remainder = exp.Mod(
+        this=sb.paren(sb.add(exp.Mod(this=row_hash, expression=whole), whole)), expression=whole
+    )
+    hashed = exp.select("*", exp.alias_(remainder, "dbfit_row_hash", quoted=True)).from_(
+        design.base_query().subquery("dbfit_complete")
+    )
+    kept = exp.LT(this=sb.column("dbfit_row_hash"), expression=exp.Literal.number(round(share * HASH_RANGE)))
+    return exp.select("*").from_(hashed.subquery("dbfit_hashed")).where(kept)
 
 
 @dataclass(frozen=True)
@@ -68,7 +96,7 @@ class SampleArrays:
 
     @classmethod
     def fetch(
-        cls, engine: DuckDBEngine, design: Design, parameters: list[int], rows: exp.Select, scan: bool
+        cls, engine: Engine, design: Design, parameters: list[int], rows: exp.Select, scan: bool
     ) -> SampleArrays:
         """Fetch ``rows`` (complete rows, as :meth:`Design.base_query` gives them) once, as arrays of
         ``parameters`` (indices into the design's labels, intercept first)."""

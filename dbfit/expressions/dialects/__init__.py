@@ -36,6 +36,10 @@ class FittingForms:
     # "md5_text": the first 16 hex digits of md5 of the row's text as a BIGINT; "xxhash64_text": xxhash64 of
     # the row's text. Each engine's checksum differs from the others' but is stable on that engine.
     row_hash: Literal["hash", "md5_text", "xxhash64_text"] = "hash"
+    # A sample of the complete rows (dbfit.fitting.sample_fit): "system_reservoir": a table's row blocks by
+    # TABLESAMPLE SYSTEM ... REPEATABLE, any other source by a reservoir; "system_hash": a table's row blocks,
+    # any other source the rows whose row hash falls in a share of its range; "hash": that filter always.
+    sample: Literal["system_reservoir", "system_hash", "hash"] = "system_reservoir"
 
 
 @dataclass(frozen=True)

@@ -10,6 +10,7 @@ from dbfit.expressions.dialects import DOUBLE_EXP_LIMIT, Dialect, FittingForms
 # The planner inlines a subquery's expressions into every aggregate above it; OFFSET 0 fences each one.
 # No SQL function raises an error with a message, so unseen='error' is refused. No quantile_cont: the
 # ordered-set aggregate percentile_cont (the same interpolation); no hash of a row: md5 of its text.
+# TABLESAMPLE applies to tables only (not views or subqueries), and no reservoir sample: a row-hash filter.
 POSTGRES = Dialect(
     name="postgres",
     exp_limit=DOUBLE_EXP_LIMIT,
@@ -22,5 +23,6 @@ POSTGRES = Dialect(
         fences_subqueries=True,
         quantiles="percentile_cont",
         row_hash="md5_text",
+        sample="system_hash",
     ),
 )

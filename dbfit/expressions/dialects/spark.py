@@ -7,7 +7,9 @@ from dbfit.expressions.dialects import DOUBLE_EXP_LIMIT, Dialect, FittingForms
 # Spark's exp returns 0 or Infinity out of range; its arguments are clamped all the same, so an exp() in a
 # formula gives the same finite numbers as on PostgreSQL. No quantile_cont: percentile (exact, the same
 # interpolation); the row hash is xxhash64 of the row's text (hashing the columns themselves skips NULLs, so
-# (NULL, 1) and (1, NULL) would hash alike).
+# (NULL, 1) and (1, NULL) would hash alike). Samples by a row-hash filter: Spark 4 reads
+# TABLESAMPLE (p PERCENT) REPEATABLE (seed), but sqlglot 30 writes it with SEED, which Spark refuses; its
+# sample reads every row anyway.
 SPARK = Dialect(
     name="spark",
     exp_limit=DOUBLE_EXP_LIMIT,
@@ -20,5 +22,6 @@ SPARK = Dialect(
         fences_subqueries=False,
         quantiles="percentile",
         row_hash="xxhash64_text",
+        sample="hash",
     ),
 )
