@@ -80,7 +80,7 @@ def test_postgres_errors_are_translated(postgres):
     with pytest.raises(dbfit.SourceError):
         dbfit.fit(postgres, "low ~ age", "no_such_table", progress=False)
     with pytest.raises(dbfit.FitError, match="need DuckDB"):
-        dbfit.fit(postgres, "low ~ age", "birthwt", firth=True, progress=False)
+        dbfit.fit(postgres, "low ~ age", "birthwt", robust="HC1", progress=False)
 
 
 @pytest.fixture(scope="module")

@@ -172,11 +172,11 @@ class FitOptions:
             raise FitError("start= cannot be combined with by=: every segment starts from its own intercept")
 
     def check_engine(self, dialect: str) -> None:
-        """Refuse what only DuckDB can fit."""
-        if dialect != "duckdb" and (self.trials is not None or not self.variants().ordinary):
+        """Refuse what only DuckDB can fit: robust (sandwich) standard errors, clustered or not."""
+        if dialect != "duckdb" and self.robust_kind is not None:
             raise FitError(
-                f"on {dialect}, dbfit fits plain models (weights, offset and by= allowed); trials, "
-                "firth, shrinkage, robust and population_rate need DuckDB for now"
+                f"on {dialect}, robust= and cluster= (sandwich standard errors) need DuckDB for now; trials, "
+                "firth, shrinkage, l1_share, population_rate and by= fit on every engine"
             )
 
 

@@ -36,6 +36,15 @@ class FittingForms:
     # "md5_text": the first 16 hex digits of md5 of the row's text as a BIGINT; "xxhash64_text": xxhash64 of
     # the row's text. Each engine's checksum differs from the others' but is stable on that engine.
     row_hash: Literal["hash", "md5_text", "xxhash64_text"] = "hash"
+    # The first 32 bits of an MD5 as a whole number (the split hash of dbfit.expressions.splits): DuckDB reads
+    # CAST('0x' || hex AS BIGINT); "bit_string": ('x' || hex)::BIT(32)::BIGINT; "conv": conv(hex, 16, 10).
+    hex_number: Literal["hex_literal", "bit_string", "conv"] = "hex_literal"
+    # lgamma(x) (the log binomial coefficients of grouped targets): the engine's own, or "series": Stirling's
+    # series, exact to a few units in the last place (see dbfit.expressions.dialects.rewrite).
+    log_gamma: Literal["lgamma", "series"] = "lgamma"
+    # The text of a DOUBLE (CAST(CAST(x AS DOUBLE) AS VARCHAR), as in a split key): DuckDB writes a whole
+    # number with '.0'; "whole_point" writes whole numbers below 1e15 so ('1.0'), the engine's text otherwise.
+    double_text: Literal["as_cast", "whole_point"] = "as_cast"
 
 
 @dataclass(frozen=True)

@@ -7,7 +7,9 @@ from dbfit.expressions.dialects import DOUBLE_EXP_LIMIT, Dialect, FittingForms
 # Spark's exp returns 0 or Infinity out of range; its arguments are clamped all the same, so an exp() in a
 # formula gives the same finite numbers as on PostgreSQL. No quantile_cont: percentile (exact, the same
 # interpolation); the row hash is xxhash64 of the row's text (hashing the columns themselves skips NULLs, so
-# (NULL, 1) and (1, NULL) would hash alike).
+# (NULL, 1) and (1, NULL) would hash alike). Hex digits become a number through conv(hex, 16, 10); there is
+# no lgamma: Stirling's series stands in for it.
+# Spark writes the DOUBLE 1e7 as '1.0E7' where DuckDB writes '10000000.0'.
 SPARK = Dialect(
     name="spark",
     exp_limit=DOUBLE_EXP_LIMIT,
@@ -20,5 +22,8 @@ SPARK = Dialect(
         fences_subqueries=False,
         quantiles="percentile",
         row_hash="xxhash64_text",
+        hex_number="conv",
+        log_gamma="series",
+        double_text="whole_point",
     ),
 )
