@@ -24,3 +24,13 @@ def birthwt_frame() -> Any:
     frame["race_name"] = frame.race.map({1: "white", 2: "black", 3: "other"})
     frame["visits"] = frame.ftv.astype(float)
     return frame[["low", "age", "lwt", "race_name", "smoke", "visits"]]
+
+
+def copy_frame(connection: Any, table: str, frame: Any) -> None:
+    """``copy_table`` of a pandas frame, each column typed from its dtype (whole numbers, doubles or text)."""
+
+    def sql_type(dtype: Any) -> str:
+        return "bigint" if dtype.kind in "iu" else "double precision" if dtype.kind == "f" else "text"
+
+    columns = ", ".join(f"{name} {sql_type(dtype)}" for name, dtype in frame.dtypes.items())
+    copy_table(connection, table, columns, frame.itertuples(index=False))

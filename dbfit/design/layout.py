@@ -491,8 +491,15 @@ def outcome_sums(design: Design) -> dict[str, exp.Expression]:
         "trial_sum": sb.agg_sum(sb.mul(w.copy(), n.copy())),
     }
     if design.trials is not None:
-        sums["loglik_constant"] = sb.agg_sum(sb.mul(w.copy(), _log_binomial(y, n)))
-        sums["saturated_loglik"] = sb.agg_sum(sb.mul(w.copy(), _saturated_term(y, n)))
+        # Rows breaking 0 <= successes <= trials are refused after the scan; they add 0 here, so that engines
+        # whose ln and division raise (PostgreSQL, Spark) reach that message instead of failing the scan.
+        valid = exp.Not(this=sb.paren(_bad_target_condition(design)))
+        for name, term in (
+            ("loglik_constant", _log_binomial(y, n)),
+            ("saturated_loglik", _saturated_term(y, n)),
+        ):
+            only_valid = exp.If(this=valid.copy(), true=term, false=exp.Literal.number(0))
+            sums[name] = sb.agg_sum(sb.mul(w.copy(), only_valid))
     return sums
 
 

@@ -1,7 +1,10 @@
 """Splits of a source by the hash of a key: a holdout share or k folds, as SQL conditions (no I/O).
 
 A row's place comes from the first 32 bits of the MD5 of its key's text, so the same rows fall in the same part
-on every run and every engine that computes MD5 alike (common practice for reproducible splits).
+on every run and every engine that computes MD5 alike (common practice for reproducible splits). The trees are
+built in DuckDB's terms (CAST('0x' || hex AS BIGINT)); dbfit.expressions.dialects.rewrite spells the hex number
+for PostgreSQL and Spark. The key's text must read alike on every engine: whole numbers, text and booleans do,
+but a DOUBLE is written '1.0' by DuckDB and Spark and '1' by PostgreSQL, so a DOUBLE key splits differently there.
 """
 
 from __future__ import annotations
@@ -12,6 +15,8 @@ from sqlglot import exp
 
 from dbfit.errors import FitError
 from dbfit.expressions import builders as sb
+from dbfit.expressions import dialects
+from dbfit.expressions.dialects.rewrite import adapt
 from dbfit.expressions.formula import parse_expression
 from dbfit.expressions.source import source_relation
 
@@ -102,6 +107,14 @@ def part_relation(
     return rows.subquery("dbfit_part_rows")
 
 
-def part_source(source: str, split: Holdout | KFold, part: str | int, *, keep: bool = True) -> str:
-    """One part of the split of ``source`` as a SELECT (text written by sqlglot from the parsed source)."""
-    return exp.select("*").from_(part_relation(source_relation(source), split, part, keep=keep)).sql("duckdb")
+def part_source(
+    source: str, split: Holdout | KFold, part: str | int, *, keep: bool = True, dialect: str = "duckdb"
+) -> str:
+    """One part of the split of ``source`` as a SELECT (text written by sqlglot from the parsed source).
+
+    dbfit reads source text in DuckDB's terms on every engine and rewrites the hash for the engine it runs on,
+    so the default text serves as the source of a fit or an assessment on PostgreSQL and Spark as well.
+    ``dialect="postgres"`` or ``"spark"`` writes the SELECT to run on that engine directly (in psql, say).
+    """
+    rows = exp.select("*").from_(part_relation(source_relation(source), split, part, keep=keep))
+    return adapt(rows, dialects.dialect(dialect)).sql(dialect)

@@ -162,7 +162,6 @@ def fit_with(
     """:func:`fit` with its options already checked (each entry point builds :class:`FitOptions` once)."""
     check_progress(progress)
     engine = engine_for(con)
-    options.check_engine(engine.dialect)
     engine.live_progress = (
         engine.dialect == "duckdb"
         and progress is not False

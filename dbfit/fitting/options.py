@@ -171,15 +171,6 @@ class FitOptions:
         if self.by is not None and self.start is not None:
             raise FitError("start= cannot be combined with by=: every segment starts from its own intercept")
 
-    def check_engine(self, dialect: str) -> None:
-        """Refuse what only DuckDB can fit."""
-        beyond_robust = not self.variants().plain or self.population_rate is not None
-        if dialect != "duckdb" and (self.trials is not None or beyond_robust):
-            raise FitError(
-                f"on {dialect}, dbfit fits plain models (weights, offset, robust and by= allowed); "
-                "trials, firth, shrinkage and population_rate need DuckDB for now"
-            )
-
 
 # The options a user gives (derived values such as robust_kind are not among them), in declaration order.
 OPTION_NAMES = tuple(f.name for f in dataclasses.fields(FitOptions) if f.compare)

@@ -40,6 +40,15 @@ class FittingForms:
     # TABLESAMPLE SYSTEM ... REPEATABLE, any other source by a reservoir; "system_hash": a table's row blocks,
     # any other source the rows whose row hash falls in a share of its range; "hash": that filter always.
     sample: Literal["system_reservoir", "system_hash", "hash"] = "system_reservoir"
+    # The first 32 bits of an MD5 as a whole number (the split hash of dbfit.expressions.splits): DuckDB reads
+    # CAST('0x' || hex AS BIGINT); "bit_string": ('x' || hex)::BIT(32)::BIGINT; "conv": conv(hex, 16, 10).
+    hex_number: Literal["hex_literal", "bit_string", "conv"] = "hex_literal"
+    # lgamma(x) (the log binomial coefficients of grouped targets): the engine's own, or "series": Stirling's
+    # series, exact to a few units in the last place (see dbfit.expressions.dialects.rewrite).
+    log_gamma: Literal["lgamma", "series"] = "lgamma"
+    # The text of a DOUBLE (CAST(CAST(x AS DOUBLE) AS VARCHAR), as in a split key): DuckDB writes a whole
+    # number with '.0'; "whole_point" writes whole numbers below 1e15 so ('1.0'), the engine's text otherwise.
+    double_text: Literal["as_cast", "whole_point"] = "as_cast"
 
 
 @dataclass(frozen=True)

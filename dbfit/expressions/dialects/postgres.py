@@ -10,7 +10,10 @@ from dbfit.expressions.dialects import DOUBLE_EXP_LIMIT, Dialect, FittingForms
 # The planner inlines a subquery's expressions into every aggregate above it; OFFSET 0 fences each one.
 # No SQL function raises an error with a message, so unseen='error' is refused. No quantile_cont: the
 # ordered-set aggregate percentile_cont (the same interpolation); no hash of a row: md5 of its text.
-# TABLESAMPLE applies to tables only (not views or subqueries), and no reservoir sample: a row-hash filter.
+# TABLESAMPLE applies to tables only (not views or subqueries), and no reservoir sample: a row-hash filter. No
+# hexadecimal literal in a cast to BIGINT: the hex digits go through a BIT(32) string. lgamma only arrives in
+# PostgreSQL 18: Stirling's series stands in for it.
+# PostgreSQL writes the DOUBLE 1 as '1' where DuckDB writes '1.0'.
 POSTGRES = Dialect(
     name="postgres",
     exp_limit=DOUBLE_EXP_LIMIT,
@@ -24,5 +27,8 @@ POSTGRES = Dialect(
         quantiles="percentile_cont",
         row_hash="md5_text",
         sample="system_hash",
+        hex_number="bit_string",
+        log_gamma="series",
+        double_text="whole_point",
     ),
 )

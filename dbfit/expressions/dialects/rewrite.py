@@ -5,6 +5,9 @@ sqlglot then writes the rewritten tree in that engine's dialect; DuckDB's own tr
 
 from __future__ import annotations
 
+import math
+from collections.abc import Callable
+
 from sqlglot import exp
 
 from dbfit.errors import DbfitError
@@ -23,12 +26,24 @@ def adapt(query: exp.Expression, dialect: Dialect) -> exp.Expression:
         raise DbfitError(f"dbfit does not fit models on {dialect.name}; it writes scoring SQL for it only")
     if forms == AS_BUILT:
         return query
-    tree = query.copy().transform(lambda node: _rewrite(node, forms, dialect.exp_limit))
+    tree = _bottom_up(query.copy(), lambda node: _rewrite(node, forms, dialect.exp_limit))
     if forms.fences_subqueries:
         for subquery in list(tree.find_all(exp.Subquery)):
             inner = subquery.this
             if isinstance(inner, exp.Select) and not inner.args.get("offset") and not inner.args.get("limit"):
                 inner.set("offset", exp.Offset(expression=exp.Literal.number(0)))
+    return tree
+
+
+def _bottom_up(tree: exp.Expression, rewrite: Callable[[exp.Expression], exp.Expression]) -> exp.Expression:
+    """``tree`` with ``rewrite`` applied to every node, children before their parent, so that a rewritten
+    node's arguments (an exp inside an exp, the key inside a split hash) are in the engine's forms too."""
+    for node in reversed([n for n in tree.walk(bfs=False) if isinstance(n, exp.Expression)]):
+        replacement = rewrite(node)
+        if replacement is not node:
+            if node is tree:
+                return replacement
+            node.replace(replacement)
     return tree
 
 
@@ -42,6 +57,16 @@ def _rewrite(node: exp.Expression, forms: FittingForms, limit: float) -> exp.Exp
         return _quantiles(node, forms.quantiles)
     if isinstance(node, exp.Cast) and _is_row_hash(node.this) and forms.row_hash != "hash":
         return _row_hash(node.this.expressions[0], forms.row_hash)
+    if forms.double_text == "whole_point" and _is_double_text(node):
+        return _double_text(node.this)
+    digits = _hex_digits(node)
+    if digits is not None and forms.hex_number != "hex_literal":
+        return _hex_number(digits, forms.hex_number)
+    is_lgamma = (
+        isinstance(node, exp.Anonymous) and node.name.lower() == "lgamma" and len(node.expressions) == 1
+    )
+    if is_lgamma and forms.log_gamma == "series":
+        return _log_gamma(node.expressions[0])
     levels = isinstance(node, exp.ArrayAgg) and isinstance(node.this, exp.Order)
     if levels and forms.sorted_levels == "collect_set":
         distinct = node.this.this
@@ -113,3 +138,117 @@ def _row_hash(row: exp.Expression, form: str) -> exp.Expression:
     )
     hashed = exp.Anonymous(this="xxhash64", expressions=[text])
     return exp.Cast(this=hashed, to=exp.DataType.build("DECIMAL(38, 0)"))
+
+
+def _is_double_text(node: exp.Expression) -> bool:
+    text_types = (exp.DataType.Type.VARCHAR, exp.DataType.Type.TEXT)
+    return (
+        isinstance(node, exp.Cast)
+        and node.to.is_type(*text_types)
+        and isinstance(node.this, exp.Cast)
+        and node.this.to.is_type(exp.DataType.Type.DOUBLE)
+    )
+
+
+def _double_text(double: exp.Expression) -> exp.Expression:
+    """DuckDB's text of the DOUBLE ``double`` for whole numbers below 1e15 ('3.0'), the engine's otherwise."""
+    whole = exp.and_(
+        exp.EQ(this=double.copy(), expression=exp.Floor(this=double.copy())),
+        exp.LT(this=exp.Abs(this=double.copy()), expression=exp.Literal.number("1e15")),
+    )
+    digits = exp.Cast(
+        this=exp.Cast(this=double.copy(), to=exp.DataType.build("BIGINT")), to=exp.DataType.build("VARCHAR")
+    )
+    return exp.Case(
+        ifs=[exp.If(this=whole, true=exp.DPipe(this=digits, expression=exp.Literal.string(".0")))],
+        default=exp.Cast(this=double.copy(), to=exp.DataType.build("VARCHAR")),
+    )
+
+
+def _hex_digits(node: exp.Expression) -> exp.Expression | None:
+    """The hex digits of CAST('0x' || digits AS BIGINT) (built as CONCAT, read back from text as ||)."""
+    if not isinstance(node, exp.Cast) or not node.to.is_type(exp.DataType.Type.BIGINT):
+        return None
+    inner = node.this
+    if isinstance(inner, exp.DPipe):
+        parts = [inner.this, inner.expression]
+    elif isinstance(inner, exp.Concat):
+        parts = list(inner.expressions)
+    else:
+        return None
+    is_prefix = isinstance(parts[0], exp.Literal) and parts[0].is_string and parts[0].this == "0x"
+    return parts[1] if len(parts) == 2 and is_prefix else None
+
+
+def _hex_number(digits: exp.Expression, form: str) -> exp.Expression:
+    """Up to 8 hex digits as the BIGINT they spell (0 .. 2^32 - 1), without a hexadecimal literal."""
+    if form == "bit_string":
+        bits = exp.Cast(
+            this=exp.DPipe(this=exp.Literal.string("x"), expression=digits.copy()),
+            to=exp.DataType.build("BIT(32)", dialect="postgres"),
+        )
+        return exp.Cast(this=bits, to=exp.DataType.build("BIGINT"))
+    decimal = exp.Anonymous(
+        this="conv", expressions=[digits.copy(), exp.Literal.number(16), exp.Literal.number(10)]
+    )
+    return exp.Cast(this=decimal, to=exp.DataType.build("BIGINT"))
+
+
+# B_2k / (2k (2k - 1)) for k = 1 .. 7: the coefficients of Stirling's series for ln Gamma (Abramowitz and
+# Stegun 1964, 6.1.40). The series envelops ln Gamma(x) for x > 0: its error is below the first omitted term,
+# 3617 / (122400 x^15), which is under 3e-17 for x >= 10.
+_STIRLING = (1 / 12, -1 / 360, 1 / 1260, -1 / 1680, 1 / 1188, -691 / 360360, 1 / 156)
+_SERIES_FROM = 10
+
+
+def _log_gamma(x: exp.Expression) -> exp.Expression:
+    """ln Gamma(x) for x > 0 (NULL otherwise) from arithmetic and ln alone, for engines without lgamma.
+
+    Stirling's series for x >= 10; below, the recurrence Gamma(x + 10) = x (x + 1) ... (x + 9) Gamma(x)
+    (Abramowitz and Stegun 1964, 6.1.15) carries x into the series' range, where the product stays below 20!.
+    A few units in the last place from the C library's lgamma, in the same scan as the rest of the sums: a
+    grouped query over the distinct (trials, successes) pairs, with lgamma in numpy, would cost a second scan
+    and a result as large as the number of distinct pairs.
+    """
+    shifted = exp.Paren(this=exp.Add(this=x.copy(), expression=exp.Literal.number(_SERIES_FROM)))
+    product: exp.Expression = exp.Paren(this=x.copy())
+    for step in range(1, _SERIES_FROM):
+        term = exp.Paren(this=exp.Add(this=x.copy(), expression=exp.Literal.number(step)))
+        product = exp.Mul(this=product, expression=term)
+    return exp.Case(
+        ifs=[
+            exp.If(
+                this=exp.GTE(this=x.copy(), expression=exp.Literal.number(_SERIES_FROM)),
+                true=_stirling(exp.Paren(this=x.copy())),
+            ),
+            exp.If(
+                this=exp.GT(this=x.copy(), expression=exp.Literal.number(0)),
+                true=exp.Sub(this=_stirling(shifted), expression=exp.Ln(this=product)),
+            ),
+        ]
+    )
+
+
+def _stirling(x: exp.Expression) -> exp.Expression:
+    """(x - 1/2) ln x - x + ln(2 pi) / 2 + sum_k c_k / x^(2k - 1), the sum in Horner form in 1 / x^2."""
+    inverse_square = exp.Div(
+        this=exp.Literal.number(1), expression=exp.Paren(this=exp.Mul(this=x.copy(), expression=x.copy()))
+    )
+    tail: exp.Expression = exp.Literal.number(repr(_STIRLING[-1]))
+    for coefficient in reversed(_STIRLING[:-1]):
+        scaled = exp.Mul(this=exp.Paren(this=inverse_square.copy()), expression=exp.Paren(this=tail))
+        tail = exp.Add(this=_signed(coefficient), expression=scaled)
+    half_log_two_pi = exp.Literal.number(repr(0.5 * math.log(2 * math.pi)))
+    leading = exp.Mul(
+        this=exp.Paren(this=exp.Sub(this=x.copy(), expression=exp.Literal.number(0.5))),
+        expression=exp.Ln(this=x.copy()),
+    )
+    main = exp.Add(this=exp.Sub(this=leading, expression=x.copy()), expression=half_log_two_pi)
+    return exp.Paren(
+        this=exp.Add(this=main, expression=exp.Div(this=exp.Paren(this=tail), expression=x.copy()))
+    )
+
+
+def _signed(value: float) -> exp.Expression:
+    literal = exp.Literal.number(repr(abs(value)))
+    return exp.Paren(this=exp.Neg(this=literal)) if value < 0 else literal

@@ -9,7 +9,9 @@ from dbfit.expressions.dialects import DOUBLE_EXP_LIMIT, Dialect, FittingForms
 # interpolation); the row hash is xxhash64 of the row's text (hashing the columns themselves skips NULLs, so
 # (NULL, 1) and (1, NULL) would hash alike). Samples by a row-hash filter: Spark 4 reads
 # TABLESAMPLE (p PERCENT) REPEATABLE (seed), but sqlglot 30 writes it with SEED, which Spark refuses; its
-# sample reads every row anyway.
+# sample reads every row anyway. Hex digits become a number through conv(hex, 16, 10); there is
+# no lgamma: Stirling's series stands in for it.
+# Spark writes the DOUBLE 1e7 as '1.0E7' where DuckDB writes '10000000.0'.
 SPARK = Dialect(
     name="spark",
     exp_limit=DOUBLE_EXP_LIMIT,
@@ -23,5 +25,8 @@ SPARK = Dialect(
         quantiles="percentile",
         row_hash="xxhash64_text",
         sample="hash",
+        hex_number="conv",
+        log_gamma="series",
+        double_text="whole_point",
     ),
 )
