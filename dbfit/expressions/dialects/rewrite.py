@@ -9,6 +9,7 @@ from sqlglot import exp
 
 from dbfit.errors import DbfitError
 from dbfit.expressions.dialects import Dialect, FittingForms
+from dbfit.expressions.dialects.date_parts import write_date_parts
 
 # The forms the trees are built in (DuckDB's): queries in these forms run as built.
 AS_BUILT = FittingForms(
@@ -29,7 +30,7 @@ def adapt(query: exp.Expression, dialect: Dialect) -> exp.Expression:
             inner = subquery.this
             if isinstance(inner, exp.Select) and not inner.args.get("offset") and not inner.args.get("limit"):
                 inner.set("offset", exp.Offset(expression=exp.Literal.number(0)))
-    return tree
+    return write_date_parts(tree, dialect.name)
 
 
 def _rewrite(node: exp.Expression, forms: FittingForms, limit: float) -> exp.Expression:
