@@ -10,6 +10,7 @@ from sqlglot import exp
 from dbfit.errors import DbfitError
 from dbfit.expressions.dialects import Dialect, FittingForms
 from dbfit.expressions.dialects.date_parts import write_date_parts
+from dbfit.expressions.dialects.number_text import write_number_texts
 
 # The forms the trees are built in (DuckDB's): queries in these forms run as built.
 AS_BUILT = FittingForms(
@@ -24,7 +25,9 @@ def adapt(query: exp.Expression, dialect: Dialect) -> exp.Expression:
         raise DbfitError(f"dbfit does not fit models on {dialect.name}; it writes scoring SQL for it only")
     if forms == AS_BUILT:
         return query
-    tree = query.copy().transform(lambda node: _rewrite(node, forms, dialect.exp_limit))
+    tree = write_number_texts(query.copy(), dialect.name).transform(
+        lambda node: _rewrite(node, forms, dialect.exp_limit)
+    )
     if forms.fences_subqueries:
         for subquery in list(tree.find_all(exp.Subquery)):
             inner = subquery.this
