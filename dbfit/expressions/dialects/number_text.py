@@ -49,8 +49,8 @@ def _is_text(cast: exp.Cast) -> bool:
 def _is_text_cast(node: exp.Cast) -> bool:
     if not _is_text(node):
         return False
-    if isinstance(node.this, (exp.Literal, exp.Null, exp.Boolean, exp.Star)):
-        return False  # a constant is no number column; PostgreSQL would fold its unused branch and fail
+    if node.this.find(exp.Star) is not None or node.this.find(exp.Column) is None:
+        return False  # a constant: PostgreSQL and Spark would fold its unused branch and fail on text
     return not any(parent.meta.get(MARK) for parent in _ancestors(node))
 
 
