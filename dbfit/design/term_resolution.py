@@ -27,15 +27,17 @@ from dbfit.errors import FitError, FormulaError
 from dbfit.expressions import builders as sb
 from dbfit.expressions import term_functions as tf
 from dbfit.expressions.basis_terms import recognise
+from dbfit.expressions.dialects.date_parts import wall_clock
 from dbfit.expressions.formula import formula_pieces, parse_expression, parse_factor
 
-NATIVE_DATES = ("duckdb", "postgres")
+DATED_ENGINES = ("duckdb", "postgres", "spark")
 NUMERIC = re.compile(
     r"^(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|U\w*INT|FLOAT|REAL|DOUBLE|DECIMAL.*|NUMERIC.*|INT\d*)$", re.I
 )
 CATEGORICAL = re.compile(r"^(VARCHAR|BOOLEAN|ENUM.*)$", re.IGNORECASE)
 TEXT_LEVELS = re.compile(r"^(VARCHAR|ENUM.*)$", re.IGNORECASE)
-DATE_OR_TIME = re.compile(r"^(DATE|TIMESTAMP(_S|_MS|_NS)?|TIMESTAMP WITHOUT TIME ZONE)$", re.IGNORECASE)
+# a Spark TIMESTAMP is read as the wall-clock time it shows in the session time zone (see date_parts)
+DATE_OR_TIME = re.compile(r"^(DATE|TIMESTAMP(_S|_MS|_NS|_NTZ)?|TIMESTAMP WITHOUT TIME ZONE)$", re.IGNORECASE)
 
 
 @dataclass
@@ -71,9 +73,9 @@ def resolve_formula(
         return Resolution(formula=text)
     resolution = Resolution(formula=text)
     dated = [call.text for call in flat if call.name in tf.DATE_FUNCTIONS]
-    if dated and engine.dialect not in NATIVE_DATES:
+    if dated and engine.dialect not in DATED_ENGINES:
         raise FormulaError(
-            f"date terms ({', '.join(dated)}) are fitted on duckdb and postgres; not yet on {engine.dialect}"
+            f"date terms ({', '.join(dated)}) are fitted on {', '.join(DATED_ENGINES)}; not yet on {engine.dialect}"
         )
     if any(call is not None and call.name in tf.COLUMN_FUNCTIONS for call in flat):
         pieces, resolution.source_columns_seen = _expand_columns(
@@ -367,7 +369,9 @@ def _resolve_with_scan(
     if not pending_dates and not filled_arguments and not level_arguments:
         return pieces
     w = sb.as_double(parse_expression(weights, "weights")) if weights is not None else exp.Literal.number(1)
-    aggregates: list[exp.Expression] = [exp.Min(this=node.copy()) for node in pending_dates.values()]
+    aggregates: list[exp.Expression] = [
+        exp.Min(this=wall_clock(node.copy(), engine.dialect)) for node in pending_dates.values()
+    ]
     for node in filled_arguments.values():
         present = exp.Not(this=exp.Is(this=node.copy(), expression=exp.Null()))
         value = sb.as_double(node.copy())

@@ -46,9 +46,6 @@ class FittingForms:
     # lgamma(x) (the log binomial coefficients of grouped targets): the engine's own, or "series": Stirling's
     # series, exact to a few units in the last place (see dbfit.expressions.dialects.rewrite).
     log_gamma: Literal["lgamma", "series"] = "lgamma"
-    # The text of a DOUBLE (CAST(CAST(x AS DOUBLE) AS VARCHAR), as in a split key): DuckDB writes a whole
-    # number with '.0'; "whole_point" writes whole numbers below 1e15 so ('1.0'), the engine's text otherwise.
-    double_text: Literal["as_cast", "whole_point"] = "as_cast"
 
 
 @dataclass(frozen=True)

@@ -13,7 +13,7 @@ from dbfit.expressions.dialects import DOUBLE_EXP_LIMIT, Dialect, FittingForms
 # TABLESAMPLE applies to tables only (not views or subqueries), and no reservoir sample: a row-hash filter. No
 # hexadecimal literal in a cast to BIGINT: the hex digits go through a BIT(32) string. lgamma only arrives in
 # PostgreSQL 18: Stirling's series stands in for it.
-# PostgreSQL writes the DOUBLE 1 as '1' where DuckDB writes '1.0'.
+# PostgreSQL writes the DOUBLE 1 as '1' where DuckDB writes '1.0' (see number_text).
 POSTGRES = Dialect(
     name="postgres",
     exp_limit=DOUBLE_EXP_LIMIT,
@@ -29,6 +29,5 @@ POSTGRES = Dialect(
         sample="system_hash",
         hex_number="bit_string",
         log_gamma="series",
-        double_text="whole_point",
     ),
 )

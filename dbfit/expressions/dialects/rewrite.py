@@ -12,6 +12,8 @@ from sqlglot import exp
 
 from dbfit.errors import DbfitError
 from dbfit.expressions.dialects import Dialect, FittingForms
+from dbfit.expressions.dialects.date_parts import write_date_parts
+from dbfit.expressions.dialects.number_text import write_number_texts
 
 # The forms the trees are built in (DuckDB's): queries in these forms run as built.
 AS_BUILT = FittingForms(
@@ -26,13 +28,15 @@ def adapt(query: exp.Expression, dialect: Dialect) -> exp.Expression:
         raise DbfitError(f"dbfit does not fit models on {dialect.name}; it writes scoring SQL for it only")
     if forms == AS_BUILT:
         return query
-    tree = _bottom_up(query.copy(), lambda node: _rewrite(node, forms, dialect.exp_limit))
+    tree = _bottom_up(
+        write_number_texts(query.copy(), dialect.name), lambda node: _rewrite(node, forms, dialect.exp_limit)
+    )
     if forms.fences_subqueries:
         for subquery in list(tree.find_all(exp.Subquery)):
             inner = subquery.this
             if isinstance(inner, exp.Select) and not inner.args.get("offset") and not inner.args.get("limit"):
                 inner.set("offset", exp.Offset(expression=exp.Literal.number(0)))
-    return tree
+    return write_date_parts(tree, dialect.name)
 
 
 def _bottom_up(tree: exp.Expression, rewrite: Callable[[exp.Expression], exp.Expression]) -> exp.Expression:
@@ -57,8 +61,6 @@ def _rewrite(node: exp.Expression, forms: FittingForms, limit: float) -> exp.Exp
         return _quantiles(node, forms.quantiles)
     if isinstance(node, exp.Cast) and _is_row_hash(node.this) and forms.row_hash != "hash":
         return _row_hash(node.this.expressions[0], forms.row_hash)
-    if forms.double_text == "whole_point" and _is_double_text(node):
-        return _double_text(node.this)
     digits = _hex_digits(node)
     if digits is not None and forms.hex_number != "hex_literal":
         return _hex_number(digits, forms.hex_number)
@@ -138,31 +140,6 @@ def _row_hash(row: exp.Expression, form: str) -> exp.Expression:
     )
     hashed = exp.Anonymous(this="xxhash64", expressions=[text])
     return exp.Cast(this=hashed, to=exp.DataType.build("DECIMAL(38, 0)"))
-
-
-def _is_double_text(node: exp.Expression) -> bool:
-    text_types = (exp.DataType.Type.VARCHAR, exp.DataType.Type.TEXT)
-    return (
-        isinstance(node, exp.Cast)
-        and node.to.is_type(*text_types)
-        and isinstance(node.this, exp.Cast)
-        and node.this.to.is_type(exp.DataType.Type.DOUBLE)
-    )
-
-
-def _double_text(double: exp.Expression) -> exp.Expression:
-    """DuckDB's text of the DOUBLE ``double`` for whole numbers below 1e15 ('3.0'), the engine's otherwise."""
-    whole = exp.and_(
-        exp.EQ(this=double.copy(), expression=exp.Floor(this=double.copy())),
-        exp.LT(this=exp.Abs(this=double.copy()), expression=exp.Literal.number("1e15")),
-    )
-    digits = exp.Cast(
-        this=exp.Cast(this=double.copy(), to=exp.DataType.build("BIGINT")), to=exp.DataType.build("VARCHAR")
-    )
-    return exp.Case(
-        ifs=[exp.If(this=whole, true=exp.DPipe(this=digits, expression=exp.Literal.string(".0")))],
-        default=exp.Cast(this=double.copy(), to=exp.DataType.build("VARCHAR")),
-    )
 
 
 def _hex_digits(node: exp.Expression) -> exp.Expression | None:

@@ -11,7 +11,7 @@ from dbfit.expressions.dialects import DOUBLE_EXP_LIMIT, Dialect, FittingForms
 # TABLESAMPLE (p PERCENT) REPEATABLE (seed), but sqlglot 30 writes it with SEED, which Spark refuses; its
 # sample reads every row anyway. Hex digits become a number through conv(hex, 16, 10); there is
 # no lgamma: Stirling's series stands in for it.
-# Spark writes the DOUBLE 1e7 as '1.0E7' where DuckDB writes '10000000.0'.
+# Spark writes the DOUBLE 1e7 as '1.0E7' where DuckDB writes '10000000.0' (see number_text).
 SPARK = Dialect(
     name="spark",
     exp_limit=DOUBLE_EXP_LIMIT,
@@ -27,6 +27,5 @@ SPARK = Dialect(
         sample="hash",
         hex_number="conv",
         log_gamma="series",
-        double_text="whole_point",
     ),
 )
