@@ -42,6 +42,10 @@ def _rewrite(node: exp.Expression, forms: FittingForms, limit: float) -> exp.Exp
         return _quantiles(node, forms.quantiles)
     if isinstance(node, exp.Cast) and _is_row_hash(node.this) and forms.row_hash != "hash":
         return _row_hash(node.this.expressions[0], forms.row_hash)
+    if isinstance(node, exp.Cast) and forms.row_hash != "hash":
+        digits = _hexadecimal_digits(node)
+        if digits is not None:
+            return _hexadecimal_number(digits, forms.row_hash)
     levels = isinstance(node, exp.ArrayAgg) and isinstance(node.this, exp.Order)
     if levels and forms.sorted_levels == "collect_set":
         distinct = node.this.this
@@ -89,6 +93,34 @@ def _quantiles(node: exp.Anonymous, form: str) -> exp.Expression:
     if form == "percentile":
         return exp.Anonymous(this="percentile", expressions=[value.copy(), fractions.copy()])
     return node
+
+
+def _hexadecimal_digits(node: exp.Cast) -> exp.Expression | None:
+    """The digits of CAST('0x' || digits AS BIGINT), the split's hash (:func:`dbfit.expressions.splits.
+    unit_hash`): a form DuckDB reads and PostgreSQL before 16 and Spark do not; None for any other cast."""
+    text = node.this
+    if isinstance(text, exp.DPipe):
+        parts = [text.this, text.expression]
+    elif isinstance(text, exp.Concat):
+        parts = list(text.expressions)
+    else:
+        return None
+    is_prefix = len(parts) == 2 and isinstance(parts[0], exp.Literal) and parts[0].this == "0x"
+    return parts[1] if is_prefix and node.to.this == exp.DataType.Type.BIGINT else None
+
+
+def _hexadecimal_number(digits: exp.Expression, form: str) -> exp.Expression:
+    """The hexadecimal ``digits`` (at most 15) as a BIGINT: PostgreSQL through a bit string, Spark by conv."""
+    if form == "md5_text":
+        bits = exp.Cast(
+            this=exp.DPipe(this=exp.Literal.string("x"), expression=digits.copy()),
+            to=exp.DataType.build("BIT(32)", dialect="postgres"),
+        )
+        return exp.Cast(this=bits, to=exp.DataType.build("BIGINT"))
+    converted = exp.Anonymous(
+        this="conv", expressions=[digits.copy(), exp.Literal.number(16), exp.Literal.number(10)]
+    )
+    return exp.Cast(this=converted, to=exp.DataType.build("BIGINT"))
 
 
 def _is_row_hash(node: exp.Expression) -> bool:
