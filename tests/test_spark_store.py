@@ -144,3 +144,18 @@ def test_what_spark_cannot_hold_is_refused_by_name(spark, duckdb_con):
     with pytest.raises(dbfit.StoreError, match="not a SparkSession .*store="):
         dbfit.fit(spark, FORMULA, TABLE, name="birthweight", progress=False)
     assert [v["version"] for v in dbfit.models(duckdb_con)] == [1]
+
+
+def test_a_holdout_fit_on_spark_holds_out_duckdbs_rows(spark, duckdb_con):
+    # The split's hash (MD5 of the key, first 32 bits) in Spark's terms picks the rows DuckDB picks: the stored
+    # fit and its held-out metrics equal DuckDB's for the same split. Reference: DuckDB's holdout fit.
+    split = dbfit.Holdout("id", 0.25)
+    on_spark = dbfit.fit(
+        spark, FORMULA, TABLE, split=split, name="birthweight", store=duckdb_con, progress=False
+    )
+    on_duckdb = dbfit.fit(duckdb_con, FORMULA, TABLE, split=split, progress=False)
+    assert on_spark.stats["n_used"] == on_duckdb.stats["n_used"] < 189
+    np.testing.assert_allclose(on_spark.estimates, on_duckdb.estimates, rtol=1e-9)
+    for metric, value in on_duckdb.stats["holdout"].items():
+        assert value is None or close(on_spark.stats["holdout"][metric], value), metric
+    assert dbfit.load(duckdb_con, "birthweight").stats["holdout"] == on_spark.stats["holdout"]
