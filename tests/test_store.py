@@ -488,6 +488,19 @@ def test_command_line_keeps_models_in_the_store_of_either_engine(spector_file, t
     assert dbfit.load(reopened, "grades").version == 1
     assert len(database.query(reopened, "SELECT * FROM grades_view")) == 32
     reopened.close()
+    # Reference: statsmodels Logit on spector, its average marginal effects and its squared z (the Wald test of
+    # a one-df term), for version 1, the current one.
+    frame = sm.datasets.spector.load_pandas().data
+    reference = sm.Logit(frame.GRADE, sm.add_constant(frame[["GPA", "TUCE", "PSI"]])).fit(disp=0, tol=1e-12)
+    code, effects = run("effects", "grades")
+    assert code == 0 and [e["term"] for e in effects["effects"]] == ["GPA", "TUCE", "PSI"]
+    margins = reference.get_margeff(at="overall")
+    np.testing.assert_allclose([e["effect"] for e in effects["effects"]], margins.margeff, rtol=1e-6)
+    np.testing.assert_allclose([e["std_error"] for e in effects["effects"]], margins.margeff_se, rtol=1e-6)
+    code, tests = run("term-tests", "grades")
+    assert code == 0 and [t["term"] for t in tests["terms"]] == ["GPA", "TUCE", "PSI"]
+    chi_squares = [t["wald_chi_square"] for t in tests["terms"]]
+    np.testing.assert_allclose(chi_squares, reference.tvalues[1:] ** 2, rtol=1e-6)
     # The verbs that measure a stored model: through its gates, on its training snapshot, in a report.
     code, refitted = run("refit", "grades", "--skip-unchanged")
     assert code == 0 and refitted["decision"] == "skipped"  # the fingerprint stored with version 1 matches

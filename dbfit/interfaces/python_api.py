@@ -320,7 +320,7 @@ def marginal_effects(
     means). ``variables``: the factors to take effects of (default: all).
     """
     resolved = deploy.resolve_model(con, model, version)
-    return effects_of(DuckDBEngine(con), resolved, source, at=at, variables=variables)
+    return effects_of(engine_for(con), resolved, source, at=at, variables=variables)
 
 
 def term_tests(
@@ -334,7 +334,7 @@ def term_tests(
     ``likelihood_ratio=True`` also the likelihood-ratio test from a warm-started refit without each term
     (column ``refit_scans`` and metadata ``dbfit_scans`` say what it cost)."""
     resolved = deploy.resolve_model(con, model, version)
-    return tests_of(DuckDBEngine(con), resolved, likelihood_ratio=likelihood_ratio)
+    return tests_of(engine_for(con), resolved, likelihood_ratio=likelihood_ratio)
 
 
 def spline_curve(
