@@ -220,3 +220,20 @@ def test_refit_keeps_the_options_of_the_current_version(engine):
         sql = "SELECT model, version, current FROM dbfit.models() ORDER BY model, version"
         assert con.execute(sql).fetchall() == listed
     data.close()
+
+
+def test_a_refit_leaves_the_callers_open_transaction_open_with_its_rows(database):
+    # The candidate and the decision are written on the store's own connection: the caller's uncommitted row
+    # stays, its transaction stays open, and its rollback does not take the promotion back.
+    con = database.con
+    database.query("CREATE TABLE notes (note VARCHAR)")
+    if database.database.engine == "duckdb":
+        con.execute("BEGIN TRANSACTION")
+    else:
+        con.autocommit = False
+    database.query("INSERT INTO notes VALUES ('uncommitted')")
+    assert dbfit.refit(con, "late")["decision"] == "promoted"
+    assert database.query("SELECT note FROM notes") == [("uncommitted",)]
+    con.rollback()
+    assert database.query("SELECT count(*) FROM notes") == [(0,)]
+    assert dbfit.load(con, "late").version == 2 and dbfit.decisions(con, "late")[-1]["decision"] == "promoted"
