@@ -221,11 +221,14 @@ KILL_SCRIPT = textwrap.dedent("""
     else:
         con = dbfit.connect(sys.argv[1])
     print("ready", flush=True)
+    from dbfit.lifecycle.saving import save_time_rows
+    from dbfit.store.model_store import save_model
     model = dbfit.fit(con, "late ~ distance_km + parcel_kg + depot + tier + dispatch_hour + rain", "deliveries",
                       progress=False)
+    extra = save_time_rows(con, model)  # the save's scans once, so that "write" is the version's transaction
     while True:  # back-to-back version writes, so that many kills land inside a transaction
         print("write", flush=True)
-        dbfit.save(con, model, "late")
+        save_model(con, model, "late", extra=extra)
         print("saved", flush=True)
 """)
 
