@@ -221,11 +221,14 @@ KILL_SCRIPT = textwrap.dedent("""
     else:
         con = dbfit.connect(sys.argv[1])
     print("ready", flush=True)
+    from dbfit.lifecycle.saving import save_time_rows
+    from dbfit.store.model_store import save_model
     model = dbfit.fit(con, "late ~ distance_km + parcel_kg + depot + tier + dispatch_hour + rain", "deliveries",
                       progress=False)
+    extra = save_time_rows(con, model)  # the save's scans once, so that "write" is the version's transaction
     while True:  # back-to-back version writes, so that many kills land inside a transaction
         print("write", flush=True)
-        dbfit.save(con, model, "late")
+        save_model(con, model, "late", extra=extra)
         print("saved", flush=True)
 """)
 
@@ -451,9 +454,12 @@ def test_published_views_score_with_plain_sql_of_the_engine(spector_file):
     plain.close()
 
 
-def test_command_line_keeps_models_in_the_store_of_either_engine(spector_file):
-    # The scheduler's commands with --database naming the DuckDB file or a postgresql:// URI.
+def test_command_line_keeps_models_in_the_store_of_either_engine(spector_file, tmp_path):
+    # The scheduler's commands with --database naming the DuckDB file or a postgresql:// URI. Counts of
+    # statsmodels' spector data (Spector and Mazzeo 1980): 32 students, 11 with a better grade, 17 with a GPA
+    # above 3.
     con, database = spector_file
+    report = tmp_path / "grades.html"
     env = {**os.environ, "PYTHONPATH": WORKTREE}
 
     def run(*arguments: str) -> tuple[int, dict]:
@@ -485,6 +491,61 @@ def test_command_line_keeps_models_in_the_store_of_either_engine(spector_file):
     assert dbfit.load(reopened, "grades").version == 1
     assert len(database.query(reopened, "SELECT * FROM grades_view")) == 32
     reopened.close()
+    # Reference: statsmodels Logit on spector, its average marginal effects and its squared z (the Wald test of
+    # a one-df term), for version 1, the current one.
+    frame = sm.datasets.spector.load_pandas().data
+    reference = sm.Logit(frame.GRADE, sm.add_constant(frame[["GPA", "TUCE", "PSI"]])).fit(disp=0, tol=1e-12)
+    code, effects = run("effects", "grades")
+    assert code == 0 and [e["term"] for e in effects["effects"]] == ["GPA", "TUCE", "PSI"]
+    margins = reference.get_margeff(at="overall")
+    np.testing.assert_allclose([e["effect"] for e in effects["effects"]], margins.margeff, rtol=1e-6)
+    np.testing.assert_allclose([e["std_error"] for e in effects["effects"]], margins.margeff_se, rtol=1e-6)
+    code, tests = run("term-tests", "grades")
+    assert code == 0 and [t["term"] for t in tests["terms"]] == ["GPA", "TUCE", "PSI"]
+    chi_squares = [t["wald_chi_square"] for t in tests["terms"]]
+    np.testing.assert_allclose(chi_squares, reference.tvalues[1:] ** 2, rtol=1e-6)
+    # The verbs that measure a stored model: through its gates, on its training snapshot, in a report.
+    code, refitted = run("refit", "grades", "--skip-unchanged")
+    assert code == 0 and refitted["decision"] == "skipped"  # the fingerprint stored with version 1 matches
+    code, promoted = run("promote", "grades", "2")
+    assert code == 0 and promoted["decision"] == "promoted" and promoted["figures"]["largest_shift"] < 5
+    code, refused = run("gates", "grades", "--max-shift", "0.01")
+    assert code == 0 and refused["gates"]["max_shift"] == 0.01
+    code, refused = run("promote", "grades", "1")
+    assert code == 3 and refused["decision"] == "refused" and "moved" in refused["error"]
+    code, assessed = run("assess", "grades")
+    metrics = {m["metric"]: m["value"] for m in assessed["metrics"]}
+    assert code == 0 and metrics["rows"] == 32 and metrics["positives"] == 11  # spector: 11 of 32 got an A
+    code, drift = run("drift", "grades", "--source", 'SELECT * FROM spector WHERE "GPA" > 3')
+    by_variable = {v["variable"]: v for v in drift["variables"]}
+    assert (
+        code == 0 and by_variable["score"]["training_rows"] == 32 and by_variable["score"]["new_rows"] == 17
+    )
+    code, written = run("report", "grades", "--output", str(report), "--source", "spector")
+    assert code == 0 and written["version"] == 2 and "Drift against the training rows" in report.read_text()
+    assert [d["decision"] for d in run("decisions", "grades")[1]["decisions"]] == [
+        "promoted",
+        "skipped",
+        "promoted",
+        "refused",
+    ]
+
+
+def test_drift_of_a_stored_model_reads_the_snapshot_saved_with_it(spector_file):
+    # The snapshot is taken at save time (in the version's transaction, with the source's fingerprint): after
+    # the source loses rows, drift still compares with the 32 training rows of spector (Spector and Mazzeo
+    # 1980), 17 of which have a GPA above 3. Reference: the source's own figures before the change.
+    con, database = spector_file
+    spector_model(con, name="grades")
+    [printed] = database.query(con, "SELECT source, source_rows FROM dbfit_store.fingerprints")
+    assert printed == ("spector", 32)
+    stored = database.query(con, "SELECT count(*) FROM dbfit_store.drift_bins WHERE variable = 'score'")
+    assert stored == [(10,)]  # deciles: ten bins of the linear predictor
+    database.query(con, 'DELETE FROM spector WHERE "GPA" <= 3')
+    table = {row["variable"]: row for row in dbfit.drift(con, "grades", "spector").to_pylist()}
+    assert {row["training_rows"] for row in table.values()} == {32}
+    assert {row["new_rows"] for row in table.values()} == {17}
+    assert table["score"]["psi"] > 0.25  # only the better students remain: a large shift of the score
 
 
 def test_gates_and_a_stale_promotion_on_either_engine(spector_file):

@@ -22,6 +22,7 @@ from dbfit.deployment.scoring import (
     reason_columns,
     scoring_query,
 )
+from dbfit.deployment.spark_views import is_published_spark_view, publish_spark_view
 from dbfit.engines import engine_for
 from dbfit.errors import DbfitError, StoreError
 from dbfit.expressions import builders as sb
@@ -128,6 +129,7 @@ def publish(
     replace: bool = False,
     reasons: int | bool | None = 0,
     baseline: Mapping[str, Any] | None = None,
+    store: Any = None,
 ) -> dict[str, Any]:
     """``publish(con, model, source, view)``: create ``view``, or replace the one dbfit published under that
     name: every column of ``source`` (None: the source the model was fitted on) plus ``linear_predictor``
@@ -139,25 +141,37 @@ def publish(
     constants. A view of that name that dbfit did not publish (or that was changed since) is refused unless
     ``replace=True``.
 
+    On a SparkSession the view is a persistent view of the session's catalog, pinned (see
+    :mod:`dbfit.deployment.spark_views`); a model given by name is read from ``store`` (the DuckDB or psycopg
+    connection of the store it was saved in).
+
     The order of earlier releases, ``publish(con, model, view, source=None)``, works for one more release
     with a DeprecationWarning; see :func:`source_and_view` for how the two orders are told apart.
     """
+    written = engine_for(con).dialect
+    if written == "spark" and live is True:
+        raise StoreError(
+            "a live view reads the store's tables in the database that holds it, and Spark holds no store: "
+            "publish a pinned view (live=False) and publish it again after a promotion"
+        )
     source, view = source_and_view(con, "publish", given, source, view)
     target = relation_name(view, "view name")
-    resolved = resolve_model(con, model, version)
+    resolved = resolve_model(con if store is None else store, model, version)
     query = build_scoring(con, resolved, source, live=live, unseen=unseen, reasons=reasons, baseline=baseline)
     record = {
         "model": resolved.name,
         "version": None if live else resolved.version,
         "mode": "live" if live else "pinned",
     }
-    statement = publish_view(con, target, query, record, replace=replace)
-    written = engine_for(con).dialect
+    if written == "spark":
+        statement = publish_spark_view(con, target, query, record, replace=replace)
+    else:
+        statement = publish_view(con, target, query, record, replace=replace).sql(written)
     return {
         "view": target.sql(written),
         **record,
         "rows": resolved.rows_note("all", source),
-        "sql": statement.sql(written),
+        "sql": statement,
     }
 
 
@@ -200,11 +214,14 @@ def _may_become_view(con: duckdb.DuckDBPyConnection, text: Any) -> bool:
         target = relation_name(text, "view name")
     except StoreError:
         return False
+    engine = engine_for(con)
     try:
-        engine_for(con).describe(exp.select("*").from_(target))
+        engine.describe(exp.select("*").from_(target))
     except DbfitError:
         return True
-    return is_published_view(con, target)
+    return (
+        is_published_spark_view(con, target) if engine.dialect == "spark" else is_published_view(con, target)
+    )
 
 
 def _live_coefficients(model: Model) -> tuple[Coefficient, exp.Expression]:

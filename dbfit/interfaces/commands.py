@@ -31,7 +31,9 @@ def add_model_commands(command: Command) -> None:
         if model:
             parser.add_argument("name", help="the stored model's name")
         parser.add_argument(
-            "--database", required=name != "fit", help="DuckDB file holding the data and the store"
+            "--database",
+            required=name != "fit",
+            help="DuckDB file, or postgresql:// URI, of the database holding the data and the store",
         )
         parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")
         return parser

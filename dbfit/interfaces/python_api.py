@@ -47,9 +47,12 @@ def fit(
     name: str | None = None,
     split: Holdout | None = None,
     threshold: float = 0.5,
+    store: Any = None,
     **options: Any,
 ) -> Model | SegmentedFit:
-    """Fit as :func:`dbfit.fitting.driver.fit`; with ``name=...`` also store the model as that name's next version.
+    """Fit as :func:`dbfit.fitting.driver.fit`; with ``name=...`` also store the model as that name's next version
+    (in ``con``'s database, or with ``store=`` in the database of that DuckDB or psycopg connection: a fit on
+    Spark, which holds no store, names one this way; the data stay where they are).
 
     With ``split=dbfit.Holdout(key, share)`` the model is fitted on the training part only and its held-out
     metrics (at ``threshold``) go to ``model.stats["holdout"]``. ``model.source`` stays the whole source and
@@ -60,7 +63,15 @@ def fit(
     chosen = FitOptions.of(**options)
     with frame_source(con, source) as text:
         return fit_options(
-            con, formula, text, chosen, name=name, split=split, threshold=threshold, progress=progress
+            con,
+            formula,
+            text,
+            chosen,
+            name=name,
+            split=split,
+            threshold=threshold,
+            progress=progress,
+            store=store,
         )
 
 
@@ -74,10 +85,19 @@ def fit_options(
     split: Holdout | None = None,
     threshold: float = 0.5,
     progress: fitting.Progress = None,
+    store: Any = None,
 ) -> Model | SegmentedFit:
     """:func:`fit` with the fit's options already checked (the command line, spec files and refit build them)."""
     return training.fit_and_store(
-        con, formula, source, options, name=name, split=split, threshold=threshold, progress=progress
+        con,
+        formula,
+        source,
+        options,
+        name=name,
+        split=split,
+        threshold=threshold,
+        progress=progress,
+        store=store,
     )
 
 
@@ -170,7 +190,7 @@ def report_assessment(
     resolved = deploy.resolve_model(con, model, version)
     text, note = resolved.assessed_rows(source, rows)
     tables = report_tables.report_tables(
-        DuckDBEngine(con), resolved, text, note, threshold, likelihood_ratio=likelihood_ratio
+        engine_for(con), resolved, text, note, threshold, likelihood_ratio=likelihood_ratio
     )
     if by is not None:
         tables["groups"] = assess(
@@ -300,7 +320,7 @@ def marginal_effects(
     means). ``variables``: the factors to take effects of (default: all).
     """
     resolved = deploy.resolve_model(con, model, version)
-    return effects_of(DuckDBEngine(con), resolved, source, at=at, variables=variables)
+    return effects_of(engine_for(con), resolved, source, at=at, variables=variables)
 
 
 def term_tests(
@@ -314,7 +334,7 @@ def term_tests(
     ``likelihood_ratio=True`` also the likelihood-ratio test from a warm-started refit without each term
     (column ``refit_scans`` and metadata ``dbfit_scans`` say what it cost)."""
     resolved = deploy.resolve_model(con, model, version)
-    return tests_of(DuckDBEngine(con), resolved, likelihood_ratio=likelihood_ratio)
+    return tests_of(engine_for(con), resolved, likelihood_ratio=likelihood_ratio)
 
 
 def spline_curve(
@@ -426,12 +446,18 @@ def decisions(con: duckdb.DuckDBPyConnection, name: str | None = None) -> list[d
 
 
 def save(
-    con: duckdb.DuckDBPyConnection, fitted: Model | SegmentedFit, name: str, *, promote: bool = True
+    con: duckdb.DuckDBPyConnection,
+    fitted: Model | SegmentedFit,
+    name: str,
+    *,
+    promote: bool = True,
+    store: Any = None,
 ) -> int | dict[Any, tuple[str, int]]:
     """Store ``fitted`` as the next version of ``name`` (its version number back); a ``by=`` fit stores every
     segment's model as ``name.segment`` in one transaction (``{segment: (name, version)}`` back).
-    ``promote=False`` stores a candidate that becomes current only through ``dbfit.promote``."""
-    return saving.save(con, fitted, name, promote=promote)
+    ``promote=False`` stores a candidate that becomes current only through ``dbfit.promote``. ``store``: the
+    DuckDB or psycopg connection of the store when ``con`` (the data, such as a SparkSession) holds none."""
+    return saving.save(con, fitted, name, promote=promote, store=store)
 
 
 def scoring_sql(

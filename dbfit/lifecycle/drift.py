@@ -211,18 +211,30 @@ def _check_new_rows(source: str, rows: dict[str, int]) -> None:
 def psi_table(con: Any, model: Model, source: str) -> pa.Table:
     """One row per variable: kind, bins, training and new rows, PSI and its reading (common-practice bands).
 
-    On DuckDB the training snapshot is the one stored with the model's version. PostgreSQL and Spark hold no
-    store of dbfit's here: the snapshot is taken from the model's training rows on that engine, in the same
-    query forms, so it equals the one DuckDB would store for the same rows.
+    On DuckDB the training snapshot is the one stored with the model's version. On PostgreSQL it is the one
+    stored with the version when this database's store holds it (a model saved here); a model stored elsewhere
+    (or not at all), and any model on Spark, which holds no store, gets the snapshot of its training rows taken
+    on that engine now, in the same query forms, so it equals the one stored for the same rows.
     """
     engine = engine_for(con)
-    if engine.dialect == "duckdb":
-        stored = _stored_snapshot(con, model)
-    else:
-        snapshot = training_snapshot(engine, model)
-        rows = [dict(zip(snapshot, values)) for values in zip(*snapshot.values())]
-        stored = sorted(rows, key=lambda row: (row["variable"], row["position"]))  # as the store orders them
+    stored = (
+        _stored_snapshot(con, model) if engine.dialect == "duckdb" else _snapshot_here(con, engine, model)
+    )
     return _psi_against(engine, model, source, stored)
+
+
+def _snapshot_here(con: Any, engine: Engine, model: Model) -> list[dict[str, Any]]:
+    """The snapshot stored with ``model``'s version in this PostgreSQL database, else that of its training rows
+    taken now on ``engine``; ordered by variable and position, as the store orders them."""
+    if engine.dialect == "postgres" and model.name is not None and model.version is not None:
+        from dbfit.store.model_store import version_table
+
+        stored = version_table(con, "drift_bins", model.name, model.version, order="variable, position")
+        if stored:
+            return stored
+    snapshot = training_snapshot(engine, model)
+    rows = [dict(zip(snapshot, values)) for values in zip(*snapshot.values())]
+    return sorted(rows, key=lambda row: (row["variable"], row["position"]))
 
 
 def _stored_snapshot(con: Any, model: Model) -> list[dict[str, Any]]:

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 import duckdb
 import pyarrow as pa
 
@@ -16,6 +18,7 @@ from dbfit.fitting.options import FitOptions
 from dbfit.lifecycle import saving
 from dbfit.model.fitted import Model
 from dbfit.model.segmented import SegmentedFit
+from dbfit.store.model_store import store_of
 
 
 def fit_and_store(
@@ -28,11 +31,16 @@ def fit_and_store(
     split: Holdout | None = None,
     threshold: float = 0.5,
     progress: fitting.Progress = None,
+    store: Any = None,
 ) -> Model | SegmentedFit:
     """Fit with options already checked; with ``split`` on the training rows, the held-out metrics (at
-    ``threshold``) in ``model.stats["holdout"]``; with ``name`` stored as that name's next version."""
+    ``threshold``) in ``model.stats["holdout"]``; with ``name`` stored as that name's next version (in
+    ``store``, a DuckDB or psycopg connection, when the data's engine holds no store: Spark)."""
     if name is not None:
         model_name(name)
+        store_of(con if store is None else store)  # no store there: refused before the fit
+    elif store is not None:
+        raise FitError("store= says where to store the model: give name= too")
     if split is not None and not isinstance(split, Holdout):
         raise FitError("split= takes dbfit.Holdout(key, share); for k folds use dbfit.cross_validate")
     if split is not None and options.by is not None:
@@ -52,7 +60,7 @@ def fit_and_store(
         held_out = assess(con, model, None, rows="held_out", threshold=threshold)
         model.stats["holdout"] = dict(zip(held_out["metric"].to_pylist(), held_out["value"].to_pylist()))
     if name is not None:
-        saving.save(con, model, name)
+        saving.save(con, model, name, store=store)
     return model
 
 

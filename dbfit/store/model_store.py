@@ -52,7 +52,7 @@ def store_of(con: Connection) -> StoreDatabase:
         return PostgresStore(con)
     raise StoreError(
         f"the model store lives in a DuckDB or PostgreSQL database: give a DuckDB connection or a psycopg "
-        f"connection, not a {type(con).__name__}"
+        f"connection, not a {type(con).__name__} (a fit on Spark names its store with store=<one of them>)"
     )
 
 
