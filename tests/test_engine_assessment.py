@@ -214,3 +214,14 @@ def test_assess_inside_an_open_postgres_transaction_leaves_it_open_with_its_rows
     figures = ["metric", "value"]  # the note of "rows" names the source
     on_duckdb = dbfit.assess(duckdb_con, model).select(figures)
     assert_tables_equal(on_postgres.select(figures), on_duckdb, "assess inside a transaction")
+
+
+def test_bin_screening_equals_duckdb(other, duckdb_con):
+    # Reference: DuckDB's screening table (weight of evidence and information value checked against numpy in
+    # test_bin_terms); the quantile edges come from each engine's own percentile function.
+    for options in ({"bins": 4}, {"edges": [110.0, 130.0, 150.0], "missing_bin": True}):
+        assert_tables_equal(
+            dbfit.bin_screening(other, "birthwt", "low", "lwt", **options),
+            dbfit.bin_screening(duckdb_con, "birthwt", "low", "lwt", **options),
+            f"bin screening {options}",
+        )

@@ -181,11 +181,6 @@ def test_a_by_fit_on_spark_stores_every_segment_in_one_save(spark, duckdb_con):
     assert sorted(coefficients) == sorted(expected)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="dbfit/fitting/segments.py writes each segment's source in the engine's dialect (backticks on "
-    "Spark), which the model document reader parses as DuckDB SQL",
-)
 def test_segment_models_fitted_on_spark_load_from_the_store(spark, duckdb_con):
     fitted = spark_segments(spark, duckdb_con)
     for model in fitted.models.values():

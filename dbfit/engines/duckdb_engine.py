@@ -54,8 +54,8 @@ class DuckDBEngine(Engine):
     def __init__(self, connection: Any) -> None:
         if not isinstance(connection, duckdb.DuckDBPyConnection):
             raise DbfitError(
-                "this step (assessment, drift, the source fingerprint, refit and promotion through gates) "
-                f"runs on DuckDB only so far, not on a {type(connection).__module__.split('.')[0]} connection"
+                "the DuckDB engine needs a DuckDB connection, not a "
+                f"{type(connection).__module__.split('.')[0]} connection (dbfit.engines.engine_for picks the engine)"
             )
         super().__init__(connection)
         self.aborted = False

@@ -86,7 +86,7 @@ def fit_segments(
 
     models: dict[Any, Model] = {}
     own_options = {k: v for k, v in options.items() if k != "by"}
-    sources = segment_sources(source, design.segment, list(results), engine.dialect)
+    sources = segment_sources(source, design.segment, list(results))
     for value in segments:
         if value not in results:
             continue
@@ -253,10 +253,11 @@ def _coefficient_rows(
     return rows
 
 
-def segment_sources(
-    source: str, by: exp.Expression | None, values: list[Any], dialect: str = "duckdb"
-) -> dict[Any, str]:
+def segment_sources(source: str, by: exp.Expression | None, values: list[Any]) -> dict[Any, str]:
     """Each segment's rows as a SELECT over ``source`` (rebuilt by sqlglot): the source of that segment's model.
+
+    It is written as DuckDB SQL, as every source text dbfit keeps, whichever engine fitted the model: readers
+    of a model parse its source as DuckDB SQL and write it in their own engine's dialect.
 
     The query is written once around a placeholder, into which each value's literal (written by sqlglot) goes.
     """
@@ -264,12 +265,12 @@ def segment_sources(
         raise AssertionError("segment sources need the by expression")
     placeholder = exp.column("dbfit_segment_value_placeholder", quoted=True)
     condition = exp.EQ(this=exp.Paren(this=by.copy()), expression=placeholder)
-    text = exp.select("*").from_(source_relation(source)).where(condition).sql(dialect)
-    marker = placeholder.sql(dialect)
+    text = exp.select("*").from_(source_relation(source)).where(condition).sql("duckdb")
+    marker = placeholder.sql("duckdb")
     if text.count(marker) != 1:
         raise FitError(f"the source or by expression may not mention {marker}")
     before, after = text.split(marker)
-    return {value: before + segment_literal(value).sql(dialect) + after for value in values}
+    return {value: before + segment_literal(value).sql("duckdb") + after for value in values}
 
 
 def segment_literal(value: Any) -> exp.Expression:

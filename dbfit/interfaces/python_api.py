@@ -354,7 +354,7 @@ def spline_curve(
 
 
 def bin_screening(
-    con: duckdb.DuckDBPyConnection,
+    con: Any,
     source: str,
     target: str,
     variable: str,
@@ -367,7 +367,7 @@ def bin_screening(
     quantile bins from one scan, or at ``edges``), see :mod:`dbfit.assessment.screening`; the total
     information value is the sum of the ``iv`` column."""
     return screening_of(
-        DuckDBEngine(con), source, target, variable, bins=bins, edges=edges, missing_bin=missing_bin
+        engine_for(con), source, target, variable, bins=bins, edges=edges, missing_bin=missing_bin
     )
 
 
