@@ -199,13 +199,9 @@ def test_a_promotion_checked_against_a_stale_current_version_is_refused_whole(da
 
 
 def test_refit_keeps_the_options_of_the_current_version(engine):
-    # Options each engine fits: robust errors and shrinkage are DuckDB's alone for now (FitOptions.check_engine).
     data = Deliveries(engine, 6000)
     con = data.con
-    if engine.engine == "duckdb":
-        late, ridge = {"robust": "HC1"}, {"shrinkage": 0.5}
-    else:
-        late, ridge = {"weights": "1 + dispatch_hour / 24.0"}, {"offset": "0.1 * distance_km"}
+    late, ridge = {"robust": "HC1"}, {"shrinkage": 0.5}
     dbfit.fit(con, FORMULA, "deliveries", reference=REFERENCE, name="late", progress=False, **late)
     dbfit.fit(con, FORMULA, "deliveries", name="ridge", progress=False, **ridge)
     result = dbfit.refit(con, "late")
