@@ -224,4 +224,3 @@ def test_bad_trials_get_dbfits_error(elsewhere):
     name, connection = elsewhere
     with pytest.raises(dbfit.FitError, match="between 0 and trials"):
         dbfit.fit(connection, GROUPED, "grouped", trials="births - 3", progress=False)
-

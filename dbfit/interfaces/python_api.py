@@ -21,7 +21,7 @@ from dbfit.deployment import scoring
 from dbfit.deployment import views as deploy
 from dbfit.deployment.segment_views import segment_scoring_query
 from dbfit.engines import engine_for
-from dbfit.engines.duckdb_engine import DuckDBEngine, translate_error
+from dbfit.engines.duckdb_engine import translate_error
 from dbfit.errors import DbfitError, FitError, SourceError, StoreError
 from dbfit.expressions.names import model_name
 from dbfit.expressions.splits import Holdout, KFold, part_source
