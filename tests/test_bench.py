@@ -153,11 +153,13 @@ def test_spark_scale_runs_tiny_tabulates_each_engine_and_size_and_agrees_with_du
     if shutil.which("java") is None:
         skip_engine("no Java runtime for Spark")
     arguments = ("--scenario", "spark-scale", "--rows", "20000,40000", "--predictors", "5")
-    done, records = run_cli(tmp_path / "s.json", *arguments, "--work-dir", str(tmp_path / "data"))
+    setting = ("--spark-conf", "spark.sql.codegen.maxFields=300")
+    done, records = run_cli(tmp_path / "s.json", *arguments, *setting, "--work-dir", str(tmp_path / "data"))
     assert [r["key"] for r in records] == ["duckdb-20000", "spark-20000", "duckdb-40000", "spark-40000"]
     assert all(r["status"] == "ok" and r["scans"] >= 3 for r in records), done.stdout
     spark = [r for r in records if r["key"].startswith("spark")]
     assert all(r["jvm_peak_rss_mb"] > 0 and r["peak_rss_mb"] > r["driver_peak_rss_mb"] for r in spark)
+    assert all(r["spark_settings_seen"] == {"spark.sql.codegen.maxFields": "300"} for r in spark)
     # the same Parquet rows fitted by two engines: one answer (Spark SQL and DuckDB, dbfit's own sums)
     assert max(r["max_abs_difference"] for r in spark) < 1e-9, done.stdout
     scenario = json.loads((tmp_path / "s.json").read_text())["scenarios"][0]

@@ -85,6 +85,7 @@ class BenchOptions:
     baseline_memory_gb: float | None = None
     json_path: str | None = None
     work_dir: str | None = None  # where the data is written (a folder made and removed there)
+    spark_settings: tuple[tuple[str, str], ...] = ()  # Spark configuration over the bench's own
 
     @property
     def memory_cap_gb(self) -> float:
@@ -285,7 +286,7 @@ def _spark_worker(task: dict[str, Any]) -> dict[str, Any]:
     session's start-up and the reading of the Parquet footers are timed apart from the fit."""
     import dbfit
 
-    session = local_spark_session("dbfit-bench")
+    session = local_spark_session("dbfit-bench", task.get("spark_settings"))
     began = time.perf_counter()
     session.read.parquet(task["parquet"]).createOrReplaceTempView("bench")
     opened, jvm = time.perf_counter(), driver_jvm_pid(session)
@@ -297,12 +298,15 @@ def _spark_worker(task: dict[str, Any]) -> dict[str, Any]:
     result: dict[str, Any] = {"seconds": time.perf_counter() - opened, "view_seconds": opened - began}
     cpu_ended = [cpu_seconds(), cpu_seconds(jvm)]
     if None not in cpu_began + cpu_ended:  # the Python driver's and the JVM's (its executor threads' too)
-        result["cpu_seconds"] = sum(cpu_ended) - sum(cpu_began)
+        python_cpu, jvm_cpu = (end - start for start, end in zip(cpu_began, cpu_ended))
+        result.update(cpu_seconds=python_cpu + jvm_cpu, python_cpu_seconds=python_cpu)
+        result["jvm_cpu_seconds"] = jvm_cpu
     if isinstance(fitted, dbfit.SegmentedFit):
         result.update(models=len(fitted.models), passes=fitted.passes, **_segment_estimates(fitted.models))
     else:
         result.update(_model_figures(fitted, phases))
     result.update(driver_jvm_memory(session))
+    result["spark_settings_seen"] = {key: session.conf.get(key) for key in task.get("spark_settings") or {}}
     session.stop()
     return result
 
@@ -696,6 +700,7 @@ def bench_spark(folder: str, options: BenchOptions) -> Scenario:
             )
             continue
         task = {"kind": "spark", "path": "", "parquet": parquet, "formula": formula(predictors), "by": by}
+        task["spark_settings"] = dict(options.spark_settings)
         scenario.run(f"spark-{key}", f"Spark local[2], {label} (start-up not counted)", task, f"duckdb-{key}")
     return scenario
 
@@ -736,11 +741,12 @@ def bench_spark_scale(folder: str, options: BenchOptions) -> Scenario:
             scenario.add(f"spark-{size}", label, {"status": "not run", "note": missing}, None)
         else:
             task = {"kind": "spark", "path": "", "parquet": lake, "formula": formula(predictors)}
+            task["spark_settings"] = dict(options.spark_settings)
             scenario.run(f"spark-{size}", f"{label} (start-up not counted)", task, f"duckdb-{size}")
         shutil.rmtree(lake, ignore_errors=True)
         written_data.append({**written, "load_average_after": os.getloadavg()})
     scaling = scaling_rows(scenario.records, sizes)
-    scenario.extra.update(parquet=written_data, scaling=scaling)
+    scenario.extra.update(parquet=written_data, scaling=scaling, spark_settings=dict(options.spark_settings))
     return scenario
 
 
@@ -889,11 +895,27 @@ def add_bench_arguments(bench: argparse.ArgumentParser) -> None:
         "--json", default=None, metavar="FILE", help="also write the figures to this JSON file"
     )
     bench.add_argument(
+        "--spark-conf",
+        type=spark_setting,
+        action="append",
+        default=[],
+        metavar="KEY=VALUE",
+        help="spark, spark-scale: a Spark setting for the session (repeat for more)",
+    )
+    bench.add_argument(
         "--work-dir",
         default=None,
         metavar="DIR",
         help="write the data in a folder made and removed under DIR (default: the system's temporary folder)",
     )
+
+
+def spark_setting(text: str) -> tuple[str, str]:
+    """``--spark-conf``: one ``key=value`` Spark setting."""
+    key, equals, value = text.partition("=")
+    if not (equals and key.strip() and value.strip()):
+        raise argparse.ArgumentTypeError(f"{text!r} is not KEY=VALUE")
+    return key.strip(), value.strip()
 
 
 def row_sizes(text: str) -> tuple[int, ...]:
@@ -930,6 +952,7 @@ def run_bench_command(args: argparse.Namespace) -> None:
             baseline_memory_gb=args.baseline_memory,
             json_path=args.json,
             work_dir=args.work_dir,
+            spark_settings=tuple(args.spark_conf),
         )
     )
 

@@ -23,19 +23,22 @@ SCALE_PREDICTORS = 20
 ROWS_PER_FILE = 5_000_000
 
 
-def local_spark_session(app_name: str) -> Any:
+def local_spark_session(app_name: str, settings: dict[str, str] | None = None) -> Any:
     """A local Spark session on 2 cores (``local[2]``) with no UI and 2 shuffle partitions (the aggregates
-    dbfit sends return one row, or one per segment, so more partitions only add tasks)."""
+    dbfit sends return one row, or one per segment, so more partitions only add tasks), then ``settings``
+    (``--spark-conf``) over those."""
     os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
     from pyspark.sql import SparkSession
 
-    session = (
+    builder = (
         SparkSession.builder.master("local[2]")
         .appName(app_name)
         .config("spark.ui.enabled", "false")
         .config("spark.sql.shuffle.partitions", "2")
-        .getOrCreate()
     )
+    for key, value in (settings or {}).items():
+        builder = builder.config(key, value)
+    session = builder.getOrCreate()
     session.sparkContext.setLogLevel("ERROR")
     return session
 
@@ -114,8 +117,9 @@ def pass_figures(record: dict[str, Any], rows: int) -> dict[str, float]:
     JVM's)."""
     per_pass = record["seconds"] / record["scans"]
     found = {"seconds_per_pass": per_pass, "seconds_per_pass_per_million_rows": per_pass / rows * 1e6}
-    if "cpu_seconds" in record:
-        found["cpu_seconds_per_pass"] = record["cpu_seconds"] / record["scans"]
+    for part in ("cpu_seconds", "jvm_cpu_seconds"):
+        if part in record:
+            found[f"{part}_per_pass"] = record[part] / record["scans"]
     return found
 
 
@@ -172,6 +176,14 @@ SCALING_HEADER = (
 ENGINE_LABELS = {"duckdb": "DuckDB", "spark": "Spark local[2]"}
 
 
+def cpu_text(row: dict[str, Any]) -> str:
+    """CPU time per pass in words: all of it, and the driver JVM's share where there is one."""
+    if "cpu_seconds_per_pass" not in row:
+        return "not measured"
+    jvm = row.get("jvm_cpu_seconds_per_pass")
+    return f"{row['cpu_seconds_per_pass']:.3f} s" + ("" if jvm is None else f" (JVM {jvm:.3f} s)")
+
+
 def scaling_table(rows: list[dict[str, Any]]) -> str:
     """The Markdown table of ``scaling_rows``."""
     lines = [SCALING_HEADER]
@@ -186,7 +198,7 @@ def scaling_table(rows: list[dict[str, Any]]) -> str:
             str(row["scans"]),
             f"{row['seconds_per_pass']:.3f} s",
             f"{row['seconds_per_pass_per_million_rows']:.4f} s",
-            f"{row['cpu_seconds_per_pass']:.3f} s" if "cpu_seconds_per_pass" in row else "not measured",
+            cpu_text(row),
             f"x{row['growth_vs_first']:.2f} (rows x{row['rows_vs_first']:g})",
             f"{row['peak_rss_mb']:,.0f} MB: {row['memory_parts']}",
             "" if gap is None else f"{gap:.1e}",
