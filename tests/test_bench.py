@@ -143,3 +143,54 @@ def test_a_worker_reports_its_own_peak_memory_not_its_parents():
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert float(done.stdout) < 300, done.stdout
     assert len(held) == 400 * 2**20
+
+
+SCALING_ROW = re.compile(r"^\|( [^|]* \|){10}$")
+
+
+def test_spark_scale_runs_tiny_tabulates_each_engine_and_size_and_agrees_with_duckdb(tmp_path):
+    import_engine_module("pyspark")
+    if shutil.which("java") is None:
+        skip_engine("no Java runtime for Spark")
+    arguments = ("--scenario", "spark-scale", "--rows", "20000,40000", "--predictors", "5")
+    setting = ("--spark-conf", "spark.sql.codegen.maxFields=300")
+    done, records = run_cli(tmp_path / "s.json", *arguments, *setting, "--work-dir", str(tmp_path / "data"))
+    assert [r["key"] for r in records] == ["duckdb-20000", "spark-20000", "duckdb-40000", "spark-40000"]
+    assert all(r["status"] == "ok" and r["scans"] >= 3 for r in records), done.stdout
+    spark = [r for r in records if r["key"].startswith("spark")]
+    assert all(r["jvm_peak_rss_mb"] > 0 and r["peak_rss_mb"] > r["driver_peak_rss_mb"] for r in spark)
+    assert all(r["spark_settings_seen"] == {"spark.sql.codegen.maxFields": "300"} for r in spark)
+    # the same Parquet rows fitted by two engines: one answer (Spark SQL and DuckDB, dbfit's own sums)
+    assert max(r["max_abs_difference"] for r in spark) < 1e-9, done.stdout
+    scenario = json.loads((tmp_path / "s.json").read_text())["scenarios"][0]
+    scaling = scenario["scaling"]
+    assert [(row["engine"], row["rows"]) for row in scaling] == [
+        ("duckdb", 20000),
+        ("duckdb", 40000),
+        ("spark", 20000),
+        ("spark", 40000),
+    ]
+    for row in scaling:
+        assert row["seconds_per_pass"] * row["scans"] == pytest.approx(row["seconds"])
+        per_million = row["seconds_per_pass"] * 1e6 / row["rows"]
+        assert row["seconds_per_pass_per_million_rows"] == pytest.approx(per_million)
+        assert row["rows_vs_first"] == row["rows"] / 20000
+        assert row["cpu_seconds_per_pass"] > 0  # the JVM's CPU time, read from /proc, is Spark's
+    assert [row["growth_vs_first"] for row in scaling[::2]] == [1.0, 1.0]
+    assert [[c["column"] for c in data["columns"]] for data in scenario["parquet"]] == [
+        ["x0", "x1", "x2", "x3", "x4", "y"]
+    ] * 2
+    assert list((tmp_path / "data").iterdir()) == []  # each size's Parquet and the bench's folder are gone
+    table = done.stdout.split("| engine | rows |")[1].split("\n\n")[0].strip().splitlines()[2:]
+    assert len(table) == 4 and all(SCALING_ROW.match(line) for line in table), table
+
+
+def test_a_list_of_row_counts_is_refused_outside_spark_scale():
+    done = subprocess.run(
+        [sys.executable, "-m", "dbfit", "bench", "--scenario", "core", "--rows", "2000,4000"],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert done.returncode == 2, done.stderr
+    assert "--rows takes a list of sizes only with --scenario spark-scale" in done.stderr

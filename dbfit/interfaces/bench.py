@@ -3,8 +3,10 @@
 Scenarios: ``core`` (numeric predictors), ``categorical`` (numeric predictors and three categoricals of 5,
 20 and 50 levels), ``wide`` (100 numeric predictors), ``segments`` (one model per segment vs one pooled
 model), ``levels`` (one high-cardinality categorical), ``outofcore`` (a Parquet folder larger than DuckDB's
-memory limit, at growing sizes) and ``spark`` (the same pooled and per-segment fits on Spark SQL in local
-mode, reading the same Parquet file).
+memory limit, at growing sizes), ``spark`` (the same pooled and per-segment fits on Spark SQL in local
+mode, reading the same Parquet file) and ``spark-scale`` (one model on 20 predictors at growing row counts,
+fitted by Spark SQL and DuckDB from the same Parquet folder: time per pass against rows, see
+:mod:`dbfit.interfaces.bench_spark`; not part of ``all``).
 
 The baselines are what a user would run on the exported table: scikit-learn's ``LogisticRegression`` with
 the newton-cholesky solver and no penalty, statsmodels' ``Logit`` by Newton's method and statsmodels' ``GLM``
@@ -36,8 +38,22 @@ from typing import Any
 
 import numpy as np
 
+from dbfit.interfaces.bench_spark import (
+    SCALE_PREDICTORS,
+    SCALE_ROWS,
+    cpu_seconds,
+    driver_jvm_memory,
+    driver_jvm_pid,
+    high_water_mb,
+    local_spark_session,
+    scaling_rows,
+    scaling_table,
+    write_parquet_folder,
+)
+
 RESULT_MARK = "dbfit-bench-result "
-SCENARIOS = ("core", "categorical", "wide", "segments", "levels", "outofcore", "spark")
+SCENARIOS = ("core", "categorical", "wide", "segments", "levels", "outofcore", "spark", "spark-scale")
+EVERY_SCENARIO = SCENARIOS[:-1]  # ``all``: spark-scale writes and fits tens of millions of rows, run it alone
 CATEGORICAL_LEVELS = (5, 20, 50)
 
 # Peak memory of a baseline as a multiple of its dense design (rows x columns x 8 bytes): its peak RSS above
@@ -59,6 +75,7 @@ class BenchOptions:
 
     scenario: str = "core"
     rows: int | None = None
+    row_sizes: tuple[int, ...] | None = None  # spark-scale: each size in turn (``rows`` is the first)
     predictors: int | None = None
     keep: str | None = None
     levels: int = 5000
@@ -67,6 +84,8 @@ class BenchOptions:
     repeat: int = 1
     baseline_memory_gb: float | None = None
     json_path: str | None = None
+    work_dir: str | None = None  # where the data is written (a folder made and removed there)
+    spark_settings: tuple[tuple[str, str], ...] = ()  # Spark configuration over the bench's own
 
     @property
     def memory_cap_gb(self) -> float:
@@ -220,7 +239,7 @@ def _dbfit_worker(task: dict[str, Any]) -> dict[str, Any]:
     path = task["path"]
     con = dbfit.connect(path, read_only=path != ":memory:", **task.get("config", {}))
     phases: list[str] = []
-    began = time.perf_counter()
+    began, cpu_began = time.perf_counter(), cpu_seconds()
     fitted = dbfit.fit(
         con,
         task["formula"],
@@ -229,20 +248,27 @@ def _dbfit_worker(task: dict[str, Any]) -> dict[str, Any]:
         progress=lambda r: phases.append(r.phase),
     )
     result: dict[str, Any] = {"seconds": time.perf_counter() - began}
+    if cpu_began is not None:
+        result["cpu_seconds"] = cpu_seconds() - cpu_began
     if isinstance(fitted, dbfit.SegmentedFit):
         result.update(
             scans=fitted.scans, models=len(fitted.models), failures=len(fitted.failures), passes=fitted.passes
         )
         result.update(_segment_estimates(fitted.models))
     else:
-        result.update(
-            scans=fitted.stats["scans"],
-            estimates=np.nan_to_num(fitted.estimates).tolist(),
-            labels=list(fitted.labels),
-            newton_passes=phases.count("full data"),
-            score_passes=phases.count("full data, score only"),
-        )
+        result.update(_model_figures(fitted, phases))
     return result
+
+
+def _model_figures(fitted: Any, phases: list[str]) -> dict[str, Any]:
+    """A single model's scans, estimates and labels, and its Newton and score-only passes from ``phases``."""
+    return {
+        "scans": fitted.stats["scans"],
+        "estimates": np.nan_to_num(fitted.estimates).tolist(),
+        "labels": list(fitted.labels),
+        "newton_passes": phases.count("full data"),
+        "score_passes": phases.count("full data, score only"),
+    }
 
 
 def _segment_estimates(models: dict[Any, Any]) -> dict[str, list[Any]]:
@@ -256,27 +282,31 @@ def _segment_estimates(models: dict[Any, Any]) -> dict[str, list[Any]]:
 
 
 def _spark_worker(task: dict[str, Any]) -> dict[str, Any]:
+    """Fit on a local Spark session reading ``task['parquet']`` (a file or a folder) as a temporary view; the
+    session's start-up and the reading of the Parquet footers are timed apart from the fit."""
     import dbfit
 
-    os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
-    from pyspark.sql import SparkSession
-
-    session = (
-        SparkSession.builder.master("local[2]")
-        .appName("dbfit-bench")
-        .config("spark.ui.enabled", "false")
-        .config("spark.sql.shuffle.partitions", "2")
-        .getOrCreate()
-    )
-    session.sparkContext.setLogLevel("ERROR")
-    session.read.parquet(task["parquet"]).createOrReplaceTempView("bench")
+    session = local_spark_session("dbfit-bench", task.get("spark_settings"))
     began = time.perf_counter()
-    fitted = dbfit.fit(session, task["formula"], "bench", by=task.get("by"), progress=False)
-    result: dict[str, Any] = {"seconds": time.perf_counter() - began}  # the session's start-up is not counted
+    session.read.parquet(task["parquet"]).createOrReplaceTempView("bench")
+    opened, jvm = time.perf_counter(), driver_jvm_pid(session)
+    cpu_began = [cpu_seconds(), cpu_seconds(jvm)]
+    phases: list[str] = []
+    fitted = dbfit.fit(
+        session, task["formula"], "bench", by=task.get("by"), progress=lambda r: phases.append(r.phase)
+    )
+    result: dict[str, Any] = {"seconds": time.perf_counter() - opened, "view_seconds": opened - began}
+    cpu_ended = [cpu_seconds(), cpu_seconds(jvm)]
+    if None not in cpu_began + cpu_ended:  # the Python driver's and the JVM's (its executor threads' too)
+        python_cpu, jvm_cpu = (end - start for start, end in zip(cpu_began, cpu_ended))
+        result.update(cpu_seconds=python_cpu + jvm_cpu, python_cpu_seconds=python_cpu)
+        result["jvm_cpu_seconds"] = jvm_cpu
     if isinstance(fitted, dbfit.SegmentedFit):
         result.update(models=len(fitted.models), passes=fitted.passes, **_segment_estimates(fitted.models))
     else:
-        result.update(estimates=np.nan_to_num(fitted.estimates).tolist(), labels=list(fitted.labels))
+        result.update(_model_figures(fitted, phases))
+    result.update(driver_jvm_memory(session))
+    result["spark_settings_seen"] = {key: session.conf.get(key) for key in task.get("spark_settings") or {}}
     session.stop()
     return result
 
@@ -348,6 +378,9 @@ def _worker(task: dict[str, Any]) -> dict[str, Any]:
     except MemoryError:
         result = {"status": "did not fit"}
     result["peak_rss_mb"] = peak_rss_mb()
+    if "jvm_peak_rss_mb" in result:  # a Spark session: the Python driver and its JVM, each at its own peak
+        result["driver_peak_rss_mb"] = result["peak_rss_mb"]
+        result["peak_rss_mb"] += result["jvm_peak_rss_mb"]
     return result
 
 
@@ -355,14 +388,8 @@ def peak_rss_mb() -> float:
     """This process's own peak resident memory: VmHWM of /proc/self/status, which starts afresh with the new
     program. ``ru_maxrss`` (the fallback off Linux) keeps the high-water mark of the process that started it
     across fork and exec, so a small worker of a large parent reports the parent's peak."""
-    try:
-        with open("/proc/self/status", encoding="ascii") as status:
-            for line in status:
-                if line.startswith("VmHWM:"):
-                    return int(line.split()[1]) / 1024.0
-    except OSError:
-        pass
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+    own = high_water_mb()
+    return own if own is not None else resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
 OUT_OF_MEMORY_SIGNS = (
@@ -412,6 +439,7 @@ class Scenario:
     def __init__(self, name: str, title: str, options: BenchOptions, rows: int) -> None:
         self.name, self.title, self.options, self.rows = name, title, options, rows
         self.records: list[dict[str, Any]] = []
+        self.extra: dict[str, Any] = {}  # figures of the whole scenario (spark-scale: data sizes, scaling)
         print(title, flush=True)
 
     def run(self, key: str, label: str, task: dict[str, Any], subject: str | None = None) -> dict[str, Any]:
@@ -445,7 +473,13 @@ class Scenario:
         return record
 
     def as_dict(self) -> dict[str, Any]:
-        return {"scenario": self.name, "title": self.title, "rows": self.rows, "records": self.records}
+        return {
+            "scenario": self.name,
+            "title": self.title,
+            "rows": self.rows,
+            "records": self.records,
+            **self.extra,
+        }
 
 
 def _comparison(subject: dict[str, Any], other: dict[str, Any]) -> dict[str, Any]:
@@ -666,7 +700,53 @@ def bench_spark(folder: str, options: BenchOptions) -> Scenario:
             )
             continue
         task = {"kind": "spark", "path": "", "parquet": parquet, "formula": formula(predictors), "by": by}
+        task["spark_settings"] = dict(options.spark_settings)
         scenario.run(f"spark-{key}", f"Spark local[2], {label} (start-up not counted)", task, f"duckdb-{key}")
+    return scenario
+
+
+def bench_spark_scale(folder: str, options: BenchOptions) -> Scenario:
+    """One model on ``--predictors`` numeric predictors (default SCALE_PREDICTORS) at each size of ``--rows``
+    (default SCALE_ROWS), fitted by DuckDB and by Spark local[2] from the same Parquet folder; a size's folder
+    is removed before the next is written, so the disk holds one size at a time."""
+    sizes = list(options.row_sizes or ((options.rows,) if options.rows else SCALE_ROWS))
+    predictors = options.predictors or SCALE_PREDICTORS
+    shown = ", ".join(f"{size:,}" for size in sizes)
+    title = f"spark-scale: {shown} rows x {predictors} numeric in Parquet, DuckDB and Spark local[2]"
+    scenario = Scenario("spark-scale", title, options, sizes[-1])
+    missing = _spark_missing()
+    written_data = []
+    for size in sizes:
+        lake = os.path.join(folder, f"scale_{size}")
+        began = time.perf_counter()
+        written = write_parquet_folder(
+            lake, size, lambda n, first: numeric_select(n, predictors, first_id=first)
+        )
+        written.update(rows=size, seconds_to_write=time.perf_counter() - began)
+        on_disk = written["bytes_on_disk"]
+        print(
+            f"  {size:,} rows: {written['files']} Parquet files, {on_disk / 2**30:.2f} GiB on disk"
+            f" ({on_disk / size / (predictors + 1):.2f} bytes per value)",
+            flush=True,
+        )
+        task = {
+            "kind": "dbfit",
+            "path": ":memory:",
+            "formula": formula(predictors),
+            "source": f"{lake}/*.parquet",
+        }
+        scenario.run(f"duckdb-{size}", f"DuckDB, {size:,} rows", task)
+        label = f"Spark local[2], {size:,} rows"
+        if missing:
+            scenario.add(f"spark-{size}", label, {"status": "not run", "note": missing}, None)
+        else:
+            task = {"kind": "spark", "path": "", "parquet": lake, "formula": formula(predictors)}
+            task["spark_settings"] = dict(options.spark_settings)
+            scenario.run(f"spark-{size}", f"{label} (start-up not counted)", task, f"duckdb-{size}")
+        shutil.rmtree(lake, ignore_errors=True)
+        written_data.append({**written, "load_average_after": os.getloadavg()})
+    scaling = scaling_rows(scenario.records, sizes)
+    scenario.extra.update(parquet=written_data, scaling=scaling, spark_settings=dict(options.spark_settings))
     return scenario
 
 
@@ -687,6 +767,7 @@ SCENARIO_RUNNERS: dict[str, Callable[[str, BenchOptions], Scenario]] = {
     "levels": bench_levels,
     "outofcore": bench_outofcore,
     "spark": bench_spark,
+    "spark-scale": bench_spark_scale,
 }
 
 
@@ -741,23 +822,38 @@ def run_bench(options: BenchOptions) -> dict[str, Any]:
     table; write the JSON when ``options.json_path`` is set. Returns what the JSON holds."""
     if options.scenario != "all" and options.scenario not in SCENARIO_RUNNERS:
         raise ValueError(f"unknown scenario {options.scenario!r}; choose from {', '.join(SCENARIOS)} or all")
-    chosen = SCENARIOS if options.scenario == "all" else (options.scenario,)
-    folder = tempfile.mkdtemp(prefix="dbfit_bench_")
+    chosen = EVERY_SCENARIO if options.scenario == "all" else (options.scenario,)
+    load_before = os.getloadavg()
+    if options.work_dir:
+        os.makedirs(options.work_dir, exist_ok=True)
+    folder = tempfile.mkdtemp(prefix="dbfit_bench_", dir=options.work_dir)
     try:
         scenarios = [SCENARIO_RUNNERS[name](folder, options).as_dict() for name in chosen]
     finally:
         shutil.rmtree(folder, ignore_errors=True)
+    machine = {
+        "cpus": os.cpu_count(),
+        "baseline_memory_cap_gb": options.memory_cap_gb,
+        "load_average_before": load_before,  # 1, 5 and 15 minutes, as uptime shows them
+        "load_average_after": os.getloadavg(),
+    }
     report = {
-        "machine": {"cpus": os.cpu_count(), "baseline_memory_cap_gb": options.memory_cap_gb},
+        "machine": machine,
         "repeat": options.repeat,
         "scenarios": scenarios,
         "targets": target_checks(scenarios),
     }
+    loads = [" ".join(f"{x:.2f}" for x in machine[k]) for k in ("load_average_before", "load_average_after")]
+    print(f"\n{os.cpu_count()} CPUs; load average (1, 5, 15 min) before {loads[0]}, after {loads[1]}")
     if report["targets"]:
         print()
         print(_targets_table(report["targets"]))
     print()
     print(markdown_table(scenarios))
+    for scenario in scenarios:
+        if "scaling" in scenario:
+            print()
+            print(scaling_table(scenario["scaling"]))
     if options.json_path:
         Path(options.json_path).write_text(json.dumps(report, indent=1))
         print(f"\nJSON written to {options.json_path}")
@@ -770,9 +866,14 @@ def add_bench_arguments(bench: argparse.ArgumentParser) -> None:
         "--scenario",
         default="core",
         choices=[*SCENARIOS, "all"],
-        help="what to measure (default: %(default)s)",
+        help="what to measure (default: %(default)s; all: every scenario but spark-scale)",
     )
-    bench.add_argument("--rows", type=int, default=None, help="rows (default: the scenario's own size)")
+    bench.add_argument(
+        "--rows",
+        type=row_sizes,
+        default=None,
+        help="rows (default: the scenario's own size); spark-scale takes a list, e.g. 10000000,50000000",
+    )
     bench.add_argument(
         "--predictors", type=int, default=None, help="numeric predictors (default: per scenario)"
     )
@@ -793,14 +894,55 @@ def add_bench_arguments(bench: argparse.ArgumentParser) -> None:
     bench.add_argument(
         "--json", default=None, metavar="FILE", help="also write the figures to this JSON file"
     )
+    bench.add_argument(
+        "--spark-conf",
+        type=spark_setting,
+        action="append",
+        default=[],
+        metavar="KEY=VALUE",
+        help="spark, spark-scale: a Spark setting for the session (repeat for more)",
+    )
+    bench.add_argument(
+        "--work-dir",
+        default=None,
+        metavar="DIR",
+        help="write the data in a folder made and removed under DIR (default: the system's temporary folder)",
+    )
+
+
+def spark_setting(text: str) -> tuple[str, str]:
+    """``--spark-conf``: one ``key=value`` Spark setting."""
+    key, equals, value = text.partition("=")
+    if not (equals and key.strip() and value.strip()):
+        raise argparse.ArgumentTypeError(f"{text!r} is not KEY=VALUE")
+    return key.strip(), value.strip()
+
+
+def row_sizes(text: str) -> tuple[int, ...]:
+    """``--rows``: one count or a comma-separated list of counts (``10000000,50000000``)."""
+    try:
+        sizes = tuple(int(part.replace("_", "")) for part in text.split(","))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a row count or a list of them") from None
+    if any(size <= 0 for size in sizes):
+        raise argparse.ArgumentTypeError(f"row counts must be positive, got {text!r}")
+    return sizes
 
 
 def run_bench_command(args: argparse.Namespace) -> None:
     """``dbfit bench`` with parsed arguments."""
+    sizes = args.rows or ()
+    if len(sizes) > 1 and args.scenario != "spark-scale":
+        from dbfit.errors import UsageError
+
+        raise UsageError(
+            f"--rows takes a list of sizes only with --scenario spark-scale, got {len(sizes)} sizes"
+        )
     run_bench(
         BenchOptions(
             scenario=args.scenario,
-            rows=args.rows,
+            rows=sizes[0] if sizes else None,
+            row_sizes=tuple(sizes) or None,
             predictors=args.predictors,
             keep=args.keep,
             levels=args.levels,
@@ -809,6 +951,8 @@ def run_bench_command(args: argparse.Namespace) -> None:
             repeat=args.repeat,
             baseline_memory_gb=args.baseline_memory,
             json_path=args.json,
+            work_dir=args.work_dir,
+            spark_settings=tuple(args.spark_conf),
         )
     )
 
