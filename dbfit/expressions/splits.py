@@ -3,8 +3,7 @@
 A row's place comes from the first 32 bits of the MD5 of its key's text, so the same rows fall in the same part
 on every run and every engine that computes MD5 alike (common practice for reproducible splits). The trees are
 built in DuckDB's terms (CAST('0x' || hex AS BIGINT)); dbfit.expressions.dialects.rewrite spells the hex number
-for PostgreSQL and Spark. The key's text must read alike on every engine: whole numbers, text and booleans do,
-but a DOUBLE is written '1.0' by DuckDB and Spark and '1' by PostgreSQL, so a DOUBLE key splits differently there.
+for PostgreSQL and Spark, and dbfit.expressions.dialects.number_text writes the key's text as DuckDB does.
 """
 
 from __future__ import annotations

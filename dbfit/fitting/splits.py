@@ -30,8 +30,7 @@ class FoldSizes:
 def split_keys(design: Design, key_text: str | None) -> list[exp.Expression]:
     if key_text is not None:
         return [parse_expression(key_text, "split_key")]
-    # The target is a DOUBLE; cast once more so that the engines' dialects spell its text as DuckDB does.
-    return [sb.as_double(design.target.copy())] + [f.expression.copy() for f in design.factors]
+    return [design.target.copy()] + [f.expression.copy() for f in design.factors]
 
 
 def fold_expression(design: Design, key_text: str | None, folds: int) -> exp.Expression:
