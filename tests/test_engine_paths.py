@@ -15,7 +15,7 @@ from typing import Any
 import pandas as pd
 import pytest
 from conftest import assert_close, load_frame
-from engine_sessions import birthwt_frame, copy_table
+from engine_sessions import birthwt_frame, copy_table, spark_views
 from pg_server import fresh_database
 
 import dbfit
@@ -94,11 +94,8 @@ def postgres(pg_server, frames):
 
 @pytest.fixture(scope="module")
 def spark(spark_session, frames):
-    for name, frame in frames.items():
-        spark_session.createDataFrame(frame).createOrReplaceTempView(name)
-    yield spark_session
-    for name in frames:
-        spark_session.catalog.dropTempView(name)
+    with spark_views(spark_session, frames) as session:
+        yield session
 
 
 @pytest.fixture(params=ENGINES)
